@@ -1,0 +1,356 @@
+"""Reading the model file: parse with libcst, index the module, check the target.
+
+Nothing here imports or executes the user's file. The module index records what a
+target function may refer to: ``math`` imports in their various spellings, numeric
+module-level constants and the other functions of the file.
+"""
+
+from __future__ import annotations
+
+import ast
+from collections.abc import Mapping
+from dataclasses import dataclass, field
+
+import libcst as cst
+from libcst.metadata import CodeRange, MetadataWrapper, PositionProvider
+
+from .diagnostics import Location, fail, file_location
+from .primitives import MATH_CONSTANTS, MATH_FUNCTIONS
+
+
+@dataclass(frozen=True)
+class ConstantDef:
+    """A module-level ``NAME = <numeric constant expression>``."""
+
+    name: str
+    text: str
+    depends_on: tuple[str, ...]
+
+
+@dataclass(frozen=True)
+class ModuleIndex:
+    path: str
+    source: str
+    module: cst.Module
+    positions: Mapping[cst.CSTNode, CodeRange]
+    lines: tuple[str, ...]
+    #: names bound to the math module itself (``import math``, ``import math as m``)
+    math_modules: frozenset[str]
+    #: names imported from math: local name -> name in math
+    math_names: Mapping[str, str]
+    #: the math import statements, as written, in source order
+    math_imports: tuple[str, ...]
+    constants: Mapping[str, ConstantDef]
+    functions: Mapping[str, cst.FunctionDef]
+    #: every name bound at module level (for name-clash checks)
+    module_names: frozenset[str] = field(default_factory=frozenset)
+
+    def locate(self, node: cst.CSTNode) -> Location:
+        span = self.positions[node]
+        line = span.start.line
+        end = span.end.column if span.end.line == line else len(self.lines[line - 1])
+        return Location(self.path, line, span.start.column, end, self.lines[line - 1])
+
+    def code(self, node: cst.CSTNode) -> str:
+        return self.module.code_for_node(node)
+
+
+def _syntax_error(path: str, source: str, error: cst.ParserSyntaxError) -> None:
+    lines = source.splitlines() or [""]
+    line_no = min(max(error.raw_line, 1), len(lines))
+    column = max(error.raw_column, 0)
+    text = lines[line_no - 1]
+    loc = Location(path, line_no, min(column, len(text)), column + 1, text)
+    fail(
+        f"invalid syntax: {error.message}",
+        loc,
+        "the model file must be valid Python 3.10",
+    )
+
+
+def parse_module(source: str, path: str) -> ModuleIndex:
+    try:
+        parsed = cst.parse_module(source)
+    except cst.ParserSyntaxError as error:
+        _syntax_error(path, source, error)
+        raise  # unreachable: _syntax_error raises
+    wrapper = MetadataWrapper(parsed, unsafe_skip_copy=True)
+    positions = wrapper.resolve(PositionProvider)
+    return _index(path, source, parsed, positions)
+
+
+def _dotted(node: cst.BaseExpression) -> str | None:
+    if isinstance(node, cst.Name):
+        return node.value
+    if isinstance(node, cst.Attribute):
+        head = _dotted(node.value)
+        return None if head is None else f"{head}.{node.attr.value}"
+    return None
+
+
+def _constant_dependencies(
+    node: cst.BaseExpression,
+    constants: Mapping[str, ConstantDef],
+    math_modules: frozenset[str],
+    math_names: Mapping[str, str],
+) -> tuple[str, ...] | None:
+    """Module constants a numeric constant expression reads, or None if not one."""
+    if isinstance(node, (cst.Integer, cst.Float)):
+        return ()
+    if isinstance(node, cst.UnaryOperation) and isinstance(
+        node.operator, (cst.Minus, cst.Plus)
+    ):
+        return _constant_dependencies(
+            node.expression, constants, math_modules, math_names
+        )
+    if isinstance(node, cst.BinaryOperation) and isinstance(
+        node.operator,
+        (cst.Add, cst.Subtract, cst.Multiply, cst.Divide, cst.Power, cst.Modulo),
+    ):
+        left = _constant_dependencies(node.left, constants, math_modules, math_names)
+        right = _constant_dependencies(
+            node.right, constants, math_modules, math_names
+        )
+        if left is None or right is None:
+            return None
+        return left + tuple(n for n in right if n not in left)
+    if isinstance(node, cst.Name):
+        if node.value in constants:
+            return (node.value,)
+        if math_names.get(node.value) in MATH_CONSTANTS:
+            return ()
+        return None
+    if isinstance(node, cst.Attribute) and isinstance(node.value, cst.Name):
+        if node.value.value in math_modules and node.attr.value in MATH_CONSTANTS:
+            return ()
+    return None
+
+
+def _index(
+    path: str,
+    source: str,
+    module: cst.Module,
+    positions: Mapping[cst.CSTNode, CodeRange],
+) -> ModuleIndex:
+    math_modules: set[str] = set()
+    math_names: dict[str, str] = {}
+    math_imports: list[str] = []
+    functions: dict[str, cst.FunctionDef] = {}
+    candidates: list[tuple[str, cst.BaseExpression, str]] = []
+    bound_count: dict[str, int] = {}
+
+    def bind(name: str) -> None:
+        bound_count[name] = bound_count.get(name, 0) + 1
+
+    for stmt in module.body:
+        if isinstance(stmt, cst.FunctionDef):
+            functions[stmt.name.value] = stmt
+            bind(stmt.name.value)
+            continue
+        if isinstance(stmt, cst.ClassDef):
+            bind(stmt.name.value)
+            continue
+        if not isinstance(stmt, cst.SimpleStatementLine):
+            continue
+        for small in stmt.body:
+            if isinstance(small, cst.Import):
+                for alias in small.names:
+                    dotted = _dotted(alias.name) or ""
+                    local = (
+                        alias.asname.name.value
+                        if alias.asname and isinstance(alias.asname.name, cst.Name)
+                        else dotted.split(".")[0]
+                    )
+                    bind(local)
+                    if dotted == "math":
+                        math_modules.add(local)
+                        math_imports.append(
+                            "import math" if local == "math" else f"import math as {local}"
+                        )
+            elif isinstance(small, cst.ImportFrom):
+                from_math = (
+                    not small.relative
+                    and small.module is not None
+                    and _dotted(small.module) == "math"
+                )
+                if not from_math:
+                    if not isinstance(small.names, cst.ImportStar):
+                        for alias in small.names:
+                            bind(_alias_local(alias))
+                    continue
+                if isinstance(small.names, cst.ImportStar):
+                    continue
+                parts = []
+                for alias in small.names:
+                    imported = _dotted(alias.name) or ""
+                    local = _alias_local(alias)
+                    bind(local)
+                    math_names[local] = imported
+                    parts.append(imported if local == imported else f"{imported} as {local}")
+                math_imports.append(f"from math import {', '.join(parts)}")
+            elif isinstance(small, (cst.Assign, cst.AnnAssign)):
+                targets = (
+                    [t.target for t in small.targets]
+                    if isinstance(small, cst.Assign)
+                    else [small.target]
+                )
+                for target in targets:
+                    for name_node in _names_in_target(target):
+                        bind(name_node)
+                if (
+                    len(targets) == 1
+                    and isinstance(targets[0], cst.Name)
+                    and small.value is not None
+                ):
+                    candidates.append(
+                        (targets[0].value, small.value, module.code_for_node(small))
+                    )
+            elif isinstance(small, cst.AugAssign) and isinstance(small.target, cst.Name):
+                bind(small.target.value)
+
+    constants: dict[str, ConstantDef] = {}
+    frozen_modules = frozenset(math_modules)
+    for name, value, text in candidates:
+        if bound_count.get(name, 0) != 1:
+            continue  # re-bound at module level: not a constant
+        deps = _constant_dependencies(value, constants, frozen_modules, math_names)
+        if deps is not None:
+            constants[name] = ConstantDef(name, text, deps)
+
+    return ModuleIndex(
+        path=path,
+        source=source,
+        module=module,
+        positions=positions,
+        lines=tuple(source.splitlines()) or ("",),
+        math_modules=frozen_modules,
+        math_names=dict(sorted(math_names.items())),
+        math_imports=tuple(dict.fromkeys(math_imports)),
+        constants=constants,
+        functions=functions,
+        module_names=frozenset(bound_count),
+    )
+
+
+def _alias_local(alias: cst.ImportAlias) -> str:
+    if alias.asname and isinstance(alias.asname.name, cst.Name):
+        return alias.asname.name.value
+    return (_dotted(alias.name) or "").split(".")[0]
+
+
+def _names_in_target(target: cst.BaseExpression) -> list[str]:
+    if isinstance(target, cst.Name):
+        return [target.value]
+    if isinstance(target, (cst.Tuple, cst.List)):
+        return [n for el in target.elements for n in _names_in_target(el.value)]
+    if isinstance(target, cst.StarredElement):
+        return _names_in_target(target.value)
+    return []
+
+
+# ---------------------------------------------------------------------------------
+# the target function
+
+
+@dataclass(frozen=True)
+class CheckedFunction:
+    """A target function whose signature passed the checks, with its wrt list."""
+
+    name: str
+    node: cst.FunctionDef
+    params: tuple[str, ...]
+    wrt: tuple[str, ...]
+
+
+def check_function(
+    index: ModuleIndex, name: str, wrt: tuple[str, ...] | None
+) -> CheckedFunction:
+    node = index.functions.get(name)
+    if node is None:
+        available = ", ".join(sorted(index.functions)) or "none"
+        fail(
+            f"no function named '{name}' at the top level of {index.path}",
+            file_location(index.path),
+            f"functions defined there: {available}",
+        )
+        raise AssertionError  # unreachable
+    if node.asynchronous is not None:
+        fail("async functions cannot be differentiated", index.locate(node.name))
+    if node.decorators:
+        fail(
+            "decorated functions are not supported (the decorator could change what"
+            " the function computes)",
+            index.locate(node.decorators[0]),
+            "differentiate the undecorated function",
+        )
+    params = node.params
+    if not isinstance(params.star_arg, cst.MaybeSentinel) and isinstance(
+        params.star_arg, cst.Param
+    ):
+        fail(
+            "*args parameters are not supported",
+            index.locate(params.star_arg),
+            "name each input as its own parameter",
+        )
+    if params.star_kwarg is not None:
+        fail(
+            "**kwargs parameters are not supported",
+            index.locate(params.star_kwarg),
+            "name each input as its own parameter",
+        )
+    all_params = [*params.posonly_params, *params.params, *params.kwonly_params]
+    names = tuple(p.name.value for p in all_params)
+    for param in all_params:
+        if param.default is not None and (
+            _constant_dependencies(
+                param.default, index.constants, index.math_modules, index.math_names
+            )
+            is None
+        ):
+            fail(
+                "a parameter default must be a numeric constant",
+                index.locate(param.default),
+            )
+    if not names:
+        fail(
+            f"'{name}' has no parameters to differentiate with respect to",
+            index.locate(node.name),
+        )
+    if wrt is None:
+        chosen = names
+    else:
+        for w in wrt:
+            if w not in names:
+                fail(
+                    f"--wrt name '{w}' is not a parameter of '{name}'",
+                    index.locate(node.params) if all_params else index.locate(node.name),
+                    f"parameters: {', '.join(names)}",
+                )
+        if len(set(wrt)) != len(wrt):
+            fail(f"--wrt lists a parameter twice: {', '.join(wrt)}")
+        chosen = tuple(wrt)
+    for param in all_params:
+        if param.name.value in chosen and param.annotation is not None:
+            annotation = _dotted(param.annotation.annotation)
+            if annotation in ("int", "bool"):
+                fail(
+                    f"parameter '{param.name.value}' is annotated {annotation}: an"
+                    " integer input has no derivative",
+                    index.locate(param.annotation.annotation),
+                    "leave it out of --wrt, or annotate it float",
+                )
+    return CheckedFunction(name, node, names, chosen)
+
+
+def literal_value(node: cst.Integer | cst.Float) -> int | float:
+    return ast.literal_eval(node.value)
+
+
+def math_function_op(index: ModuleIndex, func: cst.BaseExpression) -> str | None:
+    """The op key for a call's callee when it names a supported math function."""
+    if isinstance(func, cst.Attribute) and isinstance(func.value, cst.Name):
+        if func.value.value in index.math_modules:
+            return MATH_FUNCTIONS.get(func.attr.value)
+    if isinstance(func, cst.Name) and func.value in index.math_names:
+        return MATH_FUNCTIONS.get(index.math_names[func.value])
+    return None

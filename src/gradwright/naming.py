@@ -1,0 +1,55 @@
+"""Output names: stable, readable and never clashing with the user's names.
+
+A user variable keeps its name; a later binding of the same name, and each stored
+temporary, takes the name it helps build plus a per-name index (``inv_t_1``), so
+editing one statement renames nothing elsewhere. Adjoints are ``x_bar``.
+"""
+
+from __future__ import annotations
+
+from .ir import Var
+
+
+class Namer:
+    def __init__(self, reserved: set[str]) -> None:
+        self.taken = set(reserved)
+        self.counters: dict[str, int] = {}
+        self.names: dict[Var, str] = {}
+        self.bar_names: dict[Var, str] = {}
+        self.claimed_bare: set[str] = set()
+
+    def fresh(self, base: str) -> str:
+        k = self.counters.get(base, 0)
+        while True:
+            k += 1
+            candidate = f"{base}_{k}"
+            if candidate not in self.taken:
+                self.counters[base] = k
+                self.taken.add(candidate)
+                return candidate
+
+    def name(self, var: Var) -> str:
+        known = self.names.get(var)
+        if known is not None:
+            return known
+        if var.kind == "param" or (
+            var.kind == "local" and var.base not in self.claimed_bare
+        ):
+            # the user's own name (already reserved, so never handed out as fresh)
+            chosen = var.base
+            self.claimed_bare.add(var.base)
+            self.taken.add(chosen)
+        else:
+            chosen = self.fresh(var.base)
+        self.names[var] = chosen
+        return chosen
+
+    def bar_name(self, var: Var) -> str:
+        known = self.bar_names.get(var)
+        if known is not None:
+            return known
+        wanted = f"{self.name(var)}_bar"
+        chosen = wanted if wanted not in self.taken else self.fresh(wanted)
+        self.taken.add(chosen)
+        self.bar_names[var] = chosen
+        return chosen

@@ -1,0 +1,116 @@
+"""How each primitive is spelled: operator symbol or callee, precedence and arity.
+
+This table knows syntax only; the calculus lives in ``rules.py``. Every ``op`` key that
+appears in the IR has an entry here, including the non-differentiable ones the reverse
+sweep prints (comparisons and conditional expressions).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Literal
+
+Syntax = Literal["infix", "prefix", "call", "ifexp", "copy"]
+
+# Python's binding strengths, loosest first; only their order matters.
+PREC_IFEXP = 1
+PREC_OR = 2
+PREC_AND = 3
+PREC_NOT = 4
+PREC_COMPARE = 5
+PREC_ADD = 10
+PREC_MUL = 11
+PREC_UNARY = 12
+PREC_POW = 13
+PREC_ATOM = 20
+
+
+@dataclass(frozen=True)
+class OpSpec:
+    name: str
+    syntax: Syntax
+    symbol: str
+    precedence: int
+    min_args: int
+    max_args: int | None
+
+
+def _infix(name: str, symbol: str, precedence: int) -> OpSpec:
+    return OpSpec(name, "infix", symbol, precedence, 2, 2)
+
+
+def _math(name: str, min_args: int = 1, max_args: int | None = 1) -> OpSpec:
+    # math.pow is a different primitive from the ** operator (it always returns float)
+    key = "math_pow" if name == "pow" else name
+    return OpSpec(key, "call", f"math.{name}", PREC_ATOM, min_args, max_args)
+
+
+_SPECS = [
+    OpSpec("copy", "copy", "", PREC_ATOM, 1, 1),
+    _infix("add", "+", PREC_ADD),
+    _infix("sub", "-", PREC_ADD),
+    _infix("mul", "*", PREC_MUL),
+    _infix("div", "/", PREC_MUL),
+    _infix("floordiv", "//", PREC_MUL),
+    _infix("mod", "%", PREC_MUL),
+    _infix("pow", "**", PREC_POW),
+    OpSpec("neg", "prefix", "-", PREC_UNARY, 1, 1),
+    OpSpec("pos", "prefix", "+", PREC_UNARY, 1, 1),
+    OpSpec("not", "prefix", "not ", PREC_NOT, 1, 1),
+    _infix("and", "and", PREC_AND),
+    _infix("or", "or", PREC_OR),
+    _infix("lt", "<", PREC_COMPARE),
+    _infix("le", "<=", PREC_COMPARE),
+    _infix("gt", ">", PREC_COMPARE),
+    _infix("ge", ">=", PREC_COMPARE),
+    _infix("eq", "==", PREC_COMPARE),
+    _infix("ne", "!=", PREC_COMPARE),
+    # args are (value_if_true, condition, value_if_false), in printed order
+    OpSpec("ifexp", "ifexp", "", PREC_IFEXP, 3, 3),
+    OpSpec("abs", "call", "abs", PREC_ATOM, 1, 1),
+    OpSpec("max", "call", "max", PREC_ATOM, 2, 2),
+    OpSpec("min", "call", "min", PREC_ATOM, 2, 2),
+    *(
+        _math(n)
+        for n in (
+            "sin cos tan asin acos atan sinh cosh tanh asinh acosh atanh exp expm1"
+            " exp2 log1p log2 log10 sqrt cbrt erf erfc fabs"
+        ).split()
+    ),
+    _math("log", 1, 2),
+    _math("atan2", 2, 2),
+    _math("pow", 2, 2),
+    _math("copysign", 2, 2),
+    _math("hypot", 1, None),
+]
+
+OPS: dict[str, OpSpec] = {spec.name: spec for spec in _SPECS}
+
+#: Functions of the ``math`` module a model may call: name there -> op key.
+MATH_FUNCTIONS: dict[str, str] = {
+    spec.symbol.removeprefix("math."): spec.name
+    for spec in _SPECS
+    if spec.symbol.startswith("math.")
+}
+
+#: Constants of the ``math`` module a model may read.
+MATH_CONSTANTS: dict[str, float] = {
+    "pi": 3.141592653589793,
+    "e": 2.718281828459045,
+    "tau": 6.283185307179586,
+    "inf": float("inf"),
+}
+
+#: Builtins a model may call; ``min``/``max`` take two or more arguments and are
+#: lowered to nested two-argument calls, which select the same element.
+BUILTIN_FUNCTIONS: frozenset[str] = frozenset({"abs", "min", "max"})
+
+BINARY_OPERATORS: dict[str, str] = {
+    "+": "add",
+    "-": "sub",
+    "*": "mul",
+    "/": "div",
+    "//": "floordiv",
+    "%": "mod",
+    "**": "pow",
+}
