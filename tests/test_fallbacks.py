@@ -6,16 +6,17 @@ spread over the whole domain (tiny, subnormal, moderate and huge inputs of
 both signs). Errors are measured in ulps of the exact result; for a normal
 result 1 ulp is at most 2.2e-16 relative (2**-52).
 
-Bounds, and why they hold:
+Bounds, and why they hold (measured maxima are from sweeps of 60,000-80,000
+points; the points here are fewer, to keep the suite fast):
 
 * cbrt <= 1 ulp: a pow estimate plus one Newton step whose residual is
   computed exactly leaves only the final rounding (measured 0.50 ulp).
-* exp2 <= 1 ulp: it is ``math.pow(2.0, x)``, and pow is faithfully rounded
-  (< 1 ulp) in both glibc and MicroPython's libm (see PROBE.md).
+* exp2 <= 1 ulp: it is ``math.pow(2.0, x)``, and pow is accurate to < 1 ulp
+  in both glibc and MicroPython's libm (see PROBE.md; measured 0.51 ulp).
 * hypot <= 1 ulp: exact squares, compensated sum, one corrected sqrt
-  (measured 0.71 ulp, at subnormal results).
+  (measured 0.75 ulp, at subnormal results).
 * log1p <= 2 ulp (4.4e-16 relative): ``log(u)`` (< 1 ulp) plus a correction
-  smaller than the result, then one rounding (measured 1.43 ulp).
+  smaller than the result, then one rounding (measured 1.44 ulp).
 * fsum: exact, i.e. equal to the correctly rounded true sum.
 
 The MicroPython tests need node and the npm package pinned in

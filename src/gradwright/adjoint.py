@@ -9,7 +9,6 @@ accumulates (``+=``); the first one assigns.
 from __future__ import annotations
 
 from .algebra import E, is_zero, simplify
-from .diagnostics import fail
 from .ir import AdjointAssign, Apply, Bar, Expr, ReverseSweep, SSAFunction, Var
 from .rules import RULES
 
@@ -63,12 +62,4 @@ def reverse_sweep(
 
     wrt_vars = tuple(p for name in wrt for p in function.params if p.base == name)
     unused = tuple(v for v in wrt_vars if v not in has_adjoint)
-    if len(unused) == len(wrt_vars):
-        fail(
-            f"the result of '{function.name}' does not depend differentiably on "
-            + ", ".join(wrt)
-            + " (it is constant or integer-valued in them)",
-            function.result.origin.location,
-            "choose --wrt parameters the result varies with smoothly",
-        )
     return ReverseSweep(tuple(statements), wrt_vars, unused)

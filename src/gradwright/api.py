@@ -5,9 +5,12 @@ from __future__ import annotations
 import shlex
 from collections.abc import Sequence
 
+import libcst as cst
+
 from .adjoint import reverse_sweep
+from .diagnostics import fail
 from .emit import Compiled, render_module
-from .frontend import check_function, parse_module
+from .frontend import CheckedFunction, ModuleIndex, check_function, parse_module
 from .ir import const
 from .optimize import inline_adjoints, plan_forward
 from .ssa import lower
@@ -28,11 +31,30 @@ def regeneration_command(
     return shlex.join(words)
 
 
-def compile_function(index, name: str, wrt: tuple[str, ...] | None) -> Compiled:  # noqa: ANN001
+def compile_function(
+    index: ModuleIndex, name: str, wrt: tuple[str, ...] | None
+) -> Compiled:
     checked = check_function(index, name, wrt)
     ssa = lower(index, checked)
-    sweep = inline_adjoints(reverse_sweep(ssa, checked.wrt, (const(1.0),)))
+    sweep = reverse_sweep(ssa, checked.wrt, (const(1.0),))
+    if len(sweep.unused_wrt) == len(sweep.wrt):
+        fail(
+            f"the result of '{name}' does not depend differentiably on "
+            + ", ".join(checked.wrt)
+            + " (it is constant or integer-valued in them)",
+            index.locate(_return_statement(checked)),
+            "choose --wrt parameters the result varies with smoothly",
+        )
+    sweep = inline_adjoints(sweep)
     return Compiled(checked, ssa, plan_forward(ssa, sweep), sweep)
+
+
+def _return_statement(checked: CheckedFunction) -> cst.CSTNode:
+    body = checked.node.body
+    last = body.body[-1]
+    if isinstance(last, cst.SimpleStatementLine):
+        return last.body[-1]
+    return last
 
 
 def generate(

@@ -76,17 +76,6 @@ def _environment() -> jinja2.Environment:
     )
 
 
-def _user_names(node: cst.FunctionDef) -> set[str]:
-    names: set[str] = set()
-
-    class Collector(cst.CSTVisitor):
-        def visit_Name(self, n: cst.Name) -> None:
-            names.add(n.value)
-
-    node.visit(Collector())
-    return names
-
-
 def _strip_annotations(node: cst.FunctionDef) -> cst.FunctionDef:
     """Annotations may name types the generated module does not import."""
 
@@ -116,7 +105,12 @@ def _group(items: list[tuple[str, str]]) -> tuple[Group, ...]:
 def render_function(index: ModuleIndex, compiled: Compiled) -> tuple[RenderedGradient, set[str]]:
     checked, ssa = compiled.checked, compiled.ssa
     node = _strip_annotations(checked.node)
-    reserved = _user_names(checked.node) | set(index.module_names) | {"math"}
+    reserved = (
+        set(checked.params)
+        | ssa.local_names
+        | index.module_names
+        | {"math", "abs", "min", "max"}
+    )
     namer = Namer(reserved)
     for param in ssa.params:
         namer.name(param)
@@ -184,7 +178,7 @@ def render_module(
     for statement in index.math_imports:
         if statement != "import math" or "math" not in modules:
             imports.append(statement)
-    constants = _constants_used(index, [c.checked.node for c in compiled])
+    constants = _constants_used(index, [c.ssa for c in compiled])
 
     header = {
         "version": __version__,
@@ -198,17 +192,9 @@ def render_module(
     return text
 
 
-def _constants_used(index: ModuleIndex, nodes: list[cst.FunctionDef]) -> list[str]:
+def _constants_used(index: ModuleIndex, functions: list[SSAFunction]) -> list[str]:
     """The module constants the functions read, with what they read, in source order."""
-    wanted: set[str] = set()
-
-    class Collector(cst.CSTVisitor):
-        def visit_Name(self, n: cst.Name) -> None:
-            if n.value in index.constants:
-                wanted.add(n.value)
-
-    for node in nodes:
-        node.visit(Collector())
+    wanted = {name for fn in functions for name in fn.constants}
     pending = list(wanted)
     while pending:
         name = pending.pop()
@@ -217,4 +203,3 @@ def _constants_used(index: ModuleIndex, nodes: list[cst.FunctionDef]) -> list[st
                 wanted.add(dep)
                 pending.append(dep)
     return [c.text for name, c in index.constants.items() if name in wanted]
-

@@ -10,6 +10,7 @@ from __future__ import annotations
 import ast
 from collections.abc import Mapping
 from dataclasses import dataclass, field
+from functools import cached_property
 
 import libcst as cst
 from libcst.metadata import CodeRange, MetadataWrapper, PositionProvider
@@ -32,7 +33,6 @@ class ModuleIndex:
     path: str
     source: str
     module: cst.Module
-    positions: Mapping[cst.CSTNode, CodeRange]
     lines: tuple[str, ...]
     #: names bound to the math module itself (``import math``, ``import math as m``)
     math_modules: frozenset[str]
@@ -44,6 +44,12 @@ class ModuleIndex:
     functions: Mapping[str, cst.FunctionDef]
     #: every name bound at module level (for name-clash checks)
     module_names: frozenset[str] = field(default_factory=frozenset)
+
+    @cached_property
+    def positions(self) -> Mapping[cst.CSTNode, CodeRange]:
+        # resolved on the first diagnostic only: it costs as much as the parse
+        wrapper = MetadataWrapper(self.module, unsafe_skip_copy=True)
+        return wrapper.resolve(PositionProvider)
 
     def locate(self, node: cst.CSTNode) -> Location:
         span = self.positions[node]
@@ -74,9 +80,7 @@ def parse_module(source: str, path: str) -> ModuleIndex:
     except cst.ParserSyntaxError as error:
         _syntax_error(path, source, error)
         raise  # unreachable: _syntax_error raises
-    wrapper = MetadataWrapper(parsed, unsafe_skip_copy=True)
-    positions = wrapper.resolve(PositionProvider)
-    return _index(path, source, parsed, positions)
+    return _index(path, source, parsed)
 
 
 def _dotted(node: cst.BaseExpression) -> str | None:
@@ -130,7 +134,6 @@ def _index(
     path: str,
     source: str,
     module: cst.Module,
-    positions: Mapping[cst.CSTNode, CodeRange],
 ) -> ModuleIndex:
     math_modules: set[str] = set()
     math_names: dict[str, str] = {}
@@ -221,7 +224,6 @@ def _index(
         path=path,
         source=source,
         module=module,
-        positions=positions,
         lines=tuple(source.splitlines()) or ("",),
         math_modules=frozen_modules,
         math_names=dict(sorted(math_names.items())),

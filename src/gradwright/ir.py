@@ -11,8 +11,6 @@ from __future__ import annotations
 from dataclasses import dataclass
 from typing import Literal, Union
 
-from .diagnostics import Location
-
 VarKind = Literal["param", "local", "temp"]
 
 
@@ -61,8 +59,6 @@ class Origin:
 
     text: str
     index: int
-    #: where the statement is, for diagnostics about it (not part of the output)
-    location: Location | None = None
 
 
 @dataclass(frozen=True)
@@ -85,6 +81,10 @@ class SSAFunction:
     params: tuple[Var, ...]
     body: tuple[Let, ...]
     result: Return
+    #: every name the source function binds (reserved when naming temporaries)
+    local_names: frozenset[str] = frozenset()
+    #: module-level constants it reads, in first-read order
+    constants: tuple[str, ...] = ()
 
 
 @dataclass(frozen=True)

@@ -124,20 +124,15 @@ def _statement_text(index: ModuleIndex, node: cst.CSTNode) -> str:
     return _WHITESPACE.sub(" ", index.code(node).strip())
 
 
-def _assigned_names(body: cst.BaseSuite) -> frozenset[str]:
+def _assigned_names(statements: list[cst.CSTNode]) -> frozenset[str]:
+    """Every name the function binds anywhere: Python makes those local throughout."""
     names: set[str] = set()
-
-    class Collector(cst.CSTVisitor):
-        def visit_AssignTarget(self, node: cst.AssignTarget) -> None:
-            names.update(_target_names(node.target))
-
-        def visit_AugAssign(self, node: cst.AugAssign) -> None:
-            names.update(_target_names(node.target))
-
-        def visit_AnnAssign(self, node: cst.AnnAssign) -> None:
-            names.update(_target_names(node.target))
-
-    body.visit(Collector())
+    for stmt in statements:
+        if isinstance(stmt, cst.Assign):
+            for target in stmt.targets:
+                names.update(_target_names(target.target))
+        elif isinstance(stmt, (cst.AugAssign, cst.AnnAssign)):
+            names.update(_target_names(stmt.target))
     return frozenset(names)
 
 
@@ -156,7 +151,8 @@ class _Lowerer:
         self.uids = itertools.count()
         self.lets: list[Let] = []
         self.env: dict[str, Atom] = {}
-        self.local_names = _assigned_names(function.node.body)
+        self.local_names: frozenset[str] = frozenset()
+        self.constants_read: dict[str, None] = {}
         self.origin = Origin("", 0)
         self.statement_count = itertools.count()
 
@@ -196,6 +192,7 @@ class _Lowerer:
                     statements.append(stmt)
         if statements and _is_docstring(statements[0]):
             statements = statements[1:]
+        self.local_names = _assigned_names(statements)
         result: Return | None = None
         for stmt in statements:
             if result is not None:
@@ -205,9 +202,7 @@ class _Lowerer:
                     "remove it, or move the return to the end",
                 )
             self.origin = Origin(
-                _statement_text(self.index, stmt),
-                next(self.statement_count),
-                self.index.locate(stmt),
+                _statement_text(self.index, stmt), next(self.statement_count)
             )
             result = self.statement(stmt)
         if result is None:
@@ -218,7 +213,14 @@ class _Lowerer:
                 "end the function with `return <expression>`",
             )
         assert result is not None
-        return SSAFunction(self.function.name, params, tuple(self.lets), result)
+        return SSAFunction(
+            self.function.name,
+            params,
+            tuple(self.lets),
+            result,
+            frozenset(self.local_names),
+            tuple(self.constants_read),
+        )
 
     def statement(self, stmt: cst.CSTNode) -> Return | None:
         if isinstance(stmt, cst.Pass):
@@ -399,6 +401,7 @@ class _Lowerer:
                 "assign it earlier in the function",
             )
         if name in self.index.constants:
+            self.constants_read[name] = None
             return Const(name, None)
         imported = self.index.math_names.get(name)
         if imported in MATH_CONSTANTS:
