@@ -160,6 +160,11 @@ def simplify(expr: Expr) -> Expr:
             if folded is not None:
                 return folded
         if op == "mul":
+            # (x * c1) * c2 -> x * (c1 * c2), exact when c1 or c2 is a power of two
+            if nb is not None and isinstance(a, Apply) and a.op == "mul":
+                inner = number(a.args[1])
+                if inner is not None and (_power_of_two(inner) or _power_of_two(nb)):
+                    return simplify(Apply("mul", (a.args[0], const(inner * nb))))
             if _is(a, 0) or _is(b, 0):
                 return const(0.0)
             if _is(a, 1):
@@ -203,6 +208,11 @@ def simplify(expr: Expr) -> Expr:
     if op == "ifexp" and args[0] == args[2]:
         return args[0]
     return Apply(op, args)
+
+
+def _power_of_two(value: float | int) -> bool:
+    mantissa, _ = math.frexp(value)
+    return value != 0 and math.isfinite(value) and abs(mantissa) == 0.5
 
 
 def is_zero(expr: Expr) -> bool:

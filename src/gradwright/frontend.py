@@ -205,9 +205,14 @@ def _index(
                     and isinstance(targets[0], cst.Name)
                     and small.value is not None
                 ):
-                    candidates.append(
-                        (targets[0].value, small.value, module.code_for_node(small))
+                    # the whole line, so a trailing comment (units, say) comes along
+                    line = stmt.with_changes(leading_lines=())
+                    text = (
+                        module.code_for_node(line).rstrip("\n")
+                        if len(stmt.body) == 1
+                        else module.code_for_node(small)
                     )
+                    candidates.append((targets[0].value, small.value, text))
             elif isinstance(small, cst.AugAssign) and isinstance(small.target, cst.Name):
                 bind(small.target.value)
 
