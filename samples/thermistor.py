@@ -6,8 +6,6 @@ style fit); the loss compares one bench reading against the reference thermomete
 
 import math
 
-REFERENCE_OFFSET = 0.0
-
 
 def fit_loss(a, b, c, resistance, kelvin):
     ln_r = math.log(resistance)

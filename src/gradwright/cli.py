@@ -33,15 +33,21 @@ def _parser() -> argparse.ArgumentParser:
         description="Generate standalone reverse-mode gradient code for Python models."
         " `gen` reads the model's source; it never imports or runs it.",
     )
-    parser.add_argument("--version", action="version", version=f"gradwright {__version__}")
-    commands = parser.add_subparsers(dest="command", required=True, parser_class=_Parser)
+    parser.add_argument(
+        "--version", action="version", version=f"gradwright {__version__}"
+    )
+    commands = parser.add_subparsers(
+        dest="command", required=True, parser_class=_Parser
+    )
     gen = commands.add_parser(
         "gen",
         help="generate a gradient module",
         description="Generate a gradient module for FUNC (one or more) in FILE.",
     )
     gen.add_argument("file", metavar="FILE", help="the model's source file")
-    gen.add_argument("functions", metavar="FUNC", nargs="+", help="function(s) to differentiate")
+    gen.add_argument(
+        "functions", metavar="FUNC", nargs="+", help="function(s) to differentiate"
+    )
     gen.add_argument(
         "--wrt",
         metavar="NAMES",

@@ -31,7 +31,7 @@ class Diagnostic:
     hint: str | None = None
 
     def render(self) -> str:
-        """The message as ``file:line:col: error: ...``, the line, a caret and a hint."""
+        """``file:line:col: error: ...``, the source line, a caret and a hint."""
         lines: list[str] = []
         loc = self.location
         if loc is None:
@@ -39,7 +39,9 @@ class Diagnostic:
         elif loc.line == 0:
             lines.append(f"{loc.path}: error: {self.message}")
         else:
-            lines.append(f"{loc.path}:{loc.line}:{loc.column + 1}: error: {self.message}")
+            lines.append(
+                f"{loc.path}:{loc.line}:{loc.column + 1}: error: {self.message}"
+            )
             text = loc.source_line.rstrip("\n").expandtabs(1)
             stripped = text.lstrip()
             indent = len(text) - len(stripped)

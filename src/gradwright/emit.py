@@ -102,7 +102,9 @@ def _group(items: list[tuple[str, str]]) -> tuple[Group, ...]:
     return tuple(groups)
 
 
-def render_function(index: ModuleIndex, compiled: Compiled) -> tuple[RenderedGradient, set[str]]:
+def render_function(
+    index: ModuleIndex, compiled: Compiled
+) -> tuple[RenderedGradient, set[str]]:
     checked, ssa = compiled.checked, compiled.ssa
     node = _strip_annotations(checked.node)
     reserved = (
@@ -186,8 +188,12 @@ def render_module(
         "sha256": hashlib.sha256(index.source.encode("utf-8")).hexdigest(),
         "command": command,
     }
-    text = _environment().get_template("module.py.j2").render(
-        header=header, imports=imports, constants=constants, functions=functions
+    text = (
+        _environment()
+        .get_template("module.py.j2")
+        .render(
+            header=header, imports=imports, constants=constants, functions=functions
+        )
     )
     return text
 

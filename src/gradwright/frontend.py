@@ -112,9 +112,7 @@ def _constant_dependencies(
         (cst.Add, cst.Subtract, cst.Multiply, cst.Divide, cst.Power, cst.Modulo),
     ):
         left = _constant_dependencies(node.left, constants, math_modules, math_names)
-        right = _constant_dependencies(
-            node.right, constants, math_modules, math_names
-        )
+        right = _constant_dependencies(node.right, constants, math_modules, math_names)
         if left is None or right is None:
             return None
         return left + tuple(n for n in right if n not in left)
@@ -168,7 +166,9 @@ def _index(
                     if dotted == "math":
                         math_modules.add(local)
                         math_imports.append(
-                            "import math" if local == "math" else f"import math as {local}"
+                            "import math"
+                            if local == "math"
+                            else f"import math as {local}"
                         )
             elif isinstance(small, cst.ImportFrom):
                 from_math = (
@@ -189,7 +189,9 @@ def _index(
                     local = _alias_local(alias)
                     bind(local)
                     math_names[local] = imported
-                    parts.append(imported if local == imported else f"{imported} as {local}")
+                    parts.append(
+                        imported if local == imported else f"{imported} as {local}"
+                    )
                 math_imports.append(f"from math import {', '.join(parts)}")
             elif isinstance(small, (cst.Assign, cst.AnnAssign)):
                 targets = (
@@ -213,7 +215,9 @@ def _index(
                         else module.code_for_node(small)
                     )
                     candidates.append((targets[0].value, small.value, text))
-            elif isinstance(small, cst.AugAssign) and isinstance(small.target, cst.Name):
+            elif isinstance(small, cst.AugAssign) and isinstance(
+                small.target, cst.Name
+            ):
                 bind(small.target.value)
 
     constants: dict[str, ConstantDef] = {}
@@ -330,7 +334,11 @@ def check_function(
             if w not in names:
                 fail(
                     f"--wrt name '{w}' is not a parameter of '{name}'",
-                    index.locate(node.params) if all_params else index.locate(node.name),
+                    (
+                        index.locate(node.params)
+                        if all_params
+                        else index.locate(node.name)
+                    ),
                     f"parameters: {', '.join(names)}",
                 )
         if len(set(wrt)) != len(wrt):

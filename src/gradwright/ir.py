@@ -9,7 +9,7 @@ forward sweep are printed from.
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Literal, Union
+from typing import Literal
 
 VarKind = Literal["param", "local", "temp"]
 
@@ -49,8 +49,8 @@ class Apply:
     args: tuple[Expr, ...]
 
 
-Atom = Union[Var, Const]
-Expr = Union[Var, Const, Bar, Apply]
+Atom = Var | Const
+Expr = Var | Const | Bar | Apply
 
 
 @dataclass(frozen=True)

@@ -50,7 +50,10 @@ def substitute(expr: Expr, bars: dict[Var, Expr], values: dict[Var, Expr]) -> Ex
 def inline_adjoints(sweep: ReverseSweep) -> ReverseSweep:
     writes = Counter(s.var for s in sweep.statements)
     reads = Counter(
-        node.var for s in sweep.statements for node in walk(s.expr) if isinstance(node, Bar)
+        node.var
+        for s in sweep.statements
+        for node in walk(s.expr)
+        if isinstance(node, Bar)
     )
     keep = set(sweep.wrt)
     inlined: dict[Var, Expr] = {}

@@ -13,7 +13,9 @@ from pathlib import Path
 
 def write_generated(path: Path, text: str) -> None:
     directory = path.parent if str(path.parent) else Path(".")
-    fd, temporary = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=directory)
+    fd, temporary = tempfile.mkstemp(
+        prefix=f".{path.name}.", suffix=".tmp", dir=directory
+    )
     try:
         with os.fdopen(fd, "w", encoding="utf-8", newline="\n") as handle:
             handle.write(text)

@@ -74,14 +74,17 @@ _STATEMENT_REJECTIONS: dict[type, tuple[str, str | None]] = {
         "assert statements are not supported",
         "check inputs before calling the model",
     ),
-    cst.Import: ("imports inside the model are not supported", "import at module level"),
+    cst.Import: (
+        "imports inside the model are not supported",
+        "import at module level",
+    ),
     cst.ImportFrom: (
         "imports inside the model are not supported",
         "import at module level",
     ),
     cst.If: (
         "if statements are not supported yet",
-        "write the branch as arithmetic, or keep it outside the differentiated function",
+        "write the branch as arithmetic, or keep it out of the differentiated function",
     ),
     cst.For: (
         "for-loops are not supported yet",
@@ -92,12 +95,18 @@ _STATEMENT_REJECTIONS: dict[type, tuple[str, str | None]] = {
 }
 
 _EXPRESSION_REJECTIONS: dict[type, tuple[str, str | None]] = {
-    cst.Lambda: ("lambda expressions are not supported", "define a module-level function"),
+    cst.Lambda: (
+        "lambda expressions are not supported",
+        "define a module-level function",
+    ),
     cst.ListComp: ("list comprehensions are not supported", None),
     cst.SetComp: ("set comprehensions are not supported", None),
     cst.DictComp: ("dict comprehensions are not supported", None),
     cst.GeneratorExp: ("generator expressions are not supported", None),
-    cst.SimpleString: ("strings are not numbers: string operations are not supported", None),
+    cst.SimpleString: (
+        "strings are not numbers: string operations are not supported",
+        None,
+    ),
     cst.ConcatenatedString: ("string operations are not supported", None),
     cst.FormattedString: ("f-strings are not supported", None),
     cst.Imaginary: ("complex numbers are not supported", None),
@@ -111,7 +120,10 @@ _EXPRESSION_REJECTIONS: dict[type, tuple[str, str | None]] = {
     cst.Set: ("sets are not supported", None),
     cst.Await: ("await is not supported", None),
     cst.Yield: ("yield is not supported (generators cannot be differentiated)", None),
-    cst.NamedExpr: ("assignment expressions (:=) are not supported", "assign on its own line"),
+    cst.NamedExpr: (
+        "assignment expressions (:=) are not supported",
+        "assign on its own line",
+    ),
     cst.StarredElement: ("starred expressions are not supported", None),
     cst.Ellipsis: ("... is not a number", None),
 }
@@ -301,14 +313,20 @@ class _Lowerer:
             for name, var in zip(names, computed, strict=True):
                 self.env[name.value] = var  # type: ignore[union-attr]
             if len(targets) > 1:
-                fail("chained tuple assignment is not supported", self.index.locate(first))
+                fail(
+                    "chained tuple assignment is not supported",
+                    self.index.locate(first),
+                )
             return
         assert isinstance(first, cst.Name)
         var = self.bind_value(value, first.value)
         self.env[first.value] = var
         for other in targets[1:]:
             if not isinstance(other, cst.Name):
-                fail("chained tuple assignment is not supported", self.index.locate(other))
+                fail(
+                    "chained tuple assignment is not supported",
+                    self.index.locate(other),
+                )
             assert isinstance(other, cst.Name)
             self.env[other.value] = self.emit(
                 "copy", (var,), self.new_var(other.value, "local")
@@ -321,9 +339,7 @@ class _Lowerer:
             for el in target.elements:
                 if not isinstance(el.value, cst.Name):
                     self.check_target(el.value)
-                    fail(
-                        "only names can be unpacked into", self.index.locate(el.value)
-                    )
+                    fail("only names can be unpacked into", self.index.locate(el.value))
             return
         if isinstance(target, cst.Attribute):
             fail(
@@ -472,7 +488,11 @@ class _Lowerer:
     def call(self, node: cst.Call, base: str, target: Var | None) -> Atom:
         func = node.func
         op = math_function_op(self.index, func)
-        if op is None and isinstance(func, cst.Name) and func.value in ("abs", "min", "max"):
+        if (
+            op is None
+            and isinstance(func, cst.Name)
+            and func.value in ("abs", "min", "max")
+        ):
             if func.value not in self.index.module_names:
                 op = func.value
         if op is None:
@@ -493,13 +513,17 @@ class _Lowerer:
                     self.index.locate(node),
                     f"write {op}(a, b, ...)",
                 )
-        elif count < spec.min_args or (spec.max_args is not None and count > spec.max_args):
+        elif count < spec.min_args or (
+            spec.max_args is not None and count > spec.max_args
+        ):
             expected = (
                 str(spec.min_args)
                 if spec.max_args == spec.min_args
-                else f"{spec.min_args} or more"
-                if spec.max_args is None
-                else f"{spec.min_args} to {spec.max_args}"
+                else (
+                    f"{spec.min_args} or more"
+                    if spec.max_args is None
+                    else f"{spec.min_args} to {spec.max_args}"
+                )
             )
             fail(
                 f"{spec.symbol}() takes {expected} arguments, not {count}",
