@@ -53,9 +53,9 @@ def call_value_grad(spot, strike, vol, rate, years):
     rate_bar = -(value_4_bar * years)
     spot_bar = n1
     # n2 = 0.5 * (1.0 + erf(d2 / SQRT2))
-    d2_bar = n2_bar * math.exp(-(n2_1 * n2_1)) / math.sqrt(math.pi) / SQRT2
+    d2_bar = n2_bar * 0.5641895835477563 * math.exp(-(n2_1 * n2_1)) / SQRT2
     # n1 = 0.5 * (1.0 + erf(d1 / SQRT2))
-    d1_bar = spot * math.exp(-(n1_1 * n1_1)) / math.sqrt(math.pi) / SQRT2
+    d1_bar = spot * 0.5641895835477563 * math.exp(-(n1_1 * n1_1)) / SQRT2
     # d2 = d1 - vol * root_t
     d1_bar += d2_bar
     d2_1_bar = -d2_bar

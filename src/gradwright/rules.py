@@ -20,10 +20,10 @@ in ``tests/test_rules.py`` against an outside reference.
 
 from __future__ import annotations
 
+import math
 from collections.abc import Callable
 
 from .algebra import E, call, where
-from .ir import Const
 
 Rule = Callable[..., tuple["E | None", ...]]
 
@@ -34,7 +34,10 @@ exp = call("exp")
 log = call("log")
 hypot = call("hypot")
 copysign = call("copysign")
-PI = E(Const("math.pi", None))
+# Constant factors as literals: the reverse sweep should not recompute them per call.
+TWO_OVER_SQRT_PI = 2.0 / math.sqrt(math.pi)
+LN2 = math.log(2.0)
+LN10 = math.log(10.0)
 
 
 def _power(g: E, out: E, x: E, y: E) -> tuple[E, E]:
@@ -53,7 +56,7 @@ def _log(g: E, out: E, x: E, base: E | None = None) -> tuple[E, ...]:
 
 
 def _erf(g: E, x: E) -> E:
-    return g * 2.0 * exp(-(x * x)) / sqrt(PI)
+    return g * TWO_OVER_SQRT_PI * exp(-(x * x))
 
 
 RULES: dict[str, Rule] = {
@@ -91,11 +94,11 @@ RULES: dict[str, Rule] = {
     "atanh": lambda g, out, x: (g / ((1.0 - x) * (1.0 + x)),),
     "exp": lambda g, out, x: (g * out,),
     "expm1": lambda g, out, x: (g * (out + 1.0),),
-    "exp2": lambda g, out, x: (g * out * log(2.0),),
+    "exp2": lambda g, out, x: (g * out * LN2,),
     "log": _log,
     "log1p": lambda g, out, x: (g / (1.0 + x),),
-    "log2": lambda g, out, x: (g / (x * log(2.0)),),
-    "log10": lambda g, out, x: (g / (x * log(10.0)),),
+    "log2": lambda g, out, x: (g / (x * LN2),),
+    "log10": lambda g, out, x: (g / (x * LN10),),
     "sqrt": lambda g, out, x: (0.5 * g / out,),
     "cbrt": lambda g, out, x: (g / (3.0 * out * out),),
     "hypot": _hypot,
