@@ -29,8 +29,9 @@ def rig_loss_grad(a, span):
     half_1 = 2.0 * a
     half = span / half_1
     # sag, length = a * (math.cosh(half) - 1.0), 2.0 * a * math.sinh(half)
-    sag_1 = math.cosh(half) - 1.0
-    sag = a * sag_1
+    sag_1 = math.cosh(half)
+    sag_2 = sag_1 - 1.0
+    sag = a * sag_2
     length_1 = 2.0 * a
     length_2 = math.sinh(half)
     length = length_1 * length_2
@@ -41,7 +42,7 @@ def rig_loss_grad(a, span):
     # loss = sag_err**2
     loss = sag_err**2
     # loss += LENGTH_WEIGHT * length_err**2
-    loss_1 = loss + LENGTH_WEIGHT * length_err**2
+    loss = loss + LENGTH_WEIGHT * length_err**2
 
     # reverse sweep
     # loss += LENGTH_WEIGHT * length_err**2
@@ -49,11 +50,11 @@ def rig_loss_grad(a, span):
     # loss = sag_err**2
     sag_err_bar = 2.0 * sag_err
     # sag, length = a * (math.cosh(half) - 1.0), 2.0 * a * math.sinh(half)
-    half_bar = length_err_bar * length_1 * math.cosh(half)
+    half_bar = length_err_bar * length_1 * sag_1
     a_bar = length_err_bar * length_2 * 2.0
-    a_bar += sag_err_bar * sag_1
-    half_bar += sag_err_bar * a * math.sinh(half)
+    a_bar += sag_err_bar * sag_2
+    half_bar += sag_err_bar * a * length_2
     # half = span / (2.0 * a)
     span_bar = half_bar / half_1
     a_bar += -half_bar * half / half_1 * 2.0
-    return loss_1, (a_bar, span_bar)
+    return loss, (a_bar, span_bar)

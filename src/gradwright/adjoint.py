@@ -1,25 +1,351 @@
 """The reverse sweep: adjoint statements from the rule table, in reverse order.
 
-Activity analysis runs here too: a value is active when it depends on a ``wrt``
-parameter through a differentiable primitive, and only active values receive
-adjoint contributions. A contribution to a value that already has an adjoint
-accumulates (``+=``); the first one assigns.
+Activity analysis runs first: a value is active when it depends on a ``wrt``
+parameter through a differentiable primitive, and only active values receive adjoint
+contributions. A contribution to a value that already has an adjoint accumulates
+(``+=``); the first one assigns.
+
+Control flow keeps its shape. A branch is reversed into a branch on the same
+condition; a value that gets an adjoint in only one side gets a zero in the other.
+A loop is reversed into a loop over the same range backwards: each loop-carried
+value has one adjoint that flows from the end of an iteration to its start, and
+values from outside the loop that gain adjoint inside it start at zero before it.
+
+Lists: all versions of a list (one per element write) share one adjoint list, a
+list of zeros when the reverse sweep starts.
 """
 
 from __future__ import annotations
 
+from collections.abc import Iterable
+
 from .algebra import E, is_zero, simplify
-from .ir import AdjointAssign, Apply, Bar, Expr, ReverseSweep, SSAFunction, Var
+from .ir import (
+    AdjointAssign,
+    Apply,
+    Atom,
+    Bar,
+    Branch,
+    Const,
+    ElementAdjoint,
+    Expr,
+    Let,
+    Loop,
+    Origin,
+    Phi,
+    ReverseBranch,
+    ReverseLoop,
+    ReverseStmt,
+    ReverseSweep,
+    SpreadAdjoint,
+    SSAFunction,
+    Stmt,
+    Var,
+    const,
+)
 from .rules import RULES
+
+#: primitives on lists that adjoints flow through
+_LIST_FLOW = frozenset({"getitem", "setitem", "newlist", "listlit", "sum"})
+#: primitives whose value is a condition, rebuilt in the reverse sweep
+_LOGIC = frozenset({"lt", "le", "gt", "ge", "eq", "ne", "and", "or", "not"})
+
+
+def differentiable(op: str) -> bool:
+    return op in RULES or op in _LIST_FLOW or op.startswith("call:")
+
+
+def _walk_lets(statements: Iterable[Stmt]) -> Iterable[Let]:
+    for stmt in statements:
+        if isinstance(stmt, Let):
+            yield stmt
+        elif isinstance(stmt, Branch):
+            yield from _walk_lets(stmt.then)
+            yield from _walk_lets(stmt.orelse)
+        else:
+            yield from _walk_lets(stmt.body)
+
+
+def defined_in(statements: Iterable[Stmt]) -> set[Var]:
+    """Every value a run of statements defines, nested blocks included."""
+    found: set[Var] = set()
+    for stmt in statements:
+        if isinstance(stmt, Let):
+            found.add(stmt.target)
+        elif isinstance(stmt, Branch):
+            found |= defined_in(stmt.then) | defined_in(stmt.orelse)
+            found |= {phi.target for phi in stmt.merges}
+        else:
+            found |= defined_in(stmt.body) | {stmt.index}
+            for phi in stmt.carried:
+                found.add(phi.target)
+                if phi.exit is not None:
+                    found.add(phi.exit)
+    return found
+
+
+def _is_active(atom: Atom, active: set[Var]) -> bool:
+    return isinstance(atom, Var) and atom in active
+
+
+def _mark(statements: tuple[Stmt, ...], active: set[Var]) -> None:
+    for stmt in statements:
+        if isinstance(stmt, Let):
+            if differentiable(stmt.op) and any(
+                _is_active(a, active) for a in stmt.args
+            ):
+                active.add(stmt.target)
+        elif isinstance(stmt, Branch):
+            _mark(stmt.then, active)
+            _mark(stmt.orelse, active)
+            for phi in stmt.merges:
+                if _is_active(phi.first, active) or _is_active(phi.second, active):
+                    active.add(phi.target)
+        else:
+            # a carried value turns active once any iteration makes it so
+            while True:
+                size = len(active)
+                for phi in stmt.carried:
+                    if _is_active(phi.first, active) or _is_active(phi.second, active):
+                        active.add(phi.target)
+                _mark(stmt.body, active)
+                for phi in stmt.carried:
+                    if phi.target in active or _is_active(phi.second, active):
+                        active.add(phi.target)
+                        assert phi.exit is not None
+                        active.add(phi.exit)
+                if len(active) == size:
+                    break
 
 
 def active_values(function: SSAFunction, wrt: tuple[str, ...]) -> set[Var]:
     """Values that depend on a wrt parameter through differentiable primitives."""
     active = {p for p in function.params if p.base in wrt}
-    for let in function.body:
-        if let.op in RULES and any(a in active for a in let.args):
-            active.add(let.target)
+    _mark(function.body, active)
     return active
+
+
+class _Reverse:
+    def __init__(self, function: SSAFunction, active: set[Var]) -> None:
+        self.active = active
+        self.has: set[Var] = set()
+        self.root: dict[Var, Var] = {}
+        self.carries: dict[Var, Var] = {}
+        self.defs = {let.target: let for let in _walk_lets(function.body)}
+        self.next_uid = 1 + max(
+            [v.uid for v in function.params]
+            + [v.uid for v in defined_in(function.body)]
+            + [0]
+        )
+        self._link_lists(function.params, function.body)
+
+    # -- lists ---------------------------------------------------------------------
+
+    def _link_lists(self, params: tuple[Var, ...], body: tuple[Stmt, ...]) -> None:
+        for p in params:
+            if p.shape == "list":
+                self.root[p] = p
+        self._link_block(body)
+
+    def _link_block(self, statements: tuple[Stmt, ...]) -> None:
+        for stmt in statements:
+            if isinstance(stmt, Let):
+                if stmt.target.shape != "list":
+                    continue
+                if stmt.op == "setitem":
+                    self.root[stmt.target] = self.root[stmt.args[0]]  # type: ignore[index]
+                else:
+                    self.root[stmt.target] = stmt.target
+            elif isinstance(stmt, Branch):
+                self._link_block(stmt.then)
+                self._link_block(stmt.orelse)
+                for phi in stmt.merges:
+                    if phi.target.shape == "list":
+                        self.root[phi.target] = self.root[phi.first]  # type: ignore[index]
+            else:
+                for phi in stmt.carried:
+                    if phi.target.shape == "list":
+                        base = self.root[phi.first]  # type: ignore[index]
+                        self.root[phi.target] = base
+                        assert phi.exit is not None
+                        self.root[phi.exit] = base
+                self._link_block(stmt.body)
+
+    def list_roots(self) -> tuple[Var, ...]:
+        roots = {self.root[v] for v in self.active if v.shape == "list"}
+        return tuple(sorted(roots))
+
+    # -- contributions -------------------------------------------------------------
+
+    def contribute(
+        self, var: Atom, expr: Expr, origin: Origin, out: list[ReverseStmt]
+    ) -> None:
+        if not (isinstance(var, Var) and var in self.active):
+            return
+        expr = simplify(expr)
+        if is_zero(expr):
+            return
+        out.append(AdjointAssign(var, expr, var in self.has, origin))
+        self.has.add(var)
+
+    def block(self, statements: tuple[Stmt, ...]) -> list[ReverseStmt]:
+        out: list[ReverseStmt] = []
+        for stmt in reversed(statements):
+            if isinstance(stmt, Let):
+                self.let(stmt, out)
+            elif isinstance(stmt, Branch):
+                self.branch(stmt, out)
+            else:
+                self.loop(stmt, out)
+        return out
+
+    def let(self, let: Let, out: list[ReverseStmt]) -> None:
+        target, op, args, origin = let.target, let.op, let.args, let.origin
+        if target not in self.active:
+            return
+        if target.shape == "list":
+            self.list_let(let, out)
+            return
+        if target not in self.has:
+            return
+        g = Bar(target)
+        if op == "getitem":
+            root = self.root[args[0]]  # type: ignore[index]
+            out.append(ElementAdjoint(root, args[1], g, True, origin))
+            return
+        if op == "sum":
+            out.append(SpreadAdjoint(self.root[args[0]], g, origin))  # type: ignore[index]
+            return
+        if op.startswith("call:"):
+            for k, arg in enumerate(args):
+                partial = Apply("partial", (target, const(k)))
+                self.contribute(arg, Apply("mul", (g, partial)), origin, out)
+            return
+        parts = RULES[op](E(g), E(target), *(E(a) for a in args))
+        grouped: dict[Var, Expr] = {}
+        for arg, part in zip(args, parts, strict=False):
+            if part is None or not (isinstance(arg, Var) and arg in self.active):
+                continue
+            previous = grouped.get(arg)
+            grouped[arg] = (
+                part.node if previous is None else Apply("add", (previous, part.node))
+            )
+        for var, total in grouped.items():
+            self.contribute(var, total, origin, out)
+
+    def list_let(self, let: Let, out: list[ReverseStmt]) -> None:
+        root = self.root[let.target]
+        buffer = Bar(root)
+        if let.op == "setitem":
+            _, index, value = let.args
+            self.contribute(value, Apply("getitem", (buffer, index)), let.origin, out)
+            out.append(ElementAdjoint(root, index, const(0.0), False, let.origin))
+        elif let.op == "newlist":
+            self.contribute(let.args[0], Apply("sum", (buffer,)), let.origin, out)
+        elif let.op == "listlit":
+            for k, element in enumerate(let.args):
+                self.contribute(
+                    element,
+                    Apply("getitem", (buffer, Const(str(k), k))),
+                    let.origin,
+                    out,
+                )
+
+    # -- branches ------------------------------------------------------------------
+
+    def condition(self, atom: Atom) -> Expr:
+        """The condition as an expression over stored values (recomputed, cheap)."""
+        if isinstance(atom, Var) and atom in self.defs and self.defs[atom].op in _LOGIC:
+            let = self.defs[atom]
+            return Apply(let.op, tuple(self.condition(a) for a in let.args))
+        return atom
+
+    def branch(self, branch: Branch, out: list[ReverseStmt]) -> None:
+        before = set(self.has)
+        sides: list[tuple[list[ReverseStmt], set[Var]]] = []
+        for side, block in ((0, branch.then), (1, branch.orelse)):
+            self.has = set(before)
+            side_out: list[ReverseStmt] = []
+            for phi in branch.merges:
+                if phi.target in before and phi.target.shape == "scalar":
+                    source = phi.first if side == 0 else phi.second
+                    self.contribute(source, Bar(phi.target), branch.origin, side_out)
+            side_out += self.block(block)
+            sides.append((side_out, self.has))
+        (then_out, then_has), (else_out, else_has) = sides
+        # values from before the branch that gained adjoint on one side only get a
+        # zero on the other; values made inside a side are done with there
+        inside = defined_in(branch.then) | defined_in(branch.orelse)
+        gained = sorted((then_has | else_has) - before - inside)
+        for var in gained:
+            for side_out, side_has in sides:
+                if var not in side_has:
+                    side_out.append(
+                        AdjointAssign(var, const(0.0), False, branch.origin)
+                    )
+        self.has = before | set(gained)
+        if then_out or else_out:
+            out.append(
+                ReverseBranch(
+                    self.condition(branch.condition),
+                    tuple(then_out),
+                    tuple(else_out),
+                    branch.origin,
+                )
+            )
+
+    # -- loops ---------------------------------------------------------------------
+
+    def new_carry(self, phi: Phi) -> Var:
+        var = Var(self.next_uid, phi.target.base, "temp")
+        self.next_uid += 1
+        self.active.add(var)
+        self.carries[var] = phi.target
+        return var
+
+    def loop_body(self, loop: Loop, carries: dict[Phi, Var]) -> list[ReverseStmt]:
+        body_out: list[ReverseStmt] = []
+        for phi, carry in carries.items():
+            self.contribute(phi.second, Bar(carry), loop.origin, body_out)
+        body_out += self.block(loop.body)
+        for phi, carry in carries.items():
+            if phi.target in self.has:
+                body_out.append(
+                    AdjointAssign(carry, Bar(phi.target), False, loop.origin)
+                )
+            else:
+                body_out.append(AdjointAssign(carry, const(0.0), False, loop.origin))
+        return body_out
+
+    def loop(self, loop: Loop, out: list[ReverseStmt]) -> None:
+        scalar_phis = [
+            phi
+            for phi in loop.carried
+            if phi.target.shape == "scalar" and phi.target in self.active
+        ]
+        carries = {phi: self.new_carry(phi) for phi in scalar_phis}
+        for phi, carry in carries.items():
+            assert phi.exit is not None
+            value: Expr = Bar(phi.exit) if phi.exit in self.has else const(0.0)
+            out.append(AdjointAssign(carry, value, False, loop.origin))
+            self.has.add(carry)
+        inside = defined_in(loop.body) | {phi.target for phi in loop.carried}
+        # a dry run finds the outer values that gain adjoint inside the loop
+        before = set(self.has)
+        saved_uid = self.next_uid
+        self.loop_body(loop, carries)
+        outer = sorted(
+            v for v in self.has - before if v not in inside and v not in self.carries
+        )
+        self.has, self.next_uid = set(before), saved_uid
+        for var in outer:
+            out.append(AdjointAssign(var, const(0.0), False, loop.origin))
+            self.has.add(var)
+        body_out = self.loop_body(loop, carries)
+        self.has = {v for v in self.has if v not in inside}
+        out.append(ReverseLoop(loop, tuple(body_out), loop.origin))
+        for phi, carry in carries.items():
+            self.contribute(phi.first, Bar(carry), loop.origin, out)
 
 
 def reverse_sweep(
@@ -27,39 +353,26 @@ def reverse_sweep(
     wrt: tuple[str, ...],
     seeds: tuple[Expr, ...],
 ) -> ReverseSweep:
-    """Adjoint statements for ``sum(seed_i * d result_i)``, reverse order."""
+    """Adjoint statements for ``sum(seed_i * d result_i)``, in reverse order."""
     active = active_values(function, wrt)
-    statements: list[AdjointAssign] = []
-    has_adjoint: set[Var] = set()
-
-    def contribute(var: Var, expr: Expr, origin) -> None:  # noqa: ANN001
-        expr = simplify(expr)
-        if is_zero(expr):
-            return
-        statements.append(AdjointAssign(var, expr, var in has_adjoint, origin))
-        has_adjoint.add(var)
-
+    reverse = _Reverse(function, active)
+    out: list[ReverseStmt] = []
     result = function.result
     for atom, seed in zip(result.values, seeds, strict=True):
-        if isinstance(atom, Var) and atom in active:
-            contribute(atom, seed, result.origin)
-
-    for let in reversed(function.body):
-        if let.target not in has_adjoint:
-            continue
-        rule = RULES[let.op]
-        g = E(Bar(let.target))
-        parts = rule(g, E(let.target), *(E(a) for a in let.args))
-        grouped: dict[Var, list[Expr]] = {}
-        for arg, part in zip(let.args, parts, strict=False):
-            if part is not None and isinstance(arg, Var) and arg in active:
-                grouped.setdefault(arg, []).append(part.node)
-        for var, pieces in grouped.items():
-            total = pieces[0]
-            for piece in pieces[1:]:
-                total = Apply("add", (total, piece))
-            contribute(var, total, let.origin)
-
+        reverse.contribute(atom, seed, result.origin, out)
+    out += reverse.block(function.body)
     wrt_vars = tuple(p for name in wrt for p in function.params if p.base == name)
-    unused = tuple(v for v in wrt_vars if v not in has_adjoint)
-    return ReverseSweep(tuple(statements), wrt_vars, unused)
+    unused = tuple(
+        v
+        for v in wrt_vars
+        if v not in reverse.has and not (v.shape == "list" and v in active)
+    )
+    return ReverseSweep(
+        tuple(out),
+        wrt_vars,
+        unused,
+        reverse.list_roots(),
+        tuple(sorted(reverse.root.items())),
+        tuple(s for s in seeds if isinstance(s, Var)),
+        tuple(sorted(reverse.carries.items())),
+    )

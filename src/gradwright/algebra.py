@@ -70,6 +70,9 @@ class E:
     def __neg__(self) -> E:
         return E(Apply("neg", (self.node,)))
 
+    def eq(self, other: E | float | int) -> E:
+        return self._binary("eq", other)
+
     def ge(self, other: E | float | int) -> E:
         return self._binary("ge", other)
 
@@ -205,9 +208,28 @@ def simplify(expr: Expr) -> Expr:
             return args[0]
         if _is(args[1], 0):
             return const(1.0)
-    if op == "ifexp" and args[0] == args[2]:
-        return args[0]
+    if op in _COMPARISONS and len(args) == 2:
+        na, nb = number(args[0]), number(args[1])
+        if na is not None and nb is not None:
+            return _TRUE if _COMPARISONS[op](na, nb) else _FALSE
+    if op == "ifexp":
+        if args[0] == args[2]:
+            return args[0]
+        if args[1] in (_TRUE, _FALSE):
+            return args[0] if args[1] == _TRUE else args[2]
     return Apply(op, args)
+
+
+_TRUE = Const("True", None)
+_FALSE = Const("False", None)
+_COMPARISONS: dict[str, Callable[[float, float], bool]] = {
+    "lt": lambda a, b: a < b,
+    "le": lambda a, b: a <= b,
+    "gt": lambda a, b: a > b,
+    "ge": lambda a, b: a >= b,
+    "eq": lambda a, b: a == b,
+    "ne": lambda a, b: a != b,
+}
 
 
 def _power_of_two(value: float | int) -> bool:

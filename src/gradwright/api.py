@@ -2,18 +2,21 @@
 
 from __future__ import annotations
 
+import gc
 import shlex
-from collections.abc import Sequence
+from collections.abc import Iterator, Sequence
+from contextlib import contextmanager
 
 import libcst as cst
 
-from .adjoint import reverse_sweep
-from .diagnostics import fail
+from .adjoint import active_values, defined_in, reverse_sweep
+from .diagnostics import GradwrightError, fail, file_location
 from .emit import Compiled, render_module
 from .frontend import CheckedFunction, ModuleIndex, check_function, parse_module
-from .ir import const
-from .optimize import inline_adjoints, plan_forward
+from .ir import Expr, SSAFunction, Var, const
+from .optimize import inline_adjoints, reuse_forward_values
 from .ssa import lower
+from .targets import DEFAULT_TARGET, get_target
 
 
 def regeneration_command(
@@ -21,6 +24,7 @@ def regeneration_command(
     functions: Sequence[str],
     wrt: Sequence[str] | None,
     output: str | None,
+    target: str = DEFAULT_TARGET,
 ) -> str:
     """The canonical command line that regenerates a module (for its header)."""
     words = ["gradwright", "gen", path, *functions]
@@ -28,16 +32,27 @@ def regeneration_command(
         words += ["--wrt", ",".join(wrt)]
     if output is not None:
         words += ["-o", output]
+    if target != DEFAULT_TARGET:
+        words += ["--target", target]
     return shlex.join(words)
 
 
 def compile_function(
-    index: ModuleIndex, name: str, wrt: tuple[str, ...] | None
+    index: ModuleIndex,
+    name: str,
+    wrt: tuple[str, ...] | None,
+    call_stack: tuple[str, ...] = (),
 ) -> Compiled:
     checked = check_function(index, name, wrt)
-    ssa = lower(index, checked)
-    sweep = reverse_sweep(ssa, checked.wrt, (const(1.0),))
-    if len(sweep.unused_wrt) == len(sweep.wrt):
+    ssa = lower(index, checked, call_stack)
+    seeds: tuple[Expr, ...] = (const(1.0),)
+    if ssa.result.is_tuple:
+        first = 1 + max(_uids(ssa))
+        seeds = tuple(
+            Var(first + k, f"seed_{k}", "param") for k in range(len(ssa.result.values))
+        )
+    sweep = reverse_sweep(ssa, checked.wrt, seeds)
+    if len(sweep.unused_wrt) == len(sweep.wrt) and not call_stack:
         fail(
             f"the result of '{name}' does not depend differentiably on "
             + ", ".join(checked.wrt)
@@ -45,8 +60,42 @@ def compile_function(
             index.locate(_return_statement(checked)),
             "choose --wrt parameters the result varies with smoothly",
         )
-    sweep = inline_adjoints(sweep)
-    return Compiled(checked, ssa, plan_forward(ssa, sweep), sweep)
+    active = frozenset(active_values(ssa, checked.wrt))
+    sweep = reuse_forward_values(inline_adjoints(sweep), ssa)
+    return Compiled(checked, ssa, sweep, active)
+
+
+def compile_with_callees(
+    index: ModuleIndex, names: Sequence[str], wrt: tuple[str, ...] | None
+) -> list[Compiled]:
+    """The targets, then every function they call (each once), differentiated in
+    all their parameters so any call site can use the partials it needs."""
+    compiled = [compile_function(index, name, wrt) for name in names]
+    done = set(names)
+    pending = [(c.ssa.name, callee) for c in compiled for callee in c.ssa.callees]
+    stacks = {c.ssa.name: (c.ssa.name,) for c in compiled}
+    while pending:
+        caller, callee = pending.pop(0)
+        if callee in done:
+            continue
+        done.add(callee)
+        item = compile_function(index, callee, None, stacks[caller])
+        if item.ssa.result.is_tuple:
+            fail(
+                f"'{callee}' returns a tuple: helpers called by the model must return"
+                " one number",
+                file_location(index.path),
+            )
+        stacks[callee] = stacks[caller] + (callee,)
+        compiled.append(item)
+        pending += [(callee, c) for c in item.ssa.callees]
+    return compiled
+
+
+def _uids(ssa: SSAFunction) -> list[int]:
+    found = [p.uid for p in ssa.params] + [0]
+    found += [v.uid for v in defined_in(ssa.body)]
+    return found
 
 
 def _return_statement(checked: CheckedFunction) -> cst.CSTNode:
@@ -64,18 +113,43 @@ def generate(
     *,
     path: str = "<string>",
     output: str | None = None,
+    target: str = DEFAULT_TARGET,
 ) -> str:
     """Generate the gradient module for ``functions`` of the model ``source``.
 
     ``wrt`` names the parameters to differentiate with respect to (default: all of
     each function's parameters). ``path`` and ``output`` only label the header.
+    ``target`` is the interpreter the module must run on: ``"cpython"`` (default)
+    or ``"micropython"`` (stand-ins for the ``math`` functions MicroPython lacks);
+    another name raises ValueError.
     Raises :class:`gradwright.GradwrightError` for input it cannot differentiate.
     The source is parsed, never executed.
     """
     if not functions:
         raise ValueError("generate() needs at least one function name")
-    index = parse_module(source, path)
-    wanted = tuple(wrt) if wrt is not None else None
-    compiled = [compile_function(index, name, wanted) for name in functions]
-    command = regeneration_command(path, functions, wrt, output)
-    return render_module(index, compiled, command)
+    repeated = sorted({f for f in functions if list(functions).count(f) > 1})
+    if repeated:
+        raise GradwrightError.usage(
+            f"function {', '.join(repeated)} is listed more than once"
+        )
+    runtime = get_target(target)
+    with _collector_paused():
+        index = parse_module(source, path)
+        wanted = tuple(wrt) if wrt is not None else None
+        compiled = compile_with_callees(index, functions, wanted)
+        command = regeneration_command(path, functions, wrt, output, target)
+        return render_module(index, compiled, command, runtime)
+
+
+@contextmanager
+def _collector_paused() -> Iterator[None]:
+    """Pause the cyclic garbage collector while generating (common practice for
+    compilers): the syntax trees are large and acyclic, and full collections over
+    them made generation time grow faster than the input."""
+    was_enabled = gc.isenabled()
+    gc.disable()
+    try:
+        yield
+    finally:
+        if was_enabled:
+            gc.enable()

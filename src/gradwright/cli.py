@@ -1,23 +1,62 @@
 """The ``gradwright`` command line.
 
-Exit status: 0 done, 1 check failed (stale output), 2 bad input or usage.
+Exit status: 0 done, 1 check failed (stale output, or ``verify`` found a wrong
+gradient), 2 bad input or usage. Status lines go to stderr; generated text, diffs
+and ``verify`` tables go to stdout.
 """
 
 from __future__ import annotations
 
 import argparse
+import ast
+import re
 import sys
 from collections.abc import Sequence
 from pathlib import Path
+from typing import TextIO
 
 from . import __version__
-from .api import generate
+from .config import PLATFORMS, Project, Target, find_pyproject, load_project
 from .diagnostics import GradwrightError
-from .output import write_generated
+from .output import (
+    Artifact,
+    check_overwrite,
+    is_current,
+    is_generated,
+    read_existing,
+    unified_diff,
+    write_artifact,
+)
+from .points import (
+    check_names,
+    choose_points,
+    parse_at,
+    parse_ranges,
+    parse_scales,
+    signature_of,
+    typical_sizes,
+)
+from .regen import (
+    Job,
+    generate_module,
+    job_command,
+    job_for_target,
+    read_source,
+    render,
+)
+from .verify import DEFAULT_RTOL, Subject, check_point, load
+from .verify import render as render_table
+from .verify import summary as verify_summary
 
 EXIT_OK = 0
 EXIT_STALE = 1
 EXIT_BAD_INPUT = 2
+
+VERIFY_WARNING = (
+    "verify RUNS CODE: it executes the generated module, which holds a copy of your"
+    " model's function. Use it only on models you trust. (gen and build never run"
+    " the model: they only read it.)"
+)
 
 
 class _Parser(argparse.ArgumentParser):
@@ -27,11 +66,41 @@ class _Parser(argparse.ArgumentParser):
         raise SystemExit(EXIT_BAD_INPUT)
 
 
+def _add_write_options(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument(
+        "--check",
+        action="store_true",
+        help="write nothing; exit 1 if any output differs from what would be generated",
+    )
+    parser.add_argument(
+        "--diff",
+        action="store_true",
+        help="write nothing; print a unified diff of what would change",
+    )
+    parser.add_argument(
+        "--force",
+        action="store_true",
+        help="overwrite an output file even if gradwright did not generate it",
+    )
+    parser.add_argument(
+        "-q", "--quiet", action="store_true", help="print nothing but errors"
+    )
+
+
+def _add_wrt(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument(
+        "--wrt",
+        metavar="NAMES",
+        help="comma-separated parameters to differentiate with respect to"
+        " (default: every parameter)",
+    )
+
+
 def _parser() -> argparse.ArgumentParser:
     parser = _Parser(
         prog="gradwright",
         description="Generate standalone reverse-mode gradient code for Python models."
-        " `gen` reads the model's source; it never imports or runs it.",
+        " `gen` and `build` read the model's source; they never import or run it.",
     )
     parser.add_argument(
         "--version", action="version", version=f"gradwright {__version__}"
@@ -39,23 +108,115 @@ def _parser() -> argparse.ArgumentParser:
     commands = parser.add_subparsers(
         dest="command", required=True, parser_class=_Parser
     )
+
     gen = commands.add_parser(
         "gen",
         help="generate a gradient module",
-        description="Generate a gradient module for FUNC (one or more) in FILE.",
+        description="Generate a gradient module for FUNC (one or more) in FILE."
+        " The model is read, never run.",
     )
     gen.add_argument("file", metavar="FILE", help="the model's source file")
     gen.add_argument(
         "functions", metavar="FUNC", nargs="+", help="function(s) to differentiate"
     )
-    gen.add_argument(
-        "--wrt",
-        metavar="NAMES",
-        help="comma-separated parameters to differentiate with respect to"
-        " (default: every parameter)",
-    )
+    _add_wrt(gen)
     gen.add_argument(
         "-o", "--output", metavar="OUT", help="write the module here (default: stdout)"
+    )
+    gen.add_argument(
+        "--target",
+        choices=PLATFORMS,
+        default="cpython",
+        help="the Python the module will run on (default: cpython)",
+    )
+    gen.add_argument(
+        "--emit-test",
+        metavar="PATH",
+        help="also write a pytest file checking the module against finite differences",
+    )
+    gen.add_argument(
+        "--range",
+        metavar="NAME=LOW:HIGH",
+        action="append",
+        default=[],
+        help="with --emit-test: where test points are drawn for a parameter"
+        " (default 0.5:1.5); repeat or separate with commas",
+    )
+    _add_write_options(gen)
+
+    build = commands.add_parser(
+        "build",
+        help="regenerate every target in pyproject.toml",
+        description="Regenerate every [[tool.gradwright.targets]] of the nearest"
+        " pyproject.toml. Exit 1 with --check when any output is stale, 2 when a"
+        " target fails (the other targets are still processed).",
+    )
+    build.add_argument(
+        "--fail-if-changed",
+        action="store_true",
+        help="exit 1 when any file was written (for hooks: new files are not"
+        " staged yet)",
+    )
+    build.add_argument(
+        "--config",
+        metavar="PYPROJECT",
+        help="the pyproject.toml to read (default: the nearest one upwards)",
+    )
+    _add_write_options(build)
+
+    verify = commands.add_parser(
+        "verify",
+        help="check gradients against finite differences (RUNS the model's code)",
+        description="Compare FUNC_grad with central finite differences of FUNC at"
+        " given or random points and print a table. FILE is the model (generated in"
+        " memory) or a generated module. " + VERIFY_WARNING,
+    )
+    verify.add_argument(
+        "file", metavar="FILE", help="the model's source, or a generated module"
+    )
+    verify.add_argument(
+        "functions", metavar="FUNC", nargs="+", help="function(s) to check"
+    )
+    _add_wrt(verify)
+    verify.add_argument(
+        "--at",
+        metavar="NAME=VALUE",
+        action="append",
+        default=[],
+        help="parameter values (repeat or separate with commas); parameters not"
+        " given are drawn at random",
+    )
+    verify.add_argument(
+        "--samples",
+        metavar="N",
+        type=int,
+        help="how many random points (default 3)",
+    )
+    verify.add_argument(
+        "--seed", metavar="S", type=int, default=0, help="random seed (default 0)"
+    )
+    verify.add_argument(
+        "--range",
+        metavar="NAME=LOW:HIGH",
+        action="append",
+        default=[],
+        help="where random values are drawn for a parameter (default 0.5:1.5);"
+        " also sets its typical size",
+    )
+    verify.add_argument(
+        "--scale",
+        metavar="NAME=SIZE",
+        action="append",
+        default=[],
+        help="a parameter's typical size for the finite-difference step"
+        " h = eps**(1/3) * max(|x|, SIZE) (default: from --range, else 1)",
+    )
+    verify.add_argument(
+        "--rtol",
+        metavar="R",
+        type=float,
+        default=DEFAULT_RTOL,
+        help=f"relative tolerance (default {DEFAULT_RTOL:g})",
     )
     return parser
 
@@ -69,40 +230,252 @@ def _split_names(text: str | None) -> tuple[str, ...] | None:
     return names
 
 
-def _read_source(path: str) -> str:
-    try:
-        return Path(path).read_text(encoding="utf-8")
-    except FileNotFoundError:
-        raise GradwrightError.usage(f"{path}: no such file") from None
-    except (OSError, UnicodeDecodeError) as error:
-        raise GradwrightError.usage(f"{path}: cannot read: {error}") from None
+class _Report:
+    """Status lines on stderr: `<status> <path>`, silenced by --quiet."""
+
+    def __init__(self, quiet: bool, stream: TextIO | None = None) -> None:
+        self.quiet = quiet
+        self.stream = stream if stream is not None else sys.stderr
+
+    def line(self, text: str, *, error: bool = False) -> None:
+        if error or not self.quiet:
+            print(text, file=self.stream)
+
+    def status(self, word: str, labels: Sequence[str]) -> None:
+        self.line(f"{word:<9} {', '.join(labels)}", error=word in ("stale", "failed"))
+
+
+# ---------------------------------------------------------------------------------
+# gen
 
 
 def _gen(args: argparse.Namespace) -> int:
-    source = _read_source(args.file)
-    text = generate(
-        source,
-        args.functions,
-        _split_names(args.wrt),
-        path=args.file,
+    needs_output = [
+        flag
+        for flag, given in (
+            ("--check", args.check),
+            ("--diff", args.diff),
+            ("--emit-test", args.emit_test is not None),
+        )
+        if given
+    ]
+    if args.output is None and needs_output:
+        raise GradwrightError.usage(
+            f"{needs_output[0]} needs -o OUT (the file to compare with or test)"
+        )
+    if args.range and args.emit_test is None:
+        raise GradwrightError.usage("--range is used by --emit-test; give both")
+    job = Job(
+        source=args.file,
+        functions=tuple(args.functions),
+        wrt=_split_names(args.wrt),
         output=args.output,
+        target=args.target,
+        emit_test=args.emit_test,
+        ranges=parse_ranges(args.range),
     )
-    if args.output is None:
-        sys.stdout.write(text)
-    else:
-        write_generated(Path(args.output), text)
+    artifacts = render(job)
+    if job.output is None:
+        sys.stdout.write(artifacts[0].text)
+        return EXIT_OK
+    report = _Report(args.quiet)
+    if args.check or args.diff:
+        stale = _compare(artifacts, args.diff)
+        if args.check:
+            for artifact in artifacts:
+                word = "stale" if artifact in stale else "unchanged"
+                report.status(word, [artifact.label])
+            if stale:
+                report.line(f"regenerate with: {job_command(job)}", error=True)
+                return EXIT_STALE
+        return EXIT_OK
+    for artifact in artifacts:  # refuse before writing anything
+        check_overwrite(artifact, args.force)
+    for artifact in artifacts:
+        write_artifact(artifact, args.force)
     return EXIT_OK
+
+
+def _compare(artifacts: Sequence[Artifact], diff: bool) -> list[Artifact]:
+    """The stale artifacts; with ``diff``, their diffs on stdout."""
+    stale = [a for a in artifacts if not is_current(a)]
+    if diff:
+        for artifact in stale:
+            sys.stdout.write(unified_diff(artifact))
+    return stale
+
+
+# ---------------------------------------------------------------------------------
+# build
+
+
+def _build(args: argparse.Namespace) -> int:
+    pyproject = (
+        Path(args.config) if args.config is not None else find_pyproject(Path.cwd())
+    )
+    project = load_project(pyproject)
+    report = _Report(args.quiet)
+    counts: dict[str, int] = {}
+    for target in project.targets:
+        word, labels, diagnostic = _build_target(project, target, args)
+        counts[word] = counts.get(word, 0) + 1
+        report.status(word, labels)
+        if diagnostic is not None:
+            report.line(diagnostic, error=True)
+    order = ("generated", "stale", "unchanged", "failed")
+    parts = [f"{counts[w]} {w}" for w in order if counts.get(w)]
+    total = len(project.targets)
+    mode = "build --check" if args.check else "build"
+    report.line(
+        f"{mode}: {total} target{'s' if total != 1 else ''}: {', '.join(parts)}"
+    )
+    if counts.get("failed"):
+        return EXIT_BAD_INPUT
+    if counts.get("stale"):
+        report.line("run `gradwright build` to regenerate the stale files", error=True)
+        return EXIT_STALE
+    if counts.get("generated") and args.fail_if_changed:
+        report.line("files were regenerated: review and stage them", error=True)
+        return EXIT_STALE
+    return EXIT_OK
+
+
+def _build_target(
+    project: Project, target: Target, args: argparse.Namespace
+) -> tuple[str, list[str], str | None]:
+    """(status, the files it concerns, the error message of a failed target)."""
+    job = job_for_target(project, target)
+    try:
+        artifacts = render(job)
+        if args.check or args.diff:
+            stale = _compare(artifacts, args.diff)
+            if args.check and stale:
+                return "stale", [a.label for a in stale], None
+            return "unchanged", [artifacts[0].label], None
+        for artifact in artifacts:
+            check_overwrite(artifact, args.force)
+        changed = [a.label for a in artifacts if write_artifact(a, args.force)]
+    except GradwrightError as error:
+        return "failed", [target.output], error.diagnostic.render()
+    if changed:
+        return "generated", changed, None
+    return "unchanged", [artifacts[0].label], None
+
+
+# ---------------------------------------------------------------------------------
+# verify
+
+_WRT_DOC = re.compile(r"with respect to \(([^)]*)\)")
+
+
+def _module_wrt(module_text: str, function: str, label: str) -> tuple[str, ...]:
+    """The wrt names of a generated ``_grad`` function, from its docstring."""
+    for node in ast.parse(module_text).body:
+        if isinstance(node, ast.FunctionDef) and node.name == f"{function}_grad":
+            match = _WRT_DOC.search(ast.get_docstring(node) or "")
+            if match is None:
+                raise GradwrightError.usage(
+                    f"{label}: cannot read what {function}_grad differentiates"
+                    " with respect to (its docstring was changed)",
+                    "regenerate the module",
+                )
+            return tuple(n.strip() for n in match.group(1).split(",") if n.strip())
+    names = [
+        n.name[: -len("_grad")]
+        for n in ast.parse(module_text).body
+        if isinstance(n, ast.FunctionDef) and n.name.endswith("_grad")
+    ]
+    raise GradwrightError.usage(
+        f"{label} has no generated function {function}_grad",
+        "it has gradients of: " + (", ".join(names) or "nothing"),
+    )
+
+
+def _subjects(args: argparse.Namespace) -> list[Subject]:
+    text = read_source(Path(args.file), args.file)
+    wrt = _split_names(args.wrt)
+    if not is_generated(text):
+        job = Job(args.file, tuple(args.functions), wrt, None)
+        module = generate_module(job, text)
+        return [
+            Subject(module, f, _module_wrt(module, f, args.file), args.file, text)
+            for f in args.functions
+        ]
+    match = re.search(r"^# source: (.*)$", text, re.MULTILINE)
+    source_label = match.group(1) if match else None
+    source_text = None
+    if source_label:  # only to give statements line numbers: optional
+        try:
+            source_text = read_existing(Path(source_label))
+        except GradwrightError:
+            pass
+    subjects = []
+    for function in args.functions:
+        names = _module_wrt(text, function, args.file)
+        if wrt is not None and wrt != names:
+            raise GradwrightError.usage(
+                f"{args.file}: {function}_grad is with respect to {', '.join(names)},"
+                f" not {', '.join(wrt)}",
+                "leave out --wrt, or regenerate the module",
+            )
+        subjects.append(Subject(text, function, names, source_label, source_text))
+    return subjects
+
+
+def _verify(args: argparse.Namespace) -> int:
+    if args.samples is not None and args.samples < 1:
+        raise GradwrightError.usage("--samples must be at least 1")
+    if not args.rtol > 0:
+        raise GradwrightError.usage("--rtol must be positive")
+    fixed = parse_at(args.at)
+    ranges = parse_ranges(args.range)
+    scales = parse_scales(args.scale)
+    sizes = typical_sizes(ranges, scales)
+    subjects = _subjects(args)
+    signatures = {
+        s.function: signature_of(s.module_text, f"{s.function}_grad") for s in subjects
+    }
+    every = [p for params in signatures.values() for p in params]
+    check_names(every, list(fixed), "--at", " or ".join(signatures))
+    check_names(every, list(ranges), "--range", " or ".join(signatures))
+    check_names(every, list(scales), "--scale", " or ".join(signatures))
+    try:
+        namespace = load(subjects[0].module_text, args.file)
+    except Exception as error:
+        raise GradwrightError.usage(
+            f"{args.file}: running the generated module failed:"
+            f" {type(error).__name__}: {error}"
+        ) from None
+    status = EXIT_OK
+    for subject in subjects:
+        params = signatures[subject.function]
+        names = {p.name for p in params}
+        points = choose_points(
+            params,
+            subject.wrt,
+            {n: v for n, v in fixed.items() if n in names},
+            ranges,
+            args.samples,
+            args.seed,
+        )
+        results = [check_point(subject, namespace, p, args.rtol, sizes) for p in points]
+        sys.stdout.write(render_table(subject, results, args.rtol))
+        print(verify_summary(subject, results, args.rtol))
+        if any(r.failed for r in results):
+            status = EXIT_STALE
+        elif all(r.skipped is not None for r in results) and status == EXIT_OK:
+            status = EXIT_BAD_INPUT
+    return status
 
 
 def main(argv: Sequence[str] | None = None) -> int:
     args = _parser().parse_args(argv)
+    handlers = {"gen": _gen, "build": _build, "verify": _verify}
     try:
-        if args.command == "gen":
-            return _gen(args)
+        return handlers[args.command](args)
     except GradwrightError as error:
         print(error.diagnostic.render(), file=sys.stderr)
         return EXIT_BAD_INPUT
-    raise AssertionError(f"unhandled command {args.command}")
 
 
 if __name__ == "__main__":

@@ -17,33 +17,46 @@ import jinja2
 import libcst as cst
 
 from . import __version__
-from .formatting import format_code, format_statement
+from .formatting import format_function, format_statement
 from .frontend import CheckedFunction, ModuleIndex
-from .ir import Expr, ReverseSweep, SSAFunction
+from .ir import ReverseSweep, SSAFunction, Var
+from .layout import lay_out
 from .naming import Namer
-from .optimize import ForwardPlan
 from .printer import Printer
-
-
-@dataclass(frozen=True)
-class Group:
-    """Statements from one source statement, under a comment quoting it."""
-
-    comment: str
-    lines: tuple[str, ...]
+from .targets import (
+    DEFAULT_TARGET,
+    Target,
+    check_helper_names,
+    get_target,
+    helper_source,
+    helpers_for_ops,
+    importable,
+    prepare_primal,
+)
 
 
 @dataclass(frozen=True)
 class RenderedGradient:
+    """One target function's generated code, ready for the templates."""
+
     name: str
-    grad_name: str
+    #: "grad" (scalar result) or "vjp" (tuple result, with a Jacobian too)
+    kind: str
+    derived_name: str
     signature: str
     wrt: tuple[str, ...]
     bars: tuple[str, ...]
-    forward: tuple[Group, ...]
-    reverse: tuple[Group, ...]
+    forward: tuple[str, ...]
+    reverse: tuple[str, ...]
+    seed_unpack: str
     result: str
     primal: str
+    #: for tuple results: ``NAME_jacobian``'s signature and its calls of the vjp
+    jacobian_signature: str = ""
+    jacobian_rows: tuple[str, ...] = ()
+    jacobian_return: str = ""
+    #: math names whose target stand-ins (``fallbacks.py``) this function calls
+    helpers: frozenset[str] = frozenset()
 
 
 @dataclass(frozen=True)
@@ -52,8 +65,8 @@ class Compiled:
 
     checked: CheckedFunction
     ssa: SSAFunction
-    forward: ForwardPlan
     reverse: ReverseSweep
+    active: frozenset[Var]
 
 
 def _template_dir() -> Path:
@@ -91,68 +104,100 @@ def _strip_annotations(node: cst.FunctionDef) -> cst.FunctionDef:
     return node.with_changes(params=stripped, returns=None, leading_lines=[])
 
 
-def _group(items: list[tuple[str, str]]) -> tuple[Group, ...]:
-    """Consecutive (comment, line) pairs with the same comment share one group."""
-    groups: list[Group] = []
-    for comment, line in items:
-        if groups and groups[-1].comment == comment:
-            groups[-1] = Group(comment, groups[-1].lines + (line,))
-        else:
-            groups.append(Group(comment, (line,)))
-    return tuple(groups)
+def _call_arguments(node: cst.FunctionDef) -> str:
+    """How a generated wrapper passes its own parameters on."""
+    params = node.params
+    positional = [p.name.value for p in (*params.posonly_params, *params.params)]
+    keywords = [f"{p.name.value}={p.name.value}" for p in params.kwonly_params]
+    return ", ".join(positional + keywords)
+
+
+def _with_seed(node: cst.FunctionDef, signature: str, seed: str) -> str:
+    params = node.params
+    if isinstance(params.star_arg, cst.ParamStar) or params.kwonly_params:
+        return f"{signature}, {seed}"
+    if any(p.default is not None for p in (*params.posonly_params, *params.params)):
+        return f"{signature}, *, {seed}"  # a plain parameter cannot follow defaults
+    return f"{signature}, {seed}"
 
 
 def render_function(
-    index: ModuleIndex, compiled: Compiled
+    index: ModuleIndex, compiled: Compiled, target: Target | None = None
 ) -> tuple[RenderedGradient, set[str]]:
-    checked, ssa = compiled.checked, compiled.ssa
-    node = _strip_annotations(checked.node)
+    checked, ssa, sweep = compiled.checked, compiled.ssa, compiled.reverse
+    target = target or get_target(DEFAULT_TARGET)
+    node, helpers = prepare_primal(target, index, checked, ssa.local_names)
+    node = _strip_annotations(node)
     reserved = (
         set(checked.params)
         | ssa.local_names
         | index.module_names
-        | {"math", "abs", "min", "max"}
+        | {"math", "abs", "min", "max", "len", "sum", "range", "reversed"}
     )
     namer = Namer(reserved)
     for param in ssa.params:
         namer.name(param)
-    printer = Printer(namer.name, namer.bar_name)
-
-    forward: list[tuple[str, str]] = []
-    for let, expr in compiled.forward.statements:
-        text = f"{namer.name(let.target)} = {printer(expr)}"
-        forward.append((let.origin.text, format_statement(text, 1)))
-
-    reverse: list[tuple[str, str]] = []
-    for stmt in compiled.reverse.statements:
-        operator = "+=" if stmt.accumulate else "="
-        text = f"{namer.bar_name(stmt.var)} {operator} {printer(stmt.expr)}"
-        reverse.append((stmt.origin.text, format_statement(text, 1)))
-    for var in compiled.reverse.unused_wrt:
-        reverse.append(
-            (
-                f"{var.base} does not affect the result",
-                format_statement(f"{namer.bar_name(var)} = 0.0", 1),
-            )
+    is_vector = ssa.result.is_tuple
+    seed_name = ""
+    seed_unpack = ""
+    if is_vector:
+        seed_name = "seed" if "seed" not in namer.taken else namer.fresh("seed")
+        namer.taken.add(seed_name)
+        names = [namer.name(seed) for seed in sweep.seeds]
+        seed_unpack = (
+            f"{', '.join(names)}{',' if len(names) == 1 else ''} = {seed_name}"
         )
-
-    result_exprs: tuple[Expr, ...] = compiled.forward.result
-    value = printer(result_exprs[0])
-    bars = tuple(namer.bar_name(v) for v in compiled.reverse.wrt)
+    printer = Printer(namer.name, namer.bar_name, target.callees(), namer.partials_name)
+    forward, reverse, result_exprs = lay_out(
+        ssa, sweep, namer, printer, set(compiled.active)
+    )
+    values = [printer(e) for e in result_exprs]
+    value = (
+        f"({', '.join(values)}{',' if len(values) == 1 else ''})"
+        if is_vector
+        else values[0]
+    )
+    bars = tuple(namer.bar_name(v) for v in sweep.wrt)
     result = f"{value}, ({', '.join(bars)}{',' if len(bars) == 1 else ''})"
 
+    helpers |= helpers_for_ops(target, printer.replaced_ops)
+    check_helper_names(target, index, checked, ssa.local_names, helpers)
     signature = index.module.code_for_node(node.params)
-    primal = format_code(index.module.code_for_node(node))
+    primal = format_function(node, index.module)
+    jacobian_rows: tuple[str, ...] = ()
+    if is_vector:
+        outputs = len(ssa.result.values)
+        arguments = _call_arguments(node)
+        rows = []
+        for i in range(outputs):
+            unit = ", ".join("1.0" if j == i else "0.0" for j in range(outputs))
+            unit = f"({unit}{',' if outputs == 1 else ''})"
+            call = f"{checked.name}_vjp({arguments}, {seed_name}={unit})"
+            target_text = f"value, row_{i}" if i == 0 else f"_, row_{i}"
+            rows.append(format_statement(f"{target_text} = {call}", 1))
+        jacobian_rows = tuple(rows)
     rendered = RenderedGradient(
         name=checked.name,
-        grad_name=f"{checked.name}_grad",
-        signature=signature,
+        kind="vjp" if is_vector else "grad",
+        derived_name=f"{checked.name}_{'vjp' if is_vector else 'grad'}",
+        signature=_with_seed(node, signature, seed_name) if is_vector else signature,
         wrt=checked.wrt,
         bars=bars,
-        forward=_group(forward),
-        reverse=_group(reverse),
-        result=result,
+        forward=tuple(forward),
+        reverse=tuple(reverse),
+        seed_unpack=seed_unpack,
+        result=format_statement(f"return {result}", 1),
         primal=primal.rstrip("\n"),
+        jacobian_signature=signature,
+        jacobian_rows=jacobian_rows,
+        jacobian_return=format_statement(
+            "return value, ("
+            + ", ".join(f"row_{i}" for i in range(len(jacobian_rows)))
+            + ("," if len(jacobian_rows) == 1 else "")
+            + ")",
+            1,
+        ),
+        helpers=helpers,
     )
     return rendered, printer.modules_used
 
@@ -165,13 +210,19 @@ def render_module(
     index: ModuleIndex,
     compiled: list[Compiled],
     command: str,
+    target: Target | None = None,
 ) -> str:
+    target = target or get_target(DEFAULT_TARGET)
     functions: list[RenderedGradient] = []
     modules: set[str] = set()
+    helpers: frozenset[str] = frozenset()
     for item in compiled:
-        rendered, used = render_function(index, item)
+        rendered, used = render_function(index, item, target)
         functions.append(rendered)
         modules |= used
+        helpers |= rendered.helpers
+    if helpers:
+        modules.add("math")  # the stand-ins call math functions the target has
 
     # the primal copies keep the user's own spellings of math imports
     imports: list[str] = []
@@ -180,6 +231,7 @@ def render_module(
     for statement in index.math_imports:
         if statement != "import math" or "math" not in modules:
             imports.append(statement)
+    imports = importable(target, imports)
     constants = _constants_used(index, [c.ssa for c in compiled])
 
     header = {
@@ -187,12 +239,17 @@ def render_module(
         "source_path": index.path,
         "sha256": hashlib.sha256(index.source.encode("utf-8")).hexdigest(),
         "command": command,
+        "target": target.header,
     }
     text = (
         _environment()
         .get_template("module.py.j2")
         .render(
-            header=header, imports=imports, constants=constants, functions=functions
+            header=header,
+            imports=imports,
+            constants=constants,
+            helpers=helper_source(helpers),
+            functions=functions,
         )
     )
     return text

@@ -62,16 +62,25 @@ class ModuleIndex:
 
 
 def _syntax_error(path: str, source: str, error: cst.ParserSyntaxError) -> None:
+    # CPython's own parser locates syntax errors better than libcst's error
+    # recovery does; compile() only parses here, it runs nothing.
     lines = source.splitlines() or [""]
-    line_no = min(max(error.raw_line, 1), len(lines))
-    column = max(error.raw_column, 0)
+    line_no, column, message = error.raw_line, error.raw_column, error.message
+    try:
+        compile(source, path, "exec", dont_inherit=True)
+    except SyntaxError as cpython:
+        if cpython.lineno:
+            line_no = cpython.lineno
+            column = max((cpython.offset or 1) - 1, 0)
+            message = cpython.msg
+    except ValueError:  # null bytes: keep libcst's position
+        pass
+    line_no = min(max(line_no, 1), len(lines))
     text = lines[line_no - 1]
-    loc = Location(path, line_no, min(column, len(text)), column + 1, text)
-    fail(
-        f"invalid syntax: {error.message}",
-        loc,
-        "the model file must be valid Python 3.10",
-    )
+    column = min(column, len(text))
+    loc = Location(path, line_no, column, column + 1, text)
+    text_message = message if "syntax" in message else f"invalid syntax: {message}"
+    fail(text_message, loc, "the model file must be valid Python 3.10")
 
 
 def parse_module(source: str, path: str) -> ModuleIndex:

@@ -11,16 +11,23 @@ from __future__ import annotations
 from dataclasses import dataclass
 from typing import Literal
 
-VarKind = Literal["param", "local", "temp"]
+VarKind = Literal["param", "local", "temp", "index"]
+Shape = Literal["scalar", "list"]
 
 
 @dataclass(frozen=True, order=True)
 class Var:
-    """One SSA value. ``base`` is the source name it belongs to (used for naming)."""
+    """One SSA value. ``base`` is the source name it belongs to (used for naming).
+
+    ``index`` values are loop counters (integers, never active). A ``list`` value is a
+    Python list of floats: its element writes make new SSA versions of it, while the
+    generated code updates one list in place.
+    """
 
     uid: int
     base: str
     kind: VarKind
+    shape: Shape = "scalar"
 
 
 @dataclass(frozen=True)
@@ -70,21 +77,66 @@ class Let:
 
 
 @dataclass(frozen=True)
+class Phi:
+    """Where two definitions of one name meet.
+
+    After a branch: ``target`` is ``first`` (then) or ``second`` (else). For a loop:
+    ``target`` is the value at the start of each iteration, ``first`` the value
+    before the loop, ``second`` the value at the end of the body, and ``exit`` the
+    value after the loop.
+    """
+
+    target: Var
+    first: Atom
+    second: Atom
+    exit: Var | None = None
+
+
+@dataclass(frozen=True)
+class Branch:
+    condition: Atom
+    then: tuple[Stmt, ...]
+    orelse: tuple[Stmt, ...]
+    merges: tuple[Phi, ...]
+    origin: Origin
+
+
+@dataclass(frozen=True)
+class Loop:
+    """``for index in range(start, stop, step)``; bounds are fixed at loop start."""
+
+    index: Var
+    start: Atom
+    stop: Atom
+    step: Atom
+    carried: tuple[Phi, ...]
+    body: tuple[Stmt, ...]
+    origin: Origin
+
+
+Stmt = Let | Branch | Loop
+
+
+@dataclass(frozen=True)
 class Return:
     values: tuple[Atom, ...]
     origin: Origin
+    #: ``return u, v`` (vector output) rather than ``return u``
+    is_tuple: bool = False
 
 
 @dataclass(frozen=True)
 class SSAFunction:
     name: str
     params: tuple[Var, ...]
-    body: tuple[Let, ...]
+    body: tuple[Stmt, ...]
     result: Return
     #: every name the source function binds (reserved when naming temporaries)
     local_names: frozenset[str] = frozenset()
     #: module-level constants it reads, in first-read order
     constants: tuple[str, ...] = ()
+    #: other functions of the file it calls, in first-call order
+    callees: tuple[str, ...] = ()
 
 
 @dataclass(frozen=True)
@@ -98,11 +150,61 @@ class AdjointAssign:
 
 
 @dataclass(frozen=True)
+class ElementAdjoint:
+    """``root_bar[index] += expr`` on a list adjoint (``=`` unless ``accumulate``)."""
+
+    root: Var
+    index: Expr
+    expr: Expr
+    accumulate: bool
+    origin: Origin
+
+
+@dataclass(frozen=True)
+class SpreadAdjoint:
+    """``root_bar[k] += expr`` for every element (the adjoint of ``sum``)."""
+
+    root: Var
+    expr: Expr
+    origin: Origin
+
+
+@dataclass(frozen=True)
+class ReverseBranch:
+    condition: Expr
+    then: tuple[ReverseStmt, ...]
+    orelse: tuple[ReverseStmt, ...]
+    origin: Origin
+
+
+@dataclass(frozen=True)
+class ReverseLoop:
+    """The forward ``loop`` run backwards: ``for i in reversed(range(...))``."""
+
+    loop: Loop
+    body: tuple[ReverseStmt, ...]
+    origin: Origin
+
+
+ReverseStmt = (
+    AdjointAssign | ElementAdjoint | SpreadAdjoint | ReverseBranch | ReverseLoop
+)
+
+
+@dataclass(frozen=True)
 class ReverseSweep:
-    statements: tuple[AdjointAssign, ...]
+    statements: tuple[ReverseStmt, ...]
     wrt: tuple[Var, ...]
     #: wrt parameters the result does not depend on: their adjoint is a plain zero.
     unused_wrt: tuple[Var, ...]
+    #: list values whose adjoint is a list of zeros before the reverse sweep starts
+    list_roots: tuple[Var, ...] = ()
+    #: which list root each list version's adjoint lives in
+    roots: tuple[tuple[Var, Var], ...] = ()
+    #: the seed values of a vector output's vjp, one per output
+    seeds: tuple[Var, ...] = ()
+    #: (carried adjoint, loop value at iteration start) for each loop-carried value
+    carries: tuple[tuple[Var, Var], ...] = ()
 
 
 def const(value: float | int) -> Const:

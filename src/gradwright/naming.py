@@ -16,6 +16,7 @@ class Namer:
         self.counters: dict[str, int] = {}
         self.names: dict[Var, str] = {}
         self.bar_names: dict[Var, str] = {}
+        self.partial_names: dict[Var, str] = {}
         self.claimed_bare: set[str] = set()
 
     def fresh(self, base: str) -> str:
@@ -33,7 +34,7 @@ class Namer:
         if known is not None:
             return known
         if var.kind == "param" or (
-            var.kind == "local" and var.base not in self.claimed_bare
+            var.kind in ("local", "index") and var.base not in self.claimed_bare
         ):
             # the user's own name (already reserved, so never handed out as fresh)
             chosen = var.base
@@ -44,12 +45,19 @@ class Namer:
         self.names[var] = chosen
         return chosen
 
+    def partials_name(self, var: Var) -> str:
+        """The tuple of partial derivatives returned with a helper call's value."""
+        return self._derived(var, "partials", self.partial_names)
+
     def bar_name(self, var: Var) -> str:
-        known = self.bar_names.get(var)
+        return self._derived(var, "bar", self.bar_names)
+
+    def _derived(self, var: Var, suffix: str, table: dict[Var, str]) -> str:
+        known = table.get(var)
         if known is not None:
             return known
-        wanted = f"{self.name(var)}_bar"
+        wanted = f"{self.name(var)}_{suffix}"
         chosen = wanted if wanted not in self.taken else self.fresh(wanted)
         self.taken.add(chosen)
-        self.bar_names[var] = chosen
+        table[var] = chosen
         return chosen

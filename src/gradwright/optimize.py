@@ -1,30 +1,29 @@
-"""Clean-up of the two sweeps before printing.
+"""Clean-up of the reverse sweep before it is laid out.
 
-- Adjoints that are a single atom, and adjoints of compiler temporaries used once,
-  are substituted into their use instead of being stored.
-- The forward sweep keeps (names) only the values the reverse sweep reads, the
-  user's own variables and values used more than once; every other temporary folds
-  back into the expression that uses it, so the forward sweep reads like the source
-  and evaluates the same operations in the same order.
-- Forward values that feed neither the result nor the reverse sweep are dropped.
+Adjoints that are a single atom, and adjoints of compiler temporaries read once, are
+substituted into their use instead of being stored; a carried adjoint assigned to
+itself disappears. The forward sweep's folding is decided in ``layout.py``.
 """
 
 from __future__ import annotations
 
 from collections import Counter
-from collections.abc import Iterator
-from dataclasses import dataclass
+from collections.abc import Iterable, Iterator
 
 from .algebra import simplify
 from .ir import (
     AdjointAssign,
     Apply,
-    Atom,
     Bar,
     Const,
+    ElementAdjoint,
     Expr,
     Let,
+    ReverseBranch,
+    ReverseLoop,
+    ReverseStmt,
     ReverseSweep,
+    SpreadAdjoint,
     SSAFunction,
     Var,
 )
@@ -37,85 +36,172 @@ def walk(expr: Expr) -> Iterator[Expr]:
             yield from walk(arg)
 
 
-def substitute(expr: Expr, bars: dict[Var, Expr], values: dict[Var, Expr]) -> Expr:
+def substitute(expr: Expr, bars: dict[Var, Expr]) -> Expr:
     if isinstance(expr, Bar):
         return bars.get(expr.var, expr)
-    if isinstance(expr, Var):
-        return values.get(expr, expr)
     if isinstance(expr, Apply):
-        return Apply(expr.op, tuple(substitute(a, bars, values) for a in expr.args))
+        return Apply(expr.op, tuple(substitute(a, bars) for a in expr.args))
     return expr
 
 
+def _flatten(statements: Iterable[ReverseStmt]) -> Iterator[ReverseStmt]:
+    for stmt in statements:
+        yield stmt
+        if isinstance(stmt, ReverseBranch):
+            yield from _flatten(stmt.then)
+            yield from _flatten(stmt.orelse)
+        elif isinstance(stmt, ReverseLoop):
+            yield from _flatten(stmt.body)
+
+
+def _exprs(stmt: ReverseStmt) -> tuple[Expr, ...]:
+    if isinstance(stmt, AdjointAssign):
+        return (stmt.expr,)
+    if isinstance(stmt, ElementAdjoint):
+        return (stmt.index, stmt.expr)
+    if isinstance(stmt, SpreadAdjoint):
+        return (stmt.expr,)
+    if isinstance(stmt, ReverseBranch):
+        return (stmt.condition,)
+    return ()
+
+
+def _reads_list_adjoint(expr: Expr) -> bool:
+    # a list adjoint changes in place: reading it must stay where it is
+    return any(isinstance(n, Bar) and n.var.shape == "list" for n in walk(expr))
+
+
 def inline_adjoints(sweep: ReverseSweep) -> ReverseSweep:
-    writes = Counter(s.var for s in sweep.statements)
+    flat = list(_flatten(sweep.statements))
+    writes = Counter(s.var for s in flat if isinstance(s, AdjointAssign))
     reads = Counter(
         node.var
-        for s in sweep.statements
-        for node in walk(s.expr)
+        for s in flat
+        for e in _exprs(s)
+        for node in walk(e)
         if isinstance(node, Bar)
     )
     keep = set(sweep.wrt)
     inlined: dict[Var, Expr] = {}
-    out: list[AdjointAssign] = []
-    for stmt in sweep.statements:
-        expr = simplify(substitute(stmt.expr, inlined, {}))
-        var = stmt.var
-        atom = isinstance(expr, (Var, Const, Bar))
-        if (
-            var not in keep
-            and writes[var] == 1
-            and (atom or (var.kind == "temp" and reads[var] == 1))
-        ):
-            inlined[var] = expr
-            continue
-        out.append(AdjointAssign(var, expr, stmt.accumulate, stmt.origin))
-    return ReverseSweep(tuple(out), sweep.wrt, sweep.unused_wrt)
+
+    def block(statements: tuple[ReverseStmt, ...]) -> tuple[ReverseStmt, ...]:
+        out: list[ReverseStmt] = []
+        for stmt in statements:
+            if isinstance(stmt, AdjointAssign):
+                expr = simplify(substitute(stmt.expr, inlined))
+                var = stmt.var
+                if expr == Bar(var) and not stmt.accumulate:
+                    continue  # a carried adjoint that stayed as it was
+                atom = isinstance(expr, (Var, Const, Bar))
+                if (
+                    var not in keep
+                    and writes[var] == 1
+                    and not _reads_list_adjoint(expr)
+                    and (atom or (var.kind == "temp" and reads[var] == 1))
+                ):
+                    inlined[var] = expr
+                    continue
+                out.append(AdjointAssign(var, expr, stmt.accumulate, stmt.origin))
+            elif isinstance(stmt, ElementAdjoint):
+                out.append(
+                    ElementAdjoint(
+                        stmt.root,
+                        substitute(stmt.index, inlined),
+                        simplify(substitute(stmt.expr, inlined)),
+                        stmt.accumulate,
+                        stmt.origin,
+                    )
+                )
+            elif isinstance(stmt, SpreadAdjoint):
+                out.append(
+                    SpreadAdjoint(
+                        stmt.root, simplify(substitute(stmt.expr, inlined)), stmt.origin
+                    )
+                )
+            elif isinstance(stmt, ReverseBranch):
+                then, orelse = block(stmt.then), block(stmt.orelse)
+                if then or orelse:
+                    out.append(ReverseBranch(stmt.condition, then, orelse, stmt.origin))
+            else:
+                body = block(stmt.body)
+                if body:
+                    out.append(ReverseLoop(stmt.loop, body, stmt.origin))
+        return tuple(out)
+
+    return ReverseSweep(
+        block(sweep.statements),
+        sweep.wrt,
+        sweep.unused_wrt,
+        sweep.list_roots,
+        sweep.roots,
+        sweep.seeds,
+        sweep.carries,
+    )
 
 
-@dataclass(frozen=True)
-class ForwardPlan:
-    """Which forward values are stored, and the folded expression of each."""
-
-    statements: tuple[tuple[Let, Expr], ...]
-    result: tuple[Expr, ...]
-
-
-def plan_forward(function: SSAFunction, sweep: ReverseSweep) -> ForwardPlan:
-    reverse_reads = {
-        node for s in sweep.statements for node in walk(s.expr) if isinstance(node, Var)
-    }
-    # liveness, backwards: what the result or the reverse sweep needs
-    live: set[Var] = {a for a in function.result.values if isinstance(a, Var)}
-    live |= reverse_reads
-    uses: Counter[Var] = Counter()
-    for let in reversed(function.body):
-        if let.target not in live:
-            continue
-        for arg in let.args:
-            if isinstance(arg, Var):
-                live.add(arg)
-                uses[arg] += 1
-    for atom in function.result.values:
-        if isinstance(atom, Var):
-            uses[atom] += 1
-
-    folded: dict[Var, Expr] = {}
-    stored: list[tuple[Let, Expr]] = []
-    for let in function.body:
-        if let.target not in live:
-            continue
-        expr: Expr = Apply(let.op, tuple(_fold_arg(a, folded) for a in let.args))
-        target = let.target
-        if target.kind == "temp" and target not in reverse_reads and uses[target] == 1:
-            folded[target] = expr
+def _map_exprs(
+    statements: tuple[ReverseStmt, ...], change
+) -> tuple[ReverseStmt, ...]:  # noqa: ANN001
+    out: list[ReverseStmt] = []
+    for stmt in statements:
+        if isinstance(stmt, AdjointAssign):
+            out.append(
+                AdjointAssign(stmt.var, change(stmt.expr), stmt.accumulate, stmt.origin)
+            )
+        elif isinstance(stmt, ElementAdjoint):
+            out.append(
+                ElementAdjoint(
+                    stmt.root,
+                    stmt.index,
+                    change(stmt.expr),
+                    stmt.accumulate,
+                    stmt.origin,
+                )
+            )
+        elif isinstance(stmt, SpreadAdjoint):
+            out.append(SpreadAdjoint(stmt.root, change(stmt.expr), stmt.origin))
+        elif isinstance(stmt, ReverseBranch):
+            out.append(
+                ReverseBranch(
+                    stmt.condition,
+                    _map_exprs(stmt.then, change),
+                    _map_exprs(stmt.orelse, change),
+                    stmt.origin,
+                )
+            )
         else:
-            stored.append((let, expr))
-    result = tuple(_fold_arg(a, folded) for a in function.result.values)
-    return ForwardPlan(tuple(stored), result)
+            out.append(
+                ReverseLoop(stmt.loop, _map_exprs(stmt.body, change), stmt.origin)
+            )
+    return tuple(out)
 
 
-def _fold_arg(atom: Atom, folded: dict[Var, Expr]) -> Expr:
-    if isinstance(atom, Var):
-        return folded.get(atom, atom)
-    return atom
+def reuse_forward_values(sweep: ReverseSweep, function: SSAFunction) -> ReverseSweep:
+    """A rule that recomputes what the forward sweep already computed (``cos(x)``
+    in the rule for ``sin(x)`` when the model also takes ``cos(x)``) reads the
+    forward value instead. Only values computed outside branches and loops are
+    reused: those exist whatever path the forward sweep took."""
+    known: dict[Apply, Var] = {}
+    for stmt in function.body:
+        if isinstance(stmt, Let) and stmt.target.shape == "scalar":
+            known.setdefault(Apply(stmt.op, stmt.args), stmt.target)
+
+    def change(expr: Expr) -> Expr:
+        if isinstance(expr, Apply):
+            found = known.get(expr)
+            if found is not None:
+                return found
+            return Apply(expr.op, tuple(change(a) for a in expr.args))
+        return expr
+
+    if not known:
+        return sweep
+    return ReverseSweep(
+        _map_exprs(sweep.statements, change),
+        sweep.wrt,
+        sweep.unused_wrt,
+        sweep.list_roots,
+        sweep.roots,
+        sweep.seeds,
+        sweep.carries,
+    )

@@ -10,7 +10,9 @@ from __future__ import annotations
 from dataclasses import dataclass
 from typing import Literal
 
-Syntax = Literal["infix", "prefix", "call", "ifexp", "copy"]
+Syntax = Literal[
+    "infix", "prefix", "call", "ifexp", "copy", "subscript", "list", "repeat", "partial"
+]
 
 # Python's binding strengths, loosest first; only their order matters.
 PREC_IFEXP = 1
@@ -67,6 +69,14 @@ _SPECS = [
     _infix("ne", "!=", PREC_COMPARE),
     # args are (value_if_true, condition, value_if_false), in printed order
     OpSpec("ifexp", "ifexp", "", PREC_IFEXP, 3, 3),
+    # lists: x[i], [a, b], [fill] * n, len(x), sum(x)
+    OpSpec("getitem", "subscript", "", PREC_ATOM, 2, 2),
+    OpSpec("listlit", "list", "", PREC_ATOM, 0, None),
+    OpSpec("newlist", "repeat", "*", PREC_MUL, 2, 2),
+    OpSpec("len", "call", "len", PREC_ATOM, 1, 1),
+    OpSpec("sum", "call", "sum", PREC_ATOM, 1, 1),
+    # the k-th partial derivative returned with a helper call's value
+    OpSpec("partial", "partial", "", PREC_ATOM, 2, 2),
     OpSpec("abs", "call", "abs", PREC_ATOM, 1, 1),
     OpSpec("max", "call", "max", PREC_ATOM, 2, 2),
     OpSpec("min", "call", "min", PREC_ATOM, 2, 2),

@@ -8,7 +8,7 @@ and only the parentheses the tree's shape needs. Long lines are left to black
 
 from __future__ import annotations
 
-from collections.abc import Callable
+from collections.abc import Callable, Mapping
 
 from .ir import Apply, Bar, Const, Expr, Var
 from .primitives import OPS, PREC_ATOM, PREC_COMPARE, PREC_IFEXP, PREC_UNARY
@@ -20,18 +20,29 @@ class Printer:
     """Prints trees; ``name`` and ``bar_name`` give the output names of values."""
 
     def __init__(
-        self, name: Callable[[Var], str], bar_name: Callable[[Var], str]
+        self,
+        name: Callable[[Var], str],
+        bar_name: Callable[[Var], str],
+        callees: Mapping[str, str] | None = None,
+        partials_name: Callable[[Var], str] | None = None,
     ) -> None:
         self.name = name
         self.bar_name = bar_name
+        self.partials_name = partials_name or (lambda var: f"{name(var)}_partials")
+        #: op key -> callee written instead of the op's own (a target's stand-in)
+        self.callees: Mapping[str, str] = callees or {}
         #: top-level modules the printed text refers to, for the import list
         self.modules_used: set[str] = set()
+        #: ops printed with a callee from ``callees``
+        self.replaced_ops: set[str] = set()
 
     def __call__(self, expr: Expr) -> str:
         return self._print(expr)
 
     def precedence(self, expr: Expr) -> int:
         if isinstance(expr, Apply):
+            if expr.op.startswith("call:"):
+                return PREC_ATOM
             return OPS[expr.op].precedence
         if isinstance(expr, Const) and expr.text.startswith("-"):
             return PREC_UNARY
@@ -61,14 +72,33 @@ class Printer:
             if "." in expr.text and not expr.text[0].isdigit():
                 self.modules_used.add(expr.text.lstrip("-").split(".")[0])
             return expr.text
-        spec = OPS[expr.op]
         args = expr.args
+        if expr.op.startswith("call:"):  # a function of the model's own file
+            callee = expr.op.removeprefix("call:")
+            return f"{callee}({', '.join(self._print(a) for a in args)})"
+        spec = OPS[expr.op]
         if spec.syntax == "copy":
             return self._print(args[0])
+        if spec.syntax == "subscript":
+            container, index = args
+            return f"{self._print(container)}[{self._print(index)}]"
+        if spec.syntax == "list":
+            return f"[{', '.join(self._print(a) for a in args)}]"
+        if spec.syntax == "repeat":
+            fill, count = args
+            parens = self.precedence(count) <= spec.precedence
+            return f"[{self._print(fill)}] * {self._wrap(count, parens)}"
+        if spec.syntax == "partial":
+            var, position = args
+            assert isinstance(var, Var)
+            return f"{self.partials_name(var)}[{self._print(position)}]"
         if spec.syntax == "call":
-            if "." in spec.symbol:
-                self.modules_used.add(spec.symbol.split(".")[0])
-            return f"{spec.symbol}({', '.join(self._print(a) for a in args)})"
+            symbol = self.callees.get(expr.op, spec.symbol)
+            if symbol != spec.symbol:
+                self.replaced_ops.add(expr.op)
+            if "." in symbol:
+                self.modules_used.add(symbol.split(".")[0])
+            return f"{symbol}({', '.join(self._print(a) for a in args)})"
         if spec.syntax == "prefix":
             operand = args[0]
             inner = self.precedence(operand)

@@ -42,7 +42,9 @@ LN10 = math.log(10.0)
 
 def _power(g: E, out: E, x: E, y: E) -> tuple[E, E]:
     # d(x**y)/dx = y*x**(y-1) stays finite at x == 0 for y >= 1, unlike y*out/x.
-    return g * y * x ** (y - 1), g * out * log(x)
+    # d/dy = out*log(x) has the limit 0 at x == 0; a negative x has no real
+    # derivative in y, and log(x) says so by raising.
+    return g * y * x ** (y - 1), where(x.eq(0), 0.0, g * out * log(x))
 
 
 def _hypot(g: E, out: E, *xs: E) -> tuple[E, ...]:
@@ -77,23 +79,30 @@ RULES: dict[str, Rule] = {
     "sin": lambda g, out, x: (g * cos(x),),
     "cos": lambda g, out, x: (-g * sin(x),),
     "tan": lambda g, out, x: (g * (1.0 + out * out),),
-    "asin": lambda g, out, x: (g / sqrt(1.0 - x * x),),
-    "acos": lambda g, out, x: (-g / sqrt(1.0 - x * x),),
+    # (1 - x)(1 + x) keeps accuracy near |x| == 1, where 1 - x*x cancels
+    "asin": lambda g, out, x: (g / sqrt((1.0 - x) * (1.0 + x)),),
+    "acos": lambda g, out, x: (-g / sqrt((1.0 - x) * (1.0 + x)),),
     "atan": lambda g, out, x: (g / (1.0 + x * x),),
+    # dividing by hypot twice neither overflows nor underflows, unlike x*x + y*y
     "atan2": lambda g, out, y, x: (
-        g * x / (x * x + y * y),
-        -g * y / (x * x + y * y),
+        g * x / hypot(x, y) / hypot(x, y),
+        -g * y / hypot(x, y) / hypot(x, y),
     ),
     "sinh": lambda g, out, x: (g * call("cosh")(x),),
     "cosh": lambda g, out, x: (g * call("sinh")(x),),
-    "tanh": lambda g, out, x: (g * (1.0 - out * out),),
+    # sech(x)**2 from cosh: 1 - out*out cancels for |x| > 1 (and is 0 past 19);
+    # cosh overflows past 710, where the derivative is below the smallest float
+    "tanh": lambda g, out, x: (
+        where(call("abs")(x).lt(710.0), g / call("cosh")(x) / call("cosh")(x), 0.0),
+    ),
     # hypot(x, 1) avoids the overflow of x*x + 1 for |x| > 1e154
     "asinh": lambda g, out, x: (g / hypot(x, 1.0),),
     # the factored forms keep accuracy near |x| == 1
     "acosh": lambda g, out, x: (g / (sqrt(x - 1.0) * sqrt(x + 1.0)),),
     "atanh": lambda g, out, x: (g / ((1.0 - x) * (1.0 + x)),),
     "exp": lambda g, out, x: (g * out,),
-    "expm1": lambda g, out, x: (g * (out + 1.0),),
+    # out + 1 would lose the digits of exp(x) for x < -20
+    "expm1": lambda g, out, x: (g * exp(x),),
     "exp2": lambda g, out, x: (g * out * LN2,),
     "log": _log,
     "log1p": lambda g, out, x: (g / (1.0 + x),),

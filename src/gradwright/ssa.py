@@ -10,12 +10,25 @@ from __future__ import annotations
 
 import itertools
 import re
+from dataclasses import dataclass
 
 import libcst as cst
 
 from .diagnostics import fail
 from .frontend import CheckedFunction, ModuleIndex, literal_value, math_function_op
-from .ir import Atom, Const, Let, Origin, Return, SSAFunction, Var
+from .ir import (
+    Atom,
+    Branch,
+    Const,
+    Let,
+    Loop,
+    Origin,
+    Phi,
+    Return,
+    SSAFunction,
+    Stmt,
+    Var,
+)
 from .primitives import BINARY_OPERATORS, MATH_CONSTANTS, OPS
 
 _BINARY_SYMBOLS: dict[type, str] = {
@@ -82,14 +95,6 @@ _STATEMENT_REJECTIONS: dict[type, tuple[str, str | None]] = {
         "imports inside the model are not supported",
         "import at module level",
     ),
-    cst.If: (
-        "if statements are not supported yet",
-        "write the branch as arithmetic, or keep it out of the differentiated function",
-    ),
-    cst.For: (
-        "for-loops are not supported yet",
-        "unroll the loop by hand for now",
-    ),
     cst.Break: ("break outside a loop", None),
     cst.Continue: ("continue outside a loop", None),
 }
@@ -110,12 +115,7 @@ _EXPRESSION_REJECTIONS: dict[type, tuple[str, str | None]] = {
     cst.ConcatenatedString: ("string operations are not supported", None),
     cst.FormattedString: ("f-strings are not supported", None),
     cst.Imaginary: ("complex numbers are not supported", None),
-    cst.Comparison: ("comparisons are not supported yet", None),
-    cst.BooleanOperation: ("and/or are not supported yet", None),
-    cst.IfExp: ("conditional expressions are not supported yet", None),
-    cst.Subscript: ("indexing is not supported yet", None),
     cst.Tuple: ("a tuple is not a number", None),
-    cst.List: ("lists are not supported yet", None),
     cst.Dict: ("dicts are not supported", None),
     cst.Set: ("sets are not supported", None),
     cst.Await: ("await is not supported", None),
@@ -136,18 +136,6 @@ def _statement_text(index: ModuleIndex, node: cst.CSTNode) -> str:
     return _WHITESPACE.sub(" ", index.code(node).strip())
 
 
-def _assigned_names(statements: list[cst.CSTNode]) -> frozenset[str]:
-    """Every name the function binds anywhere: Python makes those local throughout."""
-    names: set[str] = set()
-    for stmt in statements:
-        if isinstance(stmt, cst.Assign):
-            for target in stmt.targets:
-                names.update(_target_names(target.target))
-        elif isinstance(stmt, (cst.AugAssign, cst.AnnAssign)):
-            names.update(_target_names(stmt.target))
-    return frozenset(names)
-
-
 def _target_names(target: cst.BaseExpression) -> list[str]:
     if isinstance(target, cst.Name):
         return [target.value]
@@ -156,92 +144,273 @@ def _target_names(target: cst.BaseExpression) -> list[str]:
     return []
 
 
+#: env key under which the function's result values are kept (not an identifier)
+_RESULT = "\0result"
+
+_COMPARE_OPS: dict[type, str] = {
+    cst.LessThan: "lt",
+    cst.LessThanEqual: "le",
+    cst.GreaterThan: "gt",
+    cst.GreaterThanEqual: "ge",
+    cst.Equal: "eq",
+    cst.NotEqual: "ne",
+}
+
+#: primitives that take or make lists; every other primitive takes numbers
+LIST_OPS = frozenset({"getitem", "setitem", "newlist", "listlit", "len", "sum"})
+
+
+@dataclass(frozen=True)
+class _Unbound:
+    """A name bound on some paths only: reading it is an error."""
+
+    message: str
+    hint: str
+
+
+def _block_statements(block: cst.BaseSuite) -> list[cst.CSTNode]:
+    """The statements of a block, with ``a = 1; b = 2`` lines split."""
+    if not isinstance(block, cst.IndentedBlock):
+        return list(block.body)  # `if c: x = 1` on one line
+    statements: list[cst.CSTNode] = []
+    for stmt in block.body:
+        if isinstance(stmt, cst.SimpleStatementLine):
+            statements.extend(stmt.body)
+        else:
+            statements.append(stmt)
+    return statements
+
+
+def _else_statements(node: cst.If) -> list[cst.CSTNode]:
+    orelse = node.orelse
+    if orelse is None:
+        return []
+    if isinstance(orelse, cst.If):
+        return [orelse]  # elif
+    return _block_statements(orelse.body)
+
+
+def _always_returns(statements: list[cst.CSTNode]) -> bool:
+    if not statements:
+        return False
+    last = statements[-1]
+    if isinstance(last, cst.Return):
+        return True
+    if isinstance(last, cst.If):
+        return _always_returns(_block_statements(last.body)) and _always_returns(
+            _else_statements(last)
+        )
+    return False
+
+
+def _assigned_names(statements: list[cst.CSTNode]) -> dict[str, None]:
+    """Every name a run of statements binds, nested blocks included, in order.
+
+    Python makes these local throughout the function. Element writes (``y[i] = v``)
+    count as binding ``y``: they make a new version of the list.
+    """
+    names: dict[str, None] = {}
+    for stmt in statements:
+        targets: list[cst.BaseExpression] = []
+        if isinstance(stmt, cst.Assign):
+            targets = [t.target for t in stmt.targets]
+        elif isinstance(stmt, (cst.AugAssign, cst.AnnAssign)):
+            targets = [stmt.target]
+        elif isinstance(stmt, cst.If):
+            names.update(_assigned_names(_block_statements(stmt.body)))
+            names.update(_assigned_names(_else_statements(stmt)))
+        elif isinstance(stmt, cst.For):
+            targets = [stmt.target]
+            names.update(_assigned_names(_block_statements(stmt.body)))
+        for target in targets:
+            if isinstance(target, cst.Subscript) and isinstance(target.value, cst.Name):
+                names[target.value.value] = None
+            for name in _target_names(target):
+                names[name] = None
+    return names
+
+
+def _list_uses(node: cst.CSTNode) -> set[str]:
+    """Names used as lists: indexed, iterated, or passed to len() or sum()."""
+    found: set[str] = set()
+
+    class Finder(cst.CSTVisitor):
+        def visit_Subscript(self, n: cst.Subscript) -> None:
+            if isinstance(n.value, cst.Name):
+                found.add(n.value.value)
+
+        def visit_For(self, n: cst.For) -> None:
+            if isinstance(n.iter, cst.Name):
+                found.add(n.iter.value)
+
+        def visit_Call(self, n: cst.Call) -> None:
+            if (
+                isinstance(n.func, cst.Name)
+                and n.func.value in ("len", "sum")
+                and len(n.args) == 1
+                and isinstance(n.args[0].value, cst.Name)
+            ):
+                found.add(n.args[0].value.value)
+
+    node.visit(Finder())
+    return found
+
+
 class _Lowerer:
-    def __init__(self, index: ModuleIndex, function: CheckedFunction) -> None:
+    def __init__(
+        self,
+        index: ModuleIndex,
+        function: CheckedFunction,
+        call_stack: tuple[str, ...],
+    ) -> None:
         self.index = index
         self.function = function
+        self.call_stack = call_stack + (function.name,)
         self.uids = itertools.count()
-        self.lets: list[Let] = []
-        self.env: dict[str, Atom] = {}
+        self.blocks: list[list[Stmt]] = [[]]
+        self.env: dict[str, Atom | _Unbound] = {}
         self.local_names: frozenset[str] = frozenset()
         self.constants_read: dict[str, None] = {}
+        self.callees: dict[str, None] = {}
         self.origin = Origin("", 0)
         self.statement_count = itertools.count()
+        self.loop_depth = 0
+        self.result_arity: int | None = None
+        self.return_origins: list[Origin] = []
 
     # -- values -------------------------------------------------------------------
 
-    def new_var(self, base: str, kind: str) -> Var:
-        return Var(next(self.uids), base, kind)  # type: ignore[arg-type]
+    def new_var(self, base: str, kind: str, shape: str = "scalar") -> Var:
+        return Var(next(self.uids), base, kind, shape)  # type: ignore[arg-type]
 
     def emit(self, op: str, args: tuple[Atom, ...], target: Var) -> Var:
-        self.lets.append(Let(target, op, args, self.origin))
+        self.blocks[-1].append(Let(target, op, args, self.origin))
         return target
 
     def bind_value(self, node: cst.BaseExpression, base: str) -> Var:
         """Evaluate ``node`` into a fresh local value named after ``base``."""
-        target = self.new_var(base, "local")
+        target = self.new_var(base, "local", self.shape_of_expression(node))
         atom = self.expr(node, base, target)
         if atom is not target:
+            if isinstance(atom, Var) and atom.shape == "list":
+                fail(
+                    "a second name for a list is not supported (both would change"
+                    " together)",
+                    self.index.locate(node),
+                    "index the original list",
+                )
             self.emit("copy", (atom,), target)
         return target
 
-    # -- statements ---------------------------------------------------------------
+    def shape_of_expression(self, node: cst.BaseExpression) -> str:
+        if isinstance(node, cst.List):
+            return "list"
+        if isinstance(node, cst.BinaryOperation) and isinstance(
+            node.operator, cst.Multiply
+        ):
+            if isinstance(node.left, cst.List) or isinstance(node.right, cst.List):
+                return "list"
+        return "scalar"
+
+    def scalar(self, atom: Atom, node: cst.CSTNode) -> Atom:
+        if isinstance(atom, Var) and atom.shape == "list":
+            fail(
+                f"'{atom.base}' is a list, not a number",
+                self.index.locate(node),
+                f"index it: {atom.base}[i]",
+            )
+        return atom
+
+    def set_origin(self, text: str) -> None:
+        self.origin = Origin(text, next(self.statement_count))
+
+    # -- the function ---------------------------------------------------------------
 
     def lower(self) -> SSAFunction:
         node = self.function.node
-        params = tuple(self.new_var(name, "param") for name in self.function.params)
+        lists = _list_uses(node.body)
+        params = tuple(
+            self.new_var(name, "param", "list" if name in lists else "scalar")
+            for name in self.function.params
+        )
         for param in params:
             self.env[param.base] = param
-        body = node.body
-        if not isinstance(body, cst.IndentedBlock):
-            statements: list[cst.CSTNode] = list(body.body)  # def f(x): return x
-        else:
-            statements = []
-            for stmt in body.body:
-                if isinstance(stmt, cst.SimpleStatementLine):
-                    statements.extend(stmt.body)
-                else:
-                    statements.append(stmt)
+        statements = _block_statements(node.body)
         if statements and _is_docstring(statements[0]):
             statements = statements[1:]
-        self.local_names = _assigned_names(statements)
-        result: Return | None = None
-        for stmt in statements:
-            if result is not None:
+        self.local_names = frozenset(_assigned_names(statements))
+        returned = self.sequence(statements)
+        if not returned:
+            if self.result_arity is None:
                 fail(
-                    "code after the return statement is never run",
-                    self.index.locate(stmt),
-                    "remove it, or move the return to the end",
+                    f"'{self.function.name}' has no return statement: there is no"
+                    " result to differentiate",
+                    self.index.locate(node.name),
+                    "end the function with `return <expression>`",
                 )
-            self.origin = Origin(
-                _statement_text(self.index, stmt), next(self.statement_count)
-            )
-            result = self.statement(stmt)
-        if result is None:
             fail(
-                f"'{self.function.name}' has no return statement: there is no result to"
-                " differentiate",
+                f"'{self.function.name}' can reach its end without returning",
                 self.index.locate(node.name),
-                "end the function with `return <expression>`",
+                "end the function with a return statement",
             )
-        assert result is not None
+        assert self.result_arity is not None
+        values = tuple(self.env[f"{_RESULT}{i}"] for i in range(abs(self.result_arity)))
+        origin = (
+            self.return_origins[0]
+            if len(self.return_origins) == 1
+            else Origin("the result", next(self.statement_count))
+        )
+        result = Return(values, origin, self.result_arity < 0)  # type: ignore[arg-type]
         return SSAFunction(
             self.function.name,
             params,
-            tuple(self.lets),
+            tuple(self.blocks[0]),
             result,
             frozenset(self.local_names),
             tuple(self.constants_read),
+            tuple(self.callees),
         )
 
-    def statement(self, stmt: cst.CSTNode) -> Return | None:
+    # -- statements ---------------------------------------------------------------
+
+    def sequence(self, statements: list[cst.CSTNode]) -> bool:
+        """Lower statements in order; True when every path through them returned."""
+        for position, stmt in enumerate(statements):
+            if isinstance(stmt, cst.If):
+                rest = statements[position + 1 :]
+                returned, consumed = self.if_statement(stmt, rest, "if")
+                if returned and not consumed and rest:
+                    self.unreachable(rest[0])
+                if consumed or returned:
+                    return returned
+                continue
+            if isinstance(stmt, cst.For):
+                self.for_statement(stmt)
+                continue
+            self.set_origin(_statement_text(self.index, stmt))
+            if self.statement(stmt):
+                if position + 1 < len(statements):
+                    self.unreachable(statements[position + 1])
+                return True
+        return False
+
+    def unreachable(self, stmt: cst.CSTNode) -> None:
+        fail(
+            "code after the return statement is never run",
+            self.index.locate(stmt),
+            "remove it, or move the return to the end",
+        )
+
+    def statement(self, stmt: cst.CSTNode) -> bool:
+        """Lower one simple statement; True for a return."""
         if isinstance(stmt, cst.Pass):
-            return None
+            return False
         if isinstance(stmt, cst.Return):
-            return self.return_statement(stmt)
+            self.return_statement(stmt)
+            return True
         if isinstance(stmt, cst.Assign):
-            self.assign(stmt)
-            return None
+            self.bind_targets([t.target for t in stmt.targets], stmt.value)
+            return False
         if isinstance(stmt, cst.AnnAssign):
             if stmt.value is None:
                 fail(
@@ -250,39 +419,250 @@ class _Lowerer:
                 )
             assert stmt.value is not None
             self.bind_targets([stmt.target], stmt.value)
-            return None
+            return False
         if isinstance(stmt, cst.AugAssign):
             self.augmented(stmt)
-            return None
+            return False
         if isinstance(stmt, cst.Expr):
             fail(
                 "an expression statement has no effect on the result",
                 self.index.locate(stmt),
                 "assign the value to a name, or remove the statement",
             )
+        if isinstance(stmt, (cst.Break, cst.Continue)) and self.loop_depth:
+            word = "break" if isinstance(stmt, cst.Break) else "continue"
+            fail(
+                f"{word} is not supported (the reverse sweep needs every loop to run"
+                " its full trip count)",
+                self.index.locate(stmt),
+                "guard the rest of the body with an if instead",
+            )
         message, hint = _STATEMENT_REJECTIONS.get(
             type(stmt), (f"{type(stmt).__name__} statements are not supported", None)
         )
         fail(message, self.index.locate(_keyword_span(stmt)), hint)
-        return None
+        return False
 
-    def return_statement(self, stmt: cst.Return) -> Return:
+    def return_statement(self, stmt: cst.Return) -> None:
         value = stmt.value
         if value is None:
             fail("return without a value: there is no result", self.index.locate(stmt))
         assert value is not None
-        if isinstance(value, cst.Tuple):
+        if self.loop_depth:
             fail(
-                "functions returning a tuple are not supported yet",
-                self.index.locate(value),
-                "differentiate one output at a time",
+                "return inside a loop is not supported (the loop must run its full"
+                " trip count)",
+                self.index.locate(stmt),
+                "keep the result in a variable and return it after the loop",
             )
-        target = self.new_var("value", "local")
-        atom = self.expr(value, "value", target)
-        return Return((atom,), self.origin)
+        elements = (
+            [el.value for el in value.elements]
+            if isinstance(value, cst.Tuple)
+            else [value]
+        )
+        arity = -len(elements) if isinstance(value, cst.Tuple) else 1
+        if self.result_arity is not None and arity != self.result_arity:
+            fail(
+                "every return must give the same number of values",
+                self.index.locate(value),
+            )
+        self.result_arity = arity
+        self.return_origins.append(self.origin)
+        atoms = []
+        for element in elements:
+            target = self.new_var("value", "local")
+            atoms.append(self.scalar(self.expr(element, "value", target), element))
+        for i, atom in enumerate(atoms):
+            self.env[f"{_RESULT}{i}"] = atom
 
-    def assign(self, stmt: cst.Assign) -> None:
-        self.bind_targets([t.target for t in stmt.targets], stmt.value)
+    # -- branches -----------------------------------------------------------------
+
+    def condition(self, test: cst.BaseExpression) -> Atom:
+        return self.scalar(self.expr(test, "cond", None), test)
+
+    def if_statement(
+        self, node: cst.If, rest: list[cst.CSTNode], keyword: str
+    ) -> tuple[bool, bool]:
+        """Lower an if; returns (every path returned, ``rest`` was lowered too).
+
+        When one branch always returns, the statements after the if run only on the
+        other path, so they are lowered into that branch.
+        """
+        self.set_origin(f"{keyword} {_statement_text(self.index, node.test)}:")
+        origin = self.origin
+        condition = self.condition(node.test)
+        then_statements = _block_statements(node.body)
+        else_statements = _else_statements(node)
+        then_returns = _always_returns(then_statements)
+        else_returns = _always_returns(else_statements)
+        consumed = False
+        if then_returns and not else_returns and rest:
+            else_statements, consumed = else_statements + rest, True
+        elif else_returns and not then_returns and rest:
+            then_statements, consumed = then_statements + rest, True
+        before = dict(self.env)
+        self.blocks.append([])
+        if node.orelse is not None and isinstance(node.orelse, cst.If):
+            pass
+        returned_then = self.sequence(then_statements)
+        then_block, then_env = self.blocks.pop(), self.env
+        self.env = dict(before)
+        self.blocks.append([])
+        if isinstance(node.orelse, cst.If):
+            nested_rest = else_statements[1:]
+            returned_else, nested_consumed = self.if_statement(
+                node.orelse, nested_rest, "elif"
+            )
+            if nested_rest and not nested_consumed:
+                returned_else = (
+                    self.sequence(nested_rest) if not returned_else else True
+                )
+        else:
+            returned_else = self.sequence(else_statements)
+        else_block, else_env = self.blocks.pop(), self.env
+        self.env = dict(before)
+        merges = self.merge(before, then_env, else_env, returned_then, returned_else)
+        self.origin = origin
+        self.blocks[-1].append(
+            Branch(condition, tuple(then_block), tuple(else_block), merges, origin)
+        )
+        return returned_then and returned_else, consumed
+
+    def merge(
+        self,
+        before: dict[str, Atom | _Unbound],
+        then_env: dict[str, Atom | _Unbound],
+        else_env: dict[str, Atom | _Unbound],
+        then_returned: bool,
+        else_returned: bool,
+    ) -> tuple[Phi, ...]:
+        names = list(dict.fromkeys([*before, *then_env, *else_env]))
+        merges: list[Phi] = []
+        for name in names:
+            is_result = name.startswith(_RESULT)
+            if (then_returned or else_returned) and not is_result:
+                continue  # only the result leaves a path that returned
+            a, b = then_env.get(name), else_env.get(name)
+            if a is b and a is not None:
+                self.env[name] = a
+                continue
+            if (
+                a is None
+                or b is None
+                or isinstance(a, _Unbound)
+                or isinstance(b, _Unbound)
+            ):
+                self.env[name] = _Unbound(
+                    f"'{name}' is assigned in only one branch of an if and not before"
+                    " it",
+                    "assign it before the if, or in every branch",
+                )
+                continue
+            shape = a.shape if isinstance(a, Var) else "scalar"
+            target = self.new_var("value" if is_result else name, "local", shape)
+            merges.append(Phi(target, a, b))
+            self.env[name] = target
+        return tuple(merges)
+
+    # -- loops --------------------------------------------------------------------
+
+    def for_statement(self, node: cst.For) -> None:
+        if node.orelse is not None:
+            fail("for-else is not supported", self.index.locate(node.orelse))
+        if node.asynchronous is not None:
+            fail("async for is not supported", self.index.locate(node))
+        if not isinstance(node.target, cst.Name):
+            fail(
+                "the loop variable must be a single name",
+                self.index.locate(node.target),
+            )
+        assert isinstance(node.target, cst.Name)
+        name = node.target.value
+        self.set_origin(f"for {name} in {_statement_text(self.index, node.iter)}:")
+        origin = self.origin
+        over_list: Var | None = None
+        if (
+            isinstance(node.iter, cst.Call)
+            and isinstance(node.iter.func, cst.Name)
+            and node.iter.func.value == "range"
+            and "range" not in self.index.module_names
+        ):
+            args = node.iter.args
+            if not 1 <= len(args) <= 3 or any(a.keyword or a.star for a in args):
+                fail(
+                    "range() takes one to three positional arguments",
+                    self.index.locate(node.iter),
+                )
+            bounds = [
+                self.scalar(self.expr(a.value, name, None), a.value) for a in args
+            ]
+            if len(bounds) == 1:
+                start, stop, step = Const("0", 0), bounds[0], Const("1", 1)
+            elif len(bounds) == 2:
+                start, stop, step = bounds[0], bounds[1], Const("1", 1)
+            else:
+                start, stop, step = bounds
+        else:
+            iterable = self.expr(node.iter, name, None)
+            if not (isinstance(iterable, Var) and iterable.shape == "list"):
+                fail(
+                    "for-loops run over range(...) or a list",
+                    self.index.locate(node.iter),
+                    "write `for i in range(n):`",
+                )
+            assert isinstance(iterable, Var)
+            over_list = iterable
+            start, step = Const("0", 0), Const("1", 1)
+            stop = self.emit("len", (iterable,), self.new_var(name, "temp"))
+
+        assigned = _assigned_names(_block_statements(node.body))
+        assigned[name] = None
+        before = dict(self.env)
+        carried = [
+            n
+            for n in before
+            if n in assigned and n != name and not isinstance(before[n], _Unbound)
+        ]
+        headers: dict[str, Var] = {}
+        for n in carried:
+            init = before[n]
+            shape = init.shape if isinstance(init, Var) else "scalar"
+            headers[n] = self.new_var(n, "local", shape)
+            self.env[n] = headers[n]
+        index_var = self.new_var(
+            name if over_list is None else f"{name}_index", "index"
+        )
+        self.blocks.append([])
+        self.loop_depth += 1
+        if over_list is None:
+            self.env[name] = index_var
+        else:
+            self.env[name] = self.emit(
+                "getitem", (over_list, index_var), self.new_var(name, "local")
+            )
+        self.sequence(_block_statements(node.body))
+        self.loop_depth -= 1
+        body = self.blocks.pop()
+        body_env = self.env
+        self.env = dict(before)
+        phis = []
+        for n in carried:
+            exit_var = self.new_var(n, "local", headers[n].shape)
+            phis.append(Phi(headers[n], before[n], body_env[n], exit_var))  # type: ignore[arg-type]
+            self.env[n] = exit_var
+        for n in assigned:
+            if n not in carried:
+                self.env[n] = _Unbound(
+                    f"'{n}' is assigned only inside the loop (which may run zero"
+                    " times)",
+                    "assign it before the loop",
+                )
+        self.origin = origin
+        self.blocks[-1].append(
+            Loop(index_var, start, stop, step, tuple(phis), tuple(body), origin)
+        )
+
+    # -- assignments ----------------------------------------------------------------
 
     def bind_targets(
         self, targets: list[cst.BaseAssignTargetExpression], value: cst.BaseExpression
@@ -290,6 +670,14 @@ class _Lowerer:
         first = targets[0]
         for target in targets:
             self.check_target(target)
+        if isinstance(first, cst.Subscript):
+            if len(targets) > 1:
+                fail(
+                    "chained element assignment is not supported",
+                    self.index.locate(first),
+                )
+            self.set_element(first, lambda base: self.expr(value, base, None))
+            return
         if isinstance(first, (cst.Tuple, cst.List)):
             names = [el.value for el in first.elements]
             if not isinstance(value, (cst.Tuple, cst.List)):
@@ -305,6 +693,11 @@ class _Lowerer:
                     " names",
                     self.index.locate(value),
                 )
+            if len(targets) > 1:
+                fail(
+                    "chained tuple assignment is not supported",
+                    self.index.locate(first),
+                )
             # every right-hand side is evaluated before any name is bound
             computed = [
                 self.bind_value(el.value, name.value)  # type: ignore[union-attr]
@@ -312,11 +705,6 @@ class _Lowerer:
             ]
             for name, var in zip(names, computed, strict=True):
                 self.env[name.value] = var  # type: ignore[union-attr]
-            if len(targets) > 1:
-                fail(
-                    "chained tuple assignment is not supported",
-                    self.index.locate(first),
-                )
             return
         assert isinstance(first, cst.Name)
         var = self.bind_value(value, first.value)
@@ -328,6 +716,11 @@ class _Lowerer:
                     self.index.locate(other),
                 )
             assert isinstance(other, cst.Name)
+            if var.shape == "list":
+                fail(
+                    "a second name for a list is not supported",
+                    self.index.locate(other),
+                )
             self.env[other.value] = self.emit(
                 "copy", (var,), self.new_var(other.value, "local")
             )
@@ -338,7 +731,6 @@ class _Lowerer:
         if isinstance(target, (cst.Tuple, cst.List)):
             for el in target.elements:
                 if not isinstance(el.value, cst.Name):
-                    self.check_target(el.value)
                     fail("only names can be unpacked into", self.index.locate(el.value))
             return
         if isinstance(target, cst.Attribute):
@@ -349,16 +741,50 @@ class _Lowerer:
                 "assign to a local name",
             )
         if isinstance(target, cst.Subscript):
+            return
+        fail("unsupported assignment target", self.index.locate(target))
+
+    def element_target(self, target: cst.Subscript) -> tuple[Var, Atom, str]:
+        if not isinstance(target.value, cst.Name):
             fail(
-                "assigning to an element is not supported yet",
+                "only a local list's elements can be assigned",
                 self.index.locate(target),
             )
-        fail("unsupported assignment target", self.index.locate(target))
+        assert isinstance(target.value, cst.Name)
+        name = target.value.value
+        current = self.read_name(target.value)
+        if not (isinstance(current, Var) and current.shape == "list"):
+            fail(f"'{name}' is not a list", self.index.locate(target.value))
+        assert isinstance(current, Var)
+        if current.kind == "param":
+            fail(
+                f"'{name}' is a parameter: changing it in place is not supported",
+                self.index.locate(target),
+                f"build a local list first: `{name}_local = [0.0] * len({name})`",
+            )
+        index = self.subscript_index(target)
+        return current, index, name
+
+    def set_element(self, target: cst.Subscript, value) -> None:  # noqa: ANN001
+        current, index, name = self.element_target(target)
+        element = self.scalar(value(name), target)
+        new = self.new_var(name, "local", "list")
+        self.emit("setitem", (current, index, element), new)
+        self.env[name] = new
+
+    def subscript_index(self, node: cst.Subscript) -> Atom:
+        if len(node.slice) != 1 or not isinstance(node.slice[0].slice, cst.Index):
+            fail(
+                "only single-number indexing is supported on lists",
+                self.index.locate(node),
+                "write x[i]",
+            )
+        index_node = node.slice[0].slice.value  # type: ignore[union-attr]
+        return self.scalar(self.expr(index_node, "index", None), index_node)
 
     def augmented(self, stmt: cst.AugAssign) -> None:
         target = stmt.target
         self.check_target(target)
-        assert isinstance(target, cst.Name)
         symbol = _AUGMENTED_SYMBOLS.get(type(stmt.operator))
         if symbol is None:
             fail(
@@ -367,10 +793,24 @@ class _Lowerer:
                 "supported: += -= *= /= //= %= **=",
             )
         assert symbol is not None
-        current = self.read_name(target)
-        operand = self.expr(stmt.value, target.value, None)
+        op = BINARY_OPERATORS[symbol]
+        if isinstance(target, cst.Subscript):
+            current, index, name = self.element_target(target)
+
+            def updated(base: str) -> Atom:
+                old = self.emit("getitem", (current, index), self.new_var(name, "temp"))
+                operand = self.scalar(self.expr(stmt.value, base, None), stmt.value)
+                return self.emit(op, (old, operand), self.new_var(name, "temp"))
+
+            self.set_element(target, updated)
+            return
+        if not isinstance(target, cst.Name):
+            fail("unsupported assignment target", self.index.locate(target))
+        assert isinstance(target, cst.Name)
+        current = self.scalar(self.read_name(target), target)
+        operand = self.scalar(self.expr(stmt.value, target.value, None), stmt.value)
         var = self.new_var(target.value, "local")
-        self.emit(BINARY_OPERATORS[symbol], (current, operand), var)
+        self.emit(op, (current, operand), var)
         self.env[target.value] = var
 
     # -- expressions --------------------------------------------------------------
@@ -386,30 +826,138 @@ class _Lowerer:
         if isinstance(node, cst.UnaryOperation):
             return self.unary(node, base, target)
         if isinstance(node, cst.BinaryOperation):
-            symbol = _BINARY_SYMBOLS[type(node.operator)]
-            op = BINARY_OPERATORS.get(symbol)
-            if op is None:
-                fail(
-                    f"the {symbol} operator is not supported on numbers here",
-                    self.index.locate(node.operator),
-                    "supported: + - * / // % **",
-                )
-            assert op is not None
-            left = self.expr(node.left, base, None)
-            right = self.expr(node.right, base, None)
-            return self.emit(op, (left, right), target or self.new_var(base, "temp"))
+            return self.binary(node, base, target)
         if isinstance(node, cst.Call):
             return self.call(node, base, target)
+        if isinstance(node, cst.Comparison):
+            return self.comparison(node, base, target)
+        if isinstance(node, cst.BooleanOperation):
+            op = "and" if isinstance(node.operator, cst.And) else "or"
+            left = self.scalar(self.expr(node.left, base, None), node.left)
+            right = self.scalar(self.expr(node.right, base, None), node.right)
+            return self.emit(op, (left, right), target or self.new_var(base, "temp"))
+        if isinstance(node, cst.IfExp):
+            return self.conditional(node, base, target)
+        if isinstance(node, cst.Subscript):
+            container = self.expr(node.value, base, None)
+            if not (isinstance(container, Var) and container.shape == "list"):
+                fail("only lists can be indexed", self.index.locate(node.value))
+            index = self.subscript_index(node)
+            return self.emit(
+                "getitem", (container, index), target or self.new_var(base, "temp")
+            )
+        if isinstance(node, cst.List) or (
+            isinstance(node, cst.Tuple)
+            and target is not None
+            and target.shape == "list"
+        ):
+            if target is None or target.shape != "list":
+                fail(
+                    "a list literal can only be assigned to a name",
+                    self.index.locate(node),
+                )
+            elements = tuple(
+                self.scalar(self.expr(el.value, base, None), el.value)
+                for el in node.elements
+            )
+            return self.emit("listlit", elements, target)  # type: ignore[arg-type]
         message, hint = _EXPRESSION_REJECTIONS.get(
             type(node), (f"{type(node).__name__} expressions are not supported", None)
         )
         fail(message, self.index.locate(node), hint)
         raise AssertionError  # unreachable
 
+    def binary(self, node: cst.BinaryOperation, base: str, target: Var | None) -> Atom:
+        symbol = _BINARY_SYMBOLS[type(node.operator)]
+        op = BINARY_OPERATORS.get(symbol)
+        if op is None:
+            fail(
+                f"the {symbol} operator is not supported on numbers here",
+                self.index.locate(node.operator),
+                "supported: + - * / // % **",
+            )
+        assert op is not None
+        if op == "mul" and (
+            isinstance(node.left, cst.List) or isinstance(node.right, cst.List)
+        ):
+            # [fill] * n: a new list of n copies of one number
+            literal, count = (
+                (node.left, node.right)
+                if isinstance(node.left, cst.List)
+                else (node.right, node.left)
+            )
+            if len(literal.elements) != 1 or target is None:  # type: ignore[union-attr]
+                fail(
+                    "only `[value] * n`, assigned to a name, builds a list",
+                    self.index.locate(node),
+                )
+            fill_node = literal.elements[0].value  # type: ignore[union-attr]
+            fill = self.scalar(self.expr(fill_node, base, None), literal)
+            size = self.scalar(self.expr(count, base, None), count)
+            return self.emit("newlist", (fill, size), target)  # type: ignore[arg-type]
+        left = self.scalar(self.expr(node.left, base, None), node.left)
+        right = self.scalar(self.expr(node.right, base, None), node.right)
+        return self.emit(op, (left, right), target or self.new_var(base, "temp"))
+
+    def comparison(self, node: cst.Comparison, base: str, target: Var | None) -> Atom:
+        left = self.scalar(self.expr(node.left, base, None), node.left)
+        results: list[Atom] = []
+        for position, part in enumerate(node.comparisons):
+            op = _COMPARE_OPS.get(type(part.operator))
+            if op is None:
+                fail(
+                    "only < <= > >= == != comparisons are supported",
+                    self.index.locate(part.operator),
+                )
+            assert op is not None
+            right = self.scalar(self.expr(part.comparator, base, None), part.comparator)
+            last = position == len(node.comparisons) - 1 and len(node.comparisons) == 1
+            results.append(
+                self.emit(
+                    op,
+                    (left, right),
+                    (target if last and target else self.new_var(base, "temp")),
+                )
+            )
+            left = right
+        combined = results[0]
+        for i, item in enumerate(results[1:], start=2):
+            last = i == len(results)
+            combined = self.emit(
+                "and",
+                (combined, item),
+                target if last and target else self.new_var(base, "temp"),
+            )
+        return combined
+
+    def conditional(self, node: cst.IfExp, base: str, target: Var | None) -> Atom:
+        """``a if c else b`` evaluates only the side it picks: a branch."""
+        condition = self.condition(node.test)
+        self.blocks.append([])
+        then_value = self.scalar(self.expr(node.body, base, None), node.body)
+        then_block = self.blocks.pop()
+        self.blocks.append([])
+        else_value = self.scalar(self.expr(node.orelse, base, None), node.orelse)
+        else_block = self.blocks.pop()
+        result = target or self.new_var(base, "temp")
+        self.blocks[-1].append(
+            Branch(
+                condition,
+                tuple(then_block),
+                tuple(else_block),
+                (Phi(result, then_value, else_value),),
+                self.origin,
+            )
+        )
+        return result
+
     def read_name(self, node: cst.Name) -> Atom:
         name = node.value
         if name in self.env:
-            return self.env[name]
+            bound = self.env[name]
+            if isinstance(bound, _Unbound):
+                fail(bound.message, self.index.locate(node), bound.hint)
+            return bound  # type: ignore[return-value]
         if name in self.local_names:
             fail(
                 f"'{name}' is used before it is assigned",
@@ -477,8 +1025,14 @@ class _Lowerer:
                     -value if sign else value,
                 )
             operand = self.expr(node.expression, base, None)
+            operand = self.scalar(operand, node.expression)
             op = "neg" if isinstance(operator, cst.Minus) else "pos"
             return self.emit(op, (operand,), target or self.new_var(base, "temp"))
+        if isinstance(operator, cst.Not):
+            operand = self.scalar(
+                self.expr(node.expression, base, None), node.expression
+            )
+            return self.emit("not", (operand,), target or self.new_var(base, "temp"))
         fail(
             "this unary operator is not supported on numbers",
             self.index.locate(node),
@@ -487,6 +1041,11 @@ class _Lowerer:
 
     def call(self, node: cst.Call, base: str, target: Var | None) -> Atom:
         func = node.func
+        if isinstance(func, cst.Name) and func.value not in self.index.module_names:
+            if func.value in ("len", "sum"):
+                return self.list_builtin(node, func.value, base, target)
+        if isinstance(func, cst.Name) and func.value in self.index.functions:
+            return self.user_call(node, func.value, base, target)
         op = math_function_op(self.index, func)
         if (
             op is None
@@ -529,7 +1088,9 @@ class _Lowerer:
                 f"{spec.symbol}() takes {expected} arguments, not {count}",
                 self.index.locate(node),
             )
-        args = tuple(self.expr(a.value, base, None) for a in node.args)
+        args = tuple(
+            self.scalar(self.expr(a.value, base, None), a.value) for a in node.args
+        )
         if op in ("min", "max"):
             # min(a, b, c) == min(min(a, b), c), selecting the same element
             acc = args[0]
@@ -543,6 +1104,69 @@ class _Lowerer:
             return acc
         return self.emit(op, args, target or self.new_var(base, "temp"))
 
+    def list_builtin(
+        self, node: cst.Call, name: str, base: str, target: Var | None
+    ) -> Atom:
+        if len(node.args) != 1 or node.args[0].keyword or node.args[0].star:
+            fail(f"{name}() takes one list here", self.index.locate(node))
+        argument = self.expr(node.args[0].value, base, None)
+        if not (isinstance(argument, Var) and argument.shape == "list"):
+            fail(f"{name}() needs a list", self.index.locate(node.args[0].value))
+        return self.emit(name, (argument,), target or self.new_var(base, "temp"))
+
+    def user_call(
+        self, node: cst.Call, name: str, base: str, target: Var | None
+    ) -> Atom:
+        """A call to another function of the file; its gradient code is shared."""
+        if name in self.call_stack:
+            fail(
+                f"'{name}' is called recursively ({' -> '.join(self.call_stack)} ->"
+                f" {name}): recursion is not supported",
+                self.index.locate(node.func),
+                "rewrite the recursion as a loop",
+            )
+        callee = self.index.functions[name]
+        params = callee.params
+        if (
+            params.star_arg not in (None, cst.MaybeSentinel.DEFAULT)
+            or params.star_kwarg
+        ):
+            fail(f"'{name}' takes *args or **kwargs", self.index.locate(node.func))
+        declared = [*params.posonly_params, *params.params, *params.kwonly_params]
+        positional_limit = len(params.posonly_params) + len(params.params)
+        slots: dict[str, cst.BaseExpression] = {}
+        for position, arg in enumerate(node.args):
+            if arg.star:
+                fail("starred arguments are not supported", self.index.locate(arg))
+            if arg.keyword is None:
+                if position >= positional_limit:
+                    fail(f"too many arguments for '{name}'", self.index.locate(arg))
+                slots[declared[position].name.value] = arg.value
+            else:
+                key = arg.keyword.value
+                if key not in {p.name.value for p in declared} or key in slots:
+                    fail(
+                        f"'{name}' has no parameter '{key}' to set here",
+                        self.index.locate(arg),
+                    )
+                slots[key] = arg.value
+        args: list[Atom] = []
+        for param in declared:
+            given = slots.get(param.name.value)
+            if given is None:
+                given = param.default
+            if given is None:
+                fail(
+                    f"missing argument '{param.name.value}' in the call to '{name}'",
+                    self.index.locate(node),
+                )
+            assert given is not None
+            args.append(self.scalar(self.expr(given, base, None), given))
+        self.callees[name] = None
+        return self.emit(
+            f"call:{name}", tuple(args), target or self.new_var(base, "temp")
+        )
+
     def reject_call(self, func: cst.BaseExpression) -> None:
         loc = self.index.locate(func)
         if isinstance(func, cst.Attribute) and isinstance(func.value, cst.Name):
@@ -554,24 +1178,18 @@ class _Lowerer:
                 )
         if isinstance(func, cst.Name):
             name = func.value
-            if name == self.function.name:
+            if name == "range":
                 fail(
-                    f"'{name}' calls itself: recursion is not supported",
+                    "range() is supported only as the iterable of a for-loop",
                     loc,
-                    "rewrite the recursion as a loop",
-                )
-            if name in self.index.functions:
-                fail(
-                    f"calls to other functions ('{name}') are not supported yet",
-                    loc,
-                    "inline the helper into the model for now",
                 )
             if name in self.index.math_names:
                 fail(f"math.{self.index.math_names[name]} is not supported", loc)
         fail(
             "unsupported call",
             loc,
-            "models call math functions, abs, min and max",
+            "models call math functions, abs, min, max, len, sum and functions"
+            " defined in the same file",
         )
 
 
@@ -598,5 +1216,8 @@ def _normalize_number(text: str) -> str:
     return lowered
 
 
-def lower(index: ModuleIndex, function: CheckedFunction) -> SSAFunction:
-    return _Lowerer(index, function).lower()
+def lower(
+    index: ModuleIndex, function: CheckedFunction, call_stack: tuple[str, ...] = ()
+) -> SSAFunction:
+    """``call_stack``: the callers being lowered, to reject recursion where it is."""
+    return _Lowerer(index, function, call_stack).lower()

@@ -1,0 +1,1000 @@
+"""Laying out the generated function body: the forward and the reverse sweep.
+
+Decides, for the structured SSA and its reverse sweep:
+
+- which forward values are stored under a name and which fold back into the
+  expression that uses them (so the forward sweep reads like the source);
+- which names the stored values take: a re-bound source variable keeps its one name
+  while the old value is no longer needed, so loops and branches look like the
+  source's; a value the reverse sweep reads later keeps a name of its own;
+- what each loop saves for its reverse: values the reverse body reads are written to
+  a list preallocated when the loop starts (``x_saved``), one slot per iteration;
+  cheap values that depend only on the loop index and on values from before the loop
+  are recomputed instead; the lists of an inner loop are saved by the outer one;
+- and prints both sweeps as indented lines with the quoting comments.
+"""
+
+from __future__ import annotations
+
+from collections import Counter
+from collections.abc import Iterable, Iterator
+from dataclasses import dataclass
+
+from .formatting import format_statement
+from .ir import (
+    AdjointAssign,
+    Apply,
+    Atom,
+    Bar,
+    Branch,
+    Const,
+    ElementAdjoint,
+    Expr,
+    Let,
+    Loop,
+    Origin,
+    ReverseBranch,
+    ReverseLoop,
+    ReverseStmt,
+    ReverseSweep,
+    SpreadAdjoint,
+    SSAFunction,
+    Stmt,
+    Var,
+    const,
+)
+from .naming import Namer
+from .printer import Printer
+
+#: primitives cheap enough to recompute rather than save
+_CHEAP = frozenset(
+    {"add", "sub", "mul", "div", "pow", "floordiv", "mod", "neg", "pos", "len", "copy"}
+    | {"lt", "le", "gt", "ge", "eq", "ne", "and", "or", "not"}
+)
+
+
+def walk(expr: Expr) -> Iterator[Expr]:
+    yield expr
+    if isinstance(expr, Apply):
+        for arg in expr.args:
+            yield from walk(arg)
+
+
+@dataclass
+class _Group:
+    """Lines under one quoting comment, at one depth."""
+
+    lines: list[str]
+
+
+class Layout:
+    def __init__(
+        self,
+        function: SSAFunction,
+        sweep: ReverseSweep,
+        namer: Namer,
+        printer: Printer,
+        active: set[Var],
+    ) -> None:
+        self.function = function
+        self.sweep = sweep
+        self.namer = namer
+        self.printer = printer
+        self.active = active
+        self.defs: dict[Var, Let] = {}
+        self.loop_of: dict[Var, Loop | None] = {}
+        self.parent: dict[Loop, Loop | None] = {}
+        self.top_level: dict[Loop, set[Var]] = {}
+        self.children: dict[Loop, list[Loop]] = {}
+        self.position: dict[Var, int] = {}
+        self._index_defs(function.body, None)
+        for param in function.params:
+            self.loop_of[param] = None
+        self.roots = dict(sweep.roots)
+        self.reverse_defined = self._reverse_defined(sweep.statements)
+        self.recompute: dict[Loop, list[Let]] = {}
+        self.reverse_reads = self._reverse_reads()
+        self.tapes: dict[Loop, list[Var]] = {}
+        self.by_names: dict[tuple[Loop, str], str] = {}
+        self._assign_tapes()
+        self.uses = self._forward_uses()
+        self.live = self._liveness()
+        self.pinned = {v for v in self.reverse_reads if self.loop_of.get(v) is None}
+        self.pinned |= self._stale_reads()
+        # the returned values are read at the very end
+        self.pinned |= {a for a in function.result.values if isinstance(a, Var)}
+        self.stored = self._stored()
+        self.partials_needed = {
+            node.args[0]
+            for stmt in _reverse_exprs(sweep.statements)
+            for node in walk(stmt)
+            if isinstance(node, Apply) and node.op == "partial"
+        }
+        self.tape_names: dict[tuple[Loop, Var], str] = {}
+        self._name_all()
+        self._name_carries(sweep.statements)
+
+    # -- analysis -----------------------------------------------------------------
+
+    def _index_defs(self, statements: tuple[Stmt, ...], loop: Loop | None) -> None:
+        for stmt in statements:
+            if isinstance(stmt, Let):
+                self.defs[stmt.target] = stmt
+                self.loop_of[stmt.target] = loop
+                self.position[stmt.target] = len(self.position)
+            elif isinstance(stmt, Branch):
+                self._index_defs(stmt.then, loop)
+                self._index_defs(stmt.orelse, loop)
+                for phi in stmt.merges:
+                    self.loop_of[phi.target] = loop
+            else:
+                self.parent[stmt] = loop
+                self.children.setdefault(stmt, [])
+                if loop is not None:
+                    self.children.setdefault(loop, []).append(stmt)
+                self.top_level[stmt] = {
+                    s.target for s in stmt.body if isinstance(s, Let)
+                }
+                self.loop_of[stmt.index] = stmt
+                for phi in stmt.carried:
+                    self.loop_of[phi.target] = stmt
+                    assert phi.exit is not None
+                    self.loop_of[phi.exit] = loop
+                self._index_defs(stmt.body, stmt)
+
+    def _reverse_defined(self, statements: Iterable[ReverseStmt]) -> set[Var]:
+        found: set[Var] = set()
+        for stmt in statements:
+            if isinstance(stmt, ReverseBranch):
+                found |= self._reverse_defined(stmt.then)
+                found |= self._reverse_defined(stmt.orelse)
+            elif isinstance(stmt, ReverseLoop):
+                found |= self._reverse_defined(stmt.body)
+        return found
+
+    def partials_of(self, call: Var) -> Var:
+        """The tuple of partial derivatives a helper call returns, as a value."""
+        pseudo = Var(-call.uid - 1, f"{call.base}_partials", "temp")
+        if pseudo not in self.loop_of:
+            self.loop_of[pseudo] = self.loop_of.get(call)
+            self.namer.names[pseudo] = self.namer.partials_name(call)
+        return pseudo
+
+    def cheap(self, atom: Expr) -> Expr:
+        """``atom`` rebuilt through inactive cheap temporaries (for conditions and
+        loop bounds, which both sweeps print)."""
+        if isinstance(atom, Apply):
+            return Apply(atom.op, tuple(self.cheap(a) for a in atom.args))
+        if (
+            isinstance(atom, Var)
+            and atom.kind == "temp"
+            and atom not in self.active
+            and atom in self.defs
+            and self.defs[atom].op in _CHEAP
+        ):
+            let = self.defs[atom]
+            return Apply(let.op, tuple(self.cheap(a) for a in let.args))
+        return atom
+
+    def _recomputable(self, var: Var, loop: Loop) -> bool:
+        """A cheap value computed at the top of ``loop``'s body from values the
+        reverse body has anyway (constants, indices, values from before the loop,
+        restored or recomputed values of this iteration)."""
+        let = self.defs.get(var)
+        if let is None or var not in self.top_level[loop]:
+            return False
+        if let.op == "getitem":
+            container = let.args[0]
+            if not (isinstance(container, Var) and container.kind == "param"):
+                return False
+        elif let.op not in _CHEAP:
+            return False
+        for arg in let.args:
+            if not isinstance(arg, Var) or arg.kind == "index":
+                continue
+            where = self.loop_of.get(arg)
+            if where is loop:
+                if arg not in self.top_level[loop] and not any(
+                    phi.target == arg for phi in loop.carried
+                ):
+                    return False
+            elif not self._encloses(where, loop):
+                return False
+        return True
+
+    def _encloses(self, outer: Loop | None, loop: Loop) -> bool:
+        current: Loop | None = self.parent.get(loop)
+        while True:
+            if current is outer:
+                return True
+            if current is None:
+                return False
+            current = self.parent.get(current)
+
+    def _reverse_reads(self) -> set[Var]:
+        reads: set[Var] = set()
+
+        def collect(expr: Expr, loop: Loop | None) -> None:
+            for node in _walk_values(self.cheap(expr)):
+                if isinstance(node, Apply):  # a call's partials: a value of its own
+                    note(self.partials_of(node.args[0]), loop)  # type: ignore[arg-type]
+                elif isinstance(node, Var) and node not in self.reverse_defined:
+                    note(node, loop)
+
+        def note(var: Var, loop: Loop | None) -> None:
+            if var in reads or var.kind == "index":
+                return
+            expanded = self.cheap(var)
+            if expanded != var:  # printed as its expression wherever it is used
+                for node in walk(expanded):
+                    if isinstance(node, Var):
+                        note(node, loop)
+                return
+            where = self.loop_of.get(var)
+            if where is not None and self._recomputable(var, where):
+                let = self.defs[var]
+                bucket = self.recompute.setdefault(where, [])
+                if let not in bucket:
+                    bucket.append(let)
+                for arg in let.args:
+                    if isinstance(arg, Var):
+                        note(arg, loop)
+                return
+            reads.add(var)
+
+        def visit(statements: Iterable[ReverseStmt], loop: Loop | None) -> None:
+            for stmt in statements:
+                if isinstance(stmt, AdjointAssign):
+                    collect(stmt.expr, loop)
+                elif isinstance(stmt, ElementAdjoint):
+                    collect(stmt.index, loop)
+                    collect(stmt.expr, loop)
+                    note_root(stmt.root)
+                elif isinstance(stmt, SpreadAdjoint):
+                    collect(stmt.expr, loop)
+                    note_root(stmt.root)
+                elif isinstance(stmt, ReverseBranch):
+                    collect(stmt.condition, loop)
+                    visit(stmt.then, loop)
+                    visit(stmt.orelse, loop)
+                else:
+                    for bound in (stmt.loop.start, stmt.loop.stop, stmt.loop.step):
+                        collect(bound, loop)
+                    visit(stmt.body, stmt.loop)
+
+        def note_root(root: Var) -> None:
+            pass
+
+        visit(self.sweep.statements, None)
+        for root in self.sweep.list_roots:
+            reads.add(root)  # len(root) sizes its adjoint
+        for lets in self.recompute.values():
+            lets.sort(key=lambda let: self.position[let.target])
+        return reads
+
+    def _assign_tapes(self) -> None:
+        for var in sorted(self.reverse_reads):
+            loop = self.loop_of.get(var)
+            if loop is not None:
+                self.tapes.setdefault(loop, []).append(var)
+
+    def saved_lists(self, loop: Loop) -> list[str]:
+        """The lists ``loop`` fills, one slot per iteration: its own values, then,
+        for each inner loop, a list holding that loop's lists of each iteration."""
+        names = [self.tape_name(loop, var) for var in self.tapes.get(loop, [])]
+        for child in self.children.get(loop, []):
+            names += [self.by_name(loop, inner) for inner in self.saved_lists(child)]
+        return names
+
+    def by_name(self, loop: Loop, inner: str) -> str:
+        key = (loop, inner)
+        known = self.by_names.get(key)
+        if known is None:
+            wanted = f"{inner}_by_{self.namer.name(loop.index)}"
+            known = (
+                wanted if wanted not in self.namer.taken else self.namer.fresh(wanted)
+            )
+            self.namer.taken.add(known)
+            self.by_names[key] = known
+        return known
+
+    def _forward_uses(self) -> Counter[Var]:
+        uses: Counter[Var] = Counter()
+
+        def add(atom: Atom) -> None:
+            if isinstance(atom, Var):
+                uses[atom] += 1
+
+        def visit(statements: tuple[Stmt, ...]) -> None:
+            for stmt in statements:
+                if isinstance(stmt, Let):
+                    for arg in stmt.args:
+                        add(arg)
+                elif isinstance(stmt, Branch):
+                    add(stmt.condition)
+                    visit(stmt.then)
+                    visit(stmt.orelse)
+                    for phi in stmt.merges:
+                        add(phi.first)
+                        add(phi.second)
+                else:
+                    for bound in (stmt.start, stmt.stop, stmt.step):
+                        add(bound)
+                    for phi in stmt.carried:
+                        add(phi.first)
+                        add(phi.second)
+                    visit(stmt.body)
+
+        visit(self.function.body)
+        for atom in self.function.result.values:
+            add(atom)
+        return uses
+
+    def _liveness(self) -> set[Var]:
+        live: set[Var] = {a for a in self.function.result.values if isinstance(a, Var)}
+        live |= self.reverse_reads
+        for lets in self.recompute.values():
+            for let in lets:
+                live |= {a for a in let.args if isinstance(a, Var)}
+        while True:
+            size = len(live)
+            self._live_block(self.function.body, live)
+            if len(live) == size:
+                return live
+
+    def _live_block(self, statements: tuple[Stmt, ...], live: set[Var]) -> bool:
+        """Marks what ``statements`` need; True if any of them is needed."""
+        needed = False
+        for stmt in reversed(statements):
+            if isinstance(stmt, Let):
+                target = stmt.target
+                is_live = target in live or (
+                    target.shape == "list" and self.roots.get(target, target) in live
+                )
+                if target.shape == "list" and stmt.op == "setitem":
+                    # an element write is needed when any later version is
+                    is_live = is_live or any(
+                        v in live
+                        for v, r in self.roots.items()
+                        if r == self.roots.get(target, target)
+                    )
+                if is_live:
+                    needed = True
+                    live.add(target)
+                    live |= {a for a in stmt.args if isinstance(a, Var)}
+            elif isinstance(stmt, Branch):
+                merges_live = [p for p in stmt.merges if p.target in live]
+                for phi in merges_live:
+                    live |= {a for a in (phi.first, phi.second) if isinstance(a, Var)}
+                inner = self._live_block(stmt.then, live)
+                inner = self._live_block(stmt.orelse, live) or inner
+                if inner or merges_live:
+                    needed = True
+                    if isinstance(stmt.condition, Var):
+                        live.add(stmt.condition)
+            else:
+                carried_live = [
+                    p for p in stmt.carried if p.exit in live or p.target in live
+                ]
+                for phi in carried_live:
+                    live.add(phi.target)
+                    live |= {a for a in (phi.first, phi.second) if isinstance(a, Var)}
+                inner = self._live_block(stmt.body, live)
+                if inner or carried_live:
+                    needed = True
+                    live |= {
+                        a
+                        for a in (stmt.start, stmt.stop, stmt.step)
+                        if isinstance(a, Var)
+                    }
+        return needed
+
+    def _stale_reads(self) -> set[Var]:
+        """Values read after a newer version of their name exists (tuple swaps)."""
+        stale: set[Var] = set()
+
+        def read(atom: Atom, current: dict[str, Var]) -> None:
+            if isinstance(atom, Var) and atom.kind in ("local", "param"):
+                latest = current.get(atom.base)
+                if latest is not None and latest != atom:
+                    stale.add(atom)
+
+        def visit(statements: tuple[Stmt, ...], current: dict[str, Var]) -> None:
+            for stmt in statements:
+                if isinstance(stmt, Let):
+                    for arg in stmt.args:
+                        read(arg, current)
+                    if stmt.target.kind == "local":
+                        current[stmt.target.base] = stmt.target
+                elif isinstance(stmt, Branch):
+                    read(stmt.condition, current)
+                    for side, block in ((0, stmt.then), (1, stmt.orelse)):
+                        inner = dict(current)
+                        visit(block, inner)
+                        for phi in stmt.merges:
+                            read(phi.first if side == 0 else phi.second, inner)
+                    for phi in stmt.merges:
+                        current[phi.target.base] = phi.target
+                else:
+                    for bound in (stmt.start, stmt.stop, stmt.step):
+                        read(bound, current)
+                    for phi in stmt.carried:
+                        read(phi.first, current)
+                        current[phi.target.base] = phi.target
+                    inner = dict(current)
+                    visit(stmt.body, inner)
+                    for phi in stmt.carried:
+                        read(phi.second, inner)
+                        assert phi.exit is not None
+                        current[phi.exit.base] = phi.exit
+
+        params = {p.base: p for p in self.function.params}
+        visit(self.function.body, dict(params))
+        return stale
+
+    def _stored(self) -> set[Var]:
+        stored: set[Var] = set()
+        for var, let in self.defs.items():
+            if var not in self.live:
+                continue
+            folded = (
+                var.kind == "temp"
+                and var not in self.reverse_reads
+                and self.uses[var] == 1
+                and not let.op.startswith("call:")
+                and var.shape == "scalar"
+            )
+            if not folded:
+                stored.add(var)
+        return stored
+
+    # -- names --------------------------------------------------------------------
+
+    def _name_all(self) -> None:
+        for var, root in self.roots.items():
+            if var != root and var.kind != "param":
+                pass
+        current: dict[str, Var] = {p.base: p for p in self.function.params}
+        self._name_block(self.function.body, current)
+
+    def _version_name(self, var: Var, current: dict[str, Var]) -> None:
+        if var in self.namer.names:
+            return
+        if var.shape == "list" and var in self.roots and self.roots[var] != var:
+            self.namer.names[var] = self.namer.name(self.roots[var])
+            return
+        previous = current.get(var.base)
+        if previous is not None and previous in self.namer.names:
+            if previous not in self.pinned:
+                self.namer.names[var] = self.namer.names[previous]
+                return
+            self.namer.names[var] = self.namer.fresh(var.base)
+            return
+        if var.kind in ("local", "index"):
+            # no version of this name is live on this path: the source's own name
+            self.namer.names[var] = var.base
+            self.namer.taken.add(var.base)
+            return
+        self.namer.name(var)
+
+    def _name_block(
+        self, statements: tuple[Stmt, ...], current: dict[str, Var]
+    ) -> None:
+        for stmt in statements:
+            if isinstance(stmt, Let):
+                target = stmt.target
+                if target.kind == "local":
+                    if target in self.stored or target.shape == "list":
+                        self._version_name(target, current)
+                    current[target.base] = target
+                elif target in self.stored:
+                    self.namer.name(target)
+            elif isinstance(stmt, Branch):
+                sides = []
+                for block in (stmt.then, stmt.orelse):
+                    inner = dict(current)
+                    self._name_block(block, inner)
+                    sides.append(inner)
+                for phi in stmt.merges:
+                    if phi.target.shape == "list":
+                        self._version_name(phi.target, current)
+                    else:
+                        a, b = phi.first, phi.second
+                        na = self.namer.names.get(a) if isinstance(a, Var) else None
+                        nb = self.namer.names.get(b) if isinstance(b, Var) else None
+                        if na is not None and na == nb:
+                            self.namer.names[phi.target] = na
+                        else:
+                            self._version_name(phi.target, current)
+                    current[phi.target.base] = phi.target
+            else:
+                self.namer.name(stmt.index)
+                for phi in stmt.carried:
+                    init = phi.first
+                    if (
+                        isinstance(init, Var)
+                        and init in self.namer.names
+                        and init not in self.pinned
+                        and phi.target not in self.pinned
+                    ):
+                        self.namer.names[phi.target] = self.namer.names[init]
+                    else:
+                        self._version_name(phi.target, current)
+                    current[phi.target.base] = phi.target
+                inner = dict(current)
+                self._name_block(stmt.body, inner)
+                for phi in stmt.carried:
+                    assert phi.exit is not None
+                    self.namer.names[phi.exit] = self.namer.names[phi.target]
+                    current[phi.exit.base] = phi.exit
+
+    def _name_carries(self, statements: Iterable[ReverseStmt]) -> None:
+        """A loop-carried adjoint and the adjoint of the value at the start of the
+        iteration share one name (``x_bar``) when no statement reads the carried
+        one after the other is first written: the update then happens in place."""
+        carries = dict(self.sweep.carries)
+        for stmt in statements:
+            if isinstance(stmt, ReverseBranch):
+                self._name_carries(stmt.then)
+                self._name_carries(stmt.orelse)
+            elif isinstance(stmt, ReverseLoop):
+                self._name_carries(stmt.body)
+                body = list(stmt.body)
+                headers = {phi.target for phi in stmt.loop.carried}
+                for carry, header in carries.items():
+                    if carry in self.namer.bar_names or header not in headers:
+                        continue
+                    name = self.namer.bar_name(header)
+                    if _writes_then_no_read(body, header, carry):
+                        self.namer.bar_names[carry] = name
+                    # the value after the loop hands its adjoint to the carried one
+                    for phi in stmt.loop.carried:
+                        if phi.target == header and phi.exit is not None:
+                            exit_bar = self.namer.bar_names.get(phi.exit)
+                            if exit_bar is None:
+                                self.namer.bar_names[phi.exit] = self.namer.bar_name(
+                                    carry
+                                )
+
+    def tape_name(self, loop: Loop, var: Var) -> str:
+        key = (loop, var)
+        known = self.tape_names.get(key)
+        if known is None:
+            wanted = f"{self.namer.name(var)}_saved"
+            known = (
+                wanted if wanted not in self.namer.taken else self.namer.fresh(wanted)
+            )
+            self.namer.taken.add(known)
+            self.tape_names[key] = known
+        return known
+
+    # -- printing helpers -----------------------------------------------------------
+
+    def expr(self, expr: Expr) -> str:
+        return self.printer(expr)
+
+    def atom_expr(self, atom: Atom, folded: dict[Var, Expr]) -> Expr:
+        if isinstance(atom, Var) and atom in folded:
+            return folded[atom]
+        return atom
+
+    def range_args(self, loop: Loop, folded: dict[Var, Expr] | None = None) -> str:
+        def show(atom: Atom) -> str:
+            if folded is not None:
+                return self.expr(self.atom_expr(atom, folded))
+            return self.expr(self.cheap(atom))
+
+        start, stop, step = loop.start, loop.stop, loop.step
+        if _is_const(step, 1):
+            if _is_const(start, 0):
+                return show(stop)
+            return f"{show(start)}, {show(stop)}"
+        return f"{show(start)}, {show(stop)}, {show(step)}"
+
+    def slot(self, loop: Loop) -> str:
+        """The saved-list index of the current iteration."""
+        index = loop.index
+        start, step = self.cheap(loop.start), self.cheap(loop.step)
+        position: Expr = index
+        if not _is_const(start, 0):
+            position = Apply("sub", (index, start))
+        if not _is_const(step, 1):
+            position = Apply("floordiv", (position, step))
+        return self.expr(position)
+
+    def trip_count(self, loop: Loop) -> str:
+        if _is_const(loop.start, 0) and _is_const(loop.step, 1):
+            return self.expr(
+                Apply("mul", (Apply("listlit", (const(0.0),)), self.cheap(loop.stop)))
+            )
+        return f"[0.0] * len(range({self.range_args(loop)}))"
+
+
+def _writes_then_no_read(body: list[ReverseStmt], header: Var, carry: Var) -> bool:
+    # a first write that only copies the carried adjoint changes nothing
+    first = next(
+        (
+            k
+            for k, s in enumerate(body)
+            if isinstance(s, AdjointAssign)
+            and s.var == header
+            and not (s.expr == Bar(carry) and not s.accumulate)
+        ),
+        None,
+    )
+    if first is None:
+        return True  # the carried adjoint passes through unchanged
+    for stmt in body[first + 1 :]:
+        if isinstance(stmt, AdjointAssign) and stmt.var == carry:
+            continue
+        for expr in _reverse_exprs([stmt]):
+            if any(isinstance(n, Bar) and n.var == carry for n in walk(expr)):
+                return False
+    return not any(
+        isinstance(s, (ReverseBranch, ReverseLoop))
+        and any(
+            isinstance(n, Bar) and n.var == header
+            for e in _reverse_exprs([s])
+            for n in walk(e)
+        )
+        for s in body[:first]
+    )
+
+
+def _walk_values(expr: Expr) -> Iterator[Expr]:
+    """Values an expression reads; a partial() node stands for its call's partials."""
+    if isinstance(expr, Apply):
+        if expr.op == "partial":
+            yield expr
+            return
+        for arg in expr.args:
+            yield from _walk_values(arg)
+    else:
+        yield expr
+
+
+def _is_const(atom: Expr, value: int) -> bool:
+    return (
+        isinstance(atom, Const) and atom.value == value and isinstance(atom.value, int)
+    )
+
+
+def _reverse_exprs(statements: Iterable[ReverseStmt]) -> Iterator[Expr]:
+    for stmt in statements:
+        if isinstance(stmt, AdjointAssign):
+            yield stmt.expr
+        elif isinstance(stmt, ElementAdjoint):
+            yield stmt.index
+            yield stmt.expr
+        elif isinstance(stmt, SpreadAdjoint):
+            yield stmt.expr
+        elif isinstance(stmt, ReverseBranch):
+            yield stmt.condition
+            yield from _reverse_exprs(stmt.then)
+            yield from _reverse_exprs(stmt.orelse)
+        else:
+            yield from _reverse_exprs(stmt.body)
+
+
+class _Lines:
+    """Indented output lines; a comment quoting the source opens each group."""
+
+    def __init__(self) -> None:
+        self.lines: list[str] = []
+        self.last_origin: dict[int, Origin | None] = {}
+
+    def comment(self, origin: Origin, depth: int) -> None:
+        if self.last_origin.get(depth) != origin:
+            self.lines.append("    " * depth + f"# {origin.text}")
+            self.last_origin[depth] = origin
+            for deeper in [d for d in self.last_origin if d > depth]:
+                self.last_origin[deeper] = None
+
+    def code(self, text: str, depth: int) -> None:
+        self.lines.append(format_statement(text, depth))
+
+    def statement(self, origin: Origin, text: str, depth: int) -> None:
+        self.comment(origin, depth)
+        self.code(text, depth)
+
+    def open_block(self, depth: int) -> None:
+        self.last_origin[depth + 1] = None
+
+
+class _Emitter:
+    """Prints the sweeps of a :class:`Layout`."""
+
+    def __init__(self, layout: Layout) -> None:
+        self.layout = layout
+        self.namer = layout.namer
+        self.print = layout.printer
+        self.folded: dict[Var, Expr] = {}
+        #: names the reverse sweep writes forward values back into
+        self.restored: set[str] = set()
+
+    # -- forward --------------------------------------------------------------------
+
+    def forward(self) -> list[str]:
+        out = _Lines()
+        self.forward_block(self.layout.function.body, 1, out, None)
+        return out.lines
+
+    def value(self, atom: Atom) -> Expr:
+        if isinstance(atom, Var) and atom in self.folded:
+            return self.folded[atom]
+        return atom
+
+    def forward_block(
+        self, statements: tuple[Stmt, ...], depth: int, out: _Lines, loop: Loop | None
+    ) -> None:
+        layout = self.layout
+        for stmt in statements:
+            if isinstance(stmt, Let):
+                self.forward_let(stmt, depth, out, loop)
+            elif isinstance(stmt, Branch):
+                self.forward_branch(stmt, depth, out, loop)
+            else:
+                if (
+                    any(v in layout.live for v in _loop_values(stmt))
+                    or stmt.index in layout.live
+                ):
+                    self.forward_loop(stmt, depth, out)
+
+    def forward_let(self, let: Let, depth: int, out: _Lines, loop: Loop | None) -> None:
+        layout = self.layout
+        target = let.target
+        if target not in layout.live and not (
+            target.shape == "list" and self._list_live(target)
+        ):
+            return
+        args = tuple(self.value(a) for a in let.args)
+        if target not in layout.stored and target.shape == "scalar":
+            self.folded[target] = Apply(let.op, args)
+            return
+        name = self.namer.name(target)
+        if let.op == "setitem":
+            text = f"{name}[{self.print(args[1])}] = {self.print(args[2])}"
+        elif let.op.startswith("call:") and target in layout.partials_needed:
+            callee = let.op.removeprefix("call:")
+            call = self.print(Apply(let.op, args)).replace(
+                f"{callee}(", f"{callee}_grad(", 1
+            )
+            text = f"{name}, {self.namer.partials_name(target)} = {call}"
+        else:
+            text = f"{name} = {self.print(Apply(let.op, args))}"
+        out.statement(let.origin, text, depth)
+        if loop is not None and target in layout.tapes.get(loop, []):
+            out.code(
+                f"{layout.tape_name(loop, target)}[{layout.slot(loop)}] = {name}", depth
+            )
+        if target in layout.partials_needed and loop is not None:
+            partials = layout.partials_of(target)
+            if partials in layout.tapes.get(loop, []):
+                slot = layout.slot(loop)
+                saved = layout.tape_name(loop, partials)
+                out.code(f"{saved}[{slot}] = {self.namer.name(partials)}", depth)
+
+    def _list_live(self, var: Var) -> bool:
+        root = self.layout.roots.get(var, var)
+        return any(
+            v in self.layout.live for v, r in self.layout.roots.items() if r == root
+        )
+
+    def copy(
+        self, target: Var, source: Atom, origin: Origin, depth: int, out: _Lines
+    ) -> None:
+        if target.shape == "list":
+            return
+        name = self.namer.name(target)
+        value = self.value(source)
+        if isinstance(value, Var) and self.namer.name(value) == name:
+            return
+        out.code(f"{name} = {self.print(value)}", depth)
+
+    def forward_branch(
+        self, branch: Branch, depth: int, out: _Lines, loop: Loop | None
+    ) -> None:
+        layout = self.layout
+        live_merges = [p for p in branch.merges if p.target in layout.live]
+        sides = []
+        for block, pick in ((branch.then, 0), (branch.orelse, 1)):
+            side = _Lines()
+            side.last_origin = dict(out.last_origin)
+            side.open_block(depth)
+            self.forward_block(block, depth + 1, side, loop)
+            for phi in live_merges:
+                self.copy(
+                    phi.target,
+                    phi.first if pick == 0 else phi.second,
+                    branch.origin,
+                    depth + 1,
+                    side,
+                )
+            sides.append(side.lines)
+        then_lines, else_lines = sides
+        if not then_lines and not else_lines:
+            return
+        condition = self.print(self.value(branch.condition))
+        out.comment(branch.origin, depth)
+        out.code(f"if {condition}:", depth)
+        out.lines.extend(then_lines or ["    " * (depth + 1) + "pass"])
+        if else_lines:
+            out.code("else:", depth)
+            out.lines.extend(else_lines)
+        out.open_block(depth - 1)
+        out.last_origin[depth] = None
+        for phi in live_merges:
+            if loop is not None and phi.target in layout.tapes.get(loop, []):
+                name = self.namer.name(phi.target)
+                saved = layout.tape_name(loop, phi.target)
+                out.code(
+                    f"{saved}[{layout.slot(loop)}] = {name}",
+                    depth,
+                )
+
+    def forward_loop(self, loop: Loop, depth: int, out: _Lines) -> None:
+        layout = self.layout
+        enclosing = layout.parent.get(loop)
+        out.comment(loop.origin, depth)
+        for phi in loop.carried:
+            if phi.target in layout.live:
+                self.copy(phi.target, phi.first, loop.origin, depth, out)
+        for saved in layout.saved_lists(loop):
+            out.code(f"{saved} = {layout.trip_count(loop)}", depth)
+            if enclosing is not None:
+                slot = layout.slot(enclosing)
+                out.code(f"{layout.by_name(enclosing, saved)}[{slot}] = {saved}", depth)
+        out.code(
+            f"for {self.namer.name(loop.index)} in range({self.range_text(loop)}):",
+            depth,
+        )
+        out.open_block(depth)
+        for phi in loop.carried:
+            if phi.target in layout.tapes.get(loop, []):
+                name = self.namer.name(phi.target)
+                saved = layout.tape_name(loop, phi.target)
+                out.code(
+                    f"{saved}[{layout.slot(loop)}] = {name}",
+                    depth + 1,
+                )
+        size = len(out.lines)
+        self.forward_block(loop.body, depth + 1, out, loop)
+        for phi in loop.carried:
+            if phi.target in layout.live:
+                self.copy(phi.target, phi.second, loop.origin, depth + 1, out)
+        if len(out.lines) == size and not layout.tapes.get(loop):
+            out.code("pass", depth + 1)
+        out.last_origin[depth] = None
+
+    def range_text(self, loop: Loop) -> str:
+        return self.layout.range_args(loop, self.folded)
+
+    # -- reverse --------------------------------------------------------------------
+
+    def reverse(self) -> list[str]:
+        out = _Lines()
+        layout = self.layout
+        for root in layout.sweep.list_roots:
+            out.code(
+                f"{self.namer.bar_name(root)} = [0.0] * len({self.namer.name(root)})", 1
+            )
+        self.reverse_block(layout.sweep.statements, 1, out)
+        for var in layout.sweep.unused_wrt:
+            if var.shape == "list":
+                continue
+            origin = Origin(f"{var.base} does not affect the result", -1)
+            out.statement(origin, f"{self.namer.bar_name(var)} = 0.0", 1)
+        return out.lines
+
+    def reverse_block(
+        self, statements: tuple[ReverseStmt, ...], depth: int, out: _Lines
+    ) -> None:
+        for stmt in statements:
+            if isinstance(stmt, AdjointAssign):
+                operator = "+=" if stmt.accumulate else "="
+                bar = self.namer.bar_name(stmt.var)
+                value = self.print(self.layout.cheap(stmt.expr))
+                if operator == "=" and bar == value:
+                    continue  # the carried adjoint was updated in place
+                out.statement(stmt.origin, f"{bar} {operator} {value}", depth)
+            elif isinstance(stmt, ElementAdjoint):
+                operator = "+=" if stmt.accumulate else "="
+                text = (
+                    f"{self.namer.bar_name(stmt.root)}[{self.print(self.layout.cheap(stmt.index))}]"
+                    f" {operator} {self.print(self.layout.cheap(stmt.expr))}"
+                )
+                out.statement(stmt.origin, text, depth)
+            elif isinstance(stmt, SpreadAdjoint):
+                bar = self.namer.bar_name(stmt.root)
+                index = self.namer.fresh(f"{bar}_index")
+                out.statement(stmt.origin, f"for {index} in range(len({bar})):", depth)
+                value = self.print(self.layout.cheap(stmt.expr))
+                out.code(f"{bar}[{index}] += {value}", depth + 1)
+            elif isinstance(stmt, ReverseBranch):
+                out.comment(stmt.origin, depth)
+                out.code(f"if {self.print(self.layout.cheap(stmt.condition))}:", depth)
+                out.open_block(depth)
+                if stmt.then:
+                    self.reverse_block(stmt.then, depth + 1, out)
+                else:
+                    out.code("pass", depth + 1)
+                if stmt.orelse:
+                    out.code("else:", depth)
+                    out.open_block(depth)
+                    self.reverse_block(stmt.orelse, depth + 1, out)
+                out.last_origin[depth] = None
+            else:
+                self.reverse_loop(stmt, depth, out)
+
+    def reverse_loop(self, stmt: ReverseLoop, depth: int, out: _Lines) -> None:
+        layout = self.layout
+        loop = stmt.loop
+        out.comment(stmt.origin, depth)
+        index = self.namer.name(loop.index)
+        out.code(
+            f"for {index} in reversed(range({layout.range_args(loop)})):",
+            depth,
+        )
+        out.open_block(depth)
+        slot = layout.slot(loop)
+        for var in layout.tapes.get(loop, []):
+            self.restored.add(self.namer.name(var))
+            out.code(
+                f"{self.namer.name(var)} = {layout.tape_name(loop, var)}[{slot}]",
+                depth + 1,
+            )
+        for child in layout.children.get(loop, []):
+            for saved in layout.saved_lists(child):
+                out.code(f"{saved} = {layout.by_name(loop, saved)}[{slot}]", depth + 1)
+        for let in layout.recompute.get(loop, []):
+            self.restored.add(self.namer.name(let.target))
+            args = tuple(layout.cheap(a) for a in let.args)
+            out.code(
+                f"{self.namer.name(let.target)} = {self.print(Apply(let.op, args))}",
+                depth + 1,
+            )
+        self.reverse_block(stmt.body, depth + 1, out)
+        out.last_origin[depth] = None
+
+
+def _loop_values(loop: Loop) -> Iterator[Var]:
+    for phi in loop.carried:
+        yield phi.target
+        if phi.exit is not None:
+            yield phi.exit
+    for stmt in loop.body:
+        if isinstance(stmt, Let):
+            yield stmt.target
+        elif isinstance(stmt, Loop):
+            yield from _loop_values(stmt)
+        else:
+            for phi in stmt.merges:
+                yield phi.target
+            for inner in (stmt.then, stmt.orelse):
+                for s in inner:
+                    if isinstance(s, Let):
+                        yield s.target
+
+
+def lay_out(
+    function: SSAFunction,
+    sweep: ReverseSweep,
+    namer: Namer,
+    printer: Printer,
+    active: set[Var],
+) -> tuple[list[str], list[str], tuple[Expr, ...]]:
+    """Forward lines, reverse lines and the result expressions."""
+    layout = Layout(function, sweep, namer, printer, active)
+    emitter = _Emitter(layout)
+    forward = emitter.forward()
+    result = [emitter.value(a) for a in function.result.values]
+    reverse = emitter.reverse()
+    # a returned value whose name the reverse sweep reuses is kept aside first
+    for k, value in enumerate(result):
+        if isinstance(value, Var) and namer.name(value) in emitter.restored:
+            keep = "value" if "value" not in namer.taken else namer.fresh("value")
+            namer.taken.add(keep)
+            forward.append(f"    # {function.result.origin.text}")
+            forward.append(format_statement(f"{keep} = {namer.name(value)}", 1))
+            result[k] = Const(keep, None)
+    return forward, reverse, tuple(result)

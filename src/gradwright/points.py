@@ -1,0 +1,223 @@
+"""Where gradients are checked: parameter lists, ranges and evaluation points.
+
+Shared by ``verify`` (which runs the points) and ``--emit-test`` (which writes them
+into a test file). Signatures are read from the generated module's text with ``ast``,
+so choosing points never runs any code.
+
+Rules, in order, for each parameter of the function:
+- a value given with ``--at`` is used as is;
+- a ``--wrt`` parameter, or one without a default, is drawn uniformly from its
+  ``--range`` (default :data:`DEFAULT_RANGE`) with a seeded generator;
+- any other parameter keeps its default (it is a model constant).
+Drawn values are rounded to 6 significant digits, so a printed point can be pasted
+back into ``--at`` and reproduces the same numbers. Drawn values are numbers; a list
+parameter's value must be given with ``--at xs=[1.0,2.0]``.
+"""
+
+from __future__ import annotations
+
+import ast
+import math
+import random
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
+
+from .diagnostics import GradwrightError, Location, fail
+
+#: a parameter's value at a point: a number, or a list of numbers
+Value = float | list[float]
+
+
+@dataclass(frozen=True)
+class Range:
+    low: float
+    high: float
+
+    def __str__(self) -> str:
+        return f"{self.low!r}:{self.high!r}"
+
+    @property
+    def scale(self) -> float:
+        """The parameter's typical size, for the finite-difference step."""
+        return max(abs(self.low), abs(self.high))
+
+
+#: positive and away from zero, so that log, sqrt and division are defined there
+DEFAULT_RANGE = Range(0.5, 1.5)
+DEFAULT_SAMPLES = 3
+DEFAULT_SEED = 0
+
+
+@dataclass(frozen=True)
+class Param:
+    name: str
+    positional_only: bool
+    has_default: bool
+
+
+def signature_of(module_text: str, function: str) -> tuple[Param, ...]:
+    """The parameters of top-level ``function`` in ``module_text`` (not executed)."""
+    for node in ast.parse(module_text).body:
+        if isinstance(node, ast.FunctionDef) and node.name == function:
+            args = node.args
+            positional = [*args.posonlyargs, *args.args]
+            first_default = len(positional) - len(args.defaults)
+            params = [
+                Param(a.arg, i < len(args.posonlyargs), i >= first_default)
+                for i, a in enumerate(positional)
+            ]
+            params += [
+                Param(a.arg, False, default is not None)
+                for a, default in zip(args.kwonlyargs, args.kw_defaults, strict=True)
+            ]
+            return tuple(params)
+    raise GradwrightError.usage(f"the generated module has no function '{function}'")
+
+
+def split_assignments(texts: Sequence[str], option: str) -> dict[str, str]:
+    """``["a=1,b=2", "c=3"]`` -> ``{"a": "1", "b": "2", "c": "3"}``."""
+    values: dict[str, str] = {}
+    for text in texts:
+        for item in _top_level_items(text):
+            if not item.strip():
+                continue
+            name, sep, value = item.partition("=")
+            name = name.strip()
+            if not sep or not name.isidentifier() or not value.strip():
+                raise GradwrightError.usage(
+                    f"{option}: expected NAME=VALUE, got {item.strip()!r}"
+                )
+            if name in values:
+                raise GradwrightError.usage(f"{option}: '{name}' is given twice")
+            values[name] = value.strip()
+    return values
+
+
+def _top_level_items(text: str) -> list[str]:
+    """Split at commas outside brackets: ``a=1,xs=[1,2]`` -> ``a=1``, ``xs=[1,2]``."""
+    items, depth, start = [], 0, 0
+    for i, char in enumerate(text):
+        depth += {"[": 1, "]": -1}.get(char, 0)
+        if char == "," and depth == 0:
+            items.append(text[start:i])
+            start = i + 1
+    items.append(text[start:])
+    return items
+
+
+def parse_at(texts: Sequence[str]) -> dict[str, Value]:
+    """Numbers, or flat lists of numbers (``xs=[0.5,1.5]``) for list parameters."""
+    values: dict[str, Value] = {}
+    for name, text in split_assignments(texts, "--at").items():
+        if text.startswith("["):
+            if not text.endswith("]") or not text[1:-1].strip():
+                raise GradwrightError.usage(
+                    f"--at {name}: expected a list of numbers like [1.0,2.0]"
+                )
+            values[name] = [
+                _number(item, f"--at {name}") for item in text[1:-1].split(",")
+            ]
+        else:
+            values[name] = _number(text, f"--at {name}")
+    return values
+
+
+def parse_ranges(texts: Sequence[str]) -> dict[str, Range]:
+    ranges: dict[str, Range] = {}
+    for name, value in split_assignments(texts, "--range").items():
+        low, sep, high = value.partition(":")
+        if not sep:
+            raise GradwrightError.usage(
+                f"--range {name}: expected LOW:HIGH, got {value!r}",
+                "for example --range a=0.1:2",
+            )
+        bounds = Range(
+            _number(low, f"--range {name}"), _number(high, f"--range {name}")
+        )
+        if not bounds.low < bounds.high:
+            raise GradwrightError.usage(f"--range {name}: LOW must be below HIGH")
+        ranges[name] = bounds
+    return ranges
+
+
+def _number(text: str, what: str) -> float:
+    try:
+        value = float(text)
+    except ValueError:
+        raise GradwrightError.usage(f"{what}: {text!r} is not a number") from None
+    if not math.isfinite(value):
+        raise GradwrightError.usage(f"{what}: {text!r} is not a finite number")
+    return value
+
+
+def parse_scales(texts: Sequence[str]) -> dict[str, float]:
+    scales = {}
+    for name, value in split_assignments(texts, "--scale").items():
+        scale = _number(value, f"--scale {name}")
+        if not scale > 0:
+            raise GradwrightError.usage(f"--scale {name}: must be positive")
+        scales[name] = scale
+    return scales
+
+
+def typical_sizes(
+    ranges: Mapping[str, Range], scales: Mapping[str, float]
+) -> dict[str, float]:
+    """Each parameter's typical size: its --scale, else its range's, else 1."""
+    sizes = {name: bounds.scale for name, bounds in ranges.items()}
+    sizes.update(scales)
+    return sizes
+
+
+def check_names(
+    params: Sequence[Param],
+    names: Sequence[str],
+    what: str,
+    function: str,
+    location: Location | None = None,
+) -> None:
+    known = [p.name for p in params]
+    for name in names:
+        if name not in known:
+            fail(
+                f"{what} names '{name}', which is not a parameter of '{function}'",
+                location,
+                "parameters: " + ", ".join(known),
+            )
+
+
+def choose_points(
+    params: Sequence[Param],
+    wrt: Sequence[str],
+    fixed: Mapping[str, Value],
+    ranges: Mapping[str, Range],
+    samples: int | None,
+    seed: int,
+) -> list[dict[str, Value]]:
+    """Points (name -> value, in signature order), by the rules in the docstring."""
+    drawn = [
+        p.name
+        for p in params
+        if p.name not in fixed
+        and (p.name in wrt or not p.has_default or p.positional_only)
+    ]
+    if not drawn:
+        return [{p.name: fixed[p.name] for p in params if p.name in fixed}]
+    count = DEFAULT_SAMPLES if samples is None else samples
+    generator = random.Random(seed)
+    points = []
+    for _ in range(count):
+        point: dict[str, Value] = {}
+        for p in params:
+            if p.name in fixed:
+                point[p.name] = fixed[p.name]
+            elif p.name in drawn:
+                bounds = ranges.get(p.name, DEFAULT_RANGE)
+                value = generator.uniform(bounds.low, bounds.high)
+                point[p.name] = float(f"{value:.6g}")
+        points.append(point)
+    return points
+
+
+def describe(point: Mapping[str, Value]) -> str:
+    return ", ".join(f"{name}={value!r}" for name, value in point.items())

@@ -1,0 +1,570 @@
+"""The regeneration workflow end to end: gen --check/--diff, build, safe writes,
+emitted tests and the pre-commit hook, through the real CLI in temporary folders and
+temporary git repositories (no network)."""
+
+from __future__ import annotations
+
+import inspect
+import os
+import re
+import stat
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+from workflow_support import (
+    BROKEN,
+    CABLE,
+    HEDGE,
+    ROOT,
+    THERMISTOR,
+    THERMISTOR_RANGE_OPTION,
+    THERMISTOR_RANGES,
+    cli,
+    exe,
+    git,
+    project,
+    target,
+    tool_path,
+)
+
+import gradwright
+from gradwright import output
+
+GEN = ("gen", "models/thermistor.py", "fit_loss", "--wrt", "a,b,c")
+OUT = "models/thermistor_grad.py"
+
+
+@pytest.fixture
+def proj(tmp_path: Path) -> Path:
+    return project(tmp_path, THERMISTOR, BROKEN, CABLE, HEDGE)
+
+
+def _files(root: Path) -> dict[str, bytes]:
+    return {
+        p.relative_to(root).as_posix(): p.read_bytes()
+        for p in sorted(root.rglob("*"))
+        if p.is_file() and ".git" not in p.parts
+    }
+
+
+# ---------------------------------------------------------------------------------
+# gen --check / --diff
+
+
+def test_gen_check_is_zero_when_current_and_writes_nothing(proj: Path) -> None:
+    assert cli(*GEN, "-o", OUT, cwd=proj).code == 0
+    before = _files(proj)
+    result = cli(*GEN, "-o", OUT, "--check", cwd=proj)
+    assert result.code == 0, result.err
+    assert "unchanged" in result.err and OUT in result.err
+    assert _files(proj) == before
+
+
+def test_gen_check_names_the_stale_file_and_exits_one(proj: Path) -> None:
+    assert cli(*GEN, "-o", OUT, cwd=proj).code == 0
+    model = proj / "models/thermistor.py"
+    model.write_text(model.read_text().replace("err * err", "err * err * 2.0"))
+    before = _files(proj)
+    result = cli(*GEN, "-o", OUT, "--check", cwd=proj)
+    assert result.code == 1
+    assert f"stale     {OUT}" in result.err
+    assert "regenerate with: gradwright gen models/thermistor.py" in result.err
+    assert _files(proj) == before  # --check writes nothing
+
+
+def test_gen_check_on_a_missing_output_is_stale(proj: Path) -> None:
+    result = cli(*GEN, "-o", OUT, "--check", cwd=proj)
+    assert result.code == 1
+    assert not (proj / OUT).exists()
+
+
+def test_gen_diff_prints_what_would_change_and_writes_nothing(proj: Path) -> None:
+    assert cli(*GEN, "-o", OUT, cwd=proj).code == 0
+    current = cli(*GEN, "-o", OUT, "--diff", cwd=proj)
+    assert current.code == 0 and current.out == ""
+    before = (proj / OUT).read_text()
+    result = cli(*GEN[:-1], "a,b", "-o", OUT, "--diff", cwd=proj)
+    assert result.code == 0  # --diff alone reports, like black's
+    assert result.out.startswith(f"--- a/{OUT}\n+++ b/{OUT}\n")
+    assert re.search(r"^-    c_bar = ", result.out, re.MULTILINE)  # c leaves wrt
+    assert "+    return value, (a_bar, b_bar)\n" in result.out
+    assert (proj / OUT).read_text() == before
+    both = cli(*GEN[:-1], "a,b", "-o", OUT, "--diff", "--check", cwd=proj)
+    assert both.code == 1 and both.out == result.out
+
+
+def test_gen_diff_of_a_new_file_is_against_dev_null(proj: Path) -> None:
+    result = cli(*GEN, "-o", OUT, "--diff", cwd=proj)
+    assert result.out.startswith(f"--- /dev/null\n+++ b/{OUT}\n")
+    assert not (proj / OUT).exists()
+
+
+@pytest.mark.parametrize("flag", ["--check", "--diff", "--emit-test=t.py"])
+def test_comparing_needs_an_output_path(proj: Path, flag: str) -> None:
+    result = cli(*GEN, flag, cwd=proj)
+    assert result.code == 2
+    assert "needs -o OUT" in result.err
+
+
+def test_gen_check_through_the_installed_command(proj: Path) -> None:
+    assert cli(*GEN, "-o", OUT, cwd=proj).code == 0
+    (proj / OUT).write_text((proj / OUT).read_text() + "# edited by hand\n")
+    stale = exe(*GEN, "-o", OUT, "--check", cwd=proj)
+    assert stale.code == 1 and OUT in stale.err
+    assert "Traceback" not in stale.err
+
+
+# ---------------------------------------------------------------------------------
+# build
+
+
+def test_build_generates_every_target_but_the_broken_one(proj: Path) -> None:
+    result = exe("build", cwd=proj)
+    assert result.code == 2  # a failed target is bad input
+    lines = result.err.splitlines()
+    assert "generated models/thermistor_grad.py" in lines
+    assert "generated models/cable_sag_grad.py" in lines
+    assert "generated models/fuel_hedge_grad.py" in lines
+    assert "failed    models/broken_grad.py" in lines
+    assert any(
+        line.startswith("models/broken.py:2:11: error: while-loops") for line in lines
+    )
+    assert lines[-1] == "build: 4 targets: 3 generated, 1 failed"
+    assert "Traceback" not in result.err
+    for name in ("thermistor", "cable_sag", "fuel_hedge"):
+        assert (
+            (proj / f"models/{name}_grad.py")
+            .read_text()
+            .startswith(output.HEADER_PREFIX)
+        )
+    assert not (proj / "models/broken_grad.py").exists()
+
+
+def test_build_check_lists_every_stale_target(tmp_path: Path) -> None:
+    root = project(tmp_path, THERMISTOR, CABLE, HEDGE)
+    assert cli("build", cwd=root).code == 0
+    current = cli("build", "--check", cwd=root)
+    assert current.code == 0
+    assert current.err.splitlines()[-1] == "build --check: 3 targets: 3 unchanged"
+    for name in ("cable_sag", "fuel_hedge"):
+        model = root / f"models/{name}.py"
+        model.write_text(model.read_text() + "\nEXTRA = 1.0\n")
+    before = _files(root)
+    result = cli("build", "--check", cwd=root)
+    assert result.code == 1
+    lines = result.err.splitlines()
+    assert "stale     models/cable_sag_grad.py" in lines
+    assert "stale     models/fuel_hedge_grad.py" in lines
+    assert "unchanged models/thermistor_grad.py" in lines
+    assert "build --check: 3 targets: 2 stale, 1 unchanged" in lines
+    assert lines[-1] == "run `gradwright build` to regenerate the stale files"
+    assert _files(root) == before
+    # regenerating makes the check pass again
+    rebuilt = cli("build", cwd=root)
+    assert rebuilt.code == 0
+    assert "build: 3 targets: 2 generated, 1 unchanged" in rebuilt.err
+    assert cli("build", "--check", cwd=root).code == 0
+
+
+def test_build_check_with_a_broken_target_exits_two_and_still_lists_stale(
+    proj: Path,
+) -> None:
+    result = cli("build", "--check", cwd=proj)
+    assert result.code == 2
+    assert result.err.count("stale     ") == 3
+    assert "failed    models/broken_grad.py" in result.err
+
+
+def test_build_diff_prints_diffs_and_writes_nothing(tmp_path: Path) -> None:
+    root = project(tmp_path, THERMISTOR, CABLE)
+    before = _files(root)
+    result = cli("build", "--diff", cwd=root)
+    assert result.code == 0
+    assert "+++ b/models/thermistor_grad.py" in result.out
+    assert "+++ b/models/cable_sag_grad.py" in result.out
+    assert _files(root) == before
+
+
+def test_build_quiet_prints_only_errors(proj: Path) -> None:
+    result = cli("build", "--quiet", cwd=proj)
+    assert result.code == 2
+    assert "generated" not in result.err and "build:" not in result.err
+    assert "failed    models/broken_grad.py" in result.err
+    assert "while-loops are not supported" in result.err
+
+
+def test_build_quiet_is_silent_when_all_is_well(tmp_path: Path) -> None:
+    root = project(tmp_path, THERMISTOR, CABLE)
+    first = cli("build", "-q", cwd=root)
+    assert (first.code, first.out, first.err) == (0, "", "")
+    check = cli("build", "--check", "-q", cwd=root)
+    assert (check.code, check.out, check.err) == (0, "", "")
+
+
+def test_build_is_deterministic_and_matches_gen_from_the_project_folder(
+    tmp_path: Path,
+) -> None:
+    root = project(tmp_path, THERMISTOR, CABLE)
+    assert cli("build", cwd=root).code == 0
+    first = _files(root)
+    (root / OUT).unlink()
+    assert cli("build", cwd=root).code == 0
+    assert _files(root) == first
+    # the header's command regenerates the same bytes
+    assert cli(*GEN, "-o", OUT, "--check", cwd=root).code == 0
+
+
+def test_build_from_a_subfolder_writes_the_same_bytes(tmp_path: Path) -> None:
+    root = project(tmp_path, THERMISTOR)
+    assert cli("build", cwd=root).code == 0
+    expected = (root / OUT).read_bytes()
+    (root / OUT).unlink()
+    deep = root / "models" / "deeper"
+    deep.mkdir()
+    assert cli("build", cwd=deep).code == 0
+    assert (root / OUT).read_bytes() == expected
+    assert b"# source: models/thermistor.py\n" in expected
+
+
+def test_build_creates_missing_output_folders(tmp_path: Path) -> None:
+    root = project(
+        tmp_path, target("models/cable_sag.py", ["rig_loss"], "gen/deep/cable.py")
+    )
+    assert cli("build", cwd=root).code == 0
+    assert (root / "gen/deep/cable.py").is_file()
+
+
+# ---------------------------------------------------------------------------------
+# safe writes
+
+
+def test_gen_refuses_to_overwrite_a_hand_written_file(proj: Path) -> None:
+    mine = proj / OUT
+    mine.write_text("def fit_loss_grad():\n    return 'my own work'\n")
+    result = cli(*GEN, "-o", OUT, cwd=proj)
+    assert result.code == 2
+    assert result.err.startswith(f"{OUT}: error: refusing to overwrite")
+    assert "--force" in result.err
+    assert mine.read_text().endswith("'my own work'\n")
+    forced = cli(*GEN, "-o", OUT, "--force", cwd=proj)
+    assert forced.code == 0
+    assert mine.read_text().startswith(output.HEADER_PREFIX)
+
+
+def test_build_refuses_a_hand_written_file_and_builds_the_rest(tmp_path: Path) -> None:
+    root = project(tmp_path, THERMISTOR, CABLE)
+    mine = root / "models/cable_sag_grad.py"
+    mine.write_text("# my notes\n")
+    result = cli("build", cwd=root)
+    assert result.code == 2
+    assert "failed    models/cable_sag_grad.py" in result.err
+    assert "models/cable_sag_grad.py: error: refusing to overwrite" in result.err
+    assert "generated models/thermistor_grad.py" in result.err
+    assert mine.read_text() == "# my notes\n"
+    assert cli("build", "--force", cwd=root).code == 0
+    assert mine.read_text().startswith(output.HEADER_PREFIX)
+
+
+def test_an_empty_file_may_be_replaced(proj: Path) -> None:
+    (proj / OUT).write_text("")
+    assert cli(*GEN, "-o", OUT, cwd=proj).code == 0
+
+
+def test_a_refused_test_file_stops_the_module_write_too(proj: Path) -> None:
+    (proj / "tests").mkdir()
+    (proj / "tests/test_mine.py").write_text("def test_mine():\n    pass\n")
+    result = cli(*GEN, "-o", OUT, "--emit-test", "tests/test_mine.py", cwd=proj)
+    assert result.code == 2
+    assert "tests/test_mine.py: error: refusing" in result.err
+    assert not (proj / OUT).exists()
+
+
+def test_a_failed_generation_leaves_the_old_output_untouched(proj: Path) -> None:
+    assert cli(*GEN, "-o", OUT, cwd=proj).code == 0
+    old = (proj / OUT).read_bytes()
+    model = proj / "models/thermistor.py"
+    model.write_text(model.read_text().replace("return err * err", "while err:\n"))
+    result = exe(*GEN, "-o", OUT, cwd=proj)
+    assert result.code == 2
+    assert result.err.startswith("models/thermistor.py:")
+    assert (proj / OUT).read_bytes() == old
+    assert [p.name for p in (proj / "models").glob(".*")] == []
+
+
+def test_a_failure_mid_write_leaves_the_old_file_intact(
+    proj: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    assert cli(*GEN, "-o", OUT, cwd=proj).code == 0
+    old = (proj / OUT).read_bytes()
+    real_fdopen = os.fdopen
+
+    class DiskFull:
+        """A file handle that writes half of what it is given, then fails."""
+
+        def __init__(self, handle) -> None:
+            self.handle = handle
+
+        def __enter__(self):
+            return self
+
+        def __exit__(self, *exc) -> None:
+            self.handle.close()
+
+        def write(self, text: str) -> int:
+            self.handle.write(text[: len(text) // 2])
+            self.handle.flush()
+            raise OSError(28, "No space left on device")
+
+    monkeypatch.setattr(
+        output.os, "fdopen", lambda *a, **k: DiskFull(real_fdopen(*a, **k))
+    )
+    result = cli(*GEN[:-1], "a,b", "-o", OUT, cwd=proj)
+    assert result.code == 2
+    assert result.err.startswith(f"{OUT}: error: cannot write: No space left")
+    assert "Traceback" not in result.err
+    assert (proj / OUT).read_bytes() == old
+    assert sorted(p.name for p in (proj / "models").iterdir() if p.name[0] == ".") == []
+
+
+def test_a_failed_rename_leaves_the_old_file_and_no_temporary(
+    proj: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    assert cli(*GEN, "-o", OUT, cwd=proj).code == 0
+    old = (proj / OUT).read_bytes()
+
+    def refuse(src: str, dst: str) -> None:
+        assert Path(src).read_text().startswith(output.HEADER_PREFIX)  # fully written
+        raise PermissionError(13, "Permission denied")
+
+    monkeypatch.setattr(output.os, "replace", refuse)
+    result = cli(*GEN[:-1], "a", "-o", OUT, cwd=proj)
+    assert result.code == 2
+    assert "cannot write: Permission denied" in result.err
+    assert (proj / OUT).read_bytes() == old
+    assert [p.name for p in (proj / "models").glob(".*")] == []
+
+
+def test_replacing_keeps_the_file_mode(proj: Path) -> None:
+    assert cli(*GEN, "-o", OUT, cwd=proj).code == 0
+    umask = os.umask(0)
+    os.umask(umask)
+    assert stat.S_IMODE((proj / OUT).stat().st_mode) == 0o666 & ~umask
+    (proj / OUT).chmod(0o640)
+    assert cli(*GEN[:-1], "a", "-o", OUT, cwd=proj).code == 0
+    assert stat.S_IMODE((proj / OUT).stat().st_mode) == 0o640
+
+
+# ---------------------------------------------------------------------------------
+# --target (the keyword arrives in generate() separately)
+
+
+def test_target_option(proj: Path) -> None:
+    supported = "target" in inspect.signature(gradwright.generate).parameters
+    result = cli(*GEN, "--target", "micropython", "-o", OUT, cwd=proj)
+    if supported:
+        assert result.code == 0, result.err
+    else:
+        assert result.code == 2
+        assert "--target micropython is not supported" in result.err
+        assert not (proj / OUT).exists()
+    default = cli(*GEN, "-o", OUT, "--force", cwd=proj)
+    explicit = cli(*GEN, "--target", "cpython", "-o", OUT, "--check", cwd=proj)
+    assert (default.code, explicit.code) == (0, 0)
+    assert cli(*GEN, "--target", "pypy", cwd=proj).code == 2
+
+
+# ---------------------------------------------------------------------------------
+# --emit-test
+
+
+def _run_pytest(root: Path, path: str) -> subprocess.CompletedProcess:
+    return subprocess.run(
+        [sys.executable, "-m", "pytest", "-q", "-p", "no:cacheprovider", path],
+        cwd=root,
+        capture_output=True,
+        text=True,
+        timeout=120,
+    )
+
+
+def test_emitted_test_passes_under_pytest_and_catches_a_corruption(
+    proj: Path,
+) -> None:
+    test = "tests/test_thermistor_grad.py"
+    emit = (*GEN, "-o", OUT, "--emit-test", test, "--range", THERMISTOR_RANGE_OPTION)
+    result = cli(*emit, cwd=proj)
+    assert result.code == 0, result.err
+    text = (proj / test).read_text()
+    assert text.startswith(output.HEADER_PREFIX)
+    assert "import gradwright" not in text
+    assert f"--emit-test {test} --range" in text.splitlines()[3]
+    run = _run_pytest(proj, test)
+    assert run.returncode == 0, run.stdout + run.stderr
+    assert "3 passed" in run.stdout
+    # the emitted test can fail: break one adjoint by hand
+    module = proj / OUT
+    text, count = re.subn(
+        r"^(\s+b_bar = )(.*)$", r"\1 2.0 * (\2)", module.read_text(), flags=re.M
+    )
+    assert count == 1
+    module.write_text(text)
+    broken = _run_pytest(proj, test)
+    assert broken.returncode == 1
+    assert "3 failed" in broken.stdout
+    # and --check sees the edited module (the test file is still current)
+    check = cli(*emit, "--check", cwd=proj)
+    assert check.code == 1
+    assert f"stale     {OUT}" in check.err and f"unchanged {test}" in check.err
+
+
+def test_emitted_test_from_config_is_deterministic(tmp_path: Path) -> None:
+    root = project(
+        tmp_path,
+        THERMISTOR
+        + 'emit-test = "tests/test_thermistor_grad.py"\n'
+        + f"ranges = {{ {THERMISTOR_RANGES} }}\n",
+        CABLE + 'emit-test = "tests/test_cable_grad.py"\n',
+    )
+    assert cli("build", cwd=root).code == 0
+    first = _files(root)
+    assert "tests/test_cable_grad.py" in first
+    for path in ("tests/test_cable_grad.py", "tests/test_thermistor_grad.py"):
+        (root / path).unlink()
+    assert cli("build", cwd=root).code == 0
+    assert _files(root) == first
+    run = _run_pytest(root, "tests")
+    assert run.returncode == 0, run.stdout + run.stderr
+    assert "6 passed" in run.stdout
+
+
+def test_a_range_for_no_parameter_is_an_error(proj: Path) -> None:
+    result = cli(*GEN, "-o", OUT, "--emit-test", "t.py", "--range", "q=0:1", cwd=proj)
+    assert result.code == 2
+    assert "'q', which is not a parameter of 'fit_loss'" in result.err
+    assert not (proj / OUT).exists()
+
+
+# ---------------------------------------------------------------------------------
+# the pre-commit hook, from a local configuration in a temporary git repository
+
+MANIFEST = ROOT / ".pre-commit-hooks.yaml"
+
+
+def _local_config(root: Path, hook_id: str) -> None:
+    """A `repo: local` config using our manifest's hook, run with the installed
+    gradwright (language: system) instead of a fresh virtualenv."""
+    yaml = pytest.importorskip("yaml")
+    hooks = yaml.safe_load(MANIFEST.read_text())
+    hook = dict(next(h for h in hooks if h["id"] == hook_id))
+    hook["language"] = "system"
+    config = {"repos": [{"repo": "local", "hooks": [hook]}]}
+    (root / ".pre-commit-config.yaml").write_text(yaml.safe_dump(config))
+
+
+def _pre_commit(root: Path, *args: str) -> subprocess.CompletedProcess:
+    return subprocess.run(
+        [sys.executable, "-m", "pre_commit", *args],
+        cwd=root,
+        capture_output=True,
+        text=True,
+        timeout=300,
+        env={
+            **os.environ,
+            "PATH": tool_path(),
+            "PRE_COMMIT_HOME": str(root.parent / "pre-commit-home"),
+            "PRE_COMMIT_COLOR": "never",
+        },
+    )
+
+
+@pytest.fixture
+def repo(tmp_path: Path) -> Path:
+    pytest.importorskip("pre_commit", reason="pre-commit is not installed")
+    root = project(tmp_path / "repo", THERMISTOR, CABLE)
+    git("init", "-q", "-b", "main", cwd=root)
+    git("config", "commit.gpgsign", "false", cwd=root)
+    return root
+
+
+def test_manifest_hooks_run_gradwright_build() -> None:
+    yaml = pytest.importorskip("yaml")
+    hooks = {h["id"]: h for h in yaml.safe_load(MANIFEST.read_text())}
+    assert hooks["gradwright-check"]["entry"] == "gradwright build --check"
+    assert hooks["gradwright-build"]["entry"] == "gradwright build --fail-if-changed"
+    for hook in hooks.values():
+        assert hook["language"] == "python"
+        assert hook["pass_filenames"] is False
+
+
+def test_pre_commit_check_hook_passes_when_current_and_fails_when_stale(
+    repo: Path,
+) -> None:
+    _local_config(repo, "gradwright-check")
+    assert cli("build", cwd=repo).code == 0
+    git("add", "-A", cwd=repo)
+    passed = _pre_commit(repo, "run", "--all-files")
+    assert passed.returncode == 0, passed.stdout + passed.stderr
+    assert "Passed" in passed.stdout
+    model = repo / "models/cable_sag.py"
+    model.write_text(model.read_text().replace("0.25", "0.5"))
+    git("add", "-A", cwd=repo)
+    failed = _pre_commit(repo, "run", "--all-files")
+    assert failed.returncode == 1
+    assert "stale     models/cable_sag_grad.py" in failed.stdout
+    # installed as a git hook, it stops the commit
+    assert _pre_commit(repo, "install").returncode == 0
+    commit = git("commit", "-q", "-m", "tune weight", cwd=repo, check=False)
+    assert commit.returncode != 0
+    assert "stale     models/cable_sag_grad.py" in commit.stdout + commit.stderr
+    assert cli("build", cwd=repo).code == 0
+    git("add", "-A", cwd=repo)
+    assert (
+        git("commit", "-q", "-m", "tune weight", cwd=repo, check=False).returncode == 0
+    )
+
+
+def test_pre_commit_build_hook_regenerates_then_passes(repo: Path) -> None:
+    _local_config(repo, "gradwright-build")
+    git("add", "-A", cwd=repo)
+    first = _pre_commit(repo, "run", "--all-files")
+    assert first.returncode == 1  # new files: the commit stops for a review
+    assert "files were regenerated: review and stage them" in first.stdout
+    assert (repo / OUT).is_file()
+    git("add", "-A", cwd=repo)
+    second = _pre_commit(repo, "run", "--all-files")
+    assert second.returncode == 0, second.stdout + second.stderr
+    # an edit to a model regenerates a tracked file: pre-commit sees the change
+    model = repo / "models/thermistor.py"
+    model.write_text(model.read_text().replace("err * err", "err * err * 0.5"))
+    git("add", "-A", cwd=repo)
+    third = _pre_commit(repo, "run", "--all-files")
+    assert third.returncode == 1
+    assert "generated models/thermistor_grad.py" in third.stdout
+    assert git("diff", "--name-only", cwd=repo).stdout == f"{OUT}\n"
+
+
+def test_build_fail_if_changed(tmp_path: Path) -> None:
+    root = project(tmp_path, CABLE)
+    first = cli("build", "--fail-if-changed", cwd=root)
+    assert first.code == 1
+    assert cli("build", "--fail-if-changed", cwd=root).code == 0
+
+
+def test_gen_and_build_never_run_the_model(tmp_path: Path) -> None:
+    marker = tmp_path / "ran"
+    model = (
+        "import math\n"
+        f"open({str(marker)!r}, 'w').close()\n\n\n"
+        "def f(x):\n    return math.sin(x)\n"
+    )
+    root = project(tmp_path / "p", target("models/side.py", ["f"], "models/side_g.py"))
+    (root / "models/side.py").write_text(model)
+    assert cli("gen", "models/side.py", "f", "-o", "g.py", cwd=root).code == 0
+    assert cli("build", cwd=root).code == 0
+    assert cli("build", "--check", cwd=root).code == 0
+    assert not marker.exists()
+    # verify runs the generated module, which copies only the function
+    assert cli("verify", "models/side.py", "f", cwd=root).code == 0
+    assert not marker.exists()
