@@ -227,11 +227,17 @@ SAMPLE_POINTS: dict[str, tuple[tuple[float, ...], ...]] = {
         (1.13e-3, 2.34e-4, 8.8e-8, 1.0e4, 298.15),
         (1.1e-3, 2.4e-4, 9.0e-8, 3300.0, 323.15),
     ),
+    # (k_conv, k_rad, start_temp, readings, dt, steps_per_reading): a hot kiln
+    # cooling, and one that crosses the heater's safe point (700 K) mid-run
+    "kiln_loss": (
+        (0.003, 0.002, 1250.0, [1175.0, 1105.0, 1045.0], 2.0, 5),
+        (0.004, 0.002, 760.0, [735.0, 712.0, 696.0], 2.0, 5),
+    ),
 }
 
 #: samples whose default (CPython-target) output runs on MicroPython unmodified
 DEFAULT_OUTPUT_RUNS_ON_MICROPYTHON = frozenset(
-    {"cable_sag", "fuel_hedge", "thermistor"}
+    {"cable_sag", "fuel_hedge", "kiln_cooling", "thermistor"}
 )
 
 

@@ -209,7 +209,8 @@ def _parser() -> argparse.ArgumentParser:
         action="append",
         default=[],
         help="a parameter's typical size for the finite-difference step"
-        " h = eps**(1/3) * max(|x|, SIZE) (default: from --range, else 1)",
+        " h = eps**(1/3) * max(|x|, SIZE), after Dennis & Schnabel"
+        " (default: from --range, else 1)",
     )
     verify.add_argument(
         "--rtol",

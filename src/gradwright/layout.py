@@ -91,6 +91,9 @@ class Layout:
         for param in function.params:
             self.loop_of[param] = None
         self.roots = dict(sweep.roots)
+        self.versions: dict[Var, list[Var]] = {}
+        for version, root in self.roots.items():
+            self.versions.setdefault(root, []).append(version)
         self.reverse_defined = self._reverse_defined(sweep.statements)
         self.recompute: dict[Loop, list[Let]] = {}
         self.reverse_reads = self._reverse_reads()
@@ -353,11 +356,8 @@ class Layout:
                 )
                 if target.shape == "list" and stmt.op == "setitem":
                     # an element write is needed when any later version is
-                    is_live = is_live or any(
-                        v in live
-                        for v, r in self.roots.items()
-                        if r == self.roots.get(target, target)
-                    )
+                    root = self.roots.get(target, target)
+                    is_live = is_live or any(v in live for v in self.versions[root])
                 if is_live:
                     needed = True
                     live.add(target)
@@ -776,9 +776,7 @@ class _Emitter:
 
     def _list_live(self, var: Var) -> bool:
         root = self.layout.roots.get(var, var)
-        return any(
-            v in self.layout.live for v, r in self.layout.roots.items() if r == root
-        )
+        return any(v in self.layout.live for v in self.layout.versions[root])
 
     def copy(
         self, target: Var, source: Atom, origin: Origin, depth: int, out: _Lines

@@ -62,7 +62,8 @@ _STATEMENT_REJECTIONS: dict[type, tuple[str, str | None]] = {
     cst.While: (
         "while-loops are not supported (the trip count must be known when the loop"
         " starts)",
-        "use `for _ in range(max_iter):` with an early exit test inside",
+        "use `for _ in range(max_iter):` and guard the update with"
+        " `if not_converged:` so the values stop changing once converged",
     ),
     cst.Try: (
         "try statements are not supported",
