@@ -365,32 +365,16 @@ def test_rule_accurate_at_domain_edge(expr: str, x: float) -> None:
     assert _edge_error(expr, x) <= TOLERANCE, "mpmath central difference, 50 digits"
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="BUG (accuracy): tanh rule g * (1 - out*out) cancels once tanh(x) is"
-    " near 1: 1e-8 relative error at x = 10, result 0.0 for |x| > 19",
-)
 @pytest.mark.parametrize("x", [10.0, -25.0])
 def test_tanh_rule_accurate_in_the_tails(x: float) -> None:
     assert _edge_error("math.tanh(x)", x) <= TOLERANCE, "mpmath central difference"
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="BUG (accuracy): expm1 rule g * (out + 1.0) cancels for x << 0: 2e-8"
-    " relative error at x = -20, result 0.0 for x < -37.5",
-)
 @pytest.mark.parametrize("x", [-20.0, -40.0])
 def test_expm1_rule_accurate_for_negative_x(x: float) -> None:
     assert _edge_error("math.expm1(x)", x) <= TOLERANCE, "mpmath central difference"
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="BUG (accuracy): asin/acos rules use sqrt(1.0 - x * x), which cancels"
-    " near |x| == 1 (2.5e-11 relative error at x = 1 - 1e-10); the factored form"
-    " used for acosh/atanh would not",
-)
 @pytest.mark.parametrize("expr", ["math.asin(x)", "math.acos(x)"])
 def test_asin_acos_rules_accurate_near_one(expr: str) -> None:
     assert _edge_error(expr, 1.0 - 1e-10) <= TOLERANCE, "mpmath central difference"
@@ -400,13 +384,6 @@ def _atan2_grads(y: float, x: float) -> tuple:
     return _grad("import math\n\ndef f(y, x):\n    return math.atan2(y, x)\n", y, x)
 
 
-@pytest.mark.xfail(
-    strict=True,
-    raises=ZeroDivisionError,
-    reason="BUG: atan2 rule divides by x*x + y*y, which underflows to 0.0 for"
-    " |x|, |y| < ~1e-162: the gradient raises ZeroDivisionError where the"
-    " derivative (~1/(2|x|)) is finite",
-)
 def test_atan2_rule_tiny_arguments() -> None:
     grads = _atan2_grads(1e-200, 1e-200)
     # closed form (by hand): d atan2(y, x) = (x dy - y dx) / (x^2 + y^2)
@@ -414,12 +391,6 @@ def test_atan2_rule_tiny_arguments() -> None:
     assert all(rel_err(g, e) <= TOLERANCE for g, e in zip(grads, exact, strict=True))
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="BUG: atan2 rule divides by x*x + y*y, which overflows to inf for"
-    " |x|, |y| > ~1e154: the gradient is 0.0 where the derivative (~1/(2|x|)) is"
-    " a normal float",
-)
 def test_atan2_rule_huge_arguments() -> None:
     grads = _atan2_grads(1e200, 1e200)
     # closed form (by hand): d atan2(y, x) = (x dy - y dx) / (x^2 + y^2)
@@ -427,13 +398,6 @@ def test_atan2_rule_huge_arguments() -> None:
     assert all(rel_err(g, e) <= TOLERANCE for g, e in zip(grads, exact, strict=True))
 
 
-@pytest.mark.xfail(
-    strict=True,
-    raises=ValueError,
-    reason="BUG: pow rule's exponent part g * out * log(x) is evaluated at x == 0,"
-    " so x ** y with an active exponent raises 'math domain error' at x = 0,"
-    " where the gradient is (0, 0) for y > 1",
-)
 @pytest.mark.parametrize("expr", ["x**y", "math.pow(x, y)"])
 def test_pow_active_exponent_at_zero_base(expr: str) -> None:
     source = f"import math\n\ndef f(x, y):\n    return {expr}\n"
@@ -441,6 +405,20 @@ def test_pow_active_exponent_at_zero_base(expr: str) -> None:
     # (the second by its limit, SymPy's limit of x**2 * log(x) as x -> 0+)
     assert sympy.limit(X**2 * sympy.log(X), X, 0, "+") == 0
     assert _grad(source, 0.0, 2.0) == (0.0, 0.0), REFERENCE
+
+
+@pytest.mark.parametrize("expr", ["x**y", "math.pow(x, y)"])
+def test_pow_active_exponent_at_negative_base_raises(expr: str) -> None:
+    """x**y for x < 0 has no real derivative in y (it needs log(x)): an error.
+
+    With only x active the same point is fine: d(x**3)/dx = 3 x**2 = 12 at x = -2
+    (power rule).
+    """
+    source = f"import math\n\ndef f(x, y):\n    return {expr}\n"
+    assert run_source(source)["f"](-2.0, 3.0) == -8.0  # the primal is real here
+    with pytest.raises(ValueError, match="math domain error"):
+        _grad(source, -2.0, 3.0)
+    assert _grad(source, -2.0, 3.0, wrt=["x"]) == (12.0,), "power rule"
 
 
 # ---------------------------------------------------------------------------------
