@@ -185,19 +185,20 @@ def test_several_functions_in_one_module(tmp_path: Path) -> None:
         assert math.isclose(got, want, rel_tol=1e-13)
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="BUG: a FUNC named twice on the command line is emitted twice (two"
-    " identical definitions of NAME and NAME_grad in one module)",
+@pytest.mark.parametrize(
+    "functions",
+    [["swing", "swing"], ["swing", "energy", "swing"]],
+    ids=["adjacent", "apart"],
 )
-def test_function_named_twice_is_emitted_once(tmp_path: Path) -> None:
+def test_function_named_twice_is_rejected(
+    functions: list[str], tmp_path: Path
+) -> None:
     write_model(tmp_path)
-    done = run(tmp_path, "gen", "model.py", "swing", "swing")
-    if done.returncode == 2:  # rejecting the repeat would be fine too
-        assert "Traceback" not in done.stderr and done.stdout == ""
-        return
-    assert done.returncode == 0, done.stderr
-    assert done.stdout.count("def swing_grad(") == 1
+    done = run(tmp_path, "gen", "model.py", *functions, "-o", "out.py")
+    assert done.returncode == 2
+    assert done.stdout == ""
+    assert done.stderr == "error: function swing is listed more than once\n"
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["model.py"]
 
 
 # --- determinism and the header ----------------------------------------------------
@@ -433,11 +434,6 @@ def _assert_black_clean(text: str) -> None:
             LONG_SIGNATURE,
             ["spread"],
             id="long-signature",
-            marks=pytest.mark.xfail(
-                strict=True,
-                reason="BUG: NAME_grad's signature and its `return value, (...)` line"
-                " are emitted unwrapped past 88 columns; black reformats them",
-            ),
         ),
     ],
 )

@@ -36,6 +36,9 @@ class ModuleIndex:
     lines: tuple[str, ...]
     #: names bound to the math module itself (``import math``, ``import math as m``)
     math_modules: frozenset[str]
+    #: names bound to numpy (``import numpy as np``), and those import statements
+    numpy_modules: frozenset[str]
+    numpy_imports: tuple[str, ...]
     #: names imported from math: local name -> name in math
     math_names: Mapping[str, str]
     #: the math import statements, as written, in source order
@@ -143,6 +146,8 @@ def _index(
     module: cst.Module,
 ) -> ModuleIndex:
     math_modules: set[str] = set()
+    numpy_modules: set[str] = set()
+    numpy_imports: list[str] = []
     math_names: dict[str, str] = {}
     math_imports: list[str] = []
     functions: dict[str, cst.FunctionDef] = {}
@@ -172,6 +177,13 @@ def _index(
                         else dotted.split(".")[0]
                     )
                     bind(local)
+                    if dotted == "numpy":
+                        numpy_modules.add(local)
+                        numpy_imports.append(
+                            "import numpy"
+                            if local == "numpy"
+                            else f"import numpy as {local}"
+                        )
                     if dotted == "math":
                         math_modules.add(local)
                         math_imports.append(
@@ -244,6 +256,8 @@ def _index(
         module=module,
         lines=tuple(source.splitlines()) or ("",),
         math_modules=frozen_modules,
+        numpy_modules=frozenset(numpy_modules),
+        numpy_imports=tuple(dict.fromkeys(numpy_imports)),
         math_names=dict(sorted(math_names.items())),
         math_imports=tuple(dict.fromkeys(math_imports)),
         constants=constants,

@@ -102,6 +102,10 @@ class Layout:
         self._assign_tapes()
         self.uses = self._forward_uses()
         self.live = self._liveness()
+        self.replayed = {v for vs in self.tapes.values() for v in vs}
+        self.replayed |= {
+            let.target for lets in self.recompute.values() for let in lets
+        }
         self.pinned = {v for v in self.reverse_reads if self.loop_of.get(v) is None}
         self.pinned |= self._stale_reads()
         # the returned values are read at the very end
@@ -465,7 +469,9 @@ class Layout:
             return
         previous = current.get(var.base)
         if previous is not None and previous in self.namer.names:
-            if previous not in self.pinned:
+            # two versions the reverse body restores or recomputes need two names
+            both_replayed = previous in self.replayed and var in self.replayed
+            if previous not in self.pinned and not both_replayed:
                 self.namer.names[var] = self.namer.names[previous]
                 return
             self.namer.names[var] = self.namer.fresh(var.base)
@@ -610,35 +616,31 @@ class Layout:
         return f"[0.0] * len(range({self.range_args(loop)}))"
 
 
+def _writes(stmt: ReverseStmt, var: Var, carry: Var) -> bool:
+    """Whether ``stmt`` changes ``var``'s adjoint (a plain copy of the carried
+    adjoint changes nothing)."""
+    if isinstance(stmt, AdjointAssign):
+        return stmt.var == var and not (stmt.expr == Bar(carry) and not stmt.accumulate)
+    if isinstance(stmt, ReverseBranch):
+        return any(_writes(s, var, carry) for s in (*stmt.then, *stmt.orelse))
+    if isinstance(stmt, ReverseLoop):
+        return any(_writes(s, var, carry) for s in stmt.body)
+    return False
+
+
 def _writes_then_no_read(body: list[ReverseStmt], header: Var, carry: Var) -> bool:
-    # a first write that only copies the carried adjoint changes nothing
-    first = next(
-        (
-            k
-            for k, s in enumerate(body)
-            if isinstance(s, AdjointAssign)
-            and s.var == header
-            and not (s.expr == Bar(carry) and not s.accumulate)
-        ),
-        None,
-    )
+    first = next((k for k, s in enumerate(body) if _writes(s, header, carry)), None)
     if first is None:
         return True  # the carried adjoint passes through unchanged
+    if not isinstance(body[first], AdjointAssign):
+        return False  # changed inside a branch or loop: keep the two apart
     for stmt in body[first + 1 :]:
         if isinstance(stmt, AdjointAssign) and stmt.var == carry:
             continue
         for expr in _reverse_exprs([stmt]):
             if any(isinstance(n, Bar) and n.var == carry for n in walk(expr)):
                 return False
-    return not any(
-        isinstance(s, (ReverseBranch, ReverseLoop))
-        and any(
-            isinstance(n, Bar) and n.var == header
-            for e in _reverse_exprs([s])
-            for n in walk(e)
-        )
-        for s in body[:first]
-    )
+    return True
 
 
 def _walk_values(expr: Expr) -> Iterator[Expr]:
@@ -909,17 +911,23 @@ class _Emitter:
                 value = self.print(self.layout.cheap(stmt.expr))
                 out.code(f"{bar}[{index}] += {value}", depth + 1)
             elif isinstance(stmt, ReverseBranch):
+                sides = []
+                for block in (stmt.then, stmt.orelse):
+                    side = _Lines()
+                    side.last_origin = dict(out.last_origin)
+                    side.open_block(depth)
+                    self.reverse_block(block, depth + 1, side)
+                    sides.append(side.lines)
+                then_lines, else_lines = sides
+                if not then_lines and not else_lines:
+                    continue
                 out.comment(stmt.origin, depth)
-                out.code(f"if {self.print(self.layout.cheap(stmt.condition))}:", depth)
-                out.open_block(depth)
-                if stmt.then:
-                    self.reverse_block(stmt.then, depth + 1, out)
-                else:
-                    out.code("pass", depth + 1)
-                if stmt.orelse:
+                condition = self.print(self.layout.cheap(stmt.condition))
+                out.code(f"if {condition}:", depth)
+                out.lines.extend(then_lines or ["    " * (depth + 1) + "pass"])
+                if else_lines:
                     out.code("else:", depth)
-                    out.open_block(depth)
-                    self.reverse_block(stmt.orelse, depth + 1, out)
+                    out.lines.extend(else_lines)
                 out.last_origin[depth] = None
             else:
                 self.reverse_loop(stmt, depth, out)

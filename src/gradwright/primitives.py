@@ -11,7 +11,20 @@ from dataclasses import dataclass
 from typing import Literal
 
 Syntax = Literal[
-    "infix", "prefix", "call", "ifexp", "copy", "subscript", "list", "repeat", "partial"
+    "infix",
+    "prefix",
+    "call",
+    "ifexp",
+    "copy",
+    "subscript",
+    "list",
+    "repeat",
+    "partial",
+    "attr",
+    "method",
+    "index",
+    "scatter",
+    "listcall",
 ]
 
 # Python's binding strengths, loosest first; only their order matters.
@@ -92,6 +105,51 @@ _SPECS = [
     _math("pow", 2, 2),
     _math("copysign", 2, 2),
     _math("hypot", 1, None),
+]
+
+def _np(name: str, min_args: int = 1, max_args: int | None = 1) -> OpSpec:
+    return OpSpec(f"np.{name}", "call", f"np.{name}", PREC_ATOM, min_args, max_args)
+
+
+#: NumPy functions a model may call: name under ``np.`` -> (min, max) arguments,
+#: keyword arguments (axis=, keepdims=) included
+NUMPY_FUNCTIONS: dict[str, tuple[int, int | None]] = {
+    **{
+        n: (1, 1)
+        for n in (
+            "exp log log1p expm1 exp2 log2 log10 sqrt cbrt sin cos tan tanh sinh cosh"
+            " arcsin arccos arctan arcsinh arccosh arctanh abs absolute square fabs"
+            " transpose"
+        ).split()
+    },
+    **{n: (2, 2) for n in ("arctan2 hypot maximum minimum power dot matmul outer".split())},
+    "where": (3, 3),
+    "clip": (3, 3),
+    **{n: (1, 3) for n in ("sum mean prod max min amax amin".split())},
+    "linalg.norm": (1, 1),
+    "concatenate": (1, 2),
+    "stack": (1, 2),
+}
+
+_SPECS += [_np(name, lo, hi) for name, (lo, hi) in NUMPY_FUNCTIONS.items()]
+_SPECS += [
+    _infix("matmul", "@", PREC_MUL),
+    OpSpec("T", "attr", "T", PREC_ATOM, 1, 1),
+    OpSpec("reshape", "method", "reshape", PREC_ATOM, 1, None),
+    OpSpec("shape_at", "index", "{0}.shape[{1}]", PREC_ATOM, 2, 2),
+    # x[...] with a fixed pattern of indices and slices: args (x, pattern, *values)
+    OpSpec("npindex", "index", "", PREC_ATOM, 2, None),
+    OpSpec("npscatter", "scatter", "_gw_scatter", PREC_ATOM, 3, None),
+    OpSpec("np.concatenate", "listcall", "np.concatenate", PREC_ATOM, 1, None),
+    OpSpec("np.stack", "listcall", "np.stack", PREC_ATOM, 1, None),
+    *(
+        OpSpec(name, "call", name, PREC_ATOM, 1, None)
+        for name in (
+            "_gw_unbroadcast _gw_unreduce _gw_unmean _gw_unextreme _gw_matmul_left"
+            " _gw_matmul_right _gw_part _gw_shaped np.reshape np.shape np.take"
+            " np.zeros_like"
+        ).split()
+    ),
 ]
 
 OPS: dict[str, OpSpec] = {spec.name: spec for spec in _SPECS}

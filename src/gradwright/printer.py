@@ -25,10 +25,15 @@ class Printer:
         bar_name: Callable[[Var], str],
         callees: Mapping[str, str] | None = None,
         partials_name: Callable[[Var], str] | None = None,
+        where_call: str | None = None,
     ) -> None:
         self.name = name
         self.bar_name = bar_name
         self.partials_name = partials_name or (lambda var: f"{name(var)}_partials")
+        #: for array code: conditionals print as this elementwise call (np.where)
+        self.where_call = where_call
+        #: generated helper functions the printed text calls (``_gw_...``)
+        self.helpers_used: set[str] = set()
         #: op key -> callee written instead of the op's own (a target's stand-in)
         self.callees: Mapping[str, str] = callees or {}
         #: top-level modules the printed text refers to, for the import list
@@ -88,12 +93,27 @@ class Printer:
             fill, count = args
             parens = self.precedence(count) <= spec.precedence
             return f"[{self._print(fill)}] * {self._wrap(count, parens)}"
+        if spec.syntax == "attr":
+            return f"{self._wrap(args[0], self.precedence(args[0]) < PREC_ATOM)}.{spec.symbol}"
+        if spec.syntax == "method":
+            head = self._wrap(args[0], self.precedence(args[0]) < PREC_ATOM)
+            rest = ", ".join(self._print(a) for a in args[1:])
+            return f"{head}.{spec.symbol}({rest})"
+        if spec.syntax in ("index", "scatter"):
+            return self._index(expr.op, spec.symbol, args)
+        if spec.syntax == "listcall":
+            parts = [a for a in args if not _is_keyword(a)]
+            keywords = [self._print(a) for a in args if _is_keyword(a)]
+            listed = f"[{', '.join(self._print(a) for a in parts)}]"
+            return f"{spec.symbol}({', '.join([listed, *keywords])})"
         if spec.syntax == "partial":
             var, position = args
             assert isinstance(var, Var)
             return f"{self.partials_name(var)}[{self._print(position)}]"
         if spec.syntax == "call":
             symbol = self.callees.get(expr.op, spec.symbol)
+            if symbol.startswith("_gw_"):
+                self.helpers_used.add(symbol)
             if symbol != spec.symbol:
                 self.replaced_ops.add(expr.op)
             if "." in symbol:
@@ -107,6 +127,9 @@ class Printer:
                 isinstance(operand, Apply) and operand.op == "pow"
             )
             return spec.symbol + self._wrap(operand, parens)
+        if spec.syntax == "ifexp" and self.where_call is not None:
+            body, test, orelse = args
+            return f"{self.where_call}({self._print(test)}, {self._print(body)}, {self._print(orelse)})"
         if spec.syntax == "ifexp":
             body, test, orelse = args
             return (
@@ -135,3 +158,23 @@ class Printer:
         ):
             return f"{left_text}**{right_text}"
         return f"{left_text} {spec.symbol} {right_text}"
+
+    def _index(self, op: str, symbol: str, args: tuple[Expr, ...]) -> str:
+        if op == "shape_at":
+            return f"{self._print(args[0])}.shape[{self._print(args[1])}]"
+        if op == "npindex":
+            container, pattern, *values = args
+            assert isinstance(pattern, Const)
+            inside = pattern.text.format(*(self._print(v) for v in values))
+            head = self._wrap(container, self.precedence(container) < PREC_ATOM)
+            return f"{head}[{inside}]"
+        g, container, pattern, *values = args
+        assert isinstance(pattern, Const)
+        inside = pattern.text.format(*(self._print(v) for v in values))
+        self.helpers_used.add(symbol)
+        return f"{symbol}({self._print(g)}, {self._print(container)}, np.s_[{inside}])"
+
+
+def _is_keyword(expr: Expr) -> bool:
+    """A keyword argument carried as a constant (``axis=0``)."""
+    return isinstance(expr, Const) and "=" in expr.text and expr.value is None

@@ -24,6 +24,7 @@ import math
 from collections.abc import Callable
 
 from .algebra import E, call, where
+from .ir import Apply, Const
 
 Rule = Callable[..., tuple["E | None", ...]]
 
@@ -120,3 +121,149 @@ RULES: dict[str, Rule] = {
     ),
 }
 RULES["math_pow"] = _power
+
+
+# ---------------------------------------------------------------------------------
+# NumPy. Elementwise functions share the scalar formulas above (the reverse sweep
+# prints them with NumPy's functions); the array rules follow the standard collection
+# of matrix derivative results for forward and reverse mode (Giles, 2008).
+
+
+def _keywords(extra: tuple[E, ...]) -> tuple[Const, Const]:
+    """axis and keepdims of a reduction, from its keyword constants."""
+    found = {"axis": "None", "keepdims": "False"}
+    for item in extra:
+        node = item.node
+        assert isinstance(node, Const)
+        key, _, value = node.text.partition("=")
+        found[key] = value
+    return Const(found["axis"], None), Const(found["keepdims"], None)
+
+
+def _helper(name: str, *args: E | Const) -> E:
+    return E(Apply(name, tuple(a.node if isinstance(a, E) else a for a in args)))
+
+
+def _reduction(helper: str, *tail: str) -> Rule:
+    def rule(g: E, out: E, x: E, *extra: E) -> tuple[E | None, ...]:
+        axis, keepdims = _keywords(extra)
+        more = tuple(Const(t, None) for t in tail)
+        return (_helper(helper, g, x, axis, keepdims, *more),) + (None,) * len(extra)
+
+    return rule
+
+
+def _prod(g: E, out: E, x: E, *extra: E) -> tuple[E | None, ...]:
+    # every element's partial is the product of the others: out / x (x nonzero)
+    axis, keepdims = _keywords(extra)
+    return (_helper("_gw_unreduce", g * out, x, axis, keepdims) / x,) + (None,) * len(
+        extra
+    )
+
+
+def _index(g: E, out: E, x: E, pattern: E, *values: E) -> tuple[E | None, ...]:
+    scatter = E(
+        Apply("npscatter", (g.node, x.node, pattern.node, *(v.node for v in values)))
+    )
+    return (scatter, None) + (None,) * len(values)
+
+
+def _concatenate(g: E, out: E, *args: E) -> tuple[E | None, ...]:
+    parts = [a for a in args if not _is_keyword_const(a)]
+    axis = _keywords(tuple(a for a in args if _is_keyword_const(a)))[0]
+    axis = axis if axis.text != "None" else Const("0", 0)
+    pieces = tuple(
+        _helper("_gw_part", g, Const(str(k), k), axis, *parts)
+        for k in range(len(parts))
+    )
+    return pieces + (None,) * (len(args) - len(parts))
+
+
+def _stack(g: E, out: E, *args: E) -> tuple[E | None, ...]:
+    parts = [a for a in args if not _is_keyword_const(a)]
+    axis = _keywords(tuple(a for a in args if _is_keyword_const(a)))[0]
+    axis_text = "0" if axis.text == "None" else axis.text
+    pieces = tuple(
+        _helper("np.take", g, Const(str(k), k), Const(f"axis={axis_text}", None))
+        for k in range(len(parts))
+    )
+    return pieces + (None,) * (len(args) - len(parts))
+
+
+def _is_keyword_const(item: E) -> bool:
+    node = item.node
+    return isinstance(node, Const) and node.value is None and "=" in node.text
+
+
+def _matmul(g: E, out: E, a: E, b: E) -> tuple[E, E]:
+    return _helper("_gw_matmul_left", g, a, b), _helper("_gw_matmul_right", g, a, b)
+
+
+def _clip(g: E, out: E, x: E, lo: E, hi: E) -> tuple[E, E, E]:
+    inside = where(x.ge(lo), where(x.le(hi), g, 0.0), 0.0)
+    return inside, where(x.lt(lo), g, 0.0), where(x.gt(hi), g, 0.0)
+
+
+_SHARED = {
+    "exp": "exp",
+    "log": "log",
+    "log1p": "log1p",
+    "expm1": "expm1",
+    "exp2": "exp2",
+    "log2": "log2",
+    "log10": "log10",
+    "sqrt": "sqrt",
+    "cbrt": "cbrt",
+    "sin": "sin",
+    "cos": "cos",
+    "tan": "tan",
+    "tanh": "tanh",
+    "sinh": "sinh",
+    "cosh": "cosh",
+    "arcsin": "asin",
+    "arccos": "acos",
+    "arctan": "atan",
+    "arcsinh": "asinh",
+    "arccosh": "acosh",
+    "arctanh": "atanh",
+    "abs": "abs",
+    "absolute": "abs",
+    "fabs": "abs",
+    "arctan2": "atan2",
+    "hypot": "hypot",
+    "maximum": "max",
+    "minimum": "min",
+    "power": "pow",
+}
+RULES.update({f"np.{name}": RULES[scalar] for name, scalar in _SHARED.items()})
+RULES.update(
+    {
+        "np.square": lambda g, out, x: (g * 2.0 * x,),
+        "np.where": lambda g, out, c, a, b: (None, where(c, g, 0.0), where(c, 0.0, g)),
+        "np.clip": _clip,
+        "np.sum": _reduction("_gw_unreduce"),
+        "np.mean": _reduction("_gw_unmean"),
+        "np.max": _reduction("_gw_unextreme", "np.argmax"),
+        "np.amax": _reduction("_gw_unextreme", "np.argmax"),
+        "np.min": _reduction("_gw_unextreme", "np.argmin"),
+        "np.amin": _reduction("_gw_unextreme", "np.argmin"),
+        "np.prod": _prod,
+        "matmul": _matmul,
+        "np.matmul": _matmul,
+        "np.dot": _matmul,
+        "np.outer": lambda g, out, a, b: (
+            E(Apply("matmul", (g.node, b.node))),
+            E(Apply("matmul", (a.node, g.node))),
+        ),
+        "T": lambda g, out, x: (E(Apply("T", (g.node,))),),
+        "np.transpose": lambda g, out, x: (E(Apply("T", (g.node,))),),
+        "reshape": lambda g, out, x, *shape: (
+            _helper("np.reshape", g, _helper("np.shape", x)),
+        )
+        + (None,) * len(shape),
+        "np.linalg.norm": lambda g, out, x: (g * x / out,),
+        "npindex": _index,
+        "np.concatenate": _concatenate,
+        "np.stack": _stack,
+    }
+)

@@ -1151,6 +1151,7 @@ class _Lowerer:
                         self.index.locate(arg),
                     )
                 slots[key] = arg.value
+        list_params = _list_uses(callee.body)
         args: list[Atom] = []
         for param in declared:
             given = slots.get(param.name.value)
@@ -1162,6 +1163,13 @@ class _Lowerer:
                     self.index.locate(node),
                 )
             assert given is not None
+            if param.name.value in list_params:
+                fail(
+                    f"'{name}' takes a list ('{param.name.value}'): passing lists to"
+                    " helper functions is not supported",
+                    self.index.locate(given),
+                    "index the list in the caller and pass the numbers",
+                )
             args.append(self.scalar(self.expr(given, base, None), given))
         self.callees[name] = None
         return self.emit(

@@ -1,0 +1,137 @@
+"""What a NumPy model's gradient needs beyond the scalar rule table.
+
+The rule table's formulas are written once, over scalar primitives; in a NumPy model
+the reverse sweep prints them with NumPy's functions (``cos`` as ``np.cos``, a
+conditional as ``np.where``). Broadcasting operands get their adjoint summed back to
+their own shape. Matrix rules follow the standard collection of matrix derivative
+results for forward and reverse mode (Giles, 2008): for C = A @ B, the adjoints are
+A_bar = C_bar @ B^T and B_bar = A^T @ C_bar.
+
+The helpers below are written into a generated module only when it uses them.
+"""
+
+from __future__ import annotations
+
+#: scalar rule primitives -> the NumPy function the reverse sweep calls instead
+REVERSE_SPELLING: dict[str, str] = {
+    "sin": "np.sin",
+    "cos": "np.cos",
+    "tan": "np.tan",
+    "asin": "np.arcsin",
+    "acos": "np.arccos",
+    "atan": "np.arctan",
+    "sinh": "np.sinh",
+    "cosh": "np.cosh",
+    "tanh": "np.tanh",
+    "asinh": "np.arcsinh",
+    "acosh": "np.arccosh",
+    "atanh": "np.arctanh",
+    "exp": "np.exp",
+    "expm1": "np.expm1",
+    "exp2": "np.exp2",
+    "log": "np.log",
+    "log1p": "np.log1p",
+    "log2": "np.log2",
+    "log10": "np.log10",
+    "sqrt": "np.sqrt",
+    "cbrt": "np.cbrt",
+    "hypot": "np.hypot",
+    "copysign": "np.copysign",
+    "fabs": "np.fabs",
+    "abs": "np.abs",
+}
+
+#: primitives whose operands may broadcast against each other
+BROADCASTING = frozenset(
+    {
+        "add",
+        "sub",
+        "mul",
+        "div",
+        "pow",
+        "mod",
+        "np.maximum",
+        "np.minimum",
+        "np.where",
+        "np.arctan2",
+        "np.hypot",
+        "np.clip",
+        "np.power",
+    }
+)
+
+HELPERS: dict[str, str] = {
+    "_gw_unbroadcast": '''def _gw_unbroadcast(g, x):
+    """g summed over the axes along which x was broadcast to g's shape."""
+    shape = np.shape(x)
+    if np.shape(g) == shape:
+        return g
+    extra = np.ndim(g) - len(shape)
+    if extra > 0:
+        g = np.sum(g, axis=tuple(range(extra)))
+    axes = tuple(k for k, n in enumerate(shape) if n == 1 and np.shape(g)[k] != 1)
+    if axes:
+        g = np.sum(g, axis=axes, keepdims=True)
+    return g if shape else float(g)
+''',
+    "_gw_unreduce": '''def _gw_unreduce(g, x, axis, keepdims):
+    """The adjoint of a sum over axis, spread back over x's shape."""
+    if axis is not None and not keepdims:
+        g = np.expand_dims(g, axis)
+    return np.broadcast_to(g, np.shape(x))
+''',
+    "_gw_unmean": '''def _gw_unmean(g, x, axis, keepdims):
+    """The adjoint of a mean over axis, spread back over x's shape."""
+    count = np.size(x) if axis is None else np.prod(np.take(np.shape(x), axis))
+    return _gw_unreduce(g, x, axis, keepdims) / count
+''',
+    "_gw_unextreme": '''def _gw_unextreme(g, x, axis, keepdims, pick):
+    """The adjoint of a max or min: the first extreme element gets it all."""
+    z = np.zeros(np.shape(x))
+    if axis is None:
+        z.flat[pick(x)] = g
+        return z
+    where = np.expand_dims(pick(x, axis=axis), axis)
+    g = g if keepdims else np.expand_dims(g, axis)
+    np.put_along_axis(z, where, g, axis=axis)
+    return z
+''',
+    "_gw_matmul_left": '''def _gw_matmul_left(g, a, b):
+    """The adjoint of a in a @ b (vectors and matrices)."""
+    if np.ndim(b) == 1:
+        return np.outer(g, b) if np.ndim(a) == 2 else g * b
+    return g @ np.swapaxes(b, -1, -2) if np.ndim(a) == 2 else b @ g
+''',
+    "_gw_matmul_right": '''def _gw_matmul_right(g, a, b):
+    """The adjoint of b in a @ b (vectors and matrices)."""
+    if np.ndim(a) == 1:
+        return np.outer(a, g) if np.ndim(b) == 2 else g * a
+    return np.swapaxes(a, -1, -2) @ g if np.ndim(b) == 2 else g @ a
+''',
+    "_gw_scatter": '''def _gw_scatter(g, x, index):
+    """The adjoint of x[index]: g in the selected places, zeros elsewhere."""
+    z = np.zeros(np.shape(x))
+    z[index] = g
+    return z
+''',
+    "_gw_part": '''def _gw_part(g, k, axis, *parts):
+    """The piece of g that np.concatenate took from parts[k]."""
+    sizes = [np.shape(p)[axis] for p in parts]
+    start = sum(sizes[:k])
+    return np.take(g, range(start, start + sizes[k]), axis=axis)
+''',
+    "_gw_shaped": '''def _gw_shaped(g, x):
+    """An adjoint with the shape of its value (a zero becomes an array of zeros)."""
+    return g if np.shape(g) == np.shape(x) else np.zeros(np.shape(x)) + g
+''',
+}
+
+#: helpers that call other helpers
+NEEDS: dict[str, tuple[str, ...]] = {"_gw_unmean": ("_gw_unreduce",)}
+
+
+def helper_sources(names: set[str]) -> str:
+    wanted = set(names)
+    for name in list(wanted):
+        wanted |= set(NEEDS.get(name, ()))
+    return "\n\n".join(HELPERS[n].rstrip("\n") for n in HELPERS if n in wanted)
