@@ -190,9 +190,7 @@ def test_several_functions_in_one_module(tmp_path: Path) -> None:
     [["swing", "swing"], ["swing", "energy", "swing"]],
     ids=["adjacent", "apart"],
 )
-def test_function_named_twice_is_rejected(
-    functions: list[str], tmp_path: Path
-) -> None:
+def test_function_named_twice_is_rejected(functions: list[str], tmp_path: Path) -> None:
     write_model(tmp_path)
     done = run(tmp_path, "gen", "model.py", *functions, "-o", "out.py")
     assert done.returncode == 2

@@ -570,7 +570,9 @@ def test_missing_function_spellings(name: str, spelling: str) -> None:
     default = run_cpython(modules()[f"cpython:{name}:{spelling}"])
     assert_rows_agree(expected, default, f"{name} stand-in vs CPython math")
     if spelling == "from_as":
-        kept = "sin" if name in fallbacks.MICROPYTHON_MISSING else f"sin, {name} as stand"
+        kept = (
+            "sin" if name in fallbacks.MICROPYTHON_MISSING else f"sin, {name} as stand"
+        )
         assert f"from math import {kept}\n" in text
 
 

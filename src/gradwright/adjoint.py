@@ -43,6 +43,7 @@ from .ir import (
     Var,
     const,
 )
+from .numpy_support import BROADCASTING
 from .rules import RULES
 
 #: primitives on lists that adjoints flow through
@@ -126,8 +127,11 @@ def active_values(function: SSAFunction, wrt: tuple[str, ...]) -> set[Var]:
 
 
 class _Reverse:
-    def __init__(self, function: SSAFunction, active: set[Var]) -> None:
+    def __init__(
+        self, function: SSAFunction, active: set[Var], numpy: bool = False
+    ) -> None:
         self.active = active
+        self.numpy = numpy
         self.has: set[Var] = set()
         self.root: dict[Var, Var] = {}
         self.carries: dict[Var, Var] = {}
@@ -231,6 +235,9 @@ class _Reverse:
                 part.node if previous is None else Apply("add", (previous, part.node))
             )
         for var, total in grouped.items():
+            if self.numpy and op in BROADCASTING:
+                # an operand broadcast against a larger one gets its adjoint summed
+                total = Apply("_gw_unbroadcast", (total, var))
             self.contribute(var, total, origin, out)
 
     def list_let(self, let: Let, out: list[ReverseStmt]) -> None:
@@ -352,10 +359,14 @@ def reverse_sweep(
     function: SSAFunction,
     wrt: tuple[str, ...],
     seeds: tuple[Expr, ...],
+    numpy: bool = False,
 ) -> ReverseSweep:
-    """Adjoint statements for ``sum(seed_i * d result_i)``, in reverse order."""
+    """Adjoint statements for ``sum(seed_i * d result_i)``, in reverse order.
+
+    ``numpy``: the model works on arrays, so broadcasting operands get their
+    adjoints summed back to their own shapes."""
     active = active_values(function, wrt)
-    reverse = _Reverse(function, active)
+    reverse = _Reverse(function, active, numpy)
     out: list[ReverseStmt] = []
     result = function.result
     for atom, seed in zip(result.values, seeds, strict=True):

@@ -51,7 +51,7 @@ def compile_function(
         seeds = tuple(
             Var(first + k, f"seed_{k}", "param") for k in range(len(ssa.result.values))
         )
-    sweep = reverse_sweep(ssa, checked.wrt, seeds)
+    sweep = reverse_sweep(ssa, checked.wrt, seeds, numpy=bool(index.numpy_modules))
     if len(sweep.unused_wrt) == len(sweep.wrt) and not call_stack:
         fail(
             f"the result of '{name}' does not depend differentiably on "

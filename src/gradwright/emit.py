@@ -21,6 +21,8 @@ from .formatting import format_function, format_statement
 from .frontend import CheckedFunction, ModuleIndex
 from .ir import ReverseSweep, SSAFunction, Var
 from .layout import lay_out
+from .numpy_support import REVERSE_SPELLING
+from .numpy_support import helper_sources as numpy_helper_sources
 from .naming import Namer
 from .printer import Printer
 from .targets import (
@@ -57,6 +59,8 @@ class RenderedGradient:
     jacobian_return: str = ""
     #: math names whose target stand-ins (``fallbacks.py``) this function calls
     helpers: frozenset[str] = frozenset()
+    #: array helpers (``numpy_support.py``) this function calls
+    numpy_helpers: frozenset[str] = frozenset()
 
 
 @dataclass(frozen=True)
@@ -148,8 +152,20 @@ def render_function(
             f"{', '.join(names)}{',' if len(names) == 1 else ''} = {seed_name}"
         )
     printer = Printer(namer.name, namer.bar_name, target.callees(), namer.partials_name)
+    numpy = bool(index.numpy_modules)
+    reverse_printer = (
+        Printer(
+            namer.name,
+            namer.bar_name,
+            {**target.callees(), **REVERSE_SPELLING},
+            namer.partials_name,
+            where_call="np.where",
+        )
+        if numpy
+        else None
+    )
     forward, reverse, result_exprs = lay_out(
-        ssa, sweep, namer, printer, set(compiled.active)
+        ssa, sweep, namer, printer, set(compiled.active), reverse_printer
     )
     values = [printer(e) for e in result_exprs]
     value = (
@@ -158,7 +174,16 @@ def render_function(
         else values[0]
     )
     bars = tuple(namer.bar_name(v) for v in sweep.wrt)
-    result = f"{value}, ({', '.join(bars)}{',' if len(bars) == 1 else ''})"
+    returned = bars
+    numpy_helpers = set(printer.helpers_used)
+    if reverse_printer is not None:
+        numpy_helpers |= reverse_printer.helpers_used
+        # an adjoint that stayed a plain zero still comes back with its value's shape
+        returned = tuple(
+            f"_gw_shaped({bar}, {namer.name(v)})" for bar, v in zip(bars, sweep.wrt)
+        )
+        numpy_helpers.add("_gw_shaped")
+    result = f"{value}, ({', '.join(returned)}{',' if len(bars) == 1 else ''})"
 
     helpers |= helpers_for_ops(target, printer.replaced_ops)
     check_helper_names(target, index, checked, ssa.local_names, helpers)
@@ -198,6 +223,7 @@ def render_function(
             1,
         ),
         helpers=helpers,
+        numpy_helpers=frozenset(numpy_helpers),
     )
     return rendered, printer.modules_used
 
@@ -232,6 +258,14 @@ def render_module(
         if statement != "import math" or "math" not in modules:
             imports.append(statement)
     imports = importable(target, imports)
+    numpy_helpers = set().union(*(f.numpy_helpers for f in functions))
+    if index.numpy_modules:
+        # the generated code spells numpy `np`; the primal keeps the model's spelling
+        imports.append("import numpy as np")
+        imports += [i for i in index.numpy_imports if i != "import numpy as np"]
+    helper_text = "\n\n\n".join(
+        t for t in (helper_source(helpers), numpy_helper_sources(numpy_helpers)) if t
+    )
     constants = _constants_used(index, [c.ssa for c in compiled])
 
     header = {
@@ -248,7 +282,7 @@ def render_module(
             header=header,
             imports=imports,
             constants=constants,
-            helpers=helper_source(helpers),
+            helpers=helper_text,
             functions=functions,
         )
     )

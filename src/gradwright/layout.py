@@ -80,6 +80,8 @@ class Layout:
         self.sweep = sweep
         self.namer = namer
         self.printer = printer
+        self.reverse_printer = printer
+        self.numpy = False
         self.active = active
         self.defs: dict[Var, Let] = {}
         self.loop_of: dict[Var, Loop | None] = {}
@@ -710,6 +712,7 @@ class _Emitter:
         self.layout = layout
         self.namer = layout.namer
         self.print = layout.printer
+        self.rprint = layout.reverse_printer
         self.folded: dict[Var, Expr] = {}
         #: names the reverse sweep writes forward values back into
         self.restored: set[str] = set()
@@ -893,7 +896,11 @@ class _Emitter:
             if isinstance(stmt, AdjointAssign):
                 operator = "+=" if stmt.accumulate else "="
                 bar = self.namer.bar_name(stmt.var)
-                value = self.print(self.layout.cheap(stmt.expr))
+                expr = self.layout.cheap(stmt.expr)
+                if stmt.accumulate and self.layout.numpy:
+                    # arrays: a new sum, never an in-place add into a shared array
+                    operator, expr = "=", Apply("add", (Bar(stmt.var), expr))
+                value = self.rprint(expr)
                 if operator == "=" and bar == value:
                     continue  # the carried adjoint was updated in place
                 out.statement(stmt.origin, f"{bar} {operator} {value}", depth)
@@ -901,14 +908,14 @@ class _Emitter:
                 operator = "+=" if stmt.accumulate else "="
                 text = (
                     f"{self.namer.bar_name(stmt.root)}[{self.print(self.layout.cheap(stmt.index))}]"
-                    f" {operator} {self.print(self.layout.cheap(stmt.expr))}"
+                    f" {operator} {self.rprint(self.layout.cheap(stmt.expr))}"
                 )
                 out.statement(stmt.origin, text, depth)
             elif isinstance(stmt, SpreadAdjoint):
                 bar = self.namer.bar_name(stmt.root)
                 index = self.namer.fresh(f"{bar}_index")
                 out.statement(stmt.origin, f"for {index} in range(len({bar})):", depth)
-                value = self.print(self.layout.cheap(stmt.expr))
+                value = self.rprint(self.layout.cheap(stmt.expr))
                 out.code(f"{bar}[{index}] += {value}", depth + 1)
             elif isinstance(stmt, ReverseBranch):
                 sides = []
@@ -922,7 +929,7 @@ class _Emitter:
                 if not then_lines and not else_lines:
                     continue
                 out.comment(stmt.origin, depth)
-                condition = self.print(self.layout.cheap(stmt.condition))
+                condition = self.rprint(self.layout.cheap(stmt.condition))
                 out.code(f"if {condition}:", depth)
                 out.lines.extend(then_lines or ["    " * (depth + 1) + "pass"])
                 if else_lines:
@@ -988,9 +995,18 @@ def lay_out(
     namer: Namer,
     printer: Printer,
     active: set[Var],
+    reverse_printer: Printer | None = None,
 ) -> tuple[list[str], list[str], tuple[Expr, ...]]:
-    """Forward lines, reverse lines and the result expressions."""
+    """Forward lines, reverse lines and the result expressions.
+
+    ``reverse_printer`` prints the reverse sweep's own expressions (NumPy spellings
+    in an array model); the forward sweep's always print as the source wrote them.
+    """
     layout = Layout(function, sweep, namer, printer, active)
+    layout.reverse_printer = reverse_printer or printer
+    layout.numpy = (
+        reverse_printer is not None and reverse_printer.where_call is not None
+    )
     emitter = _Emitter(layout)
     forward = emitter.forward()
     result = [emitter.value(a) for a in function.result.values]

@@ -134,4 +134,4 @@ def helper_sources(names: set[str]) -> str:
     wanted = set(names)
     for name in list(wanted):
         wanted |= set(NEEDS.get(name, ()))
-    return "\n\n".join(HELPERS[n].rstrip("\n") for n in HELPERS if n in wanted)
+    return "\n\n\n".join(HELPERS[n].rstrip("\n") for n in HELPERS if n in wanted)

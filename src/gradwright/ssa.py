@@ -30,6 +30,7 @@ from .ir import (
     Var,
 )
 from .primitives import BINARY_OPERATORS, MATH_CONSTANTS, OPS
+from .ssa_numpy import NumpyLowering
 
 _BINARY_SYMBOLS: dict[type, str] = {
     cst.Add: "+",
@@ -257,7 +258,7 @@ def _list_uses(node: cst.CSTNode) -> set[str]:
     return found
 
 
-class _Lowerer:
+class _Lowerer(NumpyLowering):
     def __init__(
         self,
         index: ModuleIndex,
@@ -276,6 +277,7 @@ class _Lowerer:
         self.origin = Origin("", 0)
         self.statement_count = itertools.count()
         self.loop_depth = 0
+        self.numpy = bool(index.numpy_modules)
         self.result_arity: int | None = None
         self.return_origins: list[Origin] = []
 
@@ -329,7 +331,7 @@ class _Lowerer:
 
     def lower(self) -> SSAFunction:
         node = self.function.node
-        lists = _list_uses(node.body)
+        lists = set() if self.numpy else _list_uses(node.body)
         params = tuple(
             self.new_var(name, "param", "list" if name in lists else "scalar")
             for name in self.function.params
@@ -823,6 +825,11 @@ class _Lowerer:
         if isinstance(node, cst.Name):
             return self.read_name(node)
         if isinstance(node, cst.Attribute):
+            if self.numpy and not (
+                isinstance(node.value, cst.Name)
+                and node.value.value in self.index.math_modules
+            ):
+                return self.numpy_attribute(node, base, target)
             return self.attribute(node)
         if isinstance(node, cst.UnaryOperation):
             return self.unary(node, base, target)
@@ -839,6 +846,8 @@ class _Lowerer:
             return self.emit(op, (left, right), target or self.new_var(base, "temp"))
         if isinstance(node, cst.IfExp):
             return self.conditional(node, base, target)
+        if isinstance(node, cst.Subscript) and self.numpy:
+            return self.numpy_subscript(node, base, target)
         if isinstance(node, cst.Subscript):
             container = self.expr(node.value, base, None)
             if not (isinstance(container, Var) and container.shape == "list"):
@@ -871,6 +880,8 @@ class _Lowerer:
     def binary(self, node: cst.BinaryOperation, base: str, target: Var | None) -> Atom:
         symbol = _BINARY_SYMBOLS[type(node.operator)]
         op = BINARY_OPERATORS.get(symbol)
+        if symbol == "@" and self.numpy:
+            op = "matmul"
         if op is None:
             fail(
                 f"the {symbol} operator is not supported on numbers here",
@@ -1042,6 +1053,16 @@ class _Lowerer:
 
     def call(self, node: cst.Call, base: str, target: Var | None) -> Atom:
         func = node.func
+        if self.numpy:
+            lowered = self.numpy_call(node, base, target)
+            if lowered is not None:
+                return lowered
+            if isinstance(func, cst.Name) and func.value == "len":
+                if len(node.args) == 1:
+                    array = self.expr(node.args[0].value, base, None)
+                    return self.emit(
+                        "len", (array,), target or self.new_var(base, "temp")
+                    )
         if isinstance(func, cst.Name) and func.value not in self.index.module_names:
             if func.value in ("len", "sum"):
                 return self.list_builtin(node, func.value, base, target)

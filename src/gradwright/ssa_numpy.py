@@ -1,0 +1,203 @@
+"""Lowering the NumPy subset: array functions, methods, ``@``, indexing, ``.T``.
+
+Mixed into the SSA lowerer when the model's module imports numpy. Every NumPy call
+becomes one primitive (``np.exp``, ``np.sum``, ``matmul``, ...) whose keyword
+arguments (``axis=``, ``keepdims=``) travel as constant operands, so the forward
+sweep prints the call as written and the rule table can read them.
+"""
+
+from __future__ import annotations
+
+import libcst as cst
+
+from .diagnostics import fail
+from .ir import Atom, Const, Var
+from .primitives import NUMPY_FUNCTIONS
+
+#: methods of arrays the subset supports -> the NumPy function they are
+_METHODS = {
+    "sum": "sum",
+    "mean": "mean",
+    "max": "max",
+    "min": "min",
+    "prod": "prod",
+    "dot": "dot",
+}
+_REDUCTIONS = frozenset({"sum", "mean", "prod", "max", "min", "amax", "amin"})
+_CONSTANTS = {"pi": 3.141592653589793, "e": 2.718281828459045, "inf": float("inf")}
+
+
+def _dotted(node: cst.BaseExpression) -> str | None:
+    if isinstance(node, cst.Name):
+        return node.value
+    if isinstance(node, cst.Attribute):
+        head = _dotted(node.value)
+        return None if head is None else f"{head}.{node.attr.value}"
+    return None
+
+
+class NumpyLowering:
+    """The NumPy part of ``ssa._Lowerer`` (which provides expr, emit, new_var...)."""
+
+    def numpy_name(self, node: cst.BaseExpression) -> str | None:
+        """``np.linalg.norm`` -> ``linalg.norm`` when ``np`` is bound to numpy."""
+        dotted = _dotted(node)
+        if dotted is None or "." not in dotted:
+            return None
+        head, _, rest = dotted.partition(".")
+        return rest if head in self.index.numpy_modules else None  # type: ignore[attr-defined]
+
+    def numpy_attribute(
+        self, node: cst.Attribute, base: str, target: Var | None
+    ) -> Atom:
+        name = self.numpy_name(node)
+        if name is not None:
+            if name in _CONSTANTS:
+                return Const(f"np.{name}", _CONSTANTS[name])
+            fail(f"np.{name} is not a supported constant", self.index.locate(node))  # type: ignore[attr-defined]
+        if node.attr.value == "T":
+            value = self.expr(node.value, base, None)  # type: ignore[attr-defined]
+            return self.emit("T", (value,), target or self.new_var(base, "temp"))  # type: ignore[attr-defined]
+        fail(
+            f"the attribute .{node.attr.value} is not supported",
+            self.index.locate(node),  # type: ignore[attr-defined]
+            "supported on arrays: .T, .shape[k], .sum() .mean() .max() .min()"
+            " .prod() .dot() .reshape()",
+        )
+        raise AssertionError
+
+    def numpy_call(self, node: cst.Call, base: str, target: Var | None) -> Atom | None:
+        """Lower a NumPy function or array method call; None if it is neither."""
+        func = node.func
+        name = self.numpy_name(func)
+        receiver: cst.BaseExpression | None = None
+        if name is None and isinstance(func, cst.Attribute):
+            method = func.attr.value
+            if method == "reshape":
+                return self.reshape(node, func.value, base, target)
+            if method in _METHODS and self.numpy_name(func.value) is None:
+                name, receiver = _METHODS[method], func.value
+        if name is None:
+            return None
+        if name not in NUMPY_FUNCTIONS:
+            fail(
+                f"np.{name} is not supported",
+                self.index.locate(func),  # type: ignore[attr-defined]
+                "see the supported-subset table in the README",
+            )
+        positional = [a.value for a in node.args if a.keyword is None and not a.star]
+        if receiver is not None:
+            positional.insert(0, receiver)
+        keywords: list[Const] = []
+        for arg in node.args:
+            if arg.star:
+                fail("starred arguments are not supported", self.index.locate(arg))  # type: ignore[attr-defined]
+            if arg.keyword is not None:
+                if arg.keyword.value not in ("axis", "keepdims") or name not in (
+                    _REDUCTIONS | {"concatenate", "stack"}
+                ):
+                    fail(
+                        f"the keyword {arg.keyword.value}= is not supported here",
+                        self.index.locate(arg),  # type: ignore[attr-defined]
+                    )
+                keywords.append(Const(f"{arg.keyword.value}={self.static(arg.value)}"))
+        if name in _REDUCTIONS and len(positional) > 1:
+            # np.sum(x, 0): the second positional argument is the axis
+            keywords.insert(0, Const(f"axis={self.static(positional.pop(1))}"))
+        op = f"np.{name}"
+        if name in ("concatenate", "stack"):
+            if len(positional) != 1 or not isinstance(
+                positional[0], (cst.List, cst.Tuple)
+            ):
+                fail(
+                    f"np.{name} takes a list of arrays here: np.{name}([a, b], axis=0)",
+                    self.index.locate(node),  # type: ignore[attr-defined]
+                )
+            parts = tuple(
+                self.expr(el.value, base, None)  # type: ignore[attr-defined]
+                for el in positional[0].elements  # type: ignore[union-attr]
+            )
+            return self.emit(op, parts + tuple(keywords), target or self.new_var(base, "temp"))  # type: ignore[attr-defined]
+        low, high = NUMPY_FUNCTIONS[name]
+        count = len(positional)
+        if count < low or (high is not None and count + len(keywords) > high):
+            fail(f"np.{name}() takes {low} array arguments here", self.index.locate(node))  # type: ignore[attr-defined]
+        args = tuple(self.expr(a, base, None) for a in positional)  # type: ignore[attr-defined]
+        return self.emit(op, args + tuple(keywords), target or self.new_var(base, "temp"))  # type: ignore[attr-defined]
+
+    def static(self, node: cst.BaseExpression) -> str:
+        """A keyword's value: a literal (ints, tuples of ints, True/False, None)."""
+        if isinstance(node, cst.Integer):
+            return node.value
+        if isinstance(node, cst.UnaryOperation) and isinstance(
+            node.operator, cst.Minus
+        ):
+            return "-" + self.static(node.expression)
+        if isinstance(node, cst.Name) and node.value in ("True", "False", "None"):
+            return node.value
+        if isinstance(node, cst.Tuple):
+            items = [self.static(el.value) for el in node.elements]
+            return "(" + ", ".join(items) + ("," if len(items) == 1 else "") + ")"
+        fail(
+            "axis= and keepdims= take literal values here",
+            self.index.locate(node),  # type: ignore[attr-defined]
+        )
+        raise AssertionError
+
+    def reshape(
+        self,
+        node: cst.Call,
+        receiver: cst.BaseExpression,
+        base: str,
+        target: Var | None,
+    ) -> Atom:
+        value = self.expr(receiver, base, None)  # type: ignore[attr-defined]
+        dims: list[Atom] = []
+        for arg in node.args:
+            if arg.keyword is not None or arg.star:
+                fail("reshape takes the new shape only", self.index.locate(arg))  # type: ignore[attr-defined]
+            items = (
+                [el.value for el in arg.value.elements]
+                if isinstance(arg.value, cst.Tuple)
+                else [arg.value]
+            )
+            dims += [self.expr(i, base, None) for i in items]  # type: ignore[attr-defined]
+        return self.emit("reshape", (value, *dims), target or self.new_var(base, "temp"))  # type: ignore[attr-defined]
+
+    def numpy_subscript(
+        self, node: cst.Subscript, base: str, target: Var | None
+    ) -> Atom:
+        """``x[0]``, ``x[:, 1]``, ``x[1:-1]``, ``x.shape[0]``: reads only."""
+        if (
+            isinstance(node.value, cst.Attribute)
+            and node.value.attr.value == "shape"
+            and len(node.slice) == 1
+            and isinstance(node.slice[0].slice, cst.Index)
+        ):
+            array = self.expr(node.value.value, base, None)  # type: ignore[attr-defined]
+            axis = self.expr(node.slice[0].slice.value, base, None)  # type: ignore[attr-defined]
+            return self.emit("shape_at", (array, axis), target or self.new_var(base, "temp"))  # type: ignore[attr-defined]
+        array = self.expr(node.value, base, None)  # type: ignore[attr-defined]
+        pieces: list[str] = []
+        values: list[Atom] = []
+
+        def bound(part: cst.BaseExpression | None) -> str:
+            if part is None:
+                return ""
+            values.append(self.expr(part, base, None))  # type: ignore[attr-defined]
+            return "{}"
+
+        for element in node.slice:
+            piece = element.slice
+            if isinstance(piece, cst.Index):
+                pieces.append(bound(piece.value))
+            else:
+                assert isinstance(piece, cst.Slice)
+                text = f"{bound(piece.lower)}:{bound(piece.upper)}"
+                if piece.step is not None:
+                    text += f":{bound(piece.step)}"
+                pieces.append(text)
+        pattern = Const(", ".join(pieces), None)
+        return self.emit(
+            "npindex", (array, pattern, *values), target or self.new_var(base, "temp")  # type: ignore[attr-defined]
+        )
