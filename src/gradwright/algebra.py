@@ -203,6 +203,9 @@ def simplify(expr: Expr) -> Expr:
                 return _negate(b)
             if isinstance(b, Apply) and b.op == "neg":
                 return Apply("add", (a, b.args[0]))
+    if op == "_gw_unbroadcast" and isinstance(args[0], Const):
+        # a constant adjoint belongs to a scalar result: nothing was broadcast
+        return args[0]
     if op == "pow":
         if _is(args[1], 1):
             return args[0]

@@ -756,6 +756,16 @@ class _Lowerer(NumpyLowering):
         assert isinstance(target.value, cst.Name)
         name = target.value.value
         current = self.read_name(target.value)
+        if self.numpy:
+            what = (
+                "a parameter" if getattr(current, "kind", "") == "param" else "an array"
+            )
+            fail(
+                f"'{name}' is {what}: changing an array in place is not supported (the"
+                " reverse sweep needs the values it had)",
+                self.index.locate(target),
+                "build a new array instead, with np.where or np.concatenate",
+            )
         if not (isinstance(current, Var) and current.shape == "list"):
             fail(f"'{name}' is not a list", self.index.locate(target.value))
         assert isinstance(current, Var)
@@ -811,6 +821,13 @@ class _Lowerer(NumpyLowering):
             fail("unsupported assignment target", self.index.locate(target))
         assert isinstance(target, cst.Name)
         current = self.scalar(self.read_name(target), target)
+        if self.numpy and isinstance(current, Var) and current.kind == "param":
+            fail(
+                f"'{target.value}' is a parameter: `{target.value} "
+                f"{symbol}= ...` would change the caller's array in place",
+                self.index.locate(stmt),
+                f"write `{target.value} = {target.value} {symbol} ...` to make a new one",
+            )
         operand = self.scalar(self.expr(stmt.value, target.value, None), stmt.value)
         var = self.new_var(target.value, "local")
         self.emit(op, (current, operand), var)
