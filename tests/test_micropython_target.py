@@ -34,7 +34,7 @@ import gradwright
 from gradwright import fallbacks
 from gradwright.frontend import check_function, parse_module
 from gradwright.primitives import OPS
-from gradwright.rules import RULES
+from gradwright.rules import SCALAR_OPS
 from gradwright.ssa import lower
 
 ROOT = Path(__file__).resolve().parent.parent
@@ -505,7 +505,8 @@ def test_cases_cover_every_rule() -> None:
     for case in PRIMITIVE_CASES:
         ssa = lower(index, check_function(index, case.name, None))
         covered |= {let.op for let in ssa.body}
-    assert set(RULES) <= covered, sorted(set(RULES) - covered)
+    # MicroPython models are scalar: the array (NumPy) rules are not theirs
+    assert set(SCALAR_OPS) <= covered, sorted(set(SCALAR_OPS) - covered)
     assert "floordiv" in covered
 
 

@@ -89,7 +89,24 @@ def compile_with_callees(
         stacks[callee] = stacks[caller] + (callee,)
         compiled.append(item)
         pending += [(callee, c) for c in item.ssa.callees]
+    _reject_cycles(index, compiled)
     return compiled
+
+
+def _reject_cycles(index: ModuleIndex, compiled: list[Compiled]) -> None:
+    """Recursion through functions that are all targets: lowering one along the
+    cycle's path raises the located error at its call site."""
+    calls = {c.ssa.name: c.ssa.callees for c in compiled}
+
+    def visit(name: str, path: tuple[str, ...]) -> None:
+        for callee in calls.get(name, ()):
+            if callee in path:
+                lower(index, check_function(index, name, None), path[:-1])
+            elif callee in calls:
+                visit(callee, path + (callee,))
+
+    for name in calls:
+        visit(name, (name,))
 
 
 def _uids(ssa: SSAFunction) -> list[int]:

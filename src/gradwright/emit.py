@@ -21,9 +21,9 @@ from .formatting import format_function, format_statement
 from .frontend import CheckedFunction, ModuleIndex
 from .ir import ReverseSweep, SSAFunction, Var
 from .layout import lay_out
+from .naming import Namer
 from .numpy_support import REVERSE_SPELLING
 from .numpy_support import helper_sources as numpy_helper_sources
-from .naming import Namer
 from .printer import Printer
 from .targets import (
     DEFAULT_TARGET,
@@ -151,7 +151,15 @@ def render_function(
         seed_unpack = (
             f"{', '.join(names)}{',' if len(names) == 1 else ''} = {seed_name}"
         )
-    printer = Printer(namer.name, namer.bar_name, target.callees(), namer.partials_name)
+    # a model that binds its own `math` gets the module under another name
+    math_alias = "_gw_math" if "math" in set(checked.params) | ssa.local_names else None
+    printer = Printer(
+        namer.name,
+        namer.bar_name,
+        target.callees(),
+        namer.partials_name,
+        math_alias=math_alias,
+    )
     numpy = bool(index.numpy_modules)
     reverse_printer = (
         Printer(
@@ -160,6 +168,7 @@ def render_function(
             {**target.callees(), **REVERSE_SPELLING},
             namer.partials_name,
             where_call="np.where",
+            math_alias=math_alias,
         )
         if numpy
         else None
@@ -180,7 +189,8 @@ def render_function(
         numpy_helpers |= reverse_printer.helpers_used
         # an adjoint that stayed a plain zero still comes back with its value's shape
         returned = tuple(
-            f"_gw_shaped({bar}, {namer.name(v)})" for bar, v in zip(bars, sweep.wrt)
+            f"_gw_shaped({bar}, {namer.name(v)})"
+            for bar, v in zip(bars, sweep.wrt, strict=True)
         )
         numpy_helpers.add("_gw_shaped")
     result = f"{value}, ({', '.join(returned)}{',' if len(bars) == 1 else ''})"
@@ -257,6 +267,8 @@ def render_module(
     for statement in index.math_imports:
         if statement != "import math" or "math" not in modules:
             imports.append(statement)
+    if "_gw_math" in modules:
+        imports.append("import math as _gw_math")
     imports = importable(target, imports)
     numpy_helpers = set().union(*(f.numpy_helpers for f in functions))
     if index.numpy_modules:

@@ -87,14 +87,19 @@ HELPERS: dict[str, str] = {
 ''',
     "_gw_unextreme": '''def _gw_unextreme(g, x, axis, keepdims, pick):
     """The adjoint of a max or min: the first extreme element gets it all."""
-    z = np.zeros(np.shape(x))
+    x = np.asarray(x)
     if axis is None:
-        z.flat[pick(x)] = g
-        return z
-    where = np.expand_dims(pick(x, axis=axis), axis)
-    g = g if keepdims else np.expand_dims(g, axis)
-    np.put_along_axis(z, where, g, axis=axis)
-    return z
+        axis = tuple(range(x.ndim))
+    axes = tuple(a % x.ndim for a in (axis if isinstance(axis, tuple) else (axis,)))
+    rest = [a for a in range(x.ndim) if a not in axes]
+    order = rest + list(axes)
+    moved = np.transpose(x, order)
+    flat = moved.reshape(moved.shape[: len(rest)] + (-1,))
+    g = np.squeeze(g, axis=axes) if keepdims else np.asarray(g)
+    z = np.zeros(flat.shape)
+    where = np.expand_dims(pick(flat, axis=-1), -1)
+    np.put_along_axis(z, where, np.expand_dims(g, -1), axis=-1)
+    return np.transpose(z.reshape(moved.shape), np.argsort(order))
 ''',
     "_gw_matmul_left": '''def _gw_matmul_left(g, a, b):
     """The adjoint of a in a @ b (vectors and matrices)."""

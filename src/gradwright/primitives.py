@@ -107,6 +107,7 @@ _SPECS = [
     _math("hypot", 1, None),
 ]
 
+
 def _np(name: str, min_args: int = 1, max_args: int | None = 1) -> OpSpec:
     return OpSpec(f"np.{name}", "call", f"np.{name}", PREC_ATOM, min_args, max_args)
 
@@ -122,7 +123,10 @@ NUMPY_FUNCTIONS: dict[str, tuple[int, int | None]] = {
             " transpose"
         ).split()
     },
-    **{n: (2, 2) for n in ("arctan2 hypot maximum minimum power dot matmul outer".split())},
+    **{
+        n: (2, 2)
+        for n in "arctan2 hypot maximum minimum power dot matmul outer".split()
+    },
     "where": (3, 3),
     "clip": (3, 3),
     **{n: (1, 3) for n in ("sum mean prod max min amax amin".split())},

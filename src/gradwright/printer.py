@@ -26,12 +26,15 @@ class Printer:
         callees: Mapping[str, str] | None = None,
         partials_name: Callable[[Var], str] | None = None,
         where_call: str | None = None,
+        math_alias: str | None = None,
     ) -> None:
         self.name = name
         self.bar_name = bar_name
         self.partials_name = partials_name or (lambda var: f"{name(var)}_partials")
         #: for array code: conditionals print as this elementwise call (np.where)
         self.where_call = where_call
+        #: the name the math module goes by when the model binds its own `math`
+        self.math_alias = math_alias
         #: generated helper functions the printed text calls (``_gw_...``)
         self.helpers_used: set[str] = set()
         #: op key -> callee written instead of the op's own (a target's stand-in)
@@ -74,9 +77,10 @@ class Printer:
         if isinstance(expr, Bar):
             return self.bar_name(expr.var)
         if isinstance(expr, Const):
-            if "." in expr.text and not expr.text[0].isdigit():
-                self.modules_used.add(expr.text.lstrip("-").split(".")[0])
-            return expr.text
+            text = self._module_alias(expr.text)
+            if "." in text and not text[0].isdigit():
+                self.modules_used.add(text.lstrip("-").split(".")[0])
+            return text
         args = expr.args
         if expr.op.startswith("call:"):  # a function of the model's own file
             callee = expr.op.removeprefix("call:")
@@ -94,7 +98,8 @@ class Printer:
             parens = self.precedence(count) <= spec.precedence
             return f"[{self._print(fill)}] * {self._wrap(count, parens)}"
         if spec.syntax == "attr":
-            return f"{self._wrap(args[0], self.precedence(args[0]) < PREC_ATOM)}.{spec.symbol}"
+            head = self._wrap(args[0], self.precedence(args[0]) < PREC_ATOM)
+            return f"{head}.{spec.symbol}"
         if spec.syntax == "method":
             head = self._wrap(args[0], self.precedence(args[0]) < PREC_ATOM)
             rest = ", ".join(self._print(a) for a in args[1:])
@@ -111,7 +116,7 @@ class Printer:
             assert isinstance(var, Var)
             return f"{self.partials_name(var)}[{self._print(position)}]"
         if spec.syntax == "call":
-            symbol = self.callees.get(expr.op, spec.symbol)
+            symbol = self._module_alias(self.callees.get(expr.op, spec.symbol))
             if symbol.startswith("_gw_"):
                 self.helpers_used.add(symbol)
             if symbol != spec.symbol:
@@ -129,7 +134,8 @@ class Printer:
             return spec.symbol + self._wrap(operand, parens)
         if spec.syntax == "ifexp" and self.where_call is not None:
             body, test, orelse = args
-            return f"{self.where_call}({self._print(test)}, {self._print(body)}, {self._print(orelse)})"
+            parts = ", ".join(self._print(a) for a in (test, body, orelse))
+            return f"{self.where_call}({parts})"
         if spec.syntax == "ifexp":
             body, test, orelse = args
             return (
@@ -158,6 +164,11 @@ class Printer:
         ):
             return f"{left_text}**{right_text}"
         return f"{left_text} {spec.symbol} {right_text}"
+
+    def _module_alias(self, text: str) -> str:
+        if self.math_alias is not None and text.lstrip("-").startswith("math."):
+            return text.replace("math.", f"{self.math_alias}.", 1)
+        return text
 
     def _index(self, op: str, symbol: str, args: tuple[Expr, ...]) -> str:
         if op == "shape_at":

@@ -267,3 +267,9 @@ RULES.update(
         "np.stack": _stack,
     }
 )
+
+#: primitives that only array (NumPy) models have; the rest are the scalar rules
+ARRAY_OPS: frozenset[str] = frozenset(
+    {k for k in RULES if k.startswith("np.")} | {"matmul", "T", "reshape", "npindex"}
+)
+SCALAR_OPS: frozenset[str] = frozenset(set(RULES) - ARRAY_OPS)

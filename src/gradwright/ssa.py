@@ -606,6 +606,13 @@ class _Lowerer(NumpyLowering):
             else:
                 start, stop, step = bounds
         else:
+            if isinstance(node.iter, (cst.Tuple, cst.List)):
+                fail(
+                    "for-loops run over range(...) or a list parameter",
+                    self.index.locate(node.iter),
+                    "name the values in a list parameter, or write one statement"
+                    " per value",
+                )
             iterable = self.expr(node.iter, name, None)
             if not (isinstance(iterable, Var) and iterable.shape == "list"):
                 fail(
@@ -790,7 +797,7 @@ class _Lowerer(NumpyLowering):
             fail(
                 "only single-number indexing is supported on lists",
                 self.index.locate(node),
-                "write x[i]",
+                f"write {self.index.code(node.value)}[i]",
             )
         index_node = node.slice[0].slice.value  # type: ignore[union-attr]
         return self.scalar(self.expr(index_node, "index", None), index_node)
@@ -826,7 +833,8 @@ class _Lowerer(NumpyLowering):
                 f"'{target.value}' is a parameter: `{target.value} "
                 f"{symbol}= ...` would change the caller's array in place",
                 self.index.locate(stmt),
-                f"write `{target.value} = {target.value} {symbol} ...` to make a new one",
+                f"write `{target.value} = {target.value} {symbol} ...` to make a new"
+                " one",
             )
         operand = self.scalar(self.expr(stmt.value, target.value, None), stmt.value)
         var = self.new_var(target.value, "local")
@@ -1165,6 +1173,13 @@ class _Lowerer(NumpyLowering):
                 "rewrite the recursion as a loop",
             )
         callee = self.index.functions[name]
+        if _returns_tuple(callee):
+            fail(
+                f"'{name}' returns a tuple: helpers called by the model must return"
+                " one number",
+                self.index.locate(node.func),
+                "call a helper for each output, or differentiate it on its own",
+            )
         params = callee.params
         if (
             params.star_arg not in (None, cst.MaybeSentinel.DEFAULT)
@@ -1183,10 +1198,16 @@ class _Lowerer(NumpyLowering):
                 slots[declared[position].name.value] = arg.value
             else:
                 key = arg.keyword.value
-                if key not in {p.name.value for p in declared} or key in slots:
+                if key in slots:
                     fail(
-                        f"'{name}' has no parameter '{key}' to set here",
+                        f"'{key}' is given twice in the call to '{name}'",
                         self.index.locate(arg),
+                    )
+                if key not in {p.name.value for p in declared}:
+                    fail(
+                        f"'{name}' has no parameter '{key}'",
+                        self.index.locate(arg),
+                        f"parameters: {', '.join(p.name.value for p in declared)}",
                     )
                 slots[key] = arg.value
         list_params = _list_uses(callee.body)
@@ -1238,6 +1259,21 @@ class _Lowerer(NumpyLowering):
             "models call math functions, abs, min, max, len, sum and functions"
             " defined in the same file",
         )
+
+
+def _returns_tuple(function: cst.FunctionDef) -> bool:
+    found = False
+
+    class Finder(cst.CSTVisitor):
+        def visit_Return(self, node: cst.Return) -> None:
+            nonlocal found
+            found = found or isinstance(node.value, cst.Tuple)
+
+        def visit_FunctionDef(self, node: cst.FunctionDef) -> bool:
+            return node is function  # not into nested definitions
+
+    function.visit(Finder())
+    return found
 
 
 def _is_docstring(stmt: cst.CSTNode) -> bool:

@@ -11,6 +11,7 @@ from __future__ import annotations
 import libcst as cst
 
 from .diagnostics import fail
+from .frontend import ModuleIndex
 from .ir import Atom, Const, Var
 from .primitives import NUMPY_FUNCTIONS
 
@@ -37,7 +38,18 @@ def _dotted(node: cst.BaseExpression) -> str | None:
 
 
 class NumpyLowering:
-    """The NumPy part of ``ssa._Lowerer`` (which provides expr, emit, new_var...)."""
+    """The NumPy part of ``ssa._Lowerer``, which provides the members below."""
+
+    index: ModuleIndex
+
+    def expr(self, node: cst.BaseExpression, base: str, target: Var | None) -> Atom:
+        raise NotImplementedError
+
+    def emit(self, op: str, args: tuple[Atom, ...], target: Var) -> Var:
+        raise NotImplementedError
+
+    def new_var(self, base: str, kind: str, shape: str = "scalar") -> Var:
+        raise NotImplementedError
 
     def numpy_name(self, node: cst.BaseExpression) -> str | None:
         """``np.linalg.norm`` -> ``linalg.norm`` when ``np`` is bound to numpy."""
@@ -45,7 +57,7 @@ class NumpyLowering:
         if dotted is None or "." not in dotted:
             return None
         head, _, rest = dotted.partition(".")
-        return rest if head in self.index.numpy_modules else None  # type: ignore[attr-defined]
+        return rest if head in self.index.numpy_modules else None
 
     def numpy_attribute(
         self, node: cst.Attribute, base: str, target: Var | None
@@ -54,13 +66,13 @@ class NumpyLowering:
         if name is not None:
             if name in _CONSTANTS:
                 return Const(f"np.{name}", _CONSTANTS[name])
-            fail(f"np.{name} is not a supported constant", self.index.locate(node))  # type: ignore[attr-defined]
+            fail(f"np.{name} is not a supported constant", self.index.locate(node))
         if node.attr.value == "T":
-            value = self.expr(node.value, base, None)  # type: ignore[attr-defined]
-            return self.emit("T", (value,), target or self.new_var(base, "temp"))  # type: ignore[attr-defined]
+            value = self.expr(node.value, base, None)
+            return self.emit("T", (value,), target or self.new_var(base, "temp"))
         fail(
             f"the attribute .{node.attr.value} is not supported",
-            self.index.locate(node),  # type: ignore[attr-defined]
+            self.index.locate(node),
             "supported on arrays: .T, .shape[k], .sum() .mean() .max() .min()"
             " .prod() .dot() .reshape()",
         )
@@ -82,7 +94,7 @@ class NumpyLowering:
         if name not in NUMPY_FUNCTIONS:
             fail(
                 f"np.{name} is not supported",
-                self.index.locate(func),  # type: ignore[attr-defined]
+                self.index.locate(func),
                 "see the supported-subset table in the README",
             )
         positional = [a.value for a in node.args if a.keyword is None and not a.star]
@@ -91,14 +103,14 @@ class NumpyLowering:
         keywords: list[Const] = []
         for arg in node.args:
             if arg.star:
-                fail("starred arguments are not supported", self.index.locate(arg))  # type: ignore[attr-defined]
+                fail("starred arguments are not supported", self.index.locate(arg))
             if arg.keyword is not None:
                 if arg.keyword.value not in ("axis", "keepdims") or name not in (
                     _REDUCTIONS | {"concatenate", "stack"}
                 ):
                     fail(
                         f"the keyword {arg.keyword.value}= is not supported here",
-                        self.index.locate(arg),  # type: ignore[attr-defined]
+                        self.index.locate(arg),
                     )
                 keywords.append(Const(f"{arg.keyword.value}={self.static(arg.value)}"))
         if name in _REDUCTIONS and len(positional) > 1:
@@ -111,19 +123,25 @@ class NumpyLowering:
             ):
                 fail(
                     f"np.{name} takes a list of arrays here: np.{name}([a, b], axis=0)",
-                    self.index.locate(node),  # type: ignore[attr-defined]
+                    self.index.locate(node),
                 )
             parts = tuple(
-                self.expr(el.value, base, None)  # type: ignore[attr-defined]
+                self.expr(el.value, base, None)
                 for el in positional[0].elements  # type: ignore[union-attr]
             )
-            return self.emit(op, parts + tuple(keywords), target or self.new_var(base, "temp"))  # type: ignore[attr-defined]
+            return self.emit(
+                op, parts + tuple(keywords), target or self.new_var(base, "temp")
+            )
         low, high = NUMPY_FUNCTIONS[name]
         count = len(positional)
         if count < low or (high is not None and count + len(keywords) > high):
-            fail(f"np.{name}() takes {low} array arguments here", self.index.locate(node))  # type: ignore[attr-defined]
-        args = tuple(self.expr(a, base, None) for a in positional)  # type: ignore[attr-defined]
-        return self.emit(op, args + tuple(keywords), target or self.new_var(base, "temp"))  # type: ignore[attr-defined]
+            fail(
+                f"np.{name}() takes {low} array arguments here", self.index.locate(node)
+            )
+        args = tuple(self.expr(a, base, None) for a in positional)
+        return self.emit(
+            op, args + tuple(keywords), target or self.new_var(base, "temp")
+        )
 
     def static(self, node: cst.BaseExpression) -> str:
         """A keyword's value: a literal (ints, tuples of ints, True/False, None)."""
@@ -140,7 +158,7 @@ class NumpyLowering:
             return "(" + ", ".join(items) + ("," if len(items) == 1 else "") + ")"
         fail(
             "axis= and keepdims= take literal values here",
-            self.index.locate(node),  # type: ignore[attr-defined]
+            self.index.locate(node),
         )
         raise AssertionError
 
@@ -151,18 +169,20 @@ class NumpyLowering:
         base: str,
         target: Var | None,
     ) -> Atom:
-        value = self.expr(receiver, base, None)  # type: ignore[attr-defined]
+        value = self.expr(receiver, base, None)
         dims: list[Atom] = []
         for arg in node.args:
             if arg.keyword is not None or arg.star:
-                fail("reshape takes the new shape only", self.index.locate(arg))  # type: ignore[attr-defined]
+                fail("reshape takes the new shape only", self.index.locate(arg))
             items = (
                 [el.value for el in arg.value.elements]
                 if isinstance(arg.value, cst.Tuple)
                 else [arg.value]
             )
-            dims += [self.expr(i, base, None) for i in items]  # type: ignore[attr-defined]
-        return self.emit("reshape", (value, *dims), target or self.new_var(base, "temp"))  # type: ignore[attr-defined]
+            dims += [self.expr(i, base, None) for i in items]
+        return self.emit(
+            "reshape", (value, *dims), target or self.new_var(base, "temp")
+        )
 
     def numpy_subscript(
         self, node: cst.Subscript, base: str, target: Var | None
@@ -174,17 +194,19 @@ class NumpyLowering:
             and len(node.slice) == 1
             and isinstance(node.slice[0].slice, cst.Index)
         ):
-            array = self.expr(node.value.value, base, None)  # type: ignore[attr-defined]
-            axis = self.expr(node.slice[0].slice.value, base, None)  # type: ignore[attr-defined]
-            return self.emit("shape_at", (array, axis), target or self.new_var(base, "temp"))  # type: ignore[attr-defined]
-        array = self.expr(node.value, base, None)  # type: ignore[attr-defined]
+            array = self.expr(node.value.value, base, None)
+            axis = self.expr(node.slice[0].slice.value, base, None)
+            return self.emit(
+                "shape_at", (array, axis), target or self.new_var(base, "temp")
+            )
+        array = self.expr(node.value, base, None)
         pieces: list[str] = []
         values: list[Atom] = []
 
         def bound(part: cst.BaseExpression | None) -> str:
             if part is None:
                 return ""
-            values.append(self.expr(part, base, None))  # type: ignore[attr-defined]
+            values.append(self.expr(part, base, None))
             return "{}"
 
         for element in node.slice:
@@ -199,5 +221,5 @@ class NumpyLowering:
                 pieces.append(text)
         pattern = Const(", ".join(pieces), None)
         return self.emit(
-            "npindex", (array, pattern, *values), target or self.new_var(base, "temp")  # type: ignore[attr-defined]
+            "npindex", (array, pattern, *values), target or self.new_var(base, "temp")
         )

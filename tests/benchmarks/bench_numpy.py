@@ -1,0 +1,157 @@
+"""Gradient time / primal time for NumPy models at 10^3, 10^5 and 10^6 elements.
+
+Not a timed test: prints figures. Each model's data array holds n elements (the
+shapes are in MODELS); both functions are timed with timeit, best of REPEAT runs of
+a call count chosen so each run takes about 20 ms, the primal's and the gradient's
+runs interleaved. Our target is a ratio of at most
+3 at 10^6 elements, where the arrays, not Python's per-statement overhead, set the
+cost. BLAS threading and OPENBLAS_CORETYPE are left as the environment sets them.
+
+Run: python tests/benchmarks/bench_numpy.py
+"""
+
+from __future__ import annotations
+
+import os
+import timeit
+
+import numpy as np
+
+import gradwright
+
+HEADER = "import numpy as np\n\n\n"
+
+LOGISTIC = HEADER + """def loss(w, X, y):
+    z = X @ w
+    p = 1.0 / (1.0 + np.exp(-z))
+    return -np.mean(y * np.log(p) + (1.0 - y) * np.log(1.0 - p))
+"""
+
+LEAST_SQUARES = HEADER + """def loss(x, A, b):
+    r = A @ x - b
+    return r @ r
+"""
+
+TWO_LAYER = HEADER + """def loss(W1, b1, W2, b2, X, Y):
+    H = np.tanh(X @ W1 + b1)
+    out = H @ W2 + b2
+    r = out - Y
+    return np.mean(r * r)
+"""
+
+SOFTMAX = HEADER + """def loss(W, b, X, Y):
+    Z = X @ W + b
+    m = np.max(Z, axis=1, keepdims=True)
+    s = Z - m
+    lse = np.log(np.sum(np.exp(s), axis=1, keepdims=True))
+    return -np.sum(Y * (s - lse)) / X.shape[0]
+"""
+
+ELEMENTWISE = HEADER + """def loss(x, c):
+    u = np.exp(-c * x * x) * np.sin(3.0 * x)
+    return np.sum(u + np.log1p(x * x) + np.sqrt(1.0 + np.abs(x)))
+"""
+
+FEATURES = 10  # columns of every data matrix: rows = n / FEATURES
+
+
+def _logistic(n: int, g: np.random.Generator):
+    X = g.normal(size=(n // FEATURES, FEATURES))
+    y = (g.uniform(size=n // FEATURES) < 0.5).astype(float)
+    return (0.3 * g.normal(size=FEATURES), X, y), ["w"]
+
+
+def _least_squares(n: int, g: np.random.Generator):
+    A = g.normal(size=(n // FEATURES, FEATURES))
+    return (g.normal(size=FEATURES), A, g.normal(size=n // FEATURES)), ["x"]
+
+
+def _two_layer(n: int, g: np.random.Generator):
+    rows, hidden = n // FEATURES, 16
+    args = (
+        0.3 * g.normal(size=(FEATURES, hidden)),
+        0.1 * g.normal(size=hidden),
+        0.3 * g.normal(size=(hidden, 1)),
+        0.1 * g.normal(size=1),
+        g.normal(size=(rows, FEATURES)),
+        g.normal(size=(rows, 1)),
+    )
+    return args, ["W1", "b1", "W2", "b2"]
+
+
+def _softmax(n: int, g: np.random.Generator):
+    rows, classes = n // FEATURES, 10
+    X = g.normal(size=(rows, FEATURES))
+    Y = np.eye(classes)[g.integers(0, classes, size=rows)]
+    W, b = 0.3 * g.normal(size=(FEATURES, classes)), 0.1 * g.normal(size=classes)
+    return (W, b, X, Y), ["W", "b"]
+
+
+def _elementwise(n: int, g: np.random.Generator):
+    return (g.normal(size=n), 0.7), ["x", "c"]
+
+
+#: name, model source, data (n, rng) -> (args, wrt), the shape that holds n elements
+MODELS = [
+    ("logistic regression", LOGISTIC, _logistic, "X (n/10, 10)"),
+    ("least squares", LEAST_SQUARES, _least_squares, "A (n/10, 10)"),
+    ("two-layer tanh net", TWO_LAYER, _two_layer, "X (n/10, 10), 16 hidden"),
+    ("softmax cross-entropy", SOFTMAX, _softmax, "X (n/10, 10), 10 classes"),
+    ("elementwise", ELEMENTWISE, _elementwise, "x (n,)"),
+]
+SIZES = [10**3, 10**5, 10**6]
+REPEAT = 7
+RUN_SECONDS = 0.02
+
+
+def _number(fn, args) -> int:
+    """Calls per run so that one run takes about RUN_SECONDS."""
+    once = min(timeit.repeat(lambda: fn(*args), number=1, repeat=3))
+    return max(1, int(RUN_SECONDS / max(once, 1e-9)))
+
+
+def _best_pair(primal, grad, args) -> tuple[float, float]:
+    """Best time per call of each over REPEAT runs, the two interleaved run by run
+    so that both see the same machine load (other processes, BLAS threads)."""
+    counts = _number(primal, args), _number(grad, args)
+    timers = timeit.Timer(lambda: primal(*args)), timeit.Timer(lambda: grad(*args))
+    best = [float("inf"), float("inf")]
+    for _ in range(REPEAT):
+        for k in (0, 1):
+            best[k] = min(best[k], timers[k].timeit(number=counts[k]) / counts[k])
+    return best[0], best[1]
+
+
+def _load(source: str, wrt: list[str]) -> dict:
+    namespace: dict = {}
+    text = gradwright.generate(source, ["loss"], wrt=wrt)
+    exec(compile(text, "<loss_grad>", "exec"), namespace)
+    return namespace
+
+
+def main() -> None:
+    print(
+        f"numpy {np.__version__}; OPENBLAS_CORETYPE="
+        f"{os.environ.get('OPENBLAS_CORETYPE', '(unset)')}; best of {REPEAT};"
+        f" {os.cpu_count()} CPUs, load average {os.getloadavg()[0]:.2f}"
+    )
+    print(f"{'model':22} {'n':>8} {'primal':>11} {'gradient':>11} {'ratio':>6}  shapes")
+    worst_at_million = 0.0
+    for name, source, data, shapes in MODELS:
+        for n in SIZES:
+            args, wrt = data(n, np.random.default_rng(n))
+            ns = _load(source, wrt)
+            primal, grad = _best_pair(ns["loss"], ns["loss_grad"], args)
+            ratio = grad / primal
+            if n == SIZES[-1]:
+                worst_at_million = max(worst_at_million, ratio)
+            print(
+                f"{name:22} {n:>8.0e} {primal * 1e3:>9.3f}ms {grad * 1e3:>9.3f}ms"
+                f" {ratio:>6.2f}  {shapes}"
+            )
+    verdict = "meets" if worst_at_million <= 3.0 else "misses"
+    print(f"worst ratio at 1e6: {worst_at_million:.2f} ({verdict} the target of 3)")
+
+
+if __name__ == "__main__":
+    main()
