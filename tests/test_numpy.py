@@ -52,8 +52,9 @@ def richardson_gradient(fn, args: tuple, k: int, step: float = 1e-3):
     against it therefore use rtol 1e-7 and an absolute floor of 1e-8 * (|f| + the
     largest partial): the errors seen are ~1e-11 relative, four orders below, while
     a wrong rule (a missing factor, a dropped broadcast sum, a misplaced adjoint) is
-    off by O(1) relative, and a gradient scaled by 1 + 1e-5 already fails. The steps are exact: the denominator is the difference of
-    the two perturbed coordinates as floats, not 2h.
+    off by O(1) relative, and a gradient scaled by 1 + 1e-5 already fails. The
+    steps are exact: the denominator is the difference of the two perturbed
+    coordinates as floats, not 2h.
     """
     base = args[k]
     python_float = isinstance(base, float) and not isinstance(base, np.generic)
@@ -812,9 +813,7 @@ def test_value_bit_identical_to_primal(case, seed):
     primal = ns["f"](*args)
     assert_same_value(value, primal)
     # and the copied primal is the model's own function, result for result
-    model: dict = {}
-    exec(compile(source, "<model>", "exec"), model)
-    assert_same_value(primal, model["f"](*args))
+    assert_same_value(primal, run_source(source)["f"](*args))
 
 
 def test_array_result_returns_the_gradient_of_its_sum():

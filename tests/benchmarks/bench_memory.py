@@ -11,7 +11,7 @@ import tracemalloc
 
 import gradwright
 
-MODEL = '''
+MODEL = """
 def drop(height, drag, dt, steps):
     y = height
     v = 0.0
@@ -20,7 +20,7 @@ def drop(height, drag, dt, steps):
         y = y + dt * v
         v = v + dt * a
     return y * y + v
-'''
+"""
 
 
 def main() -> None:
