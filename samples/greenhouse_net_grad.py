@@ -50,8 +50,11 @@ def _gw_matmul_right(g, a, b):
 
 
 def _gw_shaped(g, x):
-    """An adjoint with the shape of its value (a zero becomes an array of zeros)."""
-    return g if np.shape(g) == np.shape(x) else np.zeros(np.shape(x)) + g
+    """An adjoint with the shape of its value (a zero becomes an array of zeros),
+    in an array of its own that the caller may change."""
+    if np.shape(g) != np.shape(x):
+        return np.zeros(np.shape(x)) + g
+    return np.array(g) if isinstance(g, np.ndarray) else g
 
 
 def humidity_loss(W1, b1, w2, b2, features, humidity):
@@ -69,8 +72,7 @@ def humidity_loss_grad(W1, b1, w2, b2, features, humidity):
     """
     # hidden = np.tanh(features @ W1 + b1)
     hidden_1 = features @ W1
-    hidden_2 = hidden_1 + b1
-    hidden = np.tanh(hidden_2)
+    hidden = np.tanh(hidden_1 + b1)
     # predicted = hidden @ w2 + b2
     predicted_1 = hidden @ w2
     predicted = predicted_1 + b2
@@ -97,11 +99,7 @@ def humidity_loss_grad(W1, b1, w2, b2, features, humidity):
     hidden_bar = _gw_matmul_left(predicted_1_bar, hidden, w2)
     w2_bar = w2_bar + _gw_matmul_right(predicted_1_bar, hidden, w2)
     # hidden = np.tanh(features @ W1 + b1)
-    hidden_2_bar = np.where(
-        np.abs(hidden_2) < 710.0,
-        hidden_bar / np.cosh(hidden_2) / np.cosh(hidden_2),
-        0.0,
-    )
+    hidden_2_bar = hidden_bar * (1.0 - hidden * hidden)
     b1_bar = _gw_unbroadcast(hidden_2_bar, b1)
     W1_bar = W1_bar + _gw_matmul_right(
         _gw_unbroadcast(hidden_2_bar, hidden_1), features, W1

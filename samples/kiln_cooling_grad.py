@@ -54,11 +54,12 @@ def kiln_loss_grad(k_conv, k_rad, start_temp, readings, dt, steps_per_reading):
         # loss += err * err
         loss = loss + err * err
     # return loss / len(readings)
-    value = loss / len(readings)
+    value_1 = len(readings)
+    value = loss / value_1
 
     # reverse sweep
     # return loss / len(readings)
-    loss_bar = 1.0 / len(readings)
+    loss_bar = 1.0 / value_1
     # for reading in readings:
     temp_bar_1 = 0.0
     k_conv_bar = 0.0

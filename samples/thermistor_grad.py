@@ -21,7 +21,8 @@ def fit_loss_grad(a, b, c, resistance, kelvin):
     # ln_r = math.log(resistance)
     ln_r = math.log(resistance)
     # inv_t = a + b * ln_r + c * ln_r**3
-    inv_t = a + b * ln_r + c * ln_r**3
+    inv_t_1 = ln_r**3
+    inv_t = a + b * ln_r + c * inv_t_1
     # err = 1.0 / inv_t - kelvin
     err_1 = 1.0 / inv_t
     err = err_1 - kelvin
@@ -34,7 +35,7 @@ def fit_loss_grad(a, b, c, resistance, kelvin):
     # err = 1.0 / inv_t - kelvin
     inv_t_bar = -err_bar * err_1 / inv_t
     # inv_t = a + b * ln_r + c * ln_r**3
-    c_bar = inv_t_bar * ln_r**3
+    c_bar = inv_t_bar * inv_t_1
     a_bar = inv_t_bar
     b_bar = inv_t_bar * ln_r
     return value, (a_bar, b_bar, c_bar)

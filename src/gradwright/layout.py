@@ -169,20 +169,26 @@ class Layout:
             self.namer.names[pseudo] = self.namer.partials_name(call)
         return pseudo
 
-    def cheap(self, atom: Expr) -> Expr:
-        """``atom`` rebuilt through inactive cheap temporaries (for conditions and
-        loop bounds, which both sweeps print)."""
+    def cheap(self, atom: Expr, everywhere: bool = False) -> Expr:
+        """``atom`` rebuilt through inactive cheap temporaries.
+
+        Conditions, loop bounds and indices (``everywhere``), which both sweeps
+        print, are rebuilt wholly; elsewhere only temporaries made inside a loop
+        are, as recomputing them costs less than saving them per iteration, while
+        one made outside loops is stored once and read.
+        """
         if isinstance(atom, Apply):
-            return Apply(atom.op, tuple(self.cheap(a) for a in atom.args))
+            return Apply(atom.op, tuple(self.cheap(a, everywhere) for a in atom.args))
         if (
             isinstance(atom, Var)
             and atom.kind == "temp"
             and atom not in self.active
             and atom in self.defs
             and self.defs[atom].op in _CHEAP
+            and (everywhere or self.loop_of.get(atom) is not None)
         ):
             let = self.defs[atom]
-            return Apply(let.op, tuple(self.cheap(a) for a in let.args))
+            return Apply(let.op, tuple(self.cheap(a, everywhere) for a in let.args))
         return atom
 
     def _recomputable(self, var: Var, loop: Loop) -> bool:
@@ -223,8 +229,8 @@ class Layout:
     def _reverse_reads(self) -> set[Var]:
         reads: set[Var] = set()
 
-        def collect(expr: Expr, loop: Loop | None) -> None:
-            for node in _walk_values(self.cheap(expr)):
+        def collect(expr: Expr, loop: Loop | None, everywhere: bool = False) -> None:
+            for node in _walk_values(self.cheap(expr, everywhere)):
                 if isinstance(node, Apply):  # a call's partials: a value of its own
                     note(self.partials_of(node.args[0]), loop)  # type: ignore[arg-type]
                 elif isinstance(node, Var) and node not in self.reverse_defined:
@@ -256,19 +262,19 @@ class Layout:
                 if isinstance(stmt, AdjointAssign):
                     collect(stmt.expr, loop)
                 elif isinstance(stmt, ElementAdjoint):
-                    collect(stmt.index, loop)
+                    collect(stmt.index, loop, everywhere=True)
                     collect(stmt.expr, loop)
                     note_root(stmt.root)
                 elif isinstance(stmt, SpreadAdjoint):
                     collect(stmt.expr, loop)
                     note_root(stmt.root)
                 elif isinstance(stmt, ReverseBranch):
-                    collect(stmt.condition, loop)
+                    collect(stmt.condition, loop, everywhere=True)
                     visit(stmt.then, loop)
                     visit(stmt.orelse, loop)
                 else:
                     for bound in (stmt.loop.start, stmt.loop.stop, stmt.loop.step):
-                        collect(bound, loop)
+                        collect(bound, loop, everywhere=True)
                     visit(stmt.body, stmt.loop)
 
         def note_root(root: Var) -> None:
@@ -590,7 +596,7 @@ class Layout:
         def show(atom: Atom) -> str:
             if folded is not None:
                 return self.expr(self.atom_expr(atom, folded))
-            return self.expr(self.cheap(atom))
+            return self.expr(self.cheap(atom, everywhere=True))
 
         start, stop, step = loop.start, loop.stop, loop.step
         if _is_const(step, 1):
@@ -602,7 +608,8 @@ class Layout:
     def slot(self, loop: Loop) -> str:
         """The saved-list index of the current iteration."""
         index = loop.index
-        start, step = self.cheap(loop.start), self.cheap(loop.step)
+        start = self.cheap(loop.start, everywhere=True)
+        step = self.cheap(loop.step, everywhere=True)
         position: Expr = index
         if not _is_const(start, 0):
             position = Apply("sub", (index, start))
@@ -613,7 +620,13 @@ class Layout:
     def trip_count(self, loop: Loop) -> str:
         if _is_const(loop.start, 0) and _is_const(loop.step, 1):
             return self.expr(
-                Apply("mul", (Apply("listlit", (const(0.0),)), self.cheap(loop.stop)))
+                Apply(
+                    "mul",
+                    (
+                        Apply("listlit", (const(0.0),)),
+                        self.cheap(loop.stop, everywhere=True),
+                    ),
+                )
             )
         return f"[0.0] * len(range({self.range_args(loop)}))"
 
@@ -907,7 +920,7 @@ class _Emitter:
             elif isinstance(stmt, ElementAdjoint):
                 operator = "+=" if stmt.accumulate else "="
                 text = (
-                    f"{self.namer.bar_name(stmt.root)}[{self.print(self.layout.cheap(stmt.index))}]"
+                    f"{self.namer.bar_name(stmt.root)}[{self.print(self.layout.cheap(stmt.index, everywhere=True))}]"
                     f" {operator} {self.rprint(self.layout.cheap(stmt.expr))}"
                 )
                 out.statement(stmt.origin, text, depth)
@@ -929,7 +942,7 @@ class _Emitter:
                 if not then_lines and not else_lines:
                     continue
                 out.comment(stmt.origin, depth)
-                condition = self.rprint(self.layout.cheap(stmt.condition))
+                condition = self.rprint(self.layout.cheap(stmt.condition, True))
                 out.code(f"if {condition}:", depth)
                 out.lines.extend(then_lines or ["    " * (depth + 1) + "pass"])
                 if else_lines:

@@ -101,6 +101,24 @@ HELPERS: dict[str, str] = {
     np.put_along_axis(z, where, np.expand_dims(g, -1), axis=-1)
     return np.transpose(z.reshape(moved.shape), np.argsort(order))
 ''',
+    "_gw_unprod": '''def _gw_unprod(g, x, axis, keepdims):
+    """The adjoint of a product over axis: each element gets the product of the
+    others (from running products on both sides, so exact zeros are fine)."""
+    x = np.asarray(x, dtype=float)
+    if axis is None:
+        axis = tuple(range(x.ndim))
+    axes = tuple(a % x.ndim for a in (axis if isinstance(axis, tuple) else (axis,)))
+    rest = [a for a in range(x.ndim) if a not in axes]
+    order = rest + list(axes)
+    moved = np.transpose(x, order)
+    flat = moved.reshape(moved.shape[: len(rest)] + (-1,))
+    ones = np.ones(flat.shape[:-1] + (1,))
+    left = np.cumprod(np.concatenate([ones, flat[..., :-1]], axis=-1), axis=-1)
+    right = np.cumprod(np.concatenate([ones, flat[..., :0:-1]], axis=-1), axis=-1)
+    g = np.squeeze(g, axis=axes) if keepdims else np.asarray(g)
+    others = left * right[..., ::-1] * np.expand_dims(g, -1)
+    return np.transpose(others.reshape(moved.shape), np.argsort(order))
+''',
     "_gw_matmul_left": '''def _gw_matmul_left(g, a, b):
     """The adjoint of a in a @ b (vectors and matrices)."""
     if np.ndim(b) == 1:
@@ -126,8 +144,11 @@ HELPERS: dict[str, str] = {
     return np.take(g, range(start, start + sizes[k]), axis=axis)
 ''',
     "_gw_shaped": '''def _gw_shaped(g, x):
-    """An adjoint with the shape of its value (a zero becomes an array of zeros)."""
-    return g if np.shape(g) == np.shape(x) else np.zeros(np.shape(x)) + g
+    """An adjoint with the shape of its value (a zero becomes an array of zeros),
+    in an array of its own that the caller may change."""
+    if np.shape(g) != np.shape(x):
+        return np.zeros(np.shape(x)) + g
+    return np.array(g) if isinstance(g, np.ndarray) else g
 ''',
 }
 

@@ -149,7 +149,8 @@ _SPECS += [
     *(
         OpSpec(name, "call", name, PREC_ATOM, 1, None)
         for name in (
-            "_gw_unbroadcast _gw_unreduce _gw_unmean _gw_unextreme _gw_matmul_left"
+            "_gw_unbroadcast _gw_unreduce _gw_unmean _gw_unextreme _gw_unprod"
+            " _gw_matmul_left"
             " _gw_matmul_right _gw_part _gw_shaped np.reshape np.shape np.take"
             " np.zeros_like"
         ).split()

@@ -154,11 +154,9 @@ def _reduction(helper: str, *tail: str) -> Rule:
 
 
 def _prod(g: E, out: E, x: E, *extra: E) -> tuple[E | None, ...]:
-    # every element's partial is the product of the others: out / x (x nonzero)
+    # every element's partial is the product of the others (exact at zeros too)
     axis, keepdims = _keywords(extra)
-    return (_helper("_gw_unreduce", g * out, x, axis, keepdims) / x,) + (None,) * len(
-        extra
-    )
+    return (_helper("_gw_unprod", g, x, axis, keepdims),) + (None,) * len(extra)
 
 
 def _index(g: E, out: E, x: E, pattern: E, *values: E) -> tuple[E | None, ...]:
@@ -238,6 +236,10 @@ _SHARED = {
 RULES.update({f"np.{name}": RULES[scalar] for name, scalar in _SHARED.items()})
 RULES.update(
     {
+        # For arrays, speed wins over the last digits in the tails: 1 - out**2 has
+        # an absolute error of a few ulp (relative error grows where |x| > 1),
+        # at a third of the cost of the cosh form the scalar rule uses.
+        "np.tanh": lambda g, out, x: (g * (1.0 - out * out),),
         "np.square": lambda g, out, x: (g * 2.0 * x,),
         "np.where": lambda g, out, c, a, b: (None, where(c, g, 0.0), where(c, 0.0, g)),
         "np.clip": _clip,

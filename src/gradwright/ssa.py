@@ -158,6 +158,9 @@ _COMPARE_OPS: dict[type, str] = {
     cst.NotEqual: "ne",
 }
 
+#: primitives whose result may share memory with an operand (NumPy views)
+_VIEWS = frozenset({"copy", "npindex", "T", "reshape", "np.transpose"})
+
 #: primitives that take or make lists; every other primitive takes numbers
 LIST_OPS = frozenset({"getitem", "setitem", "newlist", "listlit", "len", "sum"})
 
@@ -278,6 +281,8 @@ class _Lowerer(NumpyLowering):
         self.statement_count = itertools.count()
         self.loop_depth = 0
         self.numpy = bool(index.numpy_modules)
+        #: values known to be arrays of their own (see is_fresh)
+        self.fresh: set[Var] = set()
         self.result_arity: int | None = None
         self.return_origins: list[Origin] = []
 
@@ -288,7 +293,14 @@ class _Lowerer(NumpyLowering):
 
     def emit(self, op: str, args: tuple[Atom, ...], target: Var) -> Var:
         self.blocks[-1].append(Let(target, op, args, self.origin))
+        if op not in _VIEWS:
+            self.fresh.add(target)
         return target
+
+    def is_fresh(self, atom: Atom) -> bool:
+        """Whether a value is an array of its own (not a parameter, another name's
+        array, a slice or a view), so that ``x += ...`` changes nothing else."""
+        return isinstance(atom, Const) or atom in self.fresh
 
     def bind_value(self, node: cst.BaseExpression, base: str) -> Var:
         """Evaluate ``node`` into a fresh local value named after ``base``."""
@@ -564,6 +576,8 @@ class _Lowerer(NumpyLowering):
             shape = a.shape if isinstance(a, Var) else "scalar"
             target = self.new_var("value" if is_result else name, "local", shape)
             merges.append(Phi(target, a, b))
+            if self.is_fresh(a) and self.is_fresh(b):
+                self.fresh.add(target)
             self.env[name] = target
         return tuple(merges)
 
@@ -638,6 +652,8 @@ class _Lowerer(NumpyLowering):
             init = before[n]
             shape = init.shape if isinstance(init, Var) else "scalar"
             headers[n] = self.new_var(n, "local", shape)
+            if self.is_fresh(init):  # type: ignore[arg-type]
+                self.fresh.add(headers[n])
             self.env[n] = headers[n]
         index_var = self.new_var(
             name if over_list is None else f"{name}_index", "index"
@@ -828,10 +844,16 @@ class _Lowerer(NumpyLowering):
             fail("unsupported assignment target", self.index.locate(target))
         assert isinstance(target, cst.Name)
         current = self.scalar(self.read_name(target), target)
-        if self.numpy and isinstance(current, Var) and current.kind == "param":
+        if self.numpy and not self.is_fresh(current):
+            what = (
+                "is a parameter"
+                if isinstance(current, Var) and current.kind == "param"
+                else "may share its array with another name (a copy, a slice or a"
+                " view)"
+            )
             fail(
-                f"'{target.value}' is a parameter: `{target.value} "
-                f"{symbol}= ...` would change the caller's array in place",
+                f"'{target.value}' {what}: `{target.value} {symbol}= ...` would"
+                " change that array in place",
                 self.index.locate(stmt),
                 f"write `{target.value} = {target.value} {symbol} ...` to make a new"
                 " one",
