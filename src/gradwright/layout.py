@@ -919,10 +919,9 @@ class _Emitter:
                 out.statement(stmt.origin, f"{bar} {operator} {value}", depth)
             elif isinstance(stmt, ElementAdjoint):
                 operator = "+=" if stmt.accumulate else "="
-                text = (
-                    f"{self.namer.bar_name(stmt.root)}[{self.print(self.layout.cheap(stmt.index, everywhere=True))}]"
-                    f" {operator} {self.rprint(self.layout.cheap(stmt.expr))}"
-                )
+                index = self.print(self.layout.cheap(stmt.index, everywhere=True))
+                value = self.rprint(self.layout.cheap(stmt.expr))
+                text = f"{self.namer.bar_name(stmt.root)}[{index}] {operator} {value}"
                 out.statement(stmt.origin, text, depth)
             elif isinstance(stmt, SpreadAdjoint):
                 bar = self.namer.bar_name(stmt.root)
