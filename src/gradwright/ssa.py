@@ -267,8 +267,11 @@ class _Lowerer(NumpyLowering):
         index: ModuleIndex,
         function: CheckedFunction,
         call_stack: tuple[str, ...],
+        list_params: frozenset[str] = frozenset(),
     ) -> None:
         self.index = index
+        #: parameters used as lists (found while lowering, see _ListParameter)
+        self.list_params = list_params
         self.function = function
         self.call_stack = call_stack + (function.name,)
         self.uids = itertools.count()
@@ -327,6 +330,12 @@ class _Lowerer(NumpyLowering):
                 return "list"
         return "scalar"
 
+    def as_list(self, atom: Atom) -> None:
+        """A parameter first seen as a number turns out to be used as a list."""
+        if isinstance(atom, Var) and atom.kind == "param" and atom.shape == "scalar":
+            if not self.numpy:
+                raise _ListParameter(atom.base)
+
     def scalar(self, atom: Atom, node: cst.CSTNode) -> Atom:
         if isinstance(atom, Var) and atom.shape == "list":
             fail(
@@ -343,7 +352,7 @@ class _Lowerer(NumpyLowering):
 
     def lower(self) -> SSAFunction:
         node = self.function.node
-        lists = set() if self.numpy else _list_uses(node.body)
+        lists = self.list_params
         params = tuple(
             self.new_var(name, "param", "list" if name in lists else "scalar")
             for name in self.function.params
@@ -628,6 +637,7 @@ class _Lowerer(NumpyLowering):
                     " per value",
                 )
             iterable = self.expr(node.iter, name, None)
+            self.as_list(iterable)
             if not (isinstance(iterable, Var) and iterable.shape == "list"):
                 fail(
                     "for-loops run over range(...) or a list",
@@ -897,6 +907,7 @@ class _Lowerer(NumpyLowering):
             return self.numpy_subscript(node, base, target)
         if isinstance(node, cst.Subscript):
             container = self.expr(node.value, base, None)
+            self.as_list(container)
             if not (isinstance(container, Var) and container.shape == "list"):
                 fail("only lists can be indexed", self.index.locate(node.value))
             index = self.subscript_index(node)
@@ -1179,6 +1190,7 @@ class _Lowerer(NumpyLowering):
         if len(node.args) != 1 or node.args[0].keyword or node.args[0].star:
             fail(f"{name}() takes one list here", self.index.locate(node))
         argument = self.expr(node.args[0].value, base, None)
+        self.as_list(argument)
         if not (isinstance(argument, Var) and argument.shape == "list"):
             fail(f"{name}() needs a list", self.index.locate(node.args[0].value))
         return self.emit(name, (argument,), target or self.new_var(base, "temp"))
@@ -1232,7 +1244,7 @@ class _Lowerer(NumpyLowering):
                         f"parameters: {', '.join(p.name.value for p in declared)}",
                     )
                 slots[key] = arg.value
-        list_params = _list_uses(callee.body)
+        list_params = _callee_list_uses(callee)
         args: list[Atom] = []
         for param in declared:
             given = slots.get(param.name.value)
@@ -1325,4 +1337,20 @@ def lower(
     index: ModuleIndex, function: CheckedFunction, call_stack: tuple[str, ...] = ()
 ) -> SSAFunction:
     """``call_stack``: the callers being lowered, to reject recursion where it is."""
-    return _Lowerer(index, function, call_stack).lower()
+    lists: frozenset[str] = frozenset()
+    while True:
+        try:
+            return _Lowerer(index, function, call_stack, lists).lower()
+        except _ListParameter as found:
+            # lowered again with that parameter a list (once per list parameter)
+            lists |= {found.name}
+
+
+class _ListParameter(Exception):
+    def __init__(self, name: str) -> None:
+        super().__init__(name)
+        self.name = name
+
+
+def _callee_list_uses(callee: cst.FunctionDef) -> set[str]:
+    return _list_uses(callee.body)
