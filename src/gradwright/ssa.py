@@ -286,6 +286,8 @@ class _Lowerer(NumpyLowering):
         self.numpy = bool(index.numpy_modules)
         #: values known to be arrays of their own (see is_fresh)
         self.fresh: set[Var] = set()
+        #: `y = x` copies, to find the parameter behind a name used as a list
+        self.copy_of: dict[Var, Atom] = {}
         self.result_arity: int | None = None
         self.return_origins: list[Origin] = []
 
@@ -298,6 +300,8 @@ class _Lowerer(NumpyLowering):
         self.blocks[-1].append(Let(target, op, args, self.origin))
         if op not in _VIEWS:
             self.fresh.add(target)
+        if op == "copy":
+            self.copy_of[target] = args[0]
         return target
 
     def is_fresh(self, atom: Atom) -> bool:
@@ -332,6 +336,8 @@ class _Lowerer(NumpyLowering):
 
     def as_list(self, atom: Atom) -> None:
         """A parameter first seen as a number turns out to be used as a list."""
+        while isinstance(atom, Var) and atom in self.copy_of:
+            atom = self.copy_of[atom]  # `y = x` then `y[0]`: x is the list
         if isinstance(atom, Var) and atom.kind == "param" and atom.shape == "scalar":
             if not self.numpy:
                 raise _ListParameter(atom.base)
@@ -789,6 +795,7 @@ class _Lowerer(NumpyLowering):
         assert isinstance(target.value, cst.Name)
         name = target.value.value
         current = self.read_name(target.value)
+        self.as_list(current)
         if self.numpy:
             what = (
                 "a parameter" if getattr(current, "kind", "") == "param" else "an array"
