@@ -50,8 +50,8 @@ def rig_loss_grad(a, span):
     # loss = sag_err**2
     sag_err_bar = 2.0 * sag_err
     # sag, length = a * (math.cosh(half) - 1.0), 2.0 * a * math.sinh(half)
-    half_bar = length_err_bar * length_1 * sag_1
     a_bar = length_err_bar * length_2 * 2.0
+    half_bar = length_err_bar * length_1 * sag_1
     a_bar += sag_err_bar * sag_2
     half_bar += sag_err_bar * a * length_2
     # half = span / (2.0 * a)

@@ -47,11 +47,11 @@ def call_value_grad(spot, strike, vol, rate, years):
 
     # reverse sweep
     # return spot * n1 - strike * exp(-rate * years) * n2
+    spot_bar = n1
     n2_bar = -value_3
     value_4_bar = -n2 * strike * value_2
     years_bar = value_4_bar * value_1
     rate_bar = -(value_4_bar * years)
-    spot_bar = n1
     # n2 = 0.5 * (1.0 + erf(d2 / SQRT2))
     d2_bar = n2_bar * 0.5641895835477563 * math.exp(-(n2_1 * n2_1)) / SQRT2
     # n1 = 0.5 * (1.0 + erf(d1 / SQRT2))
@@ -64,14 +64,14 @@ def call_value_grad(spot, strike, vol, rate, years):
     # d1 = (log(spot / strike) + (rate + 0.5 * vol * vol) * years) / (vol * root_t)
     d1_5_bar = d1_bar / d1_4
     d1_4_bar = -d1_bar * d1 / d1_4
-    vol_bar += d1_4_bar * root_t
-    root_t_bar += d1_4_bar * vol
+    spot_bar += d1_5_bar / d1_1 / strike
     d1_3_bar = d1_5_bar * years
     years_bar += d1_5_bar * d1_3
     rate_bar += d1_3_bar
     vol_bar += d1_3_bar * d1_2
     vol_bar += d1_3_bar * vol * 0.5
-    spot_bar += d1_5_bar / d1_1 / strike
+    vol_bar += d1_4_bar * root_t
+    root_t_bar += d1_4_bar * vol
     # root_t = sqrt(years)
     years_bar += 0.5 * root_t_bar / root_t
     return value, (spot_bar, vol_bar, rate_bar, years_bar)

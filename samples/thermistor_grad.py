@@ -35,7 +35,7 @@ def fit_loss_grad(a, b, c, resistance, kelvin):
     # err = 1.0 / inv_t - kelvin
     inv_t_bar = -err_bar * err_1 / inv_t
     # inv_t = a + b * ln_r + c * ln_r**3
-    c_bar = inv_t_bar * inv_t_1
     a_bar = inv_t_bar
     b_bar = inv_t_bar * ln_r
+    c_bar = inv_t_bar * inv_t_1
     return value, (a_bar, b_bar, c_bar)

@@ -85,6 +85,59 @@ def defined_in(statements: Iterable[Stmt]) -> set[Var]:
     return found
 
 
+def _source_order(statements: tuple[Stmt, ...]) -> list[Stmt]:
+    """The statements in reverse order, each source statement's primitives taken
+    from the outermost down, left operand first.
+
+    Any order that handles a temporary after its one user is valid; this one makes
+    ``a + b * t + c * u`` give ``a_bar``, ``b_bar``, ``c_bar`` in the order of the
+    source.
+    """
+    out: list[Stmt] = []
+    position = len(statements)
+    while position > 0:
+        end = position
+        origin = getattr(statements[end - 1], "origin", None)
+        start = end
+        while (
+            start > 0
+            and isinstance(statements[start - 1], Let)
+            and (statements[start - 1].origin == origin)  # type: ignore[union-attr]
+        ):
+            start -= 1
+        if start == end:  # a branch or a loop
+            out.append(statements[end - 1])
+            position = end - 1
+            continue
+        group: list[Let] = list(statements[start:end])  # type: ignore[arg-type]
+        out += _tree_order(group)
+        position = start
+    return out
+
+
+def _tree_order(group: list[Let]) -> list[Let]:
+    temps = {let.target: let for let in group if let.target.kind == "temp"}
+    uses: dict[Var, int] = {}
+    for let in group:
+        for arg in let.args:
+            if isinstance(arg, Var) and arg in temps:
+                uses[arg] = uses.get(arg, 0) + 1
+    if any(n != 1 for n in uses.values()):
+        return list(reversed(group))  # not a tree: plain reverse order
+    ordered: list[Let] = []
+
+    def visit(let: Let) -> None:
+        ordered.append(let)
+        for arg in let.args:
+            if isinstance(arg, Var) and arg in temps:
+                visit(temps[arg])
+
+    roots = [let for let in group if let.target not in uses]
+    for root in reversed(roots):
+        visit(root)
+    return ordered if len(ordered) == len(group) else list(reversed(group))
+
+
 def _is_active(atom: Atom, active: set[Var]) -> bool:
     return isinstance(atom, Var) and atom in active
 
@@ -194,7 +247,7 @@ class _Reverse:
 
     def block(self, statements: tuple[Stmt, ...]) -> list[ReverseStmt]:
         out: list[ReverseStmt] = []
-        for stmt in reversed(statements):
+        for stmt in _source_order(statements):
             if isinstance(stmt, Let):
                 self.let(stmt, out)
             elif isinstance(stmt, Branch):
