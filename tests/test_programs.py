@@ -1011,3 +1011,52 @@ def f(cs):
     # both forms are 2 cs0 cs1 or 3 cs0 cs1 (worked by hand): [w cs1, w cs0]
     weight = 2.0 if "+" in body else 3.0
     assert cs_bar == [weight * 3.0, weight * 2.0]
+
+
+NESTED_RETURNS = """
+def m(x, y):
+    if x > y:
+        if x > 2.0:
+            return x
+    return y * x
+
+
+def n(x, y):
+    if x > y:
+        z = x
+    else:
+        if x < 0.0:
+            return y
+        z = y
+    return z * x
+
+
+def p(x, y):
+    if x > y:
+        if x > 2.0:
+            return x
+        x = x * 2.0
+    y = y + 1.0
+    return y * x
+"""
+
+# Closed forms by hand on each path (a return in a nested if ends only its own path).
+NESTED_CASES = [
+    ("m", (3.0, 0.5), 3.0, (1.0, 0.0)),
+    ("m", (1.5, 0.5), 0.75, (0.5, 1.5)),
+    ("m", (0.2, 0.5), 0.1, (0.5, 0.2)),
+    ("n", (1.0, 0.5), 1.0, (2.0, 0.0)),
+    ("n", (-1.0, 0.5), 0.5, (0.0, 1.0)),
+    ("n", (0.2, 0.5), 0.1, (0.5, 0.2)),
+    ("p", (3.0, 0.5), 3.0, (1.0, 0.0)),
+    ("p", (1.5, 0.5), 4.5, (3.0, 3.0)),
+    ("p", (0.2, 0.5), 0.30000000000000004, (1.5, 0.2)),
+]
+
+
+@pytest.mark.parametrize(("name", "point", "value", "grads"), NESTED_CASES)
+def test_return_in_a_nested_if_ends_only_its_path(name, point, value, grads):
+    ns = build(NESTED_RETURNS, name)
+    got_value, got = ns[f"{name}_grad"](*point)
+    assert got_value == ns[name](*point) == pytest.approx(value, rel=1e-15)
+    assert got == pytest.approx(grads, rel=1e-15, abs=0.0)

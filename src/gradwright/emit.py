@@ -20,11 +20,11 @@ from . import __version__
 from .formatting import format_function, format_statement
 from .frontend import CheckedFunction, ModuleIndex
 from .ir import ReverseSweep, SSAFunction, Var
-from .sweeps import lay_out
 from .naming import Namer
 from .numpy_support import REVERSE_SPELLING
 from .numpy_support import helper_sources as numpy_helper_sources
 from .printer import Printer
+from .sweeps import lay_out
 from .targets import (
     DEFAULT_TARGET,
     Target,

@@ -43,6 +43,7 @@ from .syntax import (
     _else_statements,
     _is_docstring,
     _keyword_span,
+    _may_return,
     _normalize_number,
     _returns_tuple,
     _statement_text,
@@ -208,17 +209,29 @@ class _Lowerer(NumpyLowering):
 
     # -- statements ---------------------------------------------------------------
 
-    def sequence(self, statements: list[cst.CSTNode]) -> bool:
-        """Lower statements in order; True when every path through them returned."""
+    def sequence(
+        self,
+        statements: list[cst.CSTNode],
+        after: tuple[list[cst.CSTNode], ...] = (),
+    ) -> bool:
+        """Lower statements in order; True when every path through them returned.
+
+        ``after`` is what runs next on paths that fall through (the statements
+        after enclosing ``if``s that have a return in them), innermost first: an
+        ``if`` that may return takes the rest into each of its branches, so that
+        it runs only on the paths that did not return.
+        """
         for position, stmt in enumerate(statements):
             if isinstance(stmt, cst.If):
-                rest = statements[position + 1 :]
-                returned, consumed = self.if_statement(stmt, rest, "if")
-                if returned and not consumed and rest:
-                    self.unreachable(rest[0])
-                if consumed or returned:
-                    return returned
-                continue
+                if not _may_return([stmt]):
+                    self.if_statement(stmt, (), "if")
+                    continue
+                if _always_returns([stmt]) and position + 1 < len(statements):
+                    self.unreachable(statements[position + 1])
+                local = list(statements[position + 1 :])
+                return self.if_statement(
+                    stmt, ((local,) if local else ()) + after, "if"
+                )
             if isinstance(stmt, cst.For):
                 self.for_statement(stmt)
                 continue
@@ -227,7 +240,7 @@ class _Lowerer(NumpyLowering):
                 if position + 1 < len(statements):
                     self.unreachable(statements[position + 1])
                 return True
-        return False
+        return self.sequence(after[0], after[1:]) if after else False
 
     def unreachable(self, stmt: cst.CSTNode) -> None:
         fail(
@@ -316,44 +329,23 @@ class _Lowerer(NumpyLowering):
         return self.scalar(self.expr(test, "cond", None), test)
 
     def if_statement(
-        self, node: cst.If, rest: list[cst.CSTNode], keyword: str
-    ) -> tuple[bool, bool]:
-        """Lower an if; returns (every path returned, ``rest`` was lowered too).
-
-        When one branch always returns, the statements after the if run only on the
-        other path, so they are lowered into that branch.
-        """
+        self, node: cst.If, rest: tuple[list[cst.CSTNode], ...], keyword: str
+    ) -> bool:
+        """Lower an if, with ``rest`` lowered into each branch that falls through;
+        True when every path returned."""
         self.set_origin(f"{keyword} {_statement_text(self.index, node.test)}:")
         origin = self.origin
         condition = self.condition(node.test)
-        then_statements = _block_statements(node.body)
-        else_statements = _else_statements(node)
-        then_returns = _always_returns(then_statements)
-        else_returns = _always_returns(else_statements)
-        consumed = False
-        if then_returns and not else_returns and rest:
-            else_statements, consumed = else_statements + rest, True
-        elif else_returns and not then_returns and rest:
-            then_statements, consumed = then_statements + rest, True
         before = dict(self.env)
         self.blocks.append([])
-        if node.orelse is not None and isinstance(node.orelse, cst.If):
-            pass
-        returned_then = self.sequence(then_statements)
+        returned_then = self.sequence(_block_statements(node.body), rest)
         then_block, then_env = self.blocks.pop(), self.env
         self.env = dict(before)
         self.blocks.append([])
         if isinstance(node.orelse, cst.If):
-            nested_rest = else_statements[1:]
-            returned_else, nested_consumed = self.if_statement(
-                node.orelse, nested_rest, "elif"
-            )
-            if nested_rest and not nested_consumed:
-                returned_else = (
-                    self.sequence(nested_rest) if not returned_else else True
-                )
+            returned_else = self.if_statement(node.orelse, rest, "elif")
         else:
-            returned_else = self.sequence(else_statements)
+            returned_else = self.sequence(_else_statements(node), rest)
         else_block, else_env = self.blocks.pop(), self.env
         self.env = dict(before)
         merges = self.merge(before, then_env, else_env, returned_then, returned_else)
@@ -361,7 +353,7 @@ class _Lowerer(NumpyLowering):
         self.blocks[-1].append(
             Branch(condition, tuple(then_block), tuple(else_block), merges, origin)
         )
-        return returned_then and returned_else, consumed
+        return returned_then and returned_else
 
     def merge(
         self,

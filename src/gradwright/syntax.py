@@ -168,6 +168,19 @@ def _always_returns(statements: list[cst.CSTNode]) -> bool:
     return False
 
 
+def _may_return(statements: list[cst.CSTNode]) -> bool:
+    """Whether some path through the statements returns (loops cannot)."""
+    for stmt in statements:
+        if isinstance(stmt, cst.Return):
+            return True
+        if isinstance(stmt, cst.If) and (
+            _may_return(_block_statements(stmt.body))
+            or _may_return(_else_statements(stmt))
+        ):
+            return True
+    return False
+
+
 def _assigned_names(statements: list[cst.CSTNode]) -> dict[str, None]:
     """Every name a run of statements binds, nested blocks included, in order.
 
