@@ -568,3 +568,27 @@ def test_gen_and_build_never_run_the_model(tmp_path: Path) -> None:
     # verify runs the generated module, which copies only the function
     assert cli("verify", "models/side.py", "f", cwd=root).code == 0
     assert not marker.exists()
+
+
+def test_build_diff_alone_reports_what_would_change(tmp_path, monkeypatch, capsys):
+    # review finding: `build --diff` without --check said "unchanged" for a stale one
+    from gradwright.cli import main
+
+    model = tmp_path / "m.py"
+    model.write_text("def f(x):\n    return x * x\n", encoding="utf-8")
+    (tmp_path / "pyproject.toml").write_text(
+        '[[tool.gradwright.targets]]\nsource = "m.py"\nfunctions = ["f"]\n'
+        'output = "m_grad.py"\n',
+        encoding="utf-8",
+    )
+    monkeypatch.chdir(tmp_path)
+    assert main(["build", "-q"]) == 0
+    before = (tmp_path / "m_grad.py").read_bytes()
+    model.write_text("def f(x):\n    return 3.0 * x * x\n", encoding="utf-8")
+    capsys.readouterr()
+    assert main(["build", "--diff"]) == 0
+    out = capsys.readouterr().out
+    assert "+    # return 3.0 * x * x" in out
+    assert "would change m_grad.py" in out and "unchanged" not in out
+    assert "build --diff: 1 target: 1 would change" in out
+    assert (tmp_path / "m_grad.py").read_bytes() == before  # nothing written

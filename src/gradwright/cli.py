@@ -323,10 +323,10 @@ def _build(args: argparse.Namespace) -> int:
         report.status(word, labels)
         if diagnostic is not None:
             report.line(diagnostic, error=True)
-    order = ("generated", "stale", "unchanged", "failed")
+    order = ("generated", "would change", "stale", "unchanged", "failed")
     parts = [f"{counts[w]} {w}" for w in order if counts.get(w)]
     total = len(project.targets)
-    mode = "build --check" if args.check else "build"
+    mode = "build --check" if args.check else "build --diff" if args.diff else "build"
     report.line(
         f"{mode}: {total} target{'s' if total != 1 else ''}: {', '.join(parts)}"
     )
@@ -350,8 +350,10 @@ def _build_target(
         artifacts = render(job)
         if args.check or args.diff:
             stale = _compare(artifacts, args.diff)
-            if args.check and stale:
-                return "stale", [a.label for a in stale], None
+            if stale:
+                # --diff alone shows what building would change, and exits 0
+                status = "stale" if args.check else "would change"
+                return status, [a.label for a in stale], None
             return "unchanged", [artifacts[0].label], None
         for artifact in artifacts:
             check_overwrite(artifact, args.force)
