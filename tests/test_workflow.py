@@ -587,8 +587,9 @@ def test_build_diff_alone_reports_what_would_change(tmp_path, monkeypatch, capsy
     model.write_text("def f(x):\n    return 3.0 * x * x\n", encoding="utf-8")
     capsys.readouterr()
     assert main(["build", "--diff"]) == 0
-    out = capsys.readouterr().out
-    assert "+    # return 3.0 * x * x" in out
-    assert "would change m_grad.py" in out and "unchanged" not in out
-    assert "build --diff: 1 target: 1 would change" in out
+    captured = capsys.readouterr()
+    assert "+    # return 3.0 * x * x" in captured.out
+    report = captured.out + captured.err
+    assert "would change m_grad.py" in report and "unchanged" not in report
+    assert "build --diff: 1 target: 1 would change" in report
     assert (tmp_path / "m_grad.py").read_bytes() == before  # nothing written
