@@ -33,7 +33,6 @@ def kiln_loss_grad(k_conv, k_rad, start_temp, readings, dt, steps_per_reading):
     err_saved = [0.0] * len(readings)
     temp_1_partials_saved_by_reading_index = [0.0] * len(readings)
     for reading_index in range(len(readings)):
-        # for reading in readings:
         reading = readings[reading_index]
         # for _ in range(steps_per_reading):
         temp_1_partials_saved = [0.0] * steps_per_reading
@@ -67,7 +66,6 @@ def kiln_loss_grad(k_conv, k_rad, start_temp, readings, dt, steps_per_reading):
     for reading_index in reversed(range(len(readings))):
         err = err_saved[reading_index]
         temp_1_partials_saved = temp_1_partials_saved_by_reading_index[reading_index]
-        # for reading in readings:
         temp_bar = temp_bar_1
         # loss += err * err
         err_bar = 2.0 * (loss_bar * err)
@@ -81,7 +79,6 @@ def kiln_loss_grad(k_conv, k_rad, start_temp, readings, dt, steps_per_reading):
             temp_bar += temp_1_bar * temp_1_partials[0]
             k_conv_bar += temp_1_bar * temp_1_partials[1]
             k_rad_bar += temp_1_bar * temp_1_partials[2]
-        # for reading in readings:
         temp_bar_1 = temp_bar
     # temp = start_temp
     start_temp_bar = temp_bar_1

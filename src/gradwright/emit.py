@@ -141,6 +141,8 @@ def render_function(
     namer = Namer(reserved)
     for param in ssa.params:
         namer.name(param)
+    for param in sweep.wrt:
+        namer.bar_name(param)  # the documented x_bar names come first
     is_vector = ssa.result.is_tuple
     seed_name = ""
     seed_unpack = ""

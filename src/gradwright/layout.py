@@ -533,32 +533,46 @@ class Layout:
                     current[phi.exit.base] = phi.exit
 
     def _name_carries(self, statements: Iterable[ReverseStmt]) -> None:
-        """A loop-carried adjoint and the adjoint of the value at the start of the
-        iteration share one name (``x_bar``) when no statement reads the carried
-        one after the other is first written: the update then happens in place."""
+        """One name for an adjoint that flows through a loop where that is safe.
+
+        The carried adjoint takes the name of the adjoint it hands over to after
+        the loop (``x_bar`` for a parameter) when that hand-over is its first write,
+        and of the value after the loop; the adjoint of the value at the start of an
+        iteration shares it too when no statement reads the carried one after the
+        other is first written, so the update happens in place.
+        """
         carries = dict(self.sweep.carries)
-        for stmt in statements:
+        statements = list(statements)
+        for position, stmt in enumerate(statements):
             if isinstance(stmt, ReverseBranch):
                 self._name_carries(stmt.then)
                 self._name_carries(stmt.orelse)
             elif isinstance(stmt, ReverseLoop):
                 self._name_carries(stmt.body)
                 body = list(stmt.body)
-                headers = {phi.target for phi in stmt.loop.carried}
-                for carry, header in carries.items():
-                    if carry in self.namer.bar_names or header not in headers:
+                for phi in stmt.loop.carried:
+                    carry = next(
+                        (c for c, h in carries.items() if h == phi.target), None
+                    )
+                    if carry is None or carry in self.namer.bar_names:
                         continue
-                    name = self.namer.bar_name(header)
-                    if _writes_then_no_read(body, header, carry):
-                        self.namer.bar_names[carry] = name
-                    # the value after the loop hands its adjoint to the carried one
-                    for phi in stmt.loop.carried:
-                        if phi.target == header and phi.exit is not None:
-                            exit_bar = self.namer.bar_names.get(phi.exit)
-                            if exit_bar is None:
-                                self.namer.bar_names[phi.exit] = self.namer.bar_name(
-                                    carry
-                                )
+                    handed = _first_write_of(statements[position + 1 :], phi.first)
+                    if handed is not None and handed.expr == Bar(carry):
+                        name = self.namer.bar_name(phi.first)  # type: ignore[arg-type]
+                    else:
+                        # the start-of-iteration value's own name, claimed for the
+                        # carried adjoint (that value shares it only if safe)
+                        wanted = f"{self.namer.name(phi.target)}_bar"
+                        taken = wanted in self.namer.taken
+                        name = self.namer.fresh(wanted) if taken else wanted
+                        self.namer.taken.add(name)
+                    self.namer.bar_names[carry] = name
+                    if phi.exit is not None and phi.exit not in self.namer.bar_names:
+                        self.namer.bar_names[phi.exit] = name
+                    if phi.target in self.namer.bar_names:
+                        continue
+                    if _writes_then_no_read(body, phi.target, carry):
+                        self.namer.bar_names[phi.target] = name
 
     def tape_name(self, loop: Loop, var: Var) -> str:
         key = (loop, var)
@@ -619,6 +633,17 @@ class Layout:
                 )
             )
         return f"[0.0] * len(range({self.range_args(loop)}))"
+
+
+def _first_write_of(statements: list[ReverseStmt], var: Atom) -> AdjointAssign | None:
+    """The first statement of a block that assigns ``var``'s adjoint, if it is a
+    plain assignment at the block's top level (anything else: None)."""
+    for stmt in statements:
+        if isinstance(stmt, AdjointAssign) and stmt.var == var:
+            return None if stmt.accumulate else stmt
+        if isinstance(stmt, (ReverseBranch, ReverseLoop)) and _writes(stmt, var, var):  # type: ignore[arg-type]
+            return None
+    return None
 
 
 def _writes(stmt: ReverseStmt, var: Var, carry: Var) -> bool:

@@ -43,8 +43,12 @@ class _Lines:
     def __init__(self) -> None:
         self.lines: list[str] = []
         self.last_origin: dict[int, Origin | None] = {}
+        #: the statement each open block's header line quotes, by depth
+        self.header: dict[int, Origin | None] = {}
 
     def comment(self, origin: Origin, depth: int) -> None:
+        if self.header.get(depth) == origin:
+            return  # the block's own header already quotes it
         if self.last_origin.get(depth) != origin:
             self.lines.append("    " * depth + f"# {origin.text}")
             self.last_origin[depth] = origin
@@ -58,8 +62,9 @@ class _Lines:
         self.comment(origin, depth)
         self.code(text, depth)
 
-    def open_block(self, depth: int) -> None:
+    def open_block(self, depth: int, origin: Origin | None = None) -> None:
         self.last_origin[depth + 1] = None
+        self.header[depth + 1] = origin
 
 
 class _Emitter:
@@ -160,7 +165,8 @@ class _Emitter:
         for block, pick in ((branch.then, 0), (branch.orelse, 1)):
             side = _Lines()
             side.last_origin = dict(out.last_origin)
-            side.open_block(depth)
+            side.header = dict(out.header)
+            side.open_block(depth, branch.origin)
             self.forward_block(block, depth + 1, side, loop)
             for phi in live_merges:
                 self.copy(
@@ -208,7 +214,7 @@ class _Emitter:
             f"for {self.namer.name(loop.index)} in range({self.range_text(loop)}):",
             depth,
         )
-        out.open_block(depth)
+        out.open_block(depth, loop.origin)
         for phi in loop.carried:
             if phi.target in layout.tapes.get(loop, []):
                 name = self.namer.name(phi.target)
@@ -278,7 +284,8 @@ class _Emitter:
                 for block in (stmt.then, stmt.orelse):
                     side = _Lines()
                     side.last_origin = dict(out.last_origin)
-                    side.open_block(depth)
+                    side.header = dict(out.header)
+                    side.open_block(depth, stmt.origin)
                     self.reverse_block(block, depth + 1, side)
                     sides.append(side.lines)
                 then_lines, else_lines = sides
@@ -304,7 +311,7 @@ class _Emitter:
             f"for {index} in reversed(range({layout.range_args(loop)})):",
             depth,
         )
-        out.open_block(depth)
+        out.open_block(depth, stmt.origin)
         slot = layout.slot(loop)
         for var in layout.tapes.get(loop, []):
             self.restored.add(self.namer.name(var))
