@@ -240,10 +240,6 @@ def render_function(
     return rendered, printer.modules_used
 
 
-def _uses_math_module(primal_code: str, index: ModuleIndex) -> bool:
-    return any(f"{alias}." in primal_code for alias in index.math_modules)
-
-
 def render_module(
     index: ModuleIndex,
     compiled: list[Compiled],

@@ -95,6 +95,11 @@ def parse_module(source: str, path: str) -> ModuleIndex:
     return _index(path, source, parsed)
 
 
+def dotted_name(node: cst.BaseExpression) -> str | None:
+    """``a.b.c`` for a chain of attribute accesses on a name, else None."""
+    return _dotted(node)
+
+
 def _dotted(node: cst.BaseExpression) -> str | None:
     if isinstance(node, cst.Name):
         return node.value

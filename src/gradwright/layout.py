@@ -254,10 +254,8 @@ class Layout:
                 elif isinstance(stmt, ElementAdjoint):
                     collect(stmt.index, loop, everywhere=True)
                     collect(stmt.expr, loop)
-                    note_root(stmt.root)
                 elif isinstance(stmt, SpreadAdjoint):
                     collect(stmt.expr, loop)
-                    note_root(stmt.root)
                 elif isinstance(stmt, ReverseBranch):
                     collect(stmt.condition, loop, everywhere=True)
                     visit(stmt.then, loop)
@@ -266,9 +264,6 @@ class Layout:
                     for bound in (stmt.loop.start, stmt.loop.stop, stmt.loop.step):
                         collect(bound, loop, everywhere=True)
                     visit(stmt.body, stmt.loop)
-
-        def note_root(root: Var) -> None:
-            pass
 
         visit(self.sweep.statements, None)
         for root in self.sweep.list_roots:
@@ -453,9 +448,6 @@ class Layout:
     # -- names --------------------------------------------------------------------
 
     def _name_all(self) -> None:
-        for var, root in self.roots.items():
-            if var != root and var.kind != "param":
-                pass
         current: dict[str, Var] = {p.base: p for p in self.function.params}
         self._name_block(self.function.body, current)
 

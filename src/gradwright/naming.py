@@ -56,8 +56,12 @@ class Namer:
         known = table.get(var)
         if known is not None:
             return known
-        wanted = f"{self.name(var)}_{suffix}"
+        chosen = self.claim(f"{self.name(var)}_{suffix}")
+        table[var] = chosen
+        return chosen
+
+    def claim(self, wanted: str) -> str:
+        """``wanted`` if no one has it yet, else a fresh variant; taken either way."""
         chosen = wanted if wanted not in self.taken else self.fresh(wanted)
         self.taken.add(chosen)
-        table[var] = chosen
         return chosen

@@ -9,6 +9,7 @@ from __future__ import annotations
 
 from collections import Counter
 from collections.abc import Iterable, Iterator
+from dataclasses import replace
 
 from .algebra import simplify
 from .ir import (
@@ -128,15 +129,7 @@ def inline_adjoints(sweep: ReverseSweep) -> ReverseSweep:
                     out.append(ReverseLoop(stmt.loop, body, stmt.origin))
         return tuple(out)
 
-    return ReverseSweep(
-        block(sweep.statements),
-        sweep.wrt,
-        sweep.unused_wrt,
-        sweep.list_roots,
-        sweep.roots,
-        sweep.seeds,
-        sweep.carries,
-    )
+    return replace(sweep, statements=block(sweep.statements))
 
 
 def _map_exprs(
@@ -196,12 +189,4 @@ def reuse_forward_values(sweep: ReverseSweep, function: SSAFunction) -> ReverseS
 
     if not known:
         return sweep
-    return ReverseSweep(
-        _map_exprs(sweep.statements, change),
-        sweep.wrt,
-        sweep.unused_wrt,
-        sweep.list_roots,
-        sweep.roots,
-        sweep.seeds,
-        sweep.carries,
-    )
+    return replace(sweep, statements=_map_exprs(sweep.statements, change))

@@ -12,6 +12,7 @@ import libcst as cst
 
 from .diagnostics import fail
 from .frontend import ModuleIndex
+from .frontend import dotted_name as _dotted
 from .ir import Atom, Const, Var
 from .primitives import NUMPY_FUNCTIONS
 
@@ -26,15 +27,6 @@ _METHODS = {
 }
 _REDUCTIONS = frozenset({"sum", "mean", "prod", "max", "min", "amax", "amin"})
 _CONSTANTS = {"pi": 3.141592653589793, "e": 2.718281828459045, "inf": float("inf")}
-
-
-def _dotted(node: cst.BaseExpression) -> str | None:
-    if isinstance(node, cst.Name):
-        return node.value
-    if isinstance(node, cst.Attribute):
-        head = _dotted(node.value)
-        return None if head is None else f"{head}.{node.attr.value}"
-    return None
 
 
 class NumpyLowering:

@@ -145,9 +145,7 @@ class _Emitter:
         root = self.layout.roots.get(var, var)
         return any(v in self.layout.live for v in self.layout.versions[root])
 
-    def copy(
-        self, target: Var, source: Atom, origin: Origin, depth: int, out: _Lines
-    ) -> None:
+    def copy(self, target: Var, source: Atom, depth: int, out: _Lines) -> None:
         if target.shape == "list":
             return
         name = self.namer.name(target)
@@ -172,7 +170,6 @@ class _Emitter:
                 self.copy(
                     phi.target,
                     phi.first if pick == 0 else phi.second,
-                    branch.origin,
                     depth + 1,
                     side,
                 )
@@ -204,7 +201,7 @@ class _Emitter:
         out.comment(loop.origin, depth)
         for phi in loop.carried:
             if phi.target in layout.live:
-                self.copy(phi.target, phi.first, loop.origin, depth, out)
+                self.copy(phi.target, phi.first, depth, out)
         for saved in layout.saved_lists(loop):
             out.code(f"{saved} = {layout.trip_count(loop)}", depth)
             if enclosing is not None:
@@ -227,7 +224,7 @@ class _Emitter:
         self.forward_block(loop.body, depth + 1, out, loop)
         for phi in loop.carried:
             if phi.target in layout.live:
-                self.copy(phi.target, phi.second, loop.origin, depth + 1, out)
+                self.copy(phi.target, phi.second, depth + 1, out)
         if len(out.lines) == size and not layout.tapes.get(loop):
             out.code("pass", depth + 1)
         out.last_origin[depth] = None
