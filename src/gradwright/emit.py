@@ -147,8 +147,7 @@ def render_function(
     seed_name = ""
     seed_unpack = ""
     if is_vector:
-        seed_name = "seed" if "seed" not in namer.taken else namer.fresh("seed")
-        namer.taken.add(seed_name)
+        seed_name = namer.claim("seed")
         names = [namer.name(seed) for seed in sweep.seeds]
         seed_unpack = (
             f"{', '.join(names)}{',' if len(names) == 1 else ''} = {seed_name}"

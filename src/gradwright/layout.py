@@ -290,11 +290,7 @@ class Layout:
         key = (loop, inner)
         known = self.by_names.get(key)
         if known is None:
-            wanted = f"{inner}_by_{self.namer.name(loop.index)}"
-            known = (
-                wanted if wanted not in self.namer.taken else self.namer.fresh(wanted)
-            )
-            self.namer.taken.add(known)
+            known = self.namer.claim(f"{inner}_by_{self.namer.name(loop.index)}")
             self.by_names[key] = known
         return known
 
@@ -554,10 +550,7 @@ class Layout:
                     else:
                         # the start-of-iteration value's own name, claimed for the
                         # carried adjoint (that value shares it only if safe)
-                        wanted = f"{self.namer.name(phi.target)}_bar"
-                        taken = wanted in self.namer.taken
-                        name = self.namer.fresh(wanted) if taken else wanted
-                        self.namer.taken.add(name)
+                        name = self.namer.claim(f"{self.namer.name(phi.target)}_bar")
                     self.namer.bar_names[carry] = name
                     if phi.exit is not None and phi.exit not in self.namer.bar_names:
                         self.namer.bar_names[phi.exit] = name
@@ -570,11 +563,7 @@ class Layout:
         key = (loop, var)
         known = self.tape_names.get(key)
         if known is None:
-            wanted = f"{self.namer.name(var)}_saved"
-            known = (
-                wanted if wanted not in self.namer.taken else self.namer.fresh(wanted)
-            )
-            self.namer.taken.add(known)
+            known = self.namer.claim(f"{self.namer.name(var)}_saved")
             self.tape_names[key] = known
         return known
 

@@ -374,8 +374,7 @@ def lay_out(
     # a returned value whose name the reverse sweep reuses is kept aside first
     for k, value in enumerate(result):
         if isinstance(value, Var) and namer.name(value) in emitter.restored:
-            keep = "value" if "value" not in namer.taken else namer.fresh("value")
-            namer.taken.add(keep)
+            keep = namer.claim("value")
             forward.append(f"    # {function.result.origin.text}")
             forward.append(format_statement(f"{keep} = {namer.name(value)}", 1))
             result[k] = Const(keep, None)
