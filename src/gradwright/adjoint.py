@@ -288,8 +288,14 @@ class _Reverse:
                 part.node if previous is None else Apply("add", (previous, part.node))
             )
         for var, total in grouped.items():
-            if self.numpy and op in BROADCASTING:
+            others = [a for a in args if a != var]
+            if (
+                self.numpy
+                and op in BROADCASTING
+                and any(isinstance(a, Var) for a in others)
+            ):
                 # an operand broadcast against a larger one gets its adjoint summed
+                # (against constants only, it has the result's shape already)
                 total = Apply("_gw_unbroadcast", (total, var))
             self.contribute(var, total, origin, out)
 
