@@ -1053,3 +1053,13 @@ def test_the_standalone_check_can_fail(tmp_path):
     assert "import gradwright" in text
     done = _run_child(tmp_path, text)
     assert done.returncode != 0 and "gradwright is not available here" in done.stderr
+
+
+def test_new_axis_index_is_a_located_error():
+    # review finding: b[:, None] said "None is not a number"
+    source = "import numpy as np\n\n\ndef f(b, x):\n    return np.sum(b[:, None] * x)\n"
+    with pytest.raises(gradwright.GradwrightError) as caught:
+        gradwright.generate(source, ["f"], path="model.py")
+    text = caught.value.diagnostic.render()
+    assert text.startswith("model.py:5:24: error: indexing with None (np.newaxis)")
+    assert "hint: use .reshape(...) to add the axis" in text

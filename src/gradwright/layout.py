@@ -172,7 +172,7 @@ class Layout:
         if (
             isinstance(atom, Var)
             and atom.kind == "temp"
-            and atom not in self.active
+            and (everywhere or atom not in self.active)
             and atom in self.defs
             and self.defs[atom].op in _CHEAP
             and (everywhere or self.loop_of.get(atom) is not None)

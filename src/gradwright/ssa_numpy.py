@@ -135,6 +135,12 @@ class NumpyLowering:
             op, args + tuple(keywords), target or self.new_var(base, "temp")
         )
 
+    def new_axis(self, node: cst.BaseExpression) -> bool:
+        """``None`` or ``np.newaxis`` used as an index."""
+        if isinstance(node, cst.Name) and node.value == "None":
+            return True
+        return self.numpy_name(node) == "newaxis"
+
     def static(self, node: cst.BaseExpression) -> str:
         """A keyword's value: a literal (ints, tuples of ints, True/False, None)."""
         if isinstance(node, cst.Integer):
@@ -203,6 +209,12 @@ class NumpyLowering:
 
         for element in node.slice:
             piece = element.slice
+            if isinstance(piece, cst.Index) and self.new_axis(piece.value):
+                fail(
+                    "indexing with None (np.newaxis) is not supported",
+                    self.index.locate(piece.value),
+                    "use .reshape(...) to add the axis",
+                )
             if isinstance(piece, cst.Index):
                 pieces.append(bound(piece.value))
             else:
