@@ -93,8 +93,9 @@ def test_verify_at_a_given_point() -> None:
     assert result.code == 0, result.out + result.err
     lines = result.out.splitlines()
     assert lines[0] == (
-        "fit_loss_grad at a=0.0014, b=0.00024, c=9e-08, resistance=8000.0,"
-        " kelvin=295.0"
+        # integers given with --at stay integers (trip counts, indices)
+        "fit_loss_grad at a=0.0014, b=0.00024, c=9e-08, resistance=8000,"
+        " kelvin=295"
     )
     assert set(_rows(result.out)) == {"a", "b", "c"}
 
@@ -429,3 +430,29 @@ def test_list_parameters_are_checked_element_by_element(tmp_path: Path) -> None:
     assert "gradient entry xs is [inf, inf]" in bad.out
     assert f"from {model}:8: return math.log(t)" in bad.out
     assert re.search(r"it read: t = 5\.73e-322", bad.out)
+
+
+def test_verify_draws_arrays_for_a_numpy_model() -> None:
+    # array parameters: drawn with --shape, each element checked by central differences
+    result = cli(
+        "verify", "greenhouse_net.py", "humidity_loss", "--wrt", "W1,b2",
+        "--shape", "W1=4x3,b1=3,w2=3,features=5x4,humidity=5",
+        "--samples", "1",
+        cwd=SAMPLES,
+    )  # fmt: skip
+    assert result.code == 0, result.out + result.err
+    rows = _rows(result.out)
+    assert {f"W1[{i},{j}]" for i in range(4) for j in range(3)} <= set(rows)
+    assert "b2" in rows
+    assert "W1=<4x3 array>" in result.out.splitlines()[0]
+
+
+def test_verify_keeps_integer_trip_counts() -> None:
+    result = cli(
+        "verify", "kiln_cooling.py", "kiln_loss", "--wrt", "k_conv,k_rad,start_temp",
+        "--at", "readings=[1150.0,1010.0,905.0],dt=0.5,steps_per_reading=20",
+        "--at", "k_conv=0.012,k_rad=0.035,start_temp=1290.0",
+        cwd=SAMPLES,
+    )  # fmt: skip
+    assert result.code == 0, result.out + result.err
+    assert "steps_per_reading=20" in result.out

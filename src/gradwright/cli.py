@@ -33,6 +33,7 @@ from .points import (
     parse_at,
     parse_ranges,
     parse_scales,
+    parse_shapes,
     signature_of,
     typical_sizes,
 )
@@ -211,6 +212,14 @@ def _parser() -> argparse.ArgumentParser:
         help="a parameter's typical size for the finite-difference step"
         " h = eps**(1/3) * max(|x|, SIZE), after Dennis & Schnabel"
         " (default: from --range, else 1)",
+    )
+    verify.add_argument(
+        "--shape",
+        metavar="NAME=DIMS",
+        action="append",
+        default=[],
+        help="draw a NumPy array of this shape for an array parameter, e.g."
+        " W=4x6 or b=6",
     )
     verify.add_argument(
         "--rtol",
@@ -433,6 +442,7 @@ def _verify(args: argparse.Namespace) -> int:
     fixed = parse_at(args.at)
     ranges = parse_ranges(args.range)
     scales = parse_scales(args.scale)
+    shapes = parse_shapes(args.shape)
     sizes = typical_sizes(ranges, scales)
     subjects = _subjects(args)
     signatures = {
@@ -442,6 +452,7 @@ def _verify(args: argparse.Namespace) -> int:
     check_names(every, list(fixed), "--at", " or ".join(signatures))
     check_names(every, list(ranges), "--range", " or ".join(signatures))
     check_names(every, list(scales), "--scale", " or ".join(signatures))
+    check_names(every, list(shapes), "--shape", " or ".join(signatures))
     try:
         namespace = load(subjects[0].module_text, args.file)
     except Exception as error:
@@ -460,6 +471,7 @@ def _verify(args: argparse.Namespace) -> int:
             ranges,
             args.samples,
             args.seed,
+            shapes,
         )
         results = [check_point(subject, namespace, p, args.rtol, sizes) for p in points]
         sys.stdout.write(render_table(subject, results, args.rtol))

@@ -122,6 +122,22 @@ def parse_at(texts: Sequence[str]) -> dict[str, Value]:
     return values
 
 
+def parse_shapes(texts: Sequence[str]) -> dict[str, tuple[int, ...]]:
+    """``W=4x6`` -> (4, 6): array parameters are drawn with these shapes."""
+    shapes: dict[str, tuple[int, ...]] = {}
+    for name, value in split_assignments(texts, "--shape").items():
+        try:
+            dims = tuple(int(d) for d in value.lower().split("x"))
+        except ValueError:
+            raise GradwrightError.usage(
+                f"--shape {name}: expected sizes like 4x6, got {value!r}"
+            ) from None
+        if not dims or any(d < 1 for d in dims):
+            raise GradwrightError.usage(f"--shape {name}: sizes must be positive")
+        shapes[name] = dims
+    return shapes
+
+
 def parse_ranges(texts: Sequence[str]) -> dict[str, Range]:
     ranges: dict[str, Range] = {}
     for name, value in split_assignments(texts, "--range").items():
@@ -142,7 +158,8 @@ def parse_ranges(texts: Sequence[str]) -> dict[str, Range]:
 
 def _number(text: str, what: str) -> float:
     try:
-        value = float(text)
+        # an integer stays one: it may be a trip count or an index
+        value = int(text) if text.strip().lstrip("+-").isdigit() else float(text)
     except ValueError:
         raise GradwrightError.usage(f"{what}: {text!r} is not a number") from None
     if not math.isfinite(value):
@@ -193,6 +210,7 @@ def choose_points(
     ranges: Mapping[str, Range],
     samples: int | None,
     seed: int,
+    shapes: Mapping[str, tuple[int, ...]] | None = None,
 ) -> list[dict[str, Value]]:
     """Points (name -> value, in signature order), by the rules in the docstring."""
     drawn = [
@@ -213,11 +231,31 @@ def choose_points(
                 point[p.name] = fixed[p.name]
             elif p.name in drawn:
                 bounds = ranges.get(p.name, DEFAULT_RANGE)
+                shape = (shapes or {}).get(p.name)
+                if shape is not None:
+                    point[p.name] = _array(generator, bounds, shape)
+                    continue
                 value = generator.uniform(bounds.low, bounds.high)
                 point[p.name] = float(f"{value:.6g}")
         points.append(point)
     return points
 
 
+def _array(generator: random.Random, bounds: Range, shape: tuple[int, ...]) -> Value:
+    import numpy as np  # only models with array parameters need it
+
+    count = math.prod(shape)
+    values = [
+        float(f"{generator.uniform(bounds.low, bounds.high):.6g}") for _ in range(count)
+    ]
+    return np.array(values).reshape(shape)  # type: ignore[return-value]
+
+
 def describe(point: Mapping[str, Value]) -> str:
-    return ", ".join(f"{name}={value!r}" for name, value in point.items())
+    def show(value: Value) -> str:
+        shape = getattr(value, "shape", None)
+        if shape is not None and not isinstance(value, (int, float)):
+            return f"<{'x'.join(map(str, shape))} array>"
+        return repr(value)
+
+    return ", ".join(f"{name}={show(value)}" for name, value in point.items())

@@ -111,7 +111,7 @@ def central_difference(
     def moved(to: float) -> dict[str, Value]:
         if index is None:
             return {**point, name: to}
-        changed = list(value)  # type: ignore[arg-type]
+        changed = value.copy() if hasattr(value, "shape") else list(value)  # type: ignore[union-attr,arg-type]
         changed[index] = to
         return {**point, name: changed}
 
@@ -161,16 +161,24 @@ def check_point(
             f"the gradient {grads!r} is not a tuple of {len(subject.wrt)} entries"
         )
         return result
-    if value != expected:
+    if not _same(value, expected):
         result.problems.append(
             f"the value {value!r} differs from {subject.function}(...) = {expected!r}"
         )
     bad = [n for n, g in zip(subject.wrt, grads, strict=True) if not _finite(g)]
     for name, gradient in zip(subject.wrt, grads, strict=True):
         typical = sizes.get(name, 1.0)
-        if isinstance(point.get(name), list) and isinstance(gradient, list):
+        given = point.get(name)
+        if isinstance(given, list) and isinstance(gradient, list):
             for i, element in enumerate(gradient):
                 entry = _entry(primal, point, name, element, rtol, typical, i)
+                result.entries.append(entry)
+        elif hasattr(given, "shape") and hasattr(gradient, "shape"):
+            import numpy as np  # array parameters: every element is checked
+
+            for where in np.ndindex(given.shape):  # type: ignore[union-attr]
+                element = float(gradient[where])
+                entry = _entry(primal, point, name, element, rtol, typical, where)
                 result.entries.append(entry)
         else:
             result.entries.append(_entry(primal, point, name, gradient, rtol, typical))
@@ -203,6 +211,15 @@ def _accuracy_hints(subject: Subject) -> list[str]:
     return hints
 
 
+def _same(a: Any, b: Any) -> bool:
+    """Bit for bit, for numbers and for arrays alike."""
+    if hasattr(a, "shape") or hasattr(b, "shape"):
+        import numpy as np
+
+        return bool(np.array_equal(a, b))
+    return bool(a == b)
+
+
 def _finite(value: Any) -> bool:
     return nonfinite.is_finite(value)
 
@@ -216,7 +233,8 @@ def _entry(
     typical: float,
     index: int | None = None,
 ) -> Entry:
-    label = name if index is None else f"{name}[{index}]"
+    where = ",".join(map(str, index)) if isinstance(index, tuple) else index
+    label = name if index is None else f"{name}[{where}]"
     if not _finite(gradient):
         return Entry(label, gradient, None, None, False, "not finite")
     if not isinstance(gradient, (int, float)):
