@@ -826,3 +826,16 @@ def test_imports_of_missing_names_are_dropped() -> None:
     assert "from math import sin\n" in text and "import math as m\n" in text
     assert "fsum" not in text and "lp" not in text and "_gw_" not in text
     assert_micropython_compatible(text)
+
+
+def test_numpy_model_for_micropython_is_an_error(tmp_path: Path) -> None:
+    # MicroPython has no numpy: generating for it would give a module that fails on
+    # the board at its first line, so generation says so instead (exit 2)
+    model = tmp_path / "m.py"
+    model.write_text(
+        "import numpy as np\n\n\ndef f(x):\n    return np.sum(x * x)\n",
+        encoding="utf-8",
+    )
+    with pytest.raises(gradwright.GradwrightError) as caught:
+        gradwright.generate(model.read_text(), ["f"], path="m.py", target="micropython")
+    assert "has no numpy" in caught.value.diagnostic.render()

@@ -152,6 +152,12 @@ def generate(
     runtime = get_target(target)
     with _collector_paused():
         index = parse_module(source, path)
+        if index.numpy_modules and not runtime.numpy:
+            fail(
+                f"{runtime.runtime} has no numpy, and this model imports it",
+                file_location(path),
+                "write the model over lists for the board, or generate for cpython",
+            )
         wanted = tuple(wrt) if wrt is not None else None
         compiled = compile_with_callees(index, functions, wanted)
         command = regeneration_command(path, functions, wrt, output, target)

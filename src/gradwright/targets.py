@@ -49,6 +49,7 @@ class Target:
             :data:`gradwright.fallbacks.FALLBACKS`.
         positional_only: whether ``def f(a, /, b)`` is valid syntax there.
         runtime: how diagnostics name the interpreter.
+        numpy: whether NumPy models can run there.
     """
 
     name: str
@@ -57,6 +58,7 @@ class Target:
     stand_ins: frozenset[str]
     positional_only: bool
     runtime: str
+    numpy: bool = True
 
     @property
     def rewrites(self) -> bool:
@@ -87,6 +89,7 @@ def _cpython() -> Target:
         stand_ins=frozenset(),
         positional_only=True,
         runtime="CPython",
+        numpy=True,
     )
 
 
@@ -106,6 +109,7 @@ def _micropython() -> Target:
         stand_ins=stand_ins,
         positional_only=False,
         runtime=f"MicroPython {version}",
+        numpy=False,  # list parameters are the vector container there
     )
 
 
