@@ -68,9 +68,7 @@ def call_value_grad(spot, strike, vol, rate, years):
     d1_3_bar = d1_5_bar * years
     years_bar += d1_5_bar * d1_3
     rate_bar += d1_3_bar
-    vol_bar += d1_3_bar * d1_2
-    vol_bar += d1_3_bar * vol * 0.5
-    vol_bar += d1_4_bar * root_t
+    vol_bar += d1_3_bar * d1_2 + d1_3_bar * vol * 0.5 + d1_4_bar * root_t
     root_t_bar += d1_4_bar * vol
     # root_t = sqrt(years)
     years_bar += 0.5 * root_t_bar / root_t

@@ -72,6 +72,35 @@ def _reads_list_adjoint(expr: Expr) -> bool:
     return any(isinstance(n, Bar) and n.var.shape == "list" for n in walk(expr))
 
 
+def _merge_adjacent(statements: tuple[ReverseStmt, ...]) -> tuple[ReverseStmt, ...]:
+    """``x_bar = a``, ``x_bar += b`` from one source statement: ``x_bar = a + b``."""
+    out: list[ReverseStmt] = []
+    for stmt in statements:
+        if isinstance(stmt, ReverseBranch):
+            stmt = replace(
+                stmt,
+                then=_merge_adjacent(stmt.then),
+                orelse=_merge_adjacent(stmt.orelse),
+            )
+        elif isinstance(stmt, ReverseLoop):
+            stmt = replace(stmt, body=_merge_adjacent(stmt.body))
+        previous = out[-1] if out else None
+        if (
+            isinstance(stmt, AdjointAssign)
+            and stmt.accumulate
+            and isinstance(previous, AdjointAssign)
+            and previous.var == stmt.var
+            and previous.origin == stmt.origin
+            and stmt.var.shape == "scalar"
+            and not any(n == Bar(stmt.var) for n in walk(stmt.expr))
+        ):
+            merged = simplify(Apply("add", (previous.expr, stmt.expr)))
+            out[-1] = replace(previous, expr=merged)
+            continue
+        out.append(stmt)
+    return tuple(out)
+
+
 def inline_adjoints(sweep: ReverseSweep) -> ReverseSweep:
     flat = list(_flatten(sweep.statements))
     writes = Counter(s.var for s in flat if isinstance(s, AdjointAssign))
@@ -129,7 +158,7 @@ def inline_adjoints(sweep: ReverseSweep) -> ReverseSweep:
                     out.append(ReverseLoop(stmt.loop, body, stmt.origin))
         return tuple(out)
 
-    return replace(sweep, statements=block(sweep.statements))
+    return replace(sweep, statements=_merge_adjacent(block(sweep.statements)))
 
 
 def _map_exprs(
@@ -178,6 +207,9 @@ def reuse_forward_values(sweep: ReverseSweep, function: SSAFunction) -> ReverseS
     for stmt in function.body:
         if isinstance(stmt, Let) and stmt.target.shape == "scalar":
             known.setdefault(Apply(stmt.op, stmt.args), stmt.target)
+            if stmt.op in ("add", "mul"):
+                # a*b and b*a are the same float (IEEE + and * commute)
+                known.setdefault(Apply(stmt.op, stmt.args[::-1]), stmt.target)
 
     def change(expr: Expr) -> Expr:
         if isinstance(expr, Apply):
@@ -189,4 +221,6 @@ def reuse_forward_values(sweep: ReverseSweep, function: SSAFunction) -> ReverseS
 
     if not known:
         return sweep
-    return replace(sweep, statements=_map_exprs(sweep.statements, change))
+    return replace(
+        sweep, statements=_map_exprs(sweep.statements, lambda e: simplify(change(e)))
+    )
