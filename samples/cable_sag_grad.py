@@ -46,7 +46,7 @@ def rig_loss_grad(a, span):
 
     # reverse sweep
     # loss += LENGTH_WEIGHT * length_err**2
-    length_err_bar = LENGTH_WEIGHT * 2 * length_err
+    length_err_bar = LENGTH_WEIGHT * 2.0 * length_err
     # loss = sag_err**2
     sag_err_bar = 2.0 * sag_err
     # sag, length = a * (math.cosh(half) - 1.0), 2.0 * a * math.sinh(half)

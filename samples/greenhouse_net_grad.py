@@ -87,9 +87,9 @@ def humidity_loss_grad(W1, b1, w2, b2, features, humidity):
 
     # reverse sweep
     # return np.mean(err**2) + penalty
-    err_bar = _gw_unmean(1.0, value_1, None, False) * 2 * err
+    err_bar = _gw_unmean(1.0, value_1, None, False) * 2.0 * err
     # penalty = PENALTY * (np.sum(W1**2) + w2 @ w2)
-    W1_bar = _gw_unreduce(PENALTY, penalty_1, None, False) * 2 * W1
+    W1_bar = _gw_unreduce(PENALTY, penalty_1, None, False) * 2.0 * W1
     w2_bar = _gw_matmul_left(PENALTY, w2, w2) + _gw_matmul_right(PENALTY, w2, w2)
     # err = predicted - humidity
     predicted_bar = _gw_unbroadcast(err_bar, predicted)

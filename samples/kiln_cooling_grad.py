@@ -105,7 +105,7 @@ def cooling_rate_grad(temp, k_conv, k_rad):
     # return k_conv * excess + k_rad * (temp**4 - AMBIENT**4) * 1e-9
     k_conv_bar = excess
     k_rad_bar = 1e-09 * value_1
-    temp_bar = 1e-09 * k_rad * 4 * temp**3
+    temp_bar = 1e-09 * k_rad * 4.0 * temp**3
     # excess = temp - AMBIENT
     temp_bar += k_conv
     return value, (temp_bar, k_conv_bar, k_rad_bar)

@@ -24,7 +24,7 @@ import math
 from collections.abc import Callable
 
 from .algebra import E, call, where
-from .ir import Apply, Const
+from .ir import Apply, Const, const
 
 Rule = Callable[..., tuple["E | None", ...]]
 
@@ -45,7 +45,11 @@ def _power(g: E, out: E, x: E, y: E) -> tuple[E, E]:
     # d(x**y)/dx = y*x**(y-1) stays finite at x == 0 for y >= 1, unlike y*out/x.
     # d/dy = out*log(x) has the limit 0 at x == 0; a negative x has no real
     # derivative in y, and log(x) says so by raising.
-    return g * y * x ** (y - 1), where(x.eq(0), 0.0, g * out * log(x))
+    coefficient = y
+    node = y.node
+    if isinstance(node, Const) and isinstance(node.value, int):
+        coefficient = E(const(float(node.value)))  # 2.0 * x, like every other factor
+    return g * coefficient * x ** (y - 1), where(x.eq(0), 0.0, g * out * log(x))
 
 
 def _hypot(g: E, out: E, *xs: E) -> tuple[E, ...]:
