@@ -470,8 +470,12 @@ class Layout:
         self.namer.name(var)
 
     def _name_block(
-        self, statements: tuple[Stmt, ...], current: dict[str, Var]
+        self,
+        statements: tuple[Stmt, ...],
+        current: dict[str, Var],
+        indices: tuple[str, ...] = (),
     ) -> None:
+        """Names for one block; ``indices``: the enclosing loops' index names."""
         for stmt in statements:
             if isinstance(stmt, Let):
                 target = stmt.target
@@ -485,7 +489,7 @@ class Layout:
                 sides = []
                 for block in (stmt.then, stmt.orelse):
                     inner = dict(current)
-                    self._name_block(block, inner)
+                    self._name_block(block, inner, indices)
                     sides.append(inner)
                 for phi in stmt.merges:
                     if phi.target.shape == "list":
@@ -500,7 +504,20 @@ class Layout:
                             self._version_name(phi.target, current)
                     current[phi.target.base] = phi.target
             else:
-                self.namer.name(stmt.index)
+                index = stmt.index
+                if index not in self.namer.names:
+                    # loops one after another reuse the name; an enclosing loop's
+                    # index, or a value the reverse sweep reads later, keeps it
+                    kept = {
+                        self.namer.names[v]
+                        for v in self.pinned
+                        if v in self.namer.names
+                    }
+                    if index.base in indices or index.base in kept:
+                        self.namer.names[index] = self.namer.fresh(index.base)
+                    else:
+                        self.namer.names[index] = index.base
+                        self.namer.taken.add(index.base)
                 for phi in stmt.carried:
                     init = phi.first
                     if (
@@ -514,7 +531,7 @@ class Layout:
                         self._version_name(phi.target, current)
                     current[phi.target.base] = phi.target
                 inner = dict(current)
-                self._name_block(stmt.body, inner)
+                self._name_block(stmt.body, inner, indices + (self.namer.names[index],))
                 for phi in stmt.carried:
                     assert phi.exit is not None
                     self.namer.names[phi.exit] = self.namer.names[phi.target]
