@@ -8,6 +8,32 @@ SAFE_POINT = 700.0  # kelvin: below this the heater comes on
 HEATER = 0.8  # kelvin per minute
 
 
+def cooling_rate(temp, k_conv, k_rad):
+    excess = temp - AMBIENT
+    return k_conv * excess + k_rad * (temp**4 - AMBIENT**4) * 1e-9
+
+
+def cooling_rate_grad(temp, k_conv, k_rad):
+    """cooling_rate and its gradient with respect to (temp, k_conv, k_rad).
+
+    Returns (value, (temp_bar, k_conv_bar, k_rad_bar)).
+    """
+    # excess = temp - AMBIENT
+    excess = temp - AMBIENT
+    # return k_conv * excess + k_rad * (temp**4 - AMBIENT**4) * 1e-9
+    value_1 = temp**4 - AMBIENT**4
+    value = k_conv * excess + k_rad * value_1 * 1e-9
+
+    # reverse sweep
+    # return k_conv * excess + k_rad * (temp**4 - AMBIENT**4) * 1e-9
+    k_conv_bar = excess
+    k_rad_bar = 1e-09 * value_1
+    temp_bar = 1e-09 * k_rad * 4.0 * temp**3
+    # excess = temp - AMBIENT
+    temp_bar += k_conv
+    return value, (temp_bar, k_conv_bar, k_rad_bar)
+
+
 def kiln_loss(k_conv, k_rad, start_temp, readings, dt, steps_per_reading):
     temp = start_temp
     loss = 0.0
@@ -83,29 +109,3 @@ def kiln_loss_grad(k_conv, k_rad, start_temp, readings, dt, steps_per_reading):
     # temp = start_temp
     start_temp_bar = temp_bar_1
     return value, (k_conv_bar, k_rad_bar, start_temp_bar)
-
-
-def cooling_rate(temp, k_conv, k_rad):
-    excess = temp - AMBIENT
-    return k_conv * excess + k_rad * (temp**4 - AMBIENT**4) * 1e-9
-
-
-def cooling_rate_grad(temp, k_conv, k_rad):
-    """cooling_rate and its gradient with respect to (temp, k_conv, k_rad).
-
-    Returns (value, (temp_bar, k_conv_bar, k_rad_bar)).
-    """
-    # excess = temp - AMBIENT
-    excess = temp - AMBIENT
-    # return k_conv * excess + k_rad * (temp**4 - AMBIENT**4) * 1e-9
-    value_1 = temp**4 - AMBIENT**4
-    value = k_conv * excess + k_rad * value_1 * 1e-9
-
-    # reverse sweep
-    # return k_conv * excess + k_rad * (temp**4 - AMBIENT**4) * 1e-9
-    k_conv_bar = excess
-    k_rad_bar = 1e-09 * value_1
-    temp_bar = 1e-09 * k_rad * 4.0 * temp**3
-    # excess = temp - AMBIENT
-    temp_bar += k_conv
-    return value, (temp_bar, k_conv_bar, k_rad_bar)

@@ -249,7 +249,9 @@ def render_module(
     functions: list[RenderedGradient] = []
     modules: set[str] = set()
     helpers: frozenset[str] = frozenset()
-    for item in compiled:
+    order = {name: k for k, name in enumerate(index.functions)}
+    # in the source's order, so a helper comes before the model that calls it
+    for item in sorted(compiled, key=lambda c: order[c.checked.name]):
         rendered, used = render_function(index, item, target)
         functions.append(rendered)
         modules |= used
