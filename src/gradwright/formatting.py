@@ -36,7 +36,11 @@ def format_statement(text: str, depth: int) -> str:
     indent = INDENT * depth
     if "\n" not in text and len(indent) + len(text) <= LINE_LENGTH:
         return indent + text
-    formatted = black.format_str(text, mode=_mode(LINE_LENGTH - len(indent)))
+    header = text.rstrip().endswith(":")  # `if ...:` / `for ...:` lines
+    source = f"{text}\n{INDENT}pass\n" if header else text
+    formatted = black.format_str(source, mode=_mode(LINE_LENGTH - len(indent)))
+    if header:  # black needs a body to parse a header; drop it again
+        formatted = formatted.rstrip("\n").rsplit("\n", 1)[0]
     return textwrap.indent(formatted.rstrip("\n"), indent)
 
 

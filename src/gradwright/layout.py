@@ -450,6 +450,9 @@ class Layout:
     def _version_name(self, var: Var, current: dict[str, Var]) -> None:
         if var in self.namer.names:
             return
+        if var.kind == "temp":  # a temporary never takes over another value's name
+            self.namer.name(var)
+            return
         if var.shape == "list" and var in self.roots and self.roots[var] != var:
             self.namer.names[var] = self.namer.name(self.roots[var])
             return
@@ -462,12 +465,13 @@ class Layout:
                 return
             self.namer.names[var] = self.namer.fresh(var.base)
             return
-        if var.kind in ("local", "index"):
-            # no version of this name is live on this path: the source's own name
+        held = {self.namer.names[v] for v in self.pinned if v in self.namer.names}
+        if var.kind in ("local", "index") and var.base not in held:
+            # no live version holds the source's own name on this path: take it
             self.namer.names[var] = var.base
             self.namer.taken.add(var.base)
             return
-        self.namer.name(var)
+        self.namer.names[var] = self.namer.fresh(var.base)
 
     def _name_block(
         self,
@@ -498,11 +502,12 @@ class Layout:
                         a, b = phi.first, phi.second
                         na = self.namer.names.get(a) if isinstance(a, Var) else None
                         nb = self.namer.names.get(b) if isinstance(b, Var) else None
-                        if na is not None and na == nb:
-                            self.namer.names[phi.target] = na
+                        if na is not None and na == nb and phi.target.kind == "local":
+                            self.namer.names[phi.target] = na  # one name on both paths
                         else:
                             self._version_name(phi.target, current)
-                    current[phi.target.base] = phi.target
+                    if phi.target.kind == "local":
+                        current[phi.target.base] = phi.target
             else:
                 index = stmt.index
                 if index not in self.namer.names:
@@ -518,15 +523,23 @@ class Layout:
                     else:
                         self.namer.names[index] = index.base
                         self.namer.taken.add(index.base)
+                avoid = self._outer_replayed(stmt)
                 for phi in stmt.carried:
                     init = phi.first
+                    init_name = (
+                        self.namer.names.get(init) if isinstance(init, Var) else None
+                    )
                     if (
-                        isinstance(init, Var)
-                        and init in self.namer.names
+                        init_name is not None
                         and init not in self.pinned
+                        and init not in self.replayed
                         and phi.target not in self.pinned
+                        and init_name not in avoid
                     ):
-                        self.namer.names[phi.target] = self.namer.names[init]
+                        self.namer.names[phi.target] = init_name
+                    elif init_name is not None and init_name in avoid:
+                        base = phi.target.base
+                        self.namer.names[phi.target] = self.namer.fresh(base)
                     else:
                         self._version_name(phi.target, current)
                     current[phi.target.base] = phi.target
@@ -536,6 +549,20 @@ class Layout:
                     assert phi.exit is not None
                     self.namer.names[phi.exit] = self.namer.names[phi.target]
                     current[phi.exit.base] = phi.exit
+
+    def _outer_replayed(self, loop: Loop) -> set[str]:
+        """Names the reverse bodies of enclosing loops restore or recompute: an
+        inner loop restoring into one of them would clobber it."""
+        outer: set[Loop] = set()
+        current = self.parent.get(loop)
+        while current is not None:
+            outer.add(current)
+            current = self.parent.get(current)
+        return {
+            self.namer.names[v]
+            for v in self.replayed
+            if v in self.namer.names and self.loop_of.get(v) in outer
+        }
 
     def _name_carries(self, statements: Iterable[ReverseStmt]) -> None:
         """One name for an adjoint that flows through a loop where that is safe.

@@ -112,6 +112,11 @@ def inline_adjoints(sweep: ReverseSweep) -> ReverseSweep:
         if isinstance(node, Bar)
     )
     keep = set(sweep.wrt)
+    carries = dict(sweep.carries)
+    # a loop value's start-of-iteration adjoint copied from a carried adjoint stays a
+    # statement: the carried adjoints are all updated at the end of the body, and one
+    # read there after another was updated would be wrong (`s, w = w, s`)
+    headers = set(carries.values())
     inlined: dict[Var, Expr] = {}
 
     def block(statements: tuple[ReverseStmt, ...]) -> tuple[ReverseStmt, ...]:
@@ -123,8 +128,10 @@ def inline_adjoints(sweep: ReverseSweep) -> ReverseSweep:
                 if expr == Bar(var) and not stmt.accumulate:
                     continue  # a carried adjoint that stayed as it was
                 atom = isinstance(expr, (Var, Const, Bar))
+                carried = isinstance(expr, Bar) and expr.var in carries
                 if (
                     var not in keep
+                    and not (var in headers and carried)
                     and writes[var] == 1
                     and not _reads_list_adjoint(expr)
                     and (atom or (var.kind == "temp" and reads[var] == 1))

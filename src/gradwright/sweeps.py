@@ -302,6 +302,14 @@ class _Emitter:
     def reverse_loop(self, stmt: ReverseLoop, depth: int, out: _Lines) -> None:
         layout = self.layout
         loop = stmt.loop
+        body = _Lines()
+        body.header = dict(out.header)
+        body.open_block(depth, stmt.origin)
+        restored = set(self.restored)
+        self.reverse_block(stmt.body, depth + 1, body)
+        if not body.lines:
+            self.restored = restored
+            return  # every adjoint passes through the loop unchanged
         out.comment(stmt.origin, depth)
         index = self.namer.name(loop.index)
         out.code(
@@ -326,7 +334,7 @@ class _Emitter:
                 f"{self.namer.name(let.target)} = {self.print(Apply(let.op, args))}",
                 depth + 1,
             )
-        self.reverse_block(stmt.body, depth + 1, out)
+        out.lines.extend(body.lines)
         out.last_origin[depth] = None
 
 
