@@ -384,6 +384,15 @@ class _Reverse:
         return body_out
 
     def loop(self, loop: Loop, out: list[ReverseStmt]) -> None:
+        # a loop reaches the rest only through its carried values: when none of
+        # them has an adjoint (and it changes no active list), it has no reverse
+        reaches = any(
+            phi.exit in self.has
+            or (phi.target.shape == "list" and phi.target in self.active)
+            for phi in loop.carried
+        )
+        if not reaches:
+            return
         scalar_phis = [
             phi
             for phi in loop.carried
