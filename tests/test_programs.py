@@ -1060,3 +1060,61 @@ def test_return_in_a_nested_if_ends_only_its_path(name, point, value, grads):
     got_value, got = ns[f"{name}_grad"](*point)
     assert got_value == ns[name](*point) == pytest.approx(value, rel=1e-15)
     assert got == pytest.approx(grads, rel=1e-15, abs=0.0)
+
+
+LOOP_REGRESSIONS = """
+import math
+
+
+def f(v, x, y):
+    s = math.hypot(x, 1.0)
+    for i in range(len(v)):
+        s = (v[i] + x) ** 3
+        if (1.0 + x * x) ** 1.5 < s:
+            s = x
+        else:
+            s += 0.25 * i
+    return math.sqrt(1.0 + (y / (1.0 + x * x)) * (y / (1.0 + x * x)))
+
+
+def g(x, y, n):
+    s = y * 0.5
+    buf = [0.0] * n
+    for i in range(n):
+        s = math.exp(math.tanh(y)) if math.exp(0.5 * math.cos(y)) < (s * 0.75) else x
+        s = max((1.0 + x * x) ** 1.5, (y / (1.0 + 2.0 * 2.0)))
+        for j in range(i + 1):
+            s += 0.5 * math.sin(s * 0.1)
+        buf[i] = (s * s) * 2.0
+        s += 0.5 * buf[i]
+    return buf[n - 1]
+"""
+
+
+def test_loop_that_does_not_reach_the_result_has_no_reverse():
+    # found by the random programs: the dead loop was replayed and overwrote the
+    # stored hypot value the rule for `s = math.hypot(x, 1.0)` reads
+    ns = build(LOOP_REGRESSIONS, "f")
+    v, x, y = [0.0, 0.0, 0.001], 0.3, 0.7
+    _, (v_bar, x_bar, y_bar) = ns["f_grad"](v, x, y)
+    # closed form by hand: F = sqrt(1 + u**2), u = y / (1 + x**2)
+    u = y / (1.0 + x * x)
+    big_f = math.sqrt(1.0 + u * u)
+    assert v_bar == [0.0, 0.0, 0.0]
+    assert x_bar == pytest.approx(u / big_f * (-2.0 * x * y / (1.0 + x * x) ** 2))
+    assert y_bar == pytest.approx(u / big_f / (1.0 + x * x))
+
+
+def test_value_after_an_inner_loop_is_saved_for_the_outer_reverse():
+    # found by the random programs: the value after the inner loop, read by the
+    # rule for `buf[i] = (s * s) * 2.0`, was never stored per outer iteration
+    ns = build(LOOP_REGRESSIONS, "g")
+    point = (0.99999, 1.882906735353847)
+    _, grads = ns["g_grad"](*point, 5)
+    # reference: the same model with the trip count written in, run in mpmath
+    fixed = LOOP_REGRESSIONS.replace("def g(x, y, n):", "def g(x, y):")
+    fixed = fixed.replace("[0.0] * n", "[0.0] * 5").replace("range(n)", "range(5)")
+    fixed = fixed.replace("buf[n - 1]", "buf[4]")
+    g_mp = mp_function(fixed, "g")
+    for k in (0, 1):  # mpmath 100-digit central differences
+        assert rel_err(grads[k], float(mp_central_diff(g_mp, point, k))) < 1e-12

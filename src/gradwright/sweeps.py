@@ -228,6 +228,13 @@ class _Emitter:
         if len(out.lines) == size and not layout.tapes.get(loop):
             out.code("pass", depth + 1)
         out.last_origin[depth] = None
+        if enclosing is not None:
+            # values after this loop that the enclosing loop's reverse reads
+            for phi in loop.carried:
+                if phi.exit in layout.tapes.get(enclosing, []):
+                    saved = layout.tape_name(enclosing, phi.exit)
+                    slot = layout.slot(enclosing)
+                    out.code(f"{saved}[{slot}] = {self.namer.name(phi.exit)}", depth)
 
     def range_text(self, loop: Loop) -> str:
         return self.layout.range_args(loop, self.folded)
