@@ -8,6 +8,7 @@ forward sweep are printed from.
 
 from __future__ import annotations
 
+from collections.abc import Iterator
 from dataclasses import dataclass
 from typing import Literal
 
@@ -205,6 +206,14 @@ class ReverseSweep:
     seeds: tuple[Var, ...] = ()
     #: (carried adjoint, loop value at iteration start) for each loop-carried value
     carries: tuple[tuple[Var, Var], ...] = ()
+
+
+def walk(expr: Expr) -> Iterator[Expr]:
+    """An expression and all its sub-expressions, outermost first."""
+    yield expr
+    if isinstance(expr, Apply):
+        for arg in expr.args:
+            yield from walk(arg)
 
 
 def const(value: float | int) -> Const:

@@ -39,6 +39,7 @@ from .ir import (
     Stmt,
     Var,
     const,
+    walk,
 )
 from .naming import Namer
 from .printer import Printer
@@ -48,13 +49,6 @@ _CHEAP = frozenset(
     {"add", "sub", "mul", "div", "pow", "floordiv", "mod", "neg", "pos", "len", "copy"}
     | {"lt", "le", "gt", "ge", "eq", "ne", "and", "or", "not"}
 )
-
-
-def walk(expr: Expr) -> Iterator[Expr]:
-    yield expr
-    if isinstance(expr, Apply):
-        for arg in expr.args:
-            yield from walk(arg)
 
 
 class Layout:

@@ -27,14 +27,8 @@ from .ir import (
     SpreadAdjoint,
     SSAFunction,
     Var,
+    walk,
 )
-
-
-def walk(expr: Expr) -> Iterator[Expr]:
-    yield expr
-    if isinstance(expr, Apply):
-        for arg in expr.args:
-            yield from walk(arg)
 
 
 def substitute(expr: Expr, bars: dict[Var, Expr]) -> Expr:
