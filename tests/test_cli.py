@@ -19,7 +19,7 @@ import pytest
 
 import gradwright
 from gradwright import generate
-from gradwright.cli import main
+from gradwright.workflow.cli import main
 
 ROOT = Path(__file__).resolve().parents[1]
 

@@ -8,9 +8,9 @@ from pathlib import Path
 import pytest
 from workflow_support import CABLE, THERMISTOR, cli, project, target
 
-from gradwright import config
 from gradwright.diagnostics import GradwrightError
-from gradwright.points import Range
+from gradwright.workflow import config
+from gradwright.workflow.points import Range
 
 
 def _write(root: Path, body: str) -> Path:

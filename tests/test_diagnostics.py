@@ -27,7 +27,7 @@ from pathlib import Path
 
 import pytest
 
-from gradwright.cli import main
+from gradwright.workflow.cli import main
 
 MODEL = "model.py"
 OUT = "out.py"

@@ -55,7 +55,7 @@ REFERENCE = "mpmath at 50 digits"
 def _load_fallbacks() -> ModuleType:
     name = "_gradwright_fallbacks_under_test"
     spec = importlib.util.spec_from_file_location(
-        name, ROOT / "src" / "gradwright" / "fallbacks.py"
+        name, ROOT / "src" / "gradwright" / "emission" / "fallbacks.py"
     )
     assert spec is not None and spec.loader is not None
     module = importlib.util.module_from_spec(spec)

@@ -11,7 +11,7 @@ from pathlib import Path
 
 import pytest
 
-from gradwright.cli import main
+from gradwright.workflow.cli import main
 
 ROOT = Path(__file__).resolve().parents[1]
 GOLDEN = sorted(ROOT.glob("samples/*_grad.py"))

@@ -31,11 +31,11 @@ import black
 import pytest
 
 import gradwright
-from gradwright import fallbacks
-from gradwright.frontend import check_function, parse_module
-from gradwright.primitives import OPS
-from gradwright.rules import SCALAR_OPS
-from gradwright.ssa import lower
+from gradwright.calculus.primitives import OPS
+from gradwright.calculus.rules import SCALAR_OPS
+from gradwright.emission import fallbacks
+from gradwright.lowering.frontend import check_function, parse_module
+from gradwright.lowering.ssa import lower
 
 ROOT = Path(__file__).resolve().parent.parent
 MICROPYTHON_DIR = ROOT / "tests" / "micropython"

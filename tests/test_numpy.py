@@ -29,7 +29,7 @@ import sympy
 from support import build, run_source, same_bits
 
 import gradwright
-from gradwright.cli import main
+from gradwright.workflow.cli import main
 
 # ---------------------------------------------------------------------------------
 # helpers

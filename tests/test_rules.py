@@ -40,9 +40,9 @@ from support import (
     sympy_value,
 )
 
-from gradwright.frontend import check_function, parse_module
-from gradwright.rules import RULES, SCALAR_OPS
-from gradwright.ssa import lower
+from gradwright.calculus.rules import RULES, SCALAR_OPS
+from gradwright.lowering.frontend import check_function, parse_module
+from gradwright.lowering.ssa import lower
 
 X, Y = sympy.symbols("x y", real=True)
 N_POINTS = 6

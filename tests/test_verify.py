@@ -11,7 +11,7 @@ import mpmath
 import pytest
 from workflow_support import SAMPLES, THERMISTOR_RANGE_OPTION, cli, exe
 
-from gradwright import nonfinite, points, verify
+from gradwright.workflow import nonfinite, points, verify
 
 THERMISTOR = str(SAMPLES / "thermistor.py")
 

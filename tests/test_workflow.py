@@ -30,7 +30,7 @@ from workflow_support import (
 )
 
 import gradwright
-from gradwright import output
+from gradwright.workflow import output
 
 GEN = ("gen", "models/thermistor.py", "fit_loss", "--wrt", "a,b,c")
 OUT = "models/thermistor_grad.py"
@@ -572,7 +572,7 @@ def test_gen_and_build_never_run_the_model(tmp_path: Path) -> None:
 
 def test_build_diff_alone_reports_what_would_change(tmp_path, monkeypatch, capsys):
     # review finding: `build --diff` without --check said "unchanged" for a stale one
-    from gradwright.cli import main
+    from gradwright.workflow.cli import main
 
     model = tmp_path / "m.py"
     model.write_text("def f(x):\n    return x * x\n", encoding="utf-8")

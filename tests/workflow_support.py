@@ -1,6 +1,7 @@
 """Helpers for the workflow tests: running the CLI and laying out small projects.
 
-- :func:`cli` runs ``gradwright.cli.main`` in-process, in a given folder, capturing
+- :func:`cli` runs ``gradwright.workflow.cli.main`` in-process, in a given folder,
+  capturing
   stdout and stderr (fast: no interpreter start-up per call).
 - :func:`exe` runs the real ``python -m gradwright`` in a subprocess, for the tests
   that must show the installed command end to end.
@@ -19,7 +20,7 @@ import sys
 from dataclasses import dataclass
 from pathlib import Path
 
-from gradwright.cli import main
+from gradwright.workflow.cli import main
 
 ROOT = Path(__file__).resolve().parents[1]
 SAMPLES = ROOT / "samples"

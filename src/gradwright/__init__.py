@@ -2,7 +2,7 @@
 
 __version__ = "0.1.0"
 
-from .api import generate  # noqa: E402
-from .diagnostics import Diagnostic, GradwrightError  # noqa: E402
+from gradwright.api import generate  # noqa: E402
+from gradwright.diagnostics import Diagnostic, GradwrightError  # noqa: E402
 
 __all__ = ["Diagnostic", "GradwrightError", "__version__", "generate"]

@@ -1,3 +1,3 @@
-from .cli import main
+from gradwright.workflow.cli import main
 
 raise SystemExit(main())

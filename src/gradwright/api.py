@@ -9,14 +9,19 @@ from contextlib import contextmanager
 
 import libcst as cst
 
-from .adjoint import active_values, defined_in, reverse_sweep
-from .diagnostics import GradwrightError, fail, file_location
-from .emit import Compiled, render_module
-from .frontend import CheckedFunction, ModuleIndex, check_function, parse_module
-from .ir import Expr, SSAFunction, Var, const
-from .optimize import inline_adjoints, reuse_forward_values
-from .ssa import lower
-from .targets import DEFAULT_TARGET, get_target
+from gradwright.diagnostics import GradwrightError, fail, file_location
+from gradwright.emission.module import Compiled, render_module
+from gradwright.emission.targets import DEFAULT_TARGET, get_target
+from gradwright.ir import Expr, SSAFunction, Var, const
+from gradwright.lowering.frontend import (
+    CheckedFunction,
+    ModuleIndex,
+    check_function,
+    parse_module,
+)
+from gradwright.lowering.ssa import lower
+from gradwright.sweeps.optimize import inline_adjoints, reuse_forward_values
+from gradwright.sweeps.reverse import active_values, defined_in, reverse_sweep
 
 
 def regeneration_command(

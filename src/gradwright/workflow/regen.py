@@ -12,12 +12,12 @@ from collections.abc import Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
 
-from .api import generate, regeneration_command
-from .config import Project, Target
-from .diagnostics import GradwrightError, Location
-from .output import Artifact
-from .points import Range
-from .testgen import TestRequest, render_test, test_command
+from gradwright.api import generate, regeneration_command
+from gradwright.diagnostics import GradwrightError, Location
+from gradwright.workflow.config import Project, Target
+from gradwright.workflow.output import Artifact
+from gradwright.workflow.points import Range
+from gradwright.workflow.testgen import TestRequest, render_test, test_command
 
 
 @dataclass(frozen=True)

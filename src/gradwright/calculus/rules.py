@@ -23,8 +23,8 @@ from __future__ import annotations
 import math
 from collections.abc import Callable
 
-from .algebra import E, call, where
-from .ir import Apply, Const, const
+from gradwright.calculus.algebra import E, call, where
+from gradwright.ir import Apply, Const, const
 
 Rule = Callable[..., tuple["E | None", ...]]
 

@@ -19,7 +19,9 @@ from __future__ import annotations
 from collections import Counter
 from collections.abc import Iterable, Iterator
 
-from .ir import (
+from gradwright.emission.naming import Namer
+from gradwright.emission.printer import Printer
+from gradwright.ir import (
     AdjointAssign,
     Apply,
     Atom,
@@ -41,8 +43,6 @@ from .ir import (
     const,
     walk,
 )
-from .naming import Namer
-from .printer import Printer
 
 #: primitives cheap enough to recompute rather than save
 _CHEAP = frozenset(

@@ -19,11 +19,17 @@ from collections.abc import Mapping
 from dataclasses import dataclass
 from pathlib import PurePosixPath
 
-from . import __version__
-from .diagnostics import GradwrightError, Location, fail
-from .formatting import format_code
-from .points import DEFAULT_SEED, Range, choose_points, signature_of, typical_sizes
-from .verify import DEFAULT_RTOL, NOISE_ULPS
+from gradwright import __version__
+from gradwright.diagnostics import GradwrightError, Location, fail
+from gradwright.emission.formatting import format_code
+from gradwright.workflow.points import (
+    DEFAULT_SEED,
+    Range,
+    choose_points,
+    signature_of,
+    typical_sizes,
+)
+from gradwright.workflow.verify import DEFAULT_RTOL, NOISE_ULPS
 
 TEST_POINTS = 3
 

@@ -10,8 +10,14 @@ from __future__ import annotations
 
 from collections.abc import Callable, Mapping
 
-from .ir import Apply, Bar, Const, Expr, Var
-from .primitives import OPS, PREC_ATOM, PREC_COMPARE, PREC_IFEXP, PREC_UNARY
+from gradwright.calculus.primitives import (
+    OPS,
+    PREC_ATOM,
+    PREC_COMPARE,
+    PREC_IFEXP,
+    PREC_UNARY,
+)
+from gradwright.ir import Apply, Bar, Const, Expr, Var
 
 _COMPARISONS = frozenset({"lt", "le", "gt", "ge", "eq", "ne"})
 

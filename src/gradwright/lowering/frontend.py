@@ -15,8 +15,8 @@ from functools import cached_property
 import libcst as cst
 from libcst.metadata import CodeRange, MetadataWrapper, PositionProvider
 
-from .diagnostics import Location, fail, file_location
-from .primitives import MATH_CONSTANTS, MATH_FUNCTIONS
+from gradwright.calculus.primitives import MATH_CONSTANTS, MATH_FUNCTIONS
+from gradwright.diagnostics import Location, fail, file_location
 
 
 @dataclass(frozen=True)

@@ -10,8 +10,11 @@ from __future__ import annotations
 
 from collections.abc import Iterator
 
-from .formatting import format_statement
-from .ir import (
+from gradwright.emission.formatting import format_statement
+from gradwright.emission.layout import Layout
+from gradwright.emission.naming import Namer
+from gradwright.emission.printer import Printer
+from gradwright.ir import (
     AdjointAssign,
     Apply,
     Atom,
@@ -32,9 +35,6 @@ from .ir import (
     Stmt,
     Var,
 )
-from .layout import Layout
-from .naming import Namer
-from .printer import Printer
 
 
 class _Lines:

@@ -22,7 +22,7 @@ import random
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 
-from .diagnostics import GradwrightError, Location, fail
+from gradwright.diagnostics import GradwrightError, Location, fail
 
 #: a parameter's value at a point: a number, or a list of numbers
 Value = float | list[float]

@@ -16,16 +16,14 @@ from pathlib import Path
 import jinja2
 import libcst as cst
 
-from . import __version__
-from .formatting import format_function, format_statement
-from .frontend import CheckedFunction, ModuleIndex
-from .ir import ReverseSweep, SSAFunction, Var
-from .naming import Namer
-from .numpy_support import REVERSE_SPELLING
-from .numpy_support import helper_sources as numpy_helper_sources
-from .printer import Printer
-from .sweeps import lay_out
-from .targets import (
+from gradwright import __version__
+from gradwright.calculus.numpy_rules import REVERSE_SPELLING
+from gradwright.calculus.numpy_rules import helper_sources as numpy_helper_sources
+from gradwright.emission.formatting import format_function, format_statement
+from gradwright.emission.naming import Namer
+from gradwright.emission.print_sweeps import lay_out
+from gradwright.emission.printer import Printer
+from gradwright.emission.targets import (
     DEFAULT_TARGET,
     Target,
     check_helper_names,
@@ -35,6 +33,8 @@ from .targets import (
     importable,
     prepare_primal,
 )
+from gradwright.ir import ReverseSweep, SSAFunction, Var
+from gradwright.lowering.frontend import CheckedFunction, ModuleIndex
 
 
 @dataclass(frozen=True)
@@ -78,7 +78,7 @@ def _template_dir() -> Path:
     if packaged.is_dir():
         return Path(str(packaged))
     # source checkout / editable install: the top-level templates/ folder
-    return Path(__file__).resolve().parents[2] / "templates"
+    return Path(__file__).resolve().parents[3] / "templates"
 
 
 @lru_cache(maxsize=1)

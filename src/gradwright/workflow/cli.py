@@ -15,10 +15,16 @@ from collections.abc import Sequence
 from pathlib import Path
 from typing import TextIO
 
-from . import __version__
-from .config import PLATFORMS, Project, Target, find_pyproject, load_project
-from .diagnostics import GradwrightError
-from .output import (
+from gradwright import __version__
+from gradwright.diagnostics import GradwrightError
+from gradwright.workflow.config import (
+    PLATFORMS,
+    Project,
+    Target,
+    find_pyproject,
+    load_project,
+)
+from gradwright.workflow.output import (
     Artifact,
     check_overwrite,
     is_current,
@@ -27,7 +33,7 @@ from .output import (
     unified_diff,
     write_artifact,
 )
-from .points import (
+from gradwright.workflow.points import (
     check_names,
     choose_points,
     parse_at,
@@ -37,7 +43,7 @@ from .points import (
     signature_of,
     typical_sizes,
 )
-from .regen import (
+from gradwright.workflow.regen import (
     Job,
     generate_module,
     job_command,
@@ -45,9 +51,9 @@ from .regen import (
     read_source,
     render,
 )
-from .verify import DEFAULT_RTOL, Subject, check_point, load
-from .verify import render as render_table
-from .verify import summary as verify_summary
+from gradwright.workflow.verify import DEFAULT_RTOL, Subject, check_point, load
+from gradwright.workflow.verify import render as render_table
+from gradwright.workflow.verify import summary as verify_summary
 
 EXIT_OK = 0
 EXIT_STALE = 1

@@ -19,8 +19,10 @@ from __future__ import annotations
 
 from collections.abc import Iterable
 
-from .algebra import E, is_zero, simplify
-from .ir import (
+from gradwright.calculus.algebra import E, is_zero, simplify
+from gradwright.calculus.numpy_rules import BROADCASTING
+from gradwright.calculus.rules import RULES
+from gradwright.ir import (
     AdjointAssign,
     Apply,
     Atom,
@@ -43,8 +45,6 @@ from .ir import (
     Var,
     const,
 )
-from .numpy_support import BROADCASTING
-from .rules import RULES
 
 #: primitives on lists that adjoints flow through
 _LIST_FLOW = frozenset({"getitem", "setitem", "newlist", "listlit", "sum"})

@@ -11,8 +11,8 @@ from collections import Counter
 from collections.abc import Iterable, Iterator
 from dataclasses import replace
 
-from .algebra import simplify
-from .ir import (
+from gradwright.calculus.algebra import simplify
+from gradwright.ir import (
     AdjointAssign,
     Apply,
     Bar,

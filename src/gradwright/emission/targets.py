@@ -26,13 +26,13 @@ from dataclasses import dataclass
 
 import libcst as cst
 
-from . import fallbacks
-from .algebra import E
-from .diagnostics import fail
-from .frontend import CheckedFunction, ModuleIndex
-from .ir import Apply, Const, Expr, Var
-from .primitives import MATH_FUNCTIONS, OPS
-from .rules import RULES
+from gradwright.calculus.algebra import E
+from gradwright.calculus.primitives import MATH_FUNCTIONS, OPS
+from gradwright.calculus.rules import RULES
+from gradwright.diagnostics import fail
+from gradwright.emission import fallbacks
+from gradwright.ir import Apply, Const, Expr, Var
+from gradwright.lowering.frontend import CheckedFunction, ModuleIndex
 
 DEFAULT_TARGET = "cpython"
 

@@ -30,8 +30,8 @@ from dataclasses import dataclass
 from pathlib import Path, PurePosixPath
 from typing import Any
 
-from .diagnostics import GradwrightError, Location, fail, file_location
-from .points import Range
+from gradwright.diagnostics import GradwrightError, Location, fail, file_location
+from gradwright.workflow.points import Range
 
 try:
     import tomllib

@@ -10,11 +10,11 @@ from __future__ import annotations
 
 import libcst as cst
 
-from .diagnostics import fail
-from .frontend import ModuleIndex
-from .frontend import dotted_name as _dotted
-from .ir import Atom, Const, Var
-from .primitives import NUMPY_FUNCTIONS
+from gradwright.calculus.primitives import NUMPY_FUNCTIONS
+from gradwright.diagnostics import fail
+from gradwright.ir import Atom, Const, Var
+from gradwright.lowering.frontend import ModuleIndex
+from gradwright.lowering.frontend import dotted_name as _dotted
 
 #: methods of arrays the subset supports -> the NumPy function they are
 _METHODS = {

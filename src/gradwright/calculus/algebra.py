@@ -12,7 +12,7 @@ from __future__ import annotations
 import math
 from collections.abc import Callable
 
-from .ir import Apply, Const, Expr, const
+from gradwright.ir import Apply, Const, Expr, const
 
 Operand = "E | float | int"
 

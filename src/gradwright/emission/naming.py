@@ -7,7 +7,7 @@ editing one statement renames nothing elsewhere. Adjoints are ``x_bar``.
 
 from __future__ import annotations
 
-from .ir import Var
+from gradwright.ir import Var
 
 
 class Namer:

@@ -33,8 +33,8 @@ from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any
 
-from . import nonfinite
-from .points import Value, describe
+from gradwright.workflow import nonfinite
+from gradwright.workflow.points import Value, describe
 
 EPSILON = sys.float_info.epsilon
 DEFAULT_RTOL = 1e-5

@@ -7,7 +7,7 @@ import re
 
 import libcst as cst
 
-from .frontend import ModuleIndex
+from gradwright.lowering.frontend import ModuleIndex
 
 _BINARY_SYMBOLS: dict[type, str] = {
     cst.Add: "+",

@@ -13,9 +13,9 @@ from dataclasses import dataclass
 
 import libcst as cst
 
-from .diagnostics import fail
-from .frontend import CheckedFunction, ModuleIndex, literal_value, math_function_op
-from .ir import (
+from gradwright.calculus.primitives import BINARY_OPERATORS, MATH_CONSTANTS, OPS
+from gradwright.diagnostics import fail
+from gradwright.ir import (
     Atom,
     Branch,
     Const,
@@ -28,9 +28,14 @@ from .ir import (
     Stmt,
     Var,
 )
-from .primitives import BINARY_OPERATORS, MATH_CONSTANTS, OPS
-from .ssa_numpy import NumpyLowering
-from .syntax import (
+from gradwright.lowering.frontend import (
+    CheckedFunction,
+    ModuleIndex,
+    literal_value,
+    math_function_op,
+)
+from gradwright.lowering.numpy_calls import NumpyLowering
+from gradwright.lowering.syntax import (
     _AUGMENTED_SYMBOLS,
     _BINARY_SYMBOLS,
     _COMPARE_OPS,

@@ -1,0 +1,3 @@
+"""The only place that knows derivatives: primitives, the rule table, the algebra rules
+are written in.
+"""

@@ -1,0 +1,3 @@
+"""Sweeps to module text: layout, naming, printing, formatting, templates, target
+interpreters.
+"""

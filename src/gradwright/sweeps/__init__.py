@@ -1,0 +1,1 @@
+"""SSA to sweeps: activity analysis, the reverse sweep and its optimisations."""

@@ -1,0 +1,1 @@
+"""What users run around the pure core: the command line, regeneration, verify."""
