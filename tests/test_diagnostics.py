@@ -448,6 +448,39 @@ CASES = [
         6,
         "3.0",
     ),
+    # a list handed to a helper: rejected at the argument, whether the helper's
+    # result is added to itself or scaled (both forms were once accepted silently
+    # by a test that returned early on the rejection)
+    case(
+        "list-passed-to-helper",
+        """
+        def g(cs):
+            return cs[0] * cs[1]
+
+
+        def f(cs):
+            return g(cs) + g(cs)
+        """,
+        "'g' takes a list ('cs'): passing lists to helper functions is not supported",
+        6,
+        "cs",
+        "index the list in the caller and pass the numbers",
+    ),
+    case(
+        "list-passed-to-helper-scaled",
+        """
+        def g(cs):
+            return cs[0] * cs[1]
+
+
+        def f(cs):
+            return 3.0 * g(cs)
+        """,
+        "'g' takes a list ('cs'): passing lists to helper functions is not supported",
+        6,
+        "cs",
+        "index the list in the caller and pass the numbers",
+    ),
     case(
         "star-args",
         """
@@ -1565,20 +1598,40 @@ GOOD = "def f(x):\n    return x * x\n"
 
 
 def test_output_into_missing_directory(tmp_path: Path) -> None:
-    """Creating the directory, or refusing with a message, is fine; a crash is not."""
+    """The missing directories are created and the module is written there."""
     _prepare(tmp_path, GOOD)
     status, stdout, stderr = _run_subprocess(
         tmp_path, ["gen", MODEL, "f", "-o", "no/such/dir/out.py"]
     )
-    assert "Traceback" not in stderr
-    assert stdout == ""
-    if status == 0:
-        assert "def f_grad(x):" in (tmp_path / "no/such/dir/out.py").read_text()
-    else:
-        assert status == 2
-        assert "no/such/dir" in stderr
-        assert not (tmp_path / "no").exists()
+    assert (status, stdout, stderr) == (0, "", "")
+    written = (tmp_path / "no/such/dir/out.py").read_text(encoding="utf-8")
+    # the module the command prints without -o (the header's comments name the
+    # command, so they differ)
+    _, printed, _ = _run_subprocess(tmp_path, ["gen", MODEL, "f"])
+    assert "def f_grad(x):" in written
+    assert _code(written) == _code(printed)
     assert (tmp_path / OUT).read_bytes() == PRECIOUS
+
+
+def _code(module_text: str) -> list[str]:
+    return [line for line in module_text.splitlines() if not line.startswith("# ")]
+
+
+def test_output_under_a_file_is_refused(tmp_path: Path) -> None:
+    """A path through an existing regular file cannot be written: status 2, one
+    line on stderr naming the output, nothing changed."""
+    _prepare(tmp_path, GOOD)
+    (tmp_path / "plain").write_bytes(b"not a directory")
+    status, stdout, stderr = _run_subprocess(
+        tmp_path, ["gen", MODEL, "f", "-o", "plain/out.py"]
+    )
+    assert "Traceback" not in stderr
+    assert (status, stdout) == (2, "")
+    assert stderr.startswith("error: plain/out.py: ") and "Not a directory" in stderr
+    assert stderr.count("\n") == 1, stderr
+    assert (tmp_path / "plain").read_bytes() == b"not a directory"
+    assert (tmp_path / OUT).read_bytes() == PRECIOUS
+    assert sorted(p.name for p in tmp_path.iterdir()) == sorted([MODEL, OUT, "plain"])
 
 
 def test_output_is_a_directory(tmp_path: Path) -> None:

@@ -358,10 +358,12 @@ def test_rosenbrock_against_scipy(point: tuple) -> None:
 
 
 def test_rosenbrock_minimum() -> None:
-    # scipy.optimize.rosen_der is exactly zero at the minimum (1, 1, 1, 1)
+    # at the minimum (1, 1, 1, 1) every term vanishes exactly: the value and the
+    # gradient equal scipy.optimize.rosen and rosen_der there, exactly (both 0)
     value, grads = _grad_fn("rosenbrock")(1.0, 1.0, 1.0, 1.0)
-    assert list(scipy.optimize.rosen_der(np.ones(4))) == [0.0] * 4
-    assert value == 0.0 and grads == (0.0, 0.0, 0.0, 0.0), "scipy.optimize.rosen_der"
+    assert value == scipy.optimize.rosen(np.ones(4)), "scipy.optimize.rosen"
+    reference = tuple(float(d) for d in scipy.optimize.rosen_der(np.ones(4)))
+    assert grads == reference, "scipy.optimize.rosen_der"
 
 
 # ---------------------------------------------------------------------------------
@@ -404,16 +406,22 @@ def test_projectile_range_closed_form(point: tuple) -> None:
     assert (
         rel_err(d_height, speed * math.cos(angle) / root) <= 1e-12
     ), "dR/dh, closed form by hand"
-    if height == 0.0:
-        # from level ground R = v^2 sin(2a) / g: dR/dv = 2 v sin(2a) / g and
-        # dR/da = 2 v^2 cos(2a) / g (closed form, by hand)
-        assert rel_err(d_speed, 2.0 * speed * math.sin(2.0 * angle) / g) <= 1e-12
-        assert rel_err(d_angle, 2.0 * speed**2 * math.cos(2.0 * angle) / g) <= 1e-12
 
 
-def test_projectile_points_include_level_ground() -> None:
-    # the level-ground closed form above must actually be exercised
-    assert any(height == 0.0 for _, _, height in PROJECTILE_POINTS)
+#: level ground (h = 0), where the range has the simpler closed form below
+LEVEL_GROUND_POINTS = [(35.0, 0.2, 0.0), (12.0, 0.9, 0.0), (50.0, 1.3, 0.0)]
+
+
+@pytest.mark.parametrize("point", LEVEL_GROUND_POINTS)
+def test_projectile_level_ground_closed_form(point: tuple) -> None:
+    speed, angle, height = point
+    g = 9.80665
+    value, (d_speed, d_angle, _) = _grad_fn("projectile")(*point)
+    # from level ground R = v^2 sin(2a) / g (introductory mechanics, recalled from
+    # memory): dR/dv = 2 v sin(2a) / g and dR/da = 2 v^2 cos(2a) / g (by hand)
+    assert rel_err(value, speed**2 * math.sin(2.0 * angle) / g) <= 1e-13
+    assert rel_err(d_speed, 2.0 * speed * math.sin(2.0 * angle) / g) <= 1e-12
+    assert rel_err(d_angle, 2.0 * speed**2 * math.cos(2.0 * angle) / g) <= 1e-12
 
 
 @pytest.mark.parametrize("point", LOGISTIC_POINTS)
