@@ -462,8 +462,12 @@ def test_conditional_expression_matches_statement_form(v):
     expression = build(PIECEWISE_EXPRESSION, "friction_expr")["friction_expr_grad"](
         v, 0.6, 1.7
     )
-    # same operations in the taken branch: the values agree bit for bit
+    # same operations in the taken branch: the values and every gradient entry
+    # agree bit for bit (each form is checked against sympy.Piecewise above)
     assert same_bits(statement[0], expression[0])
+    assert len(statement[1]) == len(expression[1]) == 3
+    for a, b in zip(statement[1], expression[1], strict=True):
+        assert same_bits(a, b), (statement, expression)
 
 
 LOGIC = """\
@@ -1077,12 +1081,19 @@ def test_loop_that_does_not_reach_the_result_has_no_reverse():
     ns = build(LOOP_REGRESSIONS, "f")
     v, x, y = [0.0, 0.0, 0.001], 0.3, 0.7
     _, (v_bar, x_bar, y_bar) = ns["f_grad"](v, x, y)
-    # closed form by hand: F = sqrt(1 + u**2), u = y / (1 + x**2)
-    u = y / (1.0 + x * x)
-    big_f = math.sqrt(1.0 + u * u)
+    # closed form by hand: F = sqrt(1 + u**2), u = y / (1 + x**2), so
+    # dF/dx = u / F * (-2 x y / (1 + x**2)**2) and dF/dy = u / F / (1 + x**2);
+    # evaluated in mpmath at 30 digits at the float inputs
+    with mpmath.workdps(30):
+        mx, my = mpmath.mpf(x), mpmath.mpf(y)
+        u = my / (1 + mx * mx)
+        big_f = mpmath.sqrt(1 + u * u)
+        dx = u / big_f * (-2 * mx * my / (1 + mx * mx) ** 2)
+        dy = u / big_f / (1 + mx * mx)
     assert v_bar == [0.0, 0.0, 0.0]
-    assert x_bar == pytest.approx(u / big_f * (-2.0 * x * y / (1.0 + x * x) ** 2))
-    assert y_bar == pytest.approx(u / big_f / (1.0 + x * x))
+    # a dozen roundings on values of order 0.1-1: 1e-14 relative
+    assert rel_err(x_bar, dx) <= 1e-14, "closed form by hand (mpmath, 30 digits)"
+    assert rel_err(y_bar, dy) <= 1e-14, "closed form by hand (mpmath, 30 digits)"
 
 
 def test_value_after_an_inner_loop_is_saved_for_the_outer_reverse():
