@@ -2,6 +2,7 @@
 # source: samples/cable_sag.py
 # source sha256: 60a95002dd1d21d9e5e7f63265caaee126765d6ffe25172b57604f5de1edd964
 # command: gradwright gen samples/cable_sag.py rig_loss -o samples/cable_sag_grad.py
+# output sha256: 90cbc205838dedeb0517ff49fddcce990e2b6fdf31cc27beaadc48f017288e20
 
 import math
 

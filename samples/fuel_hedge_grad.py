@@ -2,6 +2,7 @@
 # source: samples/fuel_hedge.py
 # source sha256: 0ea00fed34a5da6fdf8d79be718d957302aa63a99bc63f8c28269a24d0084725
 # command: gradwright gen samples/fuel_hedge.py call_value --wrt spot,vol,rate,years -o samples/fuel_hedge_grad.py
+# output sha256: eb202ee3aec685c0d4f843059cebfade40f15f65db77194abb7aa4f3d3db6460
 
 import math
 from math import erf, exp, log, sqrt

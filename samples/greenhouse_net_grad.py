@@ -2,6 +2,7 @@
 # source: samples/greenhouse_net.py
 # source sha256: f94a505cbabce5a779320a9a523463a3af5a29e82a9d607fbc7c2942e6341334
 # command: gradwright gen samples/greenhouse_net.py humidity_loss --wrt W1,b1,w2,b2 -o samples/greenhouse_net_grad.py
+# output sha256: 32cfff11910286f19c6ec499ccbdfd24f96d36594a2f3107f786627145e05f6f
 
 import numpy as np
 

@@ -2,6 +2,7 @@
 # source: samples/kiln_cooling.py
 # source sha256: a06d7e41ceb820bdb9f7afefdfd582c36125c98be226eb56a6a555feac5b0ed6
 # command: gradwright gen samples/kiln_cooling.py kiln_loss --wrt k_conv,k_rad,start_temp -o samples/kiln_cooling_grad.py
+# output sha256: c68a6696f14112eebcd9ff3ed2770b778a79873eadf7ff4009cbf4893ca12476
 
 AMBIENT = 293.15  # kelvin
 SAFE_POINT = 700.0  # kelvin: below this the heater comes on

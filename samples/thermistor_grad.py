@@ -2,6 +2,7 @@
 # source: samples/thermistor.py
 # source sha256: a9d4d503eda8743b77c7fe5fefba61d3cc0e699054f5ccafe02040fd3e72a4cb
 # command: gradwright gen samples/thermistor.py fit_loss --wrt a,b,c -o samples/thermistor_grad.py
+# output sha256: de99db73b2446cd7236e09c66328fa6f733b7ce956fb6e2a17d3f5fbce62fef7
 
 import math
 

@@ -357,18 +357,19 @@ def test_replacing_keeps_the_file_mode(proj: Path) -> None:
 
 
 # ---------------------------------------------------------------------------------
-# --target (the keyword arrives in generate() separately)
+# --target
+
+
+def test_generate_takes_the_target_keyword() -> None:
+    parameters = inspect.signature(gradwright.generate).parameters
+    assert parameters["target"].kind is inspect.Parameter.KEYWORD_ONLY
+    assert parameters["target"].default == "cpython"
 
 
 def test_target_option(proj: Path) -> None:
-    supported = "target" in inspect.signature(gradwright.generate).parameters
     result = cli(*GEN, "--target", "micropython", "-o", OUT, cwd=proj)
-    if supported:
-        assert result.code == 0, result.err
-    else:
-        assert result.code == 2
-        assert "--target micropython is not supported" in result.err
-        assert not (proj / OUT).exists()
+    assert result.code == 0, result.err
+    assert "# target: micropython" in (proj / OUT).read_text()
     default = cli(*GEN, "-o", OUT, "--force", cwd=proj)
     explicit = cli(*GEN, "--target", "cpython", "-o", OUT, "--check", cwd=proj)
     assert (default.code, explicit.code) == (0, 0)
@@ -416,7 +417,9 @@ def test_emitted_test_passes_under_pytest_and_catches_a_corruption(
     # and --check sees the edited module (the test file is still current)
     check = cli(*emit, "--check", cwd=proj)
     assert check.code == 1
-    assert f"stale     {OUT}" in check.err and f"unchanged {test}" in check.err
+    # (edited by hand: reported as such, not as merely stale)
+    assert f"edited    {OUT}" in check.err and f"unchanged {test}" in check.err
+    assert "edited by hand" in check.err
 
 
 def test_emitted_test_from_config_is_deterministic(tmp_path: Path) -> None:
@@ -593,3 +596,212 @@ def test_build_diff_alone_reports_what_would_change(tmp_path, monkeypatch, capsy
     assert "would change m_grad.py" in report and "unchanged" not in report
     assert "build --diff: 1 target: 1 would change" in report
     assert (tmp_path / "m_grad.py").read_bytes() == before  # nothing written
+
+
+# ---------------------------------------------------------------------------------
+# the fast path: a current output is recognised from its header, without generating
+
+HEAVY = ("libcst", "black", "jinja2")
+
+
+@pytest.fixture
+def built(tmp_path: Path) -> Path:
+    root = project(tmp_path, THERMISTOR, CABLE, HEDGE)
+    assert cli("build", cwd=root).code == 0
+    return root
+
+
+@pytest.fixture
+def generations(monkeypatch: pytest.MonkeyPatch) -> list[str]:
+    """Counts full generations (in this process: use -j 1)."""
+    from gradwright.workflow import regen
+
+    calls: list[str] = []
+    real = regen.generate_module
+
+    def counted(job: regen.Job, source: str) -> str:
+        calls.append(job.source)
+        return real(job, source)
+
+    monkeypatch.setattr(regen, "generate_module", counted)
+    return calls
+
+
+def _restamp(text: str, old: str, new: str) -> str:
+    """The file as if generated with ``old`` replaced: its digest made to match."""
+    from gradwright.header import DIGEST_PREFIX, stamp
+
+    lines = text.splitlines(keepends=True)
+    unstamped = "".join(line for line in lines if not line.startswith(DIGEST_PREFIX))
+    return stamp(unstamped.replace(old, new))
+
+
+def test_current_outputs_are_checked_without_generating(
+    built: Path, generations: list[str]
+) -> None:
+    check = cli("build", "--check", "-j", "1", cwd=built)
+    assert check.code == 0, check.err
+    assert check.err.splitlines()[-1] == "build --check: 3 targets: 3 unchanged"
+    assert cli("build", "-j", "1", cwd=built).code == 0
+    gen = cli(*GEN, "-o", OUT, "--check", cwd=built)
+    assert gen.code == 0 and f"unchanged {OUT}" in gen.err
+    assert generations == []
+
+
+def test_a_stale_source_falls_back_to_one_generation(
+    built: Path, generations: list[str]
+) -> None:
+    model = built / "models/cable_sag.py"
+    model.write_text(model.read_text() + "\nEXTRA = 1.0\n")
+    result = cli("build", "--check", "-j", "1", cwd=built)
+    assert result.code == 1
+    assert "stale     models/cable_sag_grad.py" in result.err.splitlines()
+    assert generations == ["models/cable_sag.py"]
+
+
+def test_a_source_changed_and_back_is_current(
+    built: Path, generations: list[str]
+) -> None:
+    model = built / "models/cable_sag.py"
+    text = model.read_text()
+    model.write_text(text + "\n")
+    model.write_text(text)  # same bytes, newer mtime: hashes, not times, decide
+    assert cli("build", "--check", "-j", "1", cwd=built).code == 0
+    assert generations == []
+
+
+def test_an_edited_output_is_reported_as_edited_and_kept(
+    built: Path, generations: list[str]
+) -> None:
+    out = built / "models/fuel_hedge_grad.py"
+    edited = out.read_text().replace(
+        "    return value,", "    value += 0.0\n    return value,"
+    )
+    out.write_text(edited)
+    check = cli("build", "--check", "-j", "1", cwd=built)
+    assert check.code == 1
+    assert "edited    models/fuel_hedge_grad.py" in check.err.splitlines()
+    assert "build --check: 3 targets: 1 edited, 2 unchanged" in check.err
+    assert "changed by hand" in check.err
+    assert generations == ["models/fuel_hedge.py"]  # compared in full first
+    refused = cli("build", "-j", "1", cwd=built)
+    assert refused.code == 2
+    assert "edited by hand" in refused.err and "--force" in refused.err
+    assert out.read_text() == edited  # not silently regenerated
+    gen = cli("gen", "models/fuel_hedge.py", "call_value", "--wrt", "spot,vol",
+              "-o", "models/fuel_hedge_grad.py", "--check", cwd=built)  # fmt: skip
+    assert gen.code == 1 and "edited    models/fuel_hedge_grad.py" in gen.err
+    assert cli("build", "--force", "-j", "1", cwd=built).code == 0
+    assert cli("build", "--check", cwd=built).code == 0
+
+
+def test_an_output_regenerated_identically_by_hand_is_current(built: Path) -> None:
+    # edited, then the edit undone: the bytes are what generating writes
+    out = built / OUT
+    text = out.read_text()
+    out.write_text(text + "# note\n")
+    out.write_text(text)
+    assert cli("build", "--check", cwd=built).code == 0
+
+
+def test_a_changed_option_falls_back_and_is_stale(
+    built: Path, generations: list[str]
+) -> None:
+    pyproject = built / "pyproject.toml"
+    pyproject.write_text(
+        pyproject.read_text().replace('wrt = ["spot", "vol"]', 'wrt = ["spot"]')
+    )
+    result = cli("build", "--check", "-j", "1", cwd=built)
+    assert result.code == 1
+    assert "stale     models/fuel_hedge_grad.py" in result.err.splitlines()
+    assert generations == ["models/fuel_hedge.py"]
+    # and on the command line: another --wrt, another --target
+    gen = ("gen", "models/thermistor.py", "fit_loss", "-o", OUT, "--check")
+    assert cli(*gen, "--wrt", "a,b", cwd=built).code == 1
+    assert cli(*gen, "--wrt", "a,b,c", "--target", "micropython", cwd=built).code == 1
+    assert cli(*gen, "--wrt", "a,b,c", cwd=built).code == 0
+
+
+def test_another_version_falls_back_and_is_stale(
+    built: Path, generations: list[str]
+) -> None:
+    out = built / OUT
+    version = f"gradwright {gradwright.__version__}."
+    out.write_text(_restamp(out.read_text(), version, "gradwright 0.0.1."))
+    result = cli("build", "--check", "-j", "1", cwd=built)
+    assert result.code == 1
+    assert f"stale     {OUT}" in result.err.splitlines()  # not "edited"
+    assert generations == ["models/thermistor.py"]
+
+
+def test_a_header_without_a_digest_falls_back_and_is_stale(
+    built: Path, generations: list[str]
+) -> None:
+    from gradwright.header import DIGEST_PREFIX
+
+    out = built / OUT
+    lines = out.read_text().splitlines(keepends=True)
+    out.write_text("".join(x for x in lines if not x.startswith(DIGEST_PREFIX)))
+    result = cli("build", "--check", "-j", "1", cwd=built)
+    assert result.code == 1
+    assert f"stale     {OUT}" in result.err.splitlines()
+    assert generations == ["models/thermistor.py"]
+    assert cli("build", "-j", "1", cwd=built).code == 0  # not refused: not edited
+
+
+def test_a_changed_emitted_test_option_is_stale(tmp_path: Path) -> None:
+    root = project(
+        tmp_path,
+        target(
+            "models/thermistor.py", ["fit_loss"], OUT, wrt=["a", "b", "c"],
+            emit_test='"tests/test_t.py"', ranges="{ " + THERMISTOR_RANGES + " }",
+        ),
+    )  # fmt: skip
+    assert cli("build", cwd=root).code == 0
+    assert cli("build", "--check", cwd=root).code == 0
+    pyproject = root / "pyproject.toml"
+    pyproject.write_text(
+        pyproject.read_text().replace("kelvin = [250", "kelvin = [260")
+    )
+    result = cli("build", "--check", cwd=root)
+    assert result.code == 1 and "stale     tests/test_t.py" in result.err
+
+
+def test_build_jobs_keep_target_order_and_the_other_targets(proj: Path) -> None:
+    serial = cli("build", "--check", "-j", "1", cwd=proj)
+    parallel = cli("build", "--check", "-j", "4", cwd=proj)
+    assert serial.code == parallel.code == 2
+    assert serial.err == parallel.err
+    assert parallel.err.count("stale     ") == 3  # the broken one did not stop them
+    assert cli("build", "-j", "0", cwd=proj).code == 2
+
+
+def _modules_loaded(args: list[str], cwd: Path) -> tuple[int, list[str]]:
+    """Run the command line in a fresh interpreter; which heavy modules it loaded."""
+    code = (
+        "import sys\n"
+        "from gradwright.workflow.cli import main\n"
+        "try:\n"
+        f"    status = main({args!r})\n"
+        "except SystemExit as stop:\n"
+        "    status = stop.code\n"
+        f"print(status, *sorted(m for m in {HEAVY!r} if m in sys.modules))\n"
+    )
+    done = subprocess.run(
+        [sys.executable, "-c", code], cwd=cwd, capture_output=True, text=True
+    )
+    words = done.stdout.splitlines()[-1].split()  # after what the command printed
+    return int(words[0]), words[1:]
+
+
+def test_version_help_and_a_current_check_load_no_generator(built: Path) -> None:
+    assert _modules_loaded(["--version"], built) == (0, [])
+    assert _modules_loaded(["--help"], built) == (0, [])
+    assert _modules_loaded(["build", "--help"], built) == (0, [])
+    assert _modules_loaded(["build", "--check"], built) == (0, [])
+    gen = [*GEN, "-o", OUT, "--check"]
+    assert _modules_loaded(gen, built) == (0, [])
+    # the same check on a stale output does load them (so the test can fail)
+    (built / OUT).write_text((built / OUT).read_text() + "\n")
+    status, loaded = _modules_loaded(gen, built)
+    assert status == 1 and "libcst" in loaded

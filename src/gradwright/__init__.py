@@ -1,8 +1,27 @@
 """gradwright: reverse-mode gradient modules generated from Python model source."""
 
+from __future__ import annotations
+
+from typing import TYPE_CHECKING, Any
+
 __version__ = "0.1.0"
 
-from gradwright.api import generate  # noqa: E402
-from gradwright.diagnostics import Diagnostic, GradwrightError  # noqa: E402
+if TYPE_CHECKING:
+    from gradwright.api import generate
+    from gradwright.diagnostics import Diagnostic, GradwrightError
 
 __all__ = ["Diagnostic", "GradwrightError", "__version__", "generate"]
+
+
+def __getattr__(name: str) -> Any:
+    # lazy, so that `gradwright --version` and a current `--check` never load libcst,
+    # jinja2 or black (the generator's imports cost far more than the check itself)
+    if name == "generate":
+        from gradwright.api import generate
+
+        return generate
+    if name in ("Diagnostic", "GradwrightError"):
+        from gradwright import diagnostics
+
+        return getattr(diagnostics, name)
+    raise AttributeError(f"module 'gradwright' has no attribute {name!r}")

@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import gc
-import shlex
 from collections.abc import Iterator, Sequence
 from contextlib import contextmanager
 
@@ -12,6 +11,7 @@ import libcst as cst
 from gradwright.diagnostics import GradwrightError, fail, file_location
 from gradwright.emission.module import Compiled, render_module
 from gradwright.emission.targets import DEFAULT_TARGET, get_target
+from gradwright.header import regeneration_command, stamp
 from gradwright.ir import Expr, SSAFunction, Var, const
 from gradwright.lowering.frontend import (
     CheckedFunction,
@@ -22,24 +22,6 @@ from gradwright.lowering.frontend import (
 from gradwright.lowering.ssa import lower
 from gradwright.sweeps.optimize import inline_adjoints, reuse_forward_values
 from gradwright.sweeps.reverse import active_values, defined_in, reverse_sweep
-
-
-def regeneration_command(
-    path: str,
-    functions: Sequence[str],
-    wrt: Sequence[str] | None,
-    output: str | None,
-    target: str = DEFAULT_TARGET,
-) -> str:
-    """The canonical command line that regenerates a module (for its header)."""
-    words = ["gradwright", "gen", path, *functions]
-    if wrt is not None:
-        words += ["--wrt", ",".join(wrt)]
-    if output is not None:
-        words += ["-o", output]
-    if target != DEFAULT_TARGET:
-        words += ["--target", target]
-    return shlex.join(words)
 
 
 def compile_function(
@@ -166,7 +148,8 @@ def generate(
         wanted = tuple(wrt) if wrt is not None else None
         compiled = compile_with_callees(index, functions, wanted)
         command = regeneration_command(path, functions, wrt, output, target)
-        return render_module(index, compiled, command, runtime)
+        # the digest line lets --check see an untouched output without generating
+        return stamp(render_module(index, compiled, command, runtime))
 
 
 @contextmanager

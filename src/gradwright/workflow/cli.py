@@ -9,9 +9,12 @@ from __future__ import annotations
 
 import argparse
 import ast
+import os
 import re
 import sys
+import traceback
 from collections.abc import Sequence
+from dataclasses import dataclass
 from pathlib import Path
 from typing import TextIO
 
@@ -19,14 +22,13 @@ from gradwright import __version__
 from gradwright.diagnostics import GradwrightError
 from gradwright.workflow.config import (
     PLATFORMS,
-    Project,
-    Target,
     find_pyproject,
     load_project,
 )
 from gradwright.workflow.output import (
     Artifact,
     check_overwrite,
+    edited_by_hand,
     is_current,
     is_generated,
     read_existing,
@@ -45,6 +47,8 @@ from gradwright.workflow.points import (
 )
 from gradwright.workflow.regen import (
     Job,
+    current_without_generating,
+    expected_headers,
     generate_module,
     job_command,
     job_for_target,
@@ -165,6 +169,13 @@ def _parser() -> argparse.ArgumentParser:
         " staged yet)",
     )
     build.add_argument(
+        "-j",
+        "--jobs",
+        metavar="N",
+        type=int,
+        help="generate up to N targets at once (default: the number of CPUs)",
+    )
+    build.add_argument(
         "--config",
         metavar="PYPROJECT",
         help="the pyproject.toml to read (default: the nearest one upwards)",
@@ -258,7 +269,8 @@ class _Report:
             print(text, file=self.stream)
 
     def status(self, word: str, labels: Sequence[str]) -> None:
-        self.line(f"{word:<9} {', '.join(labels)}", error=word in ("stale", "failed"))
+        error = word in ("stale", "edited", "failed")
+        self.line(f"{word:<9} {', '.join(labels)}", error=error)
 
 
 # ---------------------------------------------------------------------------------
@@ -290,19 +302,33 @@ def _gen(args: argparse.Namespace) -> int:
         emit_test=args.emit_test,
         ranges=parse_ranges(args.range),
     )
+    report = _Report(args.quiet)
+    if _current(job, args.diff):
+        if args.check:
+            for label, _ in expected_headers(job):
+                report.status("unchanged", [label])
+        return EXIT_OK
     artifacts = render(job)
     if job.output is None:
         sys.stdout.write(artifacts[0].text)
         return EXIT_OK
-    report = _Report(args.quiet)
     if args.check or args.diff:
-        stale = _compare(artifacts, args.diff)
+        stale = [a for a in artifacts if not is_current(a)]
+        if args.diff:
+            sys.stdout.write("".join(unified_diff(a) for a in stale))
         if args.check:
-            for artifact in artifacts:
-                word = "stale" if artifact in stale else "unchanged"
+            words = [_stale_word(a) if a in stale else "unchanged" for a in artifacts]
+            for artifact, word in zip(artifacts, words, strict=True):
                 report.status(word, [artifact.label])
-            if stale:
+            if "edited" in words:
+                report.line(
+                    "edited by hand since it was generated: move the change into the"
+                    f" model, then regenerate with: {job_command(job)} --force",
+                    error=True,
+                )
+            elif stale:
                 report.line(f"regenerate with: {job_command(job)}", error=True)
+            if stale:
                 return EXIT_STALE
         return EXIT_OK
     for artifact in artifacts:  # refuse before writing anything
@@ -312,33 +338,91 @@ def _gen(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
-def _compare(artifacts: Sequence[Artifact], diff: bool) -> list[Artifact]:
-    """The stale artifacts; with ``diff``, their diffs on stdout."""
-    stale = [a for a in artifacts if not is_current(a)]
-    if diff:
-        for artifact in stale:
-            sys.stdout.write(unified_diff(artifact))
-    return stale
+def _current(job: Job, diff: bool) -> bool:
+    """Whether the outputs' headers show them current, so nothing is generated.
+    A diff is always made from a full regeneration; a source that cannot be read
+    is left to the full path, which reports it."""
+    if diff or job.output is None:
+        return False
+    try:
+        source = read_source(job.path(job.source), job.source)
+    except GradwrightError:
+        return False
+    return current_without_generating(job, source)
+
+
+def _stale_word(artifact: Artifact) -> str:
+    """`edited` for a generated file changed by hand since, else `stale`."""
+    return "edited" if edited_by_hand(read_existing(artifact.path)) else "stale"
 
 
 # ---------------------------------------------------------------------------------
 # build
 
 
+@dataclass(frozen=True)
+class _Outcome:
+    word: str  # generated, unchanged, stale, edited, would change, failed
+    labels: list[str]
+    diagnostic: str | None = None  # a failed target's error message
+    diff: str = ""
+
+
+@dataclass(frozen=True)
+class _BuildOptions:
+    check: bool
+    diff: bool
+    force: bool
+
+
+def _jobs(requested: int | None) -> int:
+    if requested is None:
+        return os.cpu_count() or 1
+    if requested < 1:
+        raise GradwrightError.usage("-j must be at least 1")
+    return requested
+
+
 def _build(args: argparse.Namespace) -> int:
+    workers = _jobs(args.jobs)
     pyproject = (
         Path(args.config) if args.config is not None else find_pyproject(Path.cwd())
     )
     project = load_project(pyproject)
+    options = _BuildOptions(args.check, args.diff, args.force)
     report = _Report(args.quiet)
+    jobs = [job_for_target(project, target) for target in project.targets]
+    outcomes: list[_Outcome | None] = [
+        _Outcome("unchanged", [job.output or ""]) if _current(job, args.diff) else None
+        for job in jobs
+    ]
+    pending = [k for k, outcome in enumerate(outcomes) if outcome is None]
+    pool = None
+    if workers > 1 and len(pending) > 1:
+        # only then: a pool's start-up costs more than one small generation
+        from concurrent.futures import ProcessPoolExecutor
+
+        pool = ProcessPoolExecutor(max_workers=min(workers, len(pending)))
+        futures = {k: pool.submit(_build_target, jobs[k], options) for k in pending}
     counts: dict[str, int] = {}
-    for target in project.targets:
-        word, labels, diagnostic = _build_target(project, target, args)
-        counts[word] = counts.get(word, 0) + 1
-        report.status(word, labels)
-        if diagnostic is not None:
-            report.line(diagnostic, error=True)
-    order = ("generated", "would change", "stale", "unchanged", "failed")
+    try:
+        for k, job in enumerate(jobs):  # reported in target order
+            outcome = outcomes[k]
+            if outcome is None:
+                outcome = (
+                    futures[k].result()
+                    if pool is not None
+                    else _build_target(job, options)
+                )
+            counts[outcome.word] = counts.get(outcome.word, 0) + 1
+            sys.stdout.write(outcome.diff)
+            report.status(outcome.word, outcome.labels)
+            if outcome.diagnostic is not None:
+                report.line(outcome.diagnostic, error=True)
+    finally:
+        if pool is not None:
+            pool.shutdown()
+    order = ("generated", "would change", "stale", "edited", "unchanged", "failed")
     parts = [f"{counts[w]} {w}" for w in order if counts.get(w)]
     total = len(project.targets)
     mode = "build --check" if args.check else "build --diff" if args.diff else "build"
@@ -347,8 +431,17 @@ def _build(args: argparse.Namespace) -> int:
     )
     if counts.get("failed"):
         return EXIT_BAD_INPUT
-    if counts.get("stale"):
-        report.line("run `gradwright build` to regenerate the stale files", error=True)
+    if counts.get("stale") or counts.get("edited"):
+        if counts.get("edited"):
+            report.line(
+                "edited files were changed by hand since they were generated: move"
+                " the change into the model, then `gradwright build --force`",
+                error=True,
+            )
+        if counts.get("stale"):
+            report.line(
+                "run `gradwright build` to regenerate the stale files", error=True
+            )
         return EXIT_STALE
     if counts.get("generated") and args.fail_if_changed:
         report.line("files were regenerated: review and stage them", error=True)
@@ -356,28 +449,32 @@ def _build(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
-def _build_target(
-    project: Project, target: Target, args: argparse.Namespace
-) -> tuple[str, list[str], str | None]:
-    """(status, the files it concerns, the error message of a failed target)."""
-    job = job_for_target(project, target)
+def _build_target(job: Job, options: _BuildOptions) -> _Outcome:
+    """One target, generated in full (in a worker process when there are several).
+    Any error becomes a `failed` outcome, so the other targets still run."""
     try:
         artifacts = render(job)
-        if args.check or args.diff:
-            stale = _compare(artifacts, args.diff)
-            if stale:
-                # --diff alone shows what building would change, and exits 0
-                status = "stale" if args.check else "would change"
-                return status, [a.label for a in stale], None
-            return "unchanged", [artifacts[0].label], None
+        if options.check or options.diff:
+            stale = [a for a in artifacts if not is_current(a)]
+            diff = "".join(unified_diff(a) for a in stale) if options.diff else ""
+            if not stale:
+                return _Outcome("unchanged", [artifacts[0].label], diff=diff)
+            if not options.check:  # --diff alone shows what building would change
+                return _Outcome("would change", [a.label for a in stale], diff=diff)
+            edited = [a.label for a in stale if _stale_word(a) == "edited"]
+            if edited:
+                return _Outcome("edited", edited, diff=diff)
+            return _Outcome("stale", [a.label for a in stale], diff=diff)
         for artifact in artifacts:
-            check_overwrite(artifact, args.force)
-        changed = [a.label for a in artifacts if write_artifact(a, args.force)]
+            check_overwrite(artifact, options.force)
+        changed = [a.label for a in artifacts if write_artifact(a, options.force)]
     except GradwrightError as error:
-        return "failed", [target.output], error.diagnostic.render()
+        return _Outcome("failed", [job.output or ""], error.diagnostic.render())
+    except Exception:  # a bug in one target must not hide the others' results
+        return _Outcome("failed", [job.output or ""], traceback.format_exc())
     if changed:
-        return "generated", changed, None
-    return "unchanged", [artifacts[0].label], None
+        return _Outcome("generated", changed)
+    return _Outcome("unchanged", [artifacts[0].label])
 
 
 # ---------------------------------------------------------------------------------

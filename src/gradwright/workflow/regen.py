@@ -3,19 +3,24 @@
 ``gen`` makes one job from its command line and ``build`` one per configured target;
 both then write, check or diff the artifacts the same way (``output.py``). Rendering
 is static: the model is read, never imported or run.
+
+Before generating, :func:`current_without_generating` reads the outputs' headers: when
+each records this version, the source's sha256, this job's command and a digest that
+still matches the file, generating would write the same bytes, so nothing is
+generated (and the generator's imports are never loaded).
 """
 
 from __future__ import annotations
 
-import inspect
 from collections.abc import Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
 
-from gradwright.api import generate, regeneration_command
+from gradwright import __version__
 from gradwright.diagnostics import GradwrightError, Location
+from gradwright.header import read_header, regeneration_command, sha256_text
 from gradwright.workflow.config import Project, Target
-from gradwright.workflow.output import Artifact
+from gradwright.workflow.output import Artifact, read_existing
 from gradwright.workflow.points import Range
 from gradwright.workflow.testgen import TestRequest, render_test, test_command
 
@@ -59,18 +64,11 @@ def read_source(path: Path, label: str) -> str:
         raise GradwrightError.usage(f"{label}: cannot read: {error}") from None
 
 
-def _accepts_target(function: object) -> bool:
-    return "target" in inspect.signature(function).parameters  # type: ignore[arg-type]
-
-
 def module_command(job: Job) -> str:
     """The command in the module's header (the one that regenerates it)."""
-    if _accepts_target(regeneration_command):
-        return regeneration_command(
-            job.source, job.functions, job.wrt, job.output, job.target  # type: ignore[call-arg]
-        )
-    base = regeneration_command(job.source, job.functions, job.wrt, job.output)
-    return base if job.target == "cpython" else f"{base} --target {job.target}"
+    return regeneration_command(
+        job.source, job.functions, job.wrt, job.output, job.target
+    )
 
 
 def job_command(job: Job) -> str:
@@ -82,16 +80,48 @@ def job_command(job: Job) -> str:
 
 
 def generate_module(job: Job, source: str) -> str:
-    options: dict[str, object] = {"path": job.source, "output": job.output}
-    # generate() gained its `target` keyword in a separate change: with an older
-    # generate() only the default platform can be asked for
-    if _accepts_target(generate):
-        options["target"] = job.target
-    elif job.target != "cpython":
-        raise GradwrightError.usage(
-            f"--target {job.target} is not supported by this version of gradwright"
-        )
-    return generate(source, list(job.functions), job.wrt, **options)  # type: ignore[arg-type]
+    from gradwright.api import generate  # the generator's imports, only when used
+
+    return generate(
+        source,
+        list(job.functions),
+        job.wrt,
+        path=job.source,
+        output=job.output,
+        target=job.target,
+    )
+
+
+def expected_headers(job: Job) -> list[tuple[str, str]]:
+    """(output label, the command its header records) for each file the job writes."""
+    if job.output is None:
+        return []
+    files = [(job.output, module_command(job))]
+    if job.emit_test is not None:
+        files.append((job.emit_test, job_command(job)))
+    return files
+
+
+def current_without_generating(job: Job, source: str) -> bool:
+    """True when every output's header shows it is exactly what generating would
+    write: same version, same source, same command (so the same options), and a
+    digest the file still matches. Anything else needs a full regeneration."""
+    files = expected_headers(job)
+    if not files:
+        return False
+    source_sha = sha256_text(source)
+    for label, command in files:
+        text = read_existing(job.path(label))
+        header = None if text is None else read_header(text)
+        if (
+            header is None
+            or header.untouched is not True
+            or header.version != __version__
+            or header.fields.get("source sha256") != source_sha
+            or header.fields.get("command") != command
+        ):
+            return False
+    return True
 
 
 def render(job: Job) -> list[Artifact]:

@@ -12,7 +12,6 @@ Nothing is executed here: the signature comes from the generated text via ``ast`
 
 from __future__ import annotations
 
-import hashlib
 import os
 import shlex
 from collections.abc import Mapping
@@ -21,7 +20,7 @@ from pathlib import PurePosixPath
 
 from gradwright import __version__
 from gradwright.diagnostics import GradwrightError, Location, fail
-from gradwright.emission.formatting import format_code
+from gradwright.header import sha256_text, stamp
 from gradwright.workflow.points import (
     DEFAULT_SEED,
     Range,
@@ -141,7 +140,7 @@ def render_test(request: TestRequest, module_text: str) -> str:
         _PRELUDE.format(
             version=__version__,
             source=request.source_label,
-            sha256=hashlib.sha256(request.source_text.encode("utf-8")).hexdigest(),
+            sha256=sha256_text(request.source_text),
             command=request.command,
             module=request.module_label,
             seed=DEFAULT_SEED,
@@ -175,7 +174,9 @@ def render_test(request: TestRequest, module_text: str) -> str:
             )
         )
     _check_ranges_used(request, used)
-    return format_code("".join(parts))
+    from gradwright.emission.formatting import format_code  # black, only when used
+
+    return stamp(format_code("".join(parts)))
 
 
 def _check_ranges_used(request: TestRequest, used: set[str]) -> None:
