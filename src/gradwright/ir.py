@@ -176,6 +176,8 @@ class ReverseBranch:
     then: tuple[ReverseStmt, ...]
     orelse: tuple[ReverseStmt, ...]
     origin: Origin
+    #: the forward branch it reverses (it takes the same side)
+    branch: Branch | None = None
 
 
 @dataclass(frozen=True)

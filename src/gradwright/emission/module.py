@@ -19,9 +19,10 @@ import libcst as cst
 from gradwright import __version__
 from gradwright.calculus.numpy_rules import REVERSE_SPELLING
 from gradwright.calculus.numpy_rules import helper_sources as numpy_helper_sources
+from gradwright.diagnostics import fail
 from gradwright.emission.formatting import format_function, format_statement
 from gradwright.emission.naming import Namer
-from gradwright.emission.print_sweeps import lay_out
+from gradwright.emission.print_sweeps import LayoutError, lay_out
 from gradwright.emission.printer import Printer
 from gradwright.emission.targets import (
     DEFAULT_TARGET,
@@ -174,9 +175,20 @@ def render_function(
         if numpy
         else None
     )
-    forward, reverse, result_exprs = lay_out(
-        ssa, sweep, namer, printer, set(compiled.active), reverse_printer
-    )
+    try:
+        forward, reverse, result_exprs = lay_out(
+            ssa, sweep, namer, printer, set(compiled.active), reverse_printer
+        )
+    except LayoutError as error:
+        # a bug of ours, caught before it became a wrong gradient
+        fail(
+            f"internal error: the generated code for '{checked.name}' failed"
+            f" gradwright's own layout check ({error.violations[0].describe()});"
+            " nothing was written",
+            index.locate(checked.node.name),
+            "please report this model to the gradwright developers; rewriting the"
+            " statement named above differently may avoid it meanwhile",
+        )
     values = [printer(e) for e in result_exprs]
     value = (
         f"({', '.join(values)}{',' if len(values) == 1 else ''})"

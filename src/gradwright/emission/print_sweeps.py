@@ -12,6 +12,7 @@ from collections.abc import Iterator
 
 from gradwright.emission.formatting import format_statement
 from gradwright.emission.layout import Layout
+from gradwright.emission.layout_check import Key, Trace, Violation, check
 from gradwright.emission.naming import Namer
 from gradwright.emission.printer import Printer
 from gradwright.ir import (
@@ -35,6 +36,7 @@ from gradwright.ir import (
     Stmt,
     Var,
 )
+from gradwright.sweeps.reverse import defined_in
 
 
 class _Lines:
@@ -78,6 +80,48 @@ class _Emitter:
         self.folded: dict[Var, Expr] = {}
         #: names the reverse sweep writes forward values back into
         self.restored: set[str] = set()
+        #: what each printed statement reads and writes, for the layout check
+        self.trace = Trace()
+
+    # -- the record the layout check reads ----------------------------------------
+
+    def key(self, var: Var) -> Key:
+        # every version of a list is one list object, changed in place
+        return ("value", self.layout.roots.get(var, var))
+
+    def bar_key(self, var: Var) -> Key:
+        return ("bar", self.layout.roots.get(var, var))
+
+    def reads(self, expr: Expr) -> None:
+        """Record the names printing ``expr`` reads."""
+        stack = [expr]
+        while stack:
+            node = stack.pop()
+            if isinstance(node, Var):
+                self.trace.read(self.namer.name(node), self.key(node))
+            elif isinstance(node, Bar):
+                self.trace.read(self.namer.bar_name(node.var), self.bar_key(node.var))
+            elif isinstance(node, Apply):
+                if node.op == "partial":
+                    call = node.args[0]
+                    assert isinstance(call, Var)
+                    partials = self.namer.partials_name(call)
+                    self.trace.read(partials, ("partials", call))
+                    stack.append(node.args[1])
+                else:
+                    stack.extend(node.args)
+
+    def tape_key(self, loop: Loop | None, name: str) -> Key:
+        """A saved list, filled by ``loop``: one per iteration of the loops
+        around ``loop``, so it belongs to the enclosing loop's iterations."""
+        enclosing = self.layout.parent.get(loop) if loop is not None else None
+        scope = enclosing.index if enclosing is not None else None
+        return ("list", scope, name)
+
+    def slot_reads(self, loop: Loop) -> None:
+        self.trace.read(self.namer.name(loop.index), self.key(loop.index))
+        for bound in (loop.start, loop.step):
+            self.reads(self.layout.cheap(bound, everywhere=True))
 
     # -- forward --------------------------------------------------------------------
 
@@ -119,27 +163,48 @@ class _Emitter:
             self.folded[target] = Apply(let.op, args)
             return
         name = self.namer.name(target)
+        trace = self.trace
+        trace.at(let.origin.text)
+        for arg in args:
+            self.reads(arg)
         if let.op == "setitem":
             text = f"{name}[{self.print(args[1])}] = {self.print(args[2])}"
+            trace.read(name, self.key(target))
         elif let.op.startswith("call:") and target in layout.partials_needed:
             callee = let.op.removeprefix("call:")
             call = self.print(Apply(let.op, args)).replace(
                 f"{callee}(", f"{callee}_grad(", 1
             )
-            text = f"{name}, {self.namer.partials_name(target)} = {call}"
+            partials_name = self.namer.partials_name(target)
+            text = f"{name}, {partials_name} = {call}"
+            trace.write(name, self.key(target))
+            trace.write(partials_name, ("partials", target))
         else:
             text = f"{name} = {self.print(Apply(let.op, args))}"
+            trace.write(name, self.key(target))
         out.statement(let.origin, text, depth)
         if loop is not None and target in layout.tapes.get(loop, []):
-            out.code(
-                f"{layout.tape_name(loop, target)}[{layout.slot(loop)}] = {name}", depth
-            )
+            self.save(loop, target, depth, out)
         if target in layout.partials_needed and loop is not None:
             partials = layout.partials_of(target)
             if partials in layout.tapes.get(loop, []):
                 slot = layout.slot(loop)
                 saved = layout.tape_name(loop, partials)
-                out.code(f"{saved}[{slot}] = {self.namer.name(partials)}", depth)
+                partials_name = self.namer.name(partials)
+                out.code(f"{saved}[{slot}] = {partials_name}", depth)
+                trace.read(partials_name, ("partials", target))
+                trace.read(saved, self.tape_key(loop, saved))
+                self.slot_reads(loop)
+
+    def save(self, loop: Loop, var: Var, depth: int, out: _Lines) -> None:
+        """``var_saved[slot] = var``: this iteration's value, for the reverse."""
+        layout = self.layout
+        name = self.namer.name(var)
+        saved = layout.tape_name(loop, var)
+        out.code(f"{saved}[{layout.slot(loop)}] = {name}", depth)
+        self.trace.read(name, self.key(var))
+        self.trace.read(saved, self.tape_key(loop, saved))
+        self.slot_reads(loop)
 
     def _list_live(self, var: Var) -> bool:
         root = self.layout.roots.get(var, var)
@@ -147,11 +212,15 @@ class _Emitter:
 
     def copy(self, target: Var, source: Atom, depth: int, out: _Lines) -> None:
         if target.shape == "list":
+            # the same list object under one name (the check sees if it is not)
             return
         name = self.namer.name(target)
         value = self.value(source)
         if isinstance(value, Var) and self.namer.name(value) == name:
+            self.trace.alias(name, self.key(value), self.key(target))
             return
+        self.reads(value)
+        self.trace.write(name, self.key(target))
         out.code(f"{name} = {self.print(value)}", depth)
 
     def forward_branch(
@@ -160,23 +229,31 @@ class _Emitter:
         layout = self.layout
         live_merges = [p for p in branch.merges if p.target in layout.live]
         sides = []
+        events = []
         for block, pick in ((branch.then, 0), (branch.orelse, 1)):
             side = _Lines()
             side.last_origin = dict(out.last_origin)
             side.header = dict(out.header)
             side.open_block(depth, branch.origin)
-            self.forward_block(block, depth + 1, side, loop)
-            for phi in live_merges:
-                self.copy(
-                    phi.target,
-                    phi.first if pick == 0 else phi.second,
-                    depth + 1,
-                    side,
-                )
+            with self.trace.capture() as side_events:
+                self.forward_block(block, depth + 1, side, loop)
+                for phi in live_merges:
+                    self.copy(
+                        phi.target,
+                        phi.first if pick == 0 else phi.second,
+                        depth + 1,
+                        side,
+                    )
             sides.append(side.lines)
+            events.append(side_events)
         then_lines, else_lines = sides
         if not then_lines and not else_lines:
+            # nothing printed, but copies left out still hold on both paths
+            self.trace.branch(branch, *events)
             return
+        self.trace.at(branch.origin.text)
+        self.reads(self.value(branch.condition))
+        self.trace.branch(branch, *events)
         condition = self.print(self.value(branch.condition))
         out.comment(branch.origin, depth)
         out.code(f"if {condition}:", depth)
@@ -188,43 +265,48 @@ class _Emitter:
         out.last_origin[depth] = None
         for phi in live_merges:
             if loop is not None and phi.target in layout.tapes.get(loop, []):
-                name = self.namer.name(phi.target)
-                saved = layout.tape_name(loop, phi.target)
-                out.code(
-                    f"{saved}[{layout.slot(loop)}] = {name}",
-                    depth,
-                )
+                self.save(loop, phi.target, depth, out)
 
     def forward_loop(self, loop: Loop, depth: int, out: _Lines) -> None:
         layout = self.layout
         enclosing = layout.parent.get(loop)
+        trace = self.trace
         out.comment(loop.origin, depth)
+        trace.at(loop.origin.text)
         for phi in loop.carried:
             if phi.target in layout.live:
                 self.copy(phi.target, phi.first, depth, out)
+        bounds = (loop.start, loop.stop, loop.step)
+        for bound in bounds:
+            self.reads(layout.atom_expr(bound, self.folded))
         for saved in layout.saved_lists(loop):
             out.code(f"{saved} = {layout.trip_count(loop)}", depth)
+            trace.write(saved, self.tape_key(loop, saved))
             if enclosing is not None:
                 slot = layout.slot(enclosing)
-                out.code(f"{layout.by_name(enclosing, saved)}[{slot}] = {saved}", depth)
+                by = layout.by_name(enclosing, saved)
+                out.code(f"{by}[{slot}] = {saved}", depth)
+                trace.read(by, self.tape_key(enclosing, by))
+                self.slot_reads(enclosing)
         out.code(
             f"for {self.namer.name(loop.index)} in range({self.range_text(loop)}):",
             depth,
         )
         out.open_block(depth, loop.origin)
-        for phi in loop.carried:
-            if phi.target in layout.tapes.get(loop, []):
-                name = self.namer.name(phi.target)
-                saved = layout.tape_name(loop, phi.target)
-                out.code(
-                    f"{saved}[{layout.slot(loop)}] = {name}",
-                    depth + 1,
-                )
-        size = len(out.lines)
-        self.forward_block(loop.body, depth + 1, out, loop)
-        for phi in loop.carried:
-            if phi.target in layout.live:
-                self.copy(phi.target, phi.second, depth + 1, out)
+        with trace.capture() as body:
+            trace.write(self.namer.name(loop.index), self.key(loop.index))
+            for phi in loop.carried:
+                if phi.target in layout.tapes.get(loop, []):
+                    self.save(loop, phi.target, depth + 1, out)
+            size = len(out.lines)
+            self.forward_block(loop.body, depth + 1, out, loop)
+            for phi in loop.carried:
+                if phi.target in layout.live:
+                    self.copy(phi.target, phi.second, depth + 1, out)
+        exits = tuple(
+            (phi.target, phi.exit) for phi in loop.carried if phi.exit is not None
+        )
+        trace.loop(body, _iteration_values(loop), exits)
         if len(out.lines) == size and not layout.tapes.get(loop):
             out.code("pass", depth + 1)
         out.last_origin[depth] = None
@@ -232,9 +314,7 @@ class _Emitter:
             # values after this loop that the enclosing loop's reverse reads
             for phi in loop.carried:
                 if phi.exit in layout.tapes.get(enclosing, []):
-                    saved = layout.tape_name(enclosing, phi.exit)
-                    slot = layout.slot(enclosing)
-                    out.code(f"{saved}[{slot}] = {self.namer.name(phi.exit)}", depth)
+                    self.save(enclosing, phi.exit, depth, out)
 
     def range_text(self, loop: Loop) -> str:
         return self.layout.range_args(loop, self.folded)
@@ -244,22 +324,27 @@ class _Emitter:
     def reverse(self) -> list[str]:
         out = _Lines()
         layout = self.layout
+        self.trace.at("the start of the reverse sweep")
         for root in layout.sweep.list_roots:
-            out.code(
-                f"{self.namer.bar_name(root)} = [0.0] * len({self.namer.name(root)})", 1
-            )
+            bar, name = self.namer.bar_name(root), self.namer.name(root)
+            out.code(f"{bar} = [0.0] * len({name})", 1)
+            self.trace.read(name, self.key(root))
+            self.trace.write(bar, self.bar_key(root))
         self.reverse_block(layout.sweep.statements, 1, out)
         for var in layout.sweep.unused_wrt:
             if var.shape == "list":
                 continue
             origin = Origin(f"{var.base} does not affect the result", -1)
             out.statement(origin, f"{self.namer.bar_name(var)} = 0.0", 1)
+            self.trace.write(self.namer.bar_name(var), self.bar_key(var))
         return out.lines
 
     def reverse_block(
         self, statements: tuple[ReverseStmt, ...], depth: int, out: _Lines
     ) -> None:
+        trace = self.trace
         for stmt in statements:
+            trace.at(stmt.origin.text)
             if isinstance(stmt, AdjointAssign):
                 operator = "+=" if stmt.accumulate else "="
                 bar = self.namer.bar_name(stmt.var)
@@ -269,34 +354,56 @@ class _Emitter:
                     operator, expr = "=", Apply("add", (Bar(stmt.var), expr))
                 value = self.rprint(expr)
                 if operator == "=" and bar == value:
-                    continue  # the carried adjoint was updated in place
+                    # the carried adjoint was updated in place
+                    assert isinstance(expr, Bar)
+                    trace.alias(bar, self.bar_key(expr.var), self.bar_key(stmt.var))
+                    continue
+                self.reads(expr)
+                if operator == "+=":
+                    trace.read(bar, self.bar_key(stmt.var))
+                trace.write(bar, self.bar_key(stmt.var))
                 out.statement(stmt.origin, f"{bar} {operator} {value}", depth)
             elif isinstance(stmt, ElementAdjoint):
                 operator = "+=" if stmt.accumulate else "="
-                index = self.print(self.layout.cheap(stmt.index, everywhere=True))
-                value = self.rprint(self.layout.cheap(stmt.expr))
-                text = f"{self.namer.bar_name(stmt.root)}[{index}] {operator} {value}"
-                out.statement(stmt.origin, text, depth)
+                index_expr = self.layout.cheap(stmt.index, everywhere=True)
+                index = self.print(index_expr)
+                value_expr = self.layout.cheap(stmt.expr)
+                value = self.rprint(value_expr)
+                bar = self.namer.bar_name(stmt.root)
+                self.reads(index_expr)
+                self.reads(value_expr)
+                trace.read(bar, self.bar_key(stmt.root))
+                out.statement(stmt.origin, f"{bar}[{index}] {operator} {value}", depth)
             elif isinstance(stmt, SpreadAdjoint):
                 bar = self.namer.bar_name(stmt.root)
                 index = self.namer.fresh(f"{bar}_index")
                 out.statement(stmt.origin, f"for {index} in range(len({bar})):", depth)
-                value = self.rprint(self.layout.cheap(stmt.expr))
-                out.code(f"{bar}[{index}] += {value}", depth + 1)
+                value_expr = self.layout.cheap(stmt.expr)
+                self.reads(value_expr)
+                trace.read(bar, self.bar_key(stmt.root))
+                out.code(f"{bar}[{index}] += {self.rprint(value_expr)}", depth + 1)
             elif isinstance(stmt, ReverseBranch):
                 sides = []
+                events = []
                 for block in (stmt.then, stmt.orelse):
                     side = _Lines()
                     side.last_origin = dict(out.last_origin)
                     side.header = dict(out.header)
                     side.open_block(depth, stmt.origin)
-                    self.reverse_block(block, depth + 1, side)
+                    with trace.capture() as side_events:
+                        self.reverse_block(block, depth + 1, side)
                     sides.append(side.lines)
+                    events.append(side_events)
                 then_lines, else_lines = sides
                 if not then_lines and not else_lines:
+                    trace.branch(stmt.branch, *events)
                     continue
                 out.comment(stmt.origin, depth)
-                condition = self.rprint(self.layout.cheap(stmt.condition, True))
+                condition_expr = self.layout.cheap(stmt.condition, True)
+                trace.at(stmt.origin.text)
+                self.reads(condition_expr)
+                trace.branch(stmt.branch, *events)
+                condition = self.rprint(condition_expr)
                 out.code(f"if {condition}:", depth)
                 out.lines.extend(then_lines or ["    " * (depth + 1) + "pass"])
                 if else_lines:
@@ -313,36 +420,70 @@ class _Emitter:
         body.header = dict(out.header)
         body.open_block(depth, stmt.origin)
         restored = set(self.restored)
-        self.reverse_block(stmt.body, depth + 1, body)
+        trace = self.trace
+        with trace.capture() as body_events:
+            self.reverse_block(stmt.body, depth + 1, body)
         if not body.lines:
             self.restored = restored
+            # nothing printed; copies left out of an adjoint still hold
+            trace.extend([e for e in body_events if not isinstance(e, tuple)])
             return  # every adjoint passes through the loop unchanged
         out.comment(stmt.origin, depth)
         index = self.namer.name(loop.index)
+        trace.at(stmt.origin.text)
+        for bound in (loop.start, loop.stop, loop.step):
+            self.reads(layout.cheap(bound, everywhere=True))
         out.code(
             f"for {index} in reversed(range({layout.range_args(loop)})):",
             depth,
         )
         out.open_block(depth, stmt.origin)
         slot = layout.slot(loop)
-        for var in layout.tapes.get(loop, []):
-            self.restored.add(self.namer.name(var))
-            out.code(
-                f"{self.namer.name(var)} = {layout.tape_name(loop, var)}[{slot}]",
-                depth + 1,
-            )
-        for child in layout.children.get(loop, []):
-            for saved in layout.saved_lists(child):
-                out.code(f"{saved} = {layout.by_name(loop, saved)}[{slot}]", depth + 1)
-        for let in layout.recompute.get(loop, []):
-            self.restored.add(self.namer.name(let.target))
-            args = tuple(layout.cheap(a) for a in let.args)
-            out.code(
-                f"{self.namer.name(let.target)} = {self.print(Apply(let.op, args))}",
-                depth + 1,
-            )
+        with trace.capture() as head:
+            trace.write(index, self.key(loop.index))
+            for var in layout.tapes.get(loop, []):
+                name, saved = self.namer.name(var), layout.tape_name(loop, var)
+                self.restored.add(name)
+                out.code(f"{name} = {saved}[{slot}]", depth + 1)
+                trace.read(saved, self.tape_key(loop, saved))
+                self.slot_reads(loop)
+                partials = var.base.endswith("_partials") and var.uid < 0
+                trace.write(name, self._saved_key(var) if partials else self.key(var))
+            for child in layout.children.get(loop, []):
+                for saved in layout.saved_lists(child):
+                    by = layout.by_name(loop, saved)
+                    out.code(f"{saved} = {by}[{slot}]", depth + 1)
+                    trace.read(by, self.tape_key(loop, by))
+                    self.slot_reads(loop)
+                    trace.write(saved, self.tape_key(child, saved))
+            for let in layout.recompute.get(loop, []):
+                name = self.namer.name(let.target)
+                self.restored.add(name)
+                args = tuple(layout.cheap(a) for a in let.args)
+                for arg in args:
+                    self.reads(arg)
+                trace.write(name, self.key(let.target))
+                out.code(f"{name} = {self.print(Apply(let.op, args))}", depth + 1)
+        trace.loop(head + body_events, _iteration_values(loop))
         out.lines.extend(body.lines)
         out.last_origin[depth] = None
+
+    def _saved_key(self, pseudo: Var) -> Key:
+        """The key of a helper call's partials, from their pseudo value."""
+        return (
+            "partials",
+            next(
+                v
+                for v in self.layout.partials_needed
+                if self.layout.partials_of(v) == pseudo
+            ),
+        )
+
+
+def _iteration_values(loop: Loop) -> set[Var]:
+    """Values that belong to one iteration of ``loop``."""
+    values = defined_in(loop.body) | {loop.index}
+    return values | {phi.target for phi in loop.carried}
 
 
 def _loop_values(loop: Loop) -> Iterator[Var]:
@@ -383,14 +524,45 @@ def lay_out(
         reverse_printer is not None and reverse_printer.where_call is not None
     )
     emitter = _Emitter(layout)
+    trace = emitter.trace
+    for param in function.params:
+        trace.write(namer.name(param), emitter.key(param))
+    for seed in sweep.seeds:
+        trace.write(namer.name(seed), emitter.key(seed))
     forward = emitter.forward()
     result = [emitter.value(a) for a in function.result.values]
-    reverse = emitter.reverse()
+    with trace.capture() as reverse_events:
+        reverse = emitter.reverse()
     # a returned value whose name the reverse sweep reuses is kept aside first
+    trace.at(function.result.origin.text)
     for k, value in enumerate(result):
         if isinstance(value, Var) and namer.name(value) in emitter.restored:
             keep = namer.claim("value")
             forward.append(f"    # {function.result.origin.text}")
             forward.append(format_statement(f"{keep} = {namer.name(value)}", 1))
+            trace.read(namer.name(value), emitter.key(value))
+            trace.write(keep, emitter.key(value))
             result[k] = Const(keep, None)
+            reverse_events.append(("read", keep, emitter.key(value), "the result"))
+        else:
+            with trace.capture() as reads:
+                emitter.reads(value)
+            reverse_events.extend(reads)
+    trace.extend(reverse_events)
+    trace.at("the gradient returned")
+    for var in sweep.wrt:
+        trace.read(namer.bar_name(var), emitter.bar_key(var))
+    violations = check(trace)
+    if violations:
+        raise LayoutError(function.name, violations)
     return forward, reverse, tuple(result)
+
+
+class LayoutError(Exception):
+    """The printed sweeps would read a name that does not hold its value."""
+
+    def __init__(self, function: str, violations: list[Violation]) -> None:
+        self.function = function
+        self.violations = violations
+        details = "; ".join(v.describe() for v in violations[:3])
+        super().__init__(f"layout check failed in '{function}': {details}")

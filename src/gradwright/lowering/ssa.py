@@ -60,6 +60,9 @@ _RESULT = "\0result"
 #: primitives whose result may share memory with an operand (NumPy views)
 _VIEWS = frozenset({"copy", "npindex", "T", "reshape", "np.transpose"})
 
+#: primitives whose value is True or False
+_TRUTH_OPS = frozenset({"lt", "le", "gt", "ge", "eq", "ne", "and", "or", "not"})
+
 #: primitives that take or make lists; every other primitive takes numbers
 LIST_OPS = frozenset({"getitem", "setitem", "newlist", "listlit", "len", "sum"})
 
@@ -97,6 +100,8 @@ class _Lowerer(NumpyLowering):
         self.numpy = bool(index.numpy_modules)
         #: values known to be arrays of their own (see is_fresh)
         self.fresh: set[Var] = set()
+        #: values that are truth values (results of comparisons and logic)
+        self.truth_values: set[Var] = set()
         #: `y = x` copies, to find the parameter behind a name used as a list
         self.copy_of: dict[Var, Atom] = {}
         self.result_arity: int | None = None
@@ -109,6 +114,8 @@ class _Lowerer(NumpyLowering):
 
     def emit(self, op: str, args: tuple[Atom, ...], target: Var) -> Var:
         self.blocks[-1].append(Let(target, op, args, self.origin))
+        if op in _TRUTH_OPS:
+            self.truth_values.add(target)
         if op not in _VIEWS:
             self.fresh.add(target)
         if op == "copy":
@@ -706,10 +713,7 @@ class _Lowerer(NumpyLowering):
         if isinstance(node, cst.Comparison):
             return self.comparison(node, base, target)
         if isinstance(node, cst.BooleanOperation):
-            op = "and" if isinstance(node.operator, cst.And) else "or"
-            left = self.scalar(self.expr(node.left, base, None), node.left)
-            right = self.scalar(self.expr(node.right, base, None), node.right)
-            return self.emit(op, (left, right), target or self.new_var(base, "temp"))
+            return self.boolean(node, base, target)
         if isinstance(node, cst.IfExp):
             return self.conditional(node, base, target)
         if isinstance(node, cst.Subscript) and self.numpy:
@@ -808,6 +812,43 @@ class _Lowerer(NumpyLowering):
                 target if last and target else self.new_var(base, "temp"),
             )
         return combined
+
+    def boolean(
+        self, node: cst.BooleanOperation, base: str, target: Var | None
+    ) -> Atom:
+        """``a and b`` / ``a or b``.
+
+        Between truth values (comparisons, not, and, or) it is a logic primitive
+        with no derivative. Otherwise it selects one operand, and the right one is
+        evaluated only when needed: ``b if a else a`` (and), ``a if a else b`` (or),
+        a branch like a conditional expression, so adjoints flow to the operand
+        it picked.
+        """
+        is_and = isinstance(node.operator, cst.And)
+        left = self.scalar(self.expr(node.left, base, None), node.left)
+        self.blocks.append([])
+        right = self.scalar(self.expr(node.right, base, None), node.right)
+        right_block = self.blocks.pop()
+        if (
+            self.is_truth(left)
+            and self.is_truth(right)
+            and all(isinstance(s, Let) and s.op in _TRUTH_OPS for s in right_block)
+        ):
+            # comparisons cannot raise, so evaluating the right side always is safe
+            self.blocks[-1].extend(right_block)
+            op = "and" if is_and else "or"
+            return self.emit(op, (left, right), target or self.new_var(base, "temp"))
+        result = target or self.new_var(base, "temp")
+        merge = Phi(result, right, left) if is_and else Phi(result, left, right)
+        then_block, else_block = (right_block, []) if is_and else ([], right_block)
+        self.blocks[-1].append(
+            Branch(left, tuple(then_block), tuple(else_block), (merge,), self.origin)
+        )
+        return result
+
+    def is_truth(self, atom: Atom) -> bool:
+        """Whether a value is a truth value made by a comparison or logic."""
+        return isinstance(atom, Var) and atom in self.truth_values
 
     def conditional(self, node: cst.IfExp, base: str, target: Var | None) -> Atom:
         """``a if c else b`` evaluates only the side it picks: a branch."""

@@ -152,7 +152,7 @@ def inline_adjoints(sweep: ReverseSweep) -> ReverseSweep:
             elif isinstance(stmt, ReverseBranch):
                 then, orelse = block(stmt.then), block(stmt.orelse)
                 if then or orelse:
-                    out.append(ReverseBranch(stmt.condition, then, orelse, stmt.origin))
+                    out.append(replace(stmt, then=then, orelse=orelse))
             else:
                 body = block(stmt.body)
                 if body:
@@ -185,11 +185,10 @@ def _map_exprs(
             out.append(SpreadAdjoint(stmt.root, change(stmt.expr), stmt.origin))
         elif isinstance(stmt, ReverseBranch):
             out.append(
-                ReverseBranch(
-                    stmt.condition,
-                    _map_exprs(stmt.then, change),
-                    _map_exprs(stmt.orelse, change),
-                    stmt.origin,
+                replace(
+                    stmt,
+                    then=_map_exprs(stmt.then, change),
+                    orelse=_map_exprs(stmt.orelse, change),
                 )
             )
         else:

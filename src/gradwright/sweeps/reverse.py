@@ -357,6 +357,7 @@ class _Reverse:
                     tuple(then_out),
                     tuple(else_out),
                     branch.origin,
+                    branch,
                 )
             )
 
@@ -421,6 +422,9 @@ class _Reverse:
         out.append(ReverseLoop(loop, tuple(body_out), loop.origin))
         for phi, carry in carries.items():
             self.contribute(phi.first, Bar(carry), loop.origin, out)
+        # a carried adjoint ends with its loop: it is no value an enclosing branch
+        # should zero on its other side
+        self.has -= set(carries.values())
 
 
 def reverse_sweep(

@@ -1,0 +1,279 @@
+"""The layout check: every name the printed sweeps read holds the value it stands for.
+
+The layout lets values share output names (a re-bound variable keeps its name, a
+carried adjoint is updated in place, loops restore saved values into the names the
+forward sweep used). Those decisions are where wrong gradients come from, so after
+printing, the emitter's record of what each printed statement reads and writes is
+checked here, on every path: both sides of each branch, loops of zero and of many
+trips, every iteration of a reverse loop.
+
+The check is a must-analysis over facts "name N holds value K" (K: a forward value,
+the adjoint of one, the partials of a helper call, a saved list). A write replaces
+the facts of its name; a copy the printer left out because both names agree adds a
+fact; branches keep the facts true on both sides; a loop head keeps those true on
+entry and at the end of every iteration (a greatest fixed point). After a loop, the
+values of its iterations are forgotten, so a reverse loop must restore or recompute
+each one it reads. A read of a name that does not hold the value on some path is a
+violation, and no module is written.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterable, Iterator
+from contextlib import contextmanager
+from dataclasses import dataclass, field
+
+from gradwright.ir import Var
+
+#: ("value", var) | ("bar", var) | ("partials", var) | ("list", scope, name)
+Key = tuple
+
+
+@dataclass
+class _Loop:
+    body: list
+    #: values that belong to one iteration (forgotten when the loop ends)
+    local: frozenset[Var]
+    #: (start-of-iteration value, value after the loop) pairs of a forward loop
+    exits: tuple[tuple[Var, Var], ...] = ()
+    #: the branches inside the body (their sides differ from one iteration to the next)
+    branches: frozenset = frozenset()
+
+
+@dataclass
+class _If:
+    then: list
+    orelse: list
+    #: the forward branch; its reverse takes the same side (same condition)
+    branch: object
+
+
+@dataclass(frozen=True)
+class Violation:
+    name: str
+    expected: Key
+    found: frozenset
+    where: str
+
+    def describe(self) -> str:
+        found = ", ".join(sorted(_show(k) for k in self.found)) or "nothing"
+        return (
+            f"`{self.name}` should hold {_show(self.expected)} but may hold {found}"
+            f" ({self.where})"
+        )
+
+
+def _show(key: Key) -> str:
+    kind = key[0]
+    if kind == "list":
+        return f"the saved list {key[2]}"
+    var = key[1]
+    label = f"{var.base}#{var.uid}"
+    return {"value": label, "bar": f"adjoint of {label}"}.get(
+        kind, f"{kind} of {label}"
+    )
+
+
+@dataclass
+class Trace:
+    """What the printed statements read and write, in execution order."""
+
+    events: list = field(default_factory=list)
+    where: str = ""
+    _stack: list[list] = field(default_factory=list)
+
+    def _add(self, event: object) -> None:
+        (self._stack[-1] if self._stack else self.events).append(event)
+
+    def at(self, where: str) -> None:
+        self.where = where
+
+    def read(self, name: str, key: Key) -> None:
+        self._add(("read", name, key, self.where))
+
+    def write(self, name: str, key: Key) -> None:
+        self._add(("write", name, key, self.where))
+
+    def alias(self, name: str, source: Key, target: Key) -> None:
+        """A copy ``target = source`` left out because both print as ``name``."""
+        self.read(name, source)
+        self._add(("alias", name, target, source))
+
+    @contextmanager
+    def capture(self) -> Iterator[list]:
+        """Collect the events of a nested block instead of adding them."""
+        block: list = []
+        self._stack.append(block)
+        try:
+            yield block
+        finally:
+            self._stack.pop()
+
+    def branch(self, branch: object, then: list, orelse: list) -> None:
+        self._add(_If(then, orelse, branch))
+
+    def loop(
+        self,
+        body: list,
+        local: Iterable[Var],
+        exits: tuple[tuple[Var, Var], ...] = (),
+    ) -> None:
+        self._add(_Loop(body, frozenset(local), exits, frozenset(_branches(body))))
+
+    def extend(self, events: list) -> None:
+        for event in events:
+            self._add(event)
+
+
+def _branches(events: list) -> Iterator[object]:
+    for event in events:
+        if isinstance(event, _If):
+            yield event.branch
+            yield from _branches(event.then)
+            yield from _branches(event.orelse)
+        elif isinstance(event, _Loop):
+            yield from event.branches
+
+
+#: name -> facts (key, guard): the name holds key on paths where every
+#: (branch, side) of the guard was taken
+State = dict[str, frozenset]
+
+
+def _meet(a: State, b: State) -> State:
+    """Facts true at a join of two paths (same guard on both, or either guard)."""
+    out: State = {}
+    for name, facts in a.items():
+        other = b.get(name)
+        if not other:
+            continue
+        common = {
+            (key, guard | other_guard)
+            for key, guard in facts
+            for other_key, other_guard in other
+            if key == other_key
+        }
+        if common:
+            out[name] = frozenset(common)
+    return out
+
+
+def _join_branch(branch: object, then: State, orelse: State) -> State:
+    """After a branch: a fact of one side only holds where that side was taken."""
+    out: State = {}
+    for name in then.keys() | orelse.keys():
+        a, b = then.get(name, frozenset()), orelse.get(name, frozenset())
+        facts = set(a & b)
+        facts |= {(k, g | {(branch, 0)}) for k, g in a - b}
+        facts |= {(k, g | {(branch, 1)}) for k, g in b - a}
+        out[name] = frozenset(facts)
+    return out
+
+
+def _forget(state: State, local: frozenset[Var], branches: frozenset) -> State:
+    out: State = {}
+    for name, facts in state.items():
+        kept = frozenset(
+            (k, g)
+            for k, g in facts
+            if k[1] not in local and not any(b in branches for b, _ in g)
+        )
+        if kept:
+            out[name] = kept
+    return out
+
+
+def check(trace: Trace) -> list[Violation]:
+    """Every read in ``trace`` that does not see its value on some path."""
+    checker = _Checker()
+    checker.run(trace.events, {}, frozenset(), True)
+    return list(checker.found.values())
+
+
+class _Checker:
+    def __init__(self) -> None:
+        self.found: dict[tuple, Violation] = {}
+        #: per loop: the facts its body establishes whatever it starts from
+        self.summaries: dict[int, State] = {}
+
+    def run(self, events: list, state: State, taken: frozenset, report: bool) -> State:
+        """The state after ``events``; ``taken``: the branch sides this path took.
+
+        Without ``report`` (working out a loop's head) inner loops are summarised
+        (see ``summary``), which keeps the analysis linear in the nesting depth.
+        """
+        for event in events:
+            if isinstance(event, _If):
+                sides = [
+                    self.run(block, dict(state), taken | {(event.branch, side)}, report)
+                    for side, block in ((0, event.then), (1, event.orelse))
+                ]
+                state = _join_branch(event.branch, *sides)
+            elif isinstance(event, _Loop):
+                if report:
+                    state = self.loop(event, state, taken)
+                else:
+                    state = self.summary(event, state)
+            else:
+                kind, name, key, where = event
+                held = state.get(name, frozenset())
+                if kind == "read":
+                    if report and not any(k == key and g <= taken for k, g in held):
+                        self.found.setdefault(
+                            (name, key),
+                            Violation(name, key, frozenset(k for k, _ in held), where),
+                        )
+                elif kind == "write":
+                    state[name] = frozenset({(key, frozenset())})
+                else:  # alias: the name holds the copied value too, where it held it
+                    source = event[3]
+                    guards = {g for k, g in held if k == source} or {frozenset()}
+                    state[name] = held | {(key, g) for g in guards}
+        return state
+
+    def summary(self, loop: _Loop, entry: State) -> State:
+        """The state after ``loop`` without analysing it again: a name it writes
+        holds what it held before (no trip) and what every iteration leaves in it,
+        worked out once from an empty start."""
+        ends = self.summaries.get(id(loop))
+        if ends is None:
+            ends = self.run(loop.body, {}, frozenset(), False)
+            self.summaries[id(loop)] = ends
+        written = set(_written(loop.body))
+        state = {n: f for n, f in entry.items() if n not in written}
+        state |= _meet({n: f for n, f in entry.items() if n in written}, ends)
+        return _forget(state, loop.local, loop.branches)
+
+    def loop(self, loop: _Loop, entry: State, taken: frozenset) -> State:
+        head = dict(entry)
+        for _ in range(64):  # facts only shrink: this settles in a few rounds
+            after = self.run(loop.body, dict(head), taken, False)
+            after = _forget(after, frozenset(), loop.branches)
+            new_head = _meet(entry, after)
+            if new_head == head:
+                break
+            head = new_head
+        else:
+            head = {}  # assume nothing (never seen; safe)
+        self.run(loop.body, dict(head), taken, True)
+        state = dict(head)
+        for target, exit_value in loop.exits:
+            for name, facts in list(state.items()):
+                extra = {
+                    (("value", exit_value), g)
+                    for k, g in facts
+                    if k == ("value", target)
+                }
+                state[name] = facts | extra
+        return _forget(state, loop.local, loop.branches)
+
+
+def _written(events: list) -> Iterator[str]:
+    for event in events:
+        if isinstance(event, _If):
+            yield from _written(event.then)
+            yield from _written(event.orelse)
+        elif isinstance(event, _Loop):
+            yield from _written(event.body)
+        elif event[0] != "read":
+            yield event[1]
