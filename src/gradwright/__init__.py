@@ -2,9 +2,9 @@
 
 from __future__ import annotations
 
-from typing import TYPE_CHECKING, Any
-
 __version__ = "0.1.0"
+
+TYPE_CHECKING = False  # typing itself is not imported: it costs a start-up
 
 if TYPE_CHECKING:
     from gradwright.api import generate
@@ -13,7 +13,7 @@ if TYPE_CHECKING:
 __all__ = ["Diagnostic", "GradwrightError", "__version__", "generate"]
 
 
-def __getattr__(name: str) -> Any:
+def __getattr__(name: str) -> object:
     # lazy, so that `gradwright --version` and a current `--check` never load libcst,
     # jinja2 or black (the generator's imports cost far more than the check itself)
     if name == "generate":

@@ -8,15 +8,12 @@ and ``verify`` tables go to stdout.
 from __future__ import annotations
 
 import argparse
-import ast
 import os
 import re
 import sys
-import traceback
 from collections.abc import Sequence
 from dataclasses import dataclass
 from pathlib import Path
-from typing import TextIO
 
 from gradwright import __version__
 from gradwright.diagnostics import GradwrightError
@@ -36,6 +33,7 @@ from gradwright.workflow.output import (
     write_artifact,
 )
 from gradwright.workflow.points import (
+    DEFAULT_RTOL,
     check_names,
     choose_points,
     parse_at,
@@ -55,9 +53,13 @@ from gradwright.workflow.regen import (
     read_source,
     render,
 )
-from gradwright.workflow.verify import DEFAULT_RTOL, Subject, check_point, load
-from gradwright.workflow.verify import render as render_table
-from gradwright.workflow.verify import summary as verify_summary
+
+# what only `verify` uses is imported there: the fast paths load no more than needed
+TYPE_CHECKING = False
+if TYPE_CHECKING:
+    from typing import TextIO
+
+    from gradwright.workflow.verify import Subject
 
 EXIT_OK = 0
 EXIT_STALE = 1
@@ -471,6 +473,8 @@ def _build_target(job: Job, options: _BuildOptions) -> _Outcome:
     except GradwrightError as error:
         return _Outcome("failed", [job.output or ""], error.diagnostic.render())
     except Exception:  # a bug in one target must not hide the others' results
+        import traceback
+
         return _Outcome("failed", [job.output or ""], traceback.format_exc())
     if changed:
         return _Outcome("generated", changed)
@@ -485,6 +489,8 @@ _WRT_DOC = re.compile(r"with respect to \(([^)]*)\)")
 
 def _module_wrt(module_text: str, function: str, label: str) -> tuple[str, ...]:
     """The wrt names of a generated ``_grad`` function, from its docstring."""
+    import ast
+
     for node in ast.parse(module_text).body:
         if isinstance(node, ast.FunctionDef) and node.name == f"{function}_grad":
             match = _WRT_DOC.search(ast.get_docstring(node) or "")
@@ -507,6 +513,8 @@ def _module_wrt(module_text: str, function: str, label: str) -> tuple[str, ...]:
 
 
 def _subjects(args: argparse.Namespace) -> list[Subject]:
+    from gradwright.workflow.verify import Subject
+
     text = read_source(Path(args.file), args.file)
     wrt = _split_names(args.wrt)
     if not is_generated(text):
@@ -538,6 +546,10 @@ def _subjects(args: argparse.Namespace) -> list[Subject]:
 
 
 def _verify(args: argparse.Namespace) -> int:
+    from gradwright.workflow.verify import check_point, load
+    from gradwright.workflow.verify import render as render_table
+    from gradwright.workflow.verify import summary as verify_summary
+
     if args.samples is not None and args.samples < 1:
         raise GradwrightError.usage("--samples must be at least 1")
     if not args.rtol > 0:

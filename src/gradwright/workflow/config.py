@@ -28,10 +28,13 @@ import re
 from collections.abc import Mapping
 from dataclasses import dataclass
 from pathlib import Path, PurePosixPath
-from typing import Any
 
 from gradwright.diagnostics import GradwrightError, Location, fail, file_location
 from gradwright.workflow.points import Range
+
+TYPE_CHECKING = False  # typing is not imported at run time: start-up cost
+if TYPE_CHECKING:
+    from typing import Any
 
 try:
     import tomllib

@@ -10,10 +10,7 @@
 
 from __future__ import annotations
 
-import difflib
 import os
-import stat
-import tempfile
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -57,6 +54,8 @@ def is_current(artifact: Artifact) -> bool:
 
 def unified_diff(artifact: Artifact) -> str:
     """What regenerating would change, as a unified diff (empty when current)."""
+    import difflib  # imported when used: a current check needs none of these
+
     old = read_existing(artifact.path)
     old_lines = [] if old is None else old.splitlines(keepends=True)
     new_lines = artifact.text.splitlines(keepends=True)
@@ -93,6 +92,8 @@ def check_overwrite(artifact: Artifact, force: bool) -> None:
 
 def write_generated(path: Path, text: str) -> None:
     """Atomically replace ``path`` with ``text`` (LF line endings, UTF-8)."""
+    import tempfile
+
     if path.is_symlink():  # replace what the link points at, keep the link
         path = path.resolve()
     directory = path.parent if str(path.parent) else Path(".")
@@ -112,7 +113,7 @@ def write_generated(path: Path, text: str) -> None:
 
 def _mode_for(path: Path) -> int:
     try:
-        return stat.S_IMODE(path.stat().st_mode)
+        return path.stat().st_mode & 0o7777
     except FileNotFoundError:
         umask = os.umask(0)
         os.umask(umask)

@@ -16,13 +16,15 @@ parameter's value must be given with ``--at xs=[1.0,2.0]``.
 
 from __future__ import annotations
 
-import ast
 import math
-import random
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 
 from gradwright.diagnostics import GradwrightError, Location, fail
+
+TYPE_CHECKING = False  # random and typing load only where used: start-up cost
+if TYPE_CHECKING:
+    import random
 
 #: a parameter's value at a point: a number, or a list of numbers
 Value = float | list[float]
@@ -46,6 +48,9 @@ class Range:
 DEFAULT_RANGE = Range(0.5, 1.5)
 DEFAULT_SAMPLES = 3
 DEFAULT_SEED = 0
+#: verify's tolerance, and the rounding noise of a central difference in ulps
+DEFAULT_RTOL = 1e-5
+NOISE_ULPS = 64
 
 
 @dataclass(frozen=True)
@@ -57,6 +62,8 @@ class Param:
 
 def signature_of(module_text: str, function: str) -> tuple[Param, ...]:
     """The parameters of top-level ``function`` in ``module_text`` (not executed)."""
+    import ast
+
     for node in ast.parse(module_text).body:
         if isinstance(node, ast.FunctionDef) and node.name == function:
             args = node.args
@@ -222,6 +229,8 @@ def choose_points(
     if not drawn:
         return [{p.name: fixed[p.name] for p in params if p.name in fixed}]
     count = DEFAULT_SAMPLES if samples is None else samples
+    import random
+
     generator = random.Random(seed)
     points = []
     for _ in range(count):

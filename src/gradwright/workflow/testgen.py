@@ -22,13 +22,14 @@ from gradwright import __version__
 from gradwright.diagnostics import GradwrightError, Location, fail
 from gradwright.header import sha256_text, stamp
 from gradwright.workflow.points import (
+    DEFAULT_RTOL,
     DEFAULT_SEED,
+    NOISE_ULPS,
     Range,
     choose_points,
     signature_of,
     typical_sizes,
 )
-from gradwright.workflow.verify import DEFAULT_RTOL, NOISE_ULPS
 
 TEST_POINTS = 3
 

@@ -34,11 +34,11 @@ from dataclasses import dataclass, field
 from typing import Any
 
 from gradwright.workflow import nonfinite
-from gradwright.workflow.points import Value, describe
+from gradwright.workflow.points import DEFAULT_RTOL, NOISE_ULPS, Value, describe
+
+__all__ = ["DEFAULT_RTOL", "NOISE_ULPS"]
 
 EPSILON = sys.float_info.epsilon
-DEFAULT_RTOL = 1e-5
-NOISE_ULPS = 64
 
 
 @dataclass(frozen=True)
