@@ -6,16 +6,23 @@
   mpmath's, so the same model text is evaluated in high precision.
 - :func:`mp_central_diff` is a high-precision central difference of such a model,
   used as an outside reference for gradients.
+- :func:`mp_gradient` is the whole reference gradient of such a model: central
+  differences in every float argument and every element of every list argument.
 - :func:`sympy_function` runs the same source with ``math`` mapped to SymPy's
-  functions, so the model becomes a SymPy expression that ``sympy.diff`` can take.
+  functions, so the model becomes a SymPy expression that ``sympy.diff`` can take;
+  a NumPy model runs on object arrays of SymPy expressions.
+- :func:`sample_command` reads the ``gradwright gen`` command a committed
+  ``samples/*_grad.py`` records in its header.
 """
 
 from __future__ import annotations
 
 import builtins
 import math
+import shlex
 import types
 from collections.abc import Callable, Sequence
+from pathlib import Path
 
 import mpmath
 
@@ -195,12 +202,48 @@ def _sympy_math():
     )
 
 
+#: NumPy's elementwise functions -> the math name whose SymPy function they apply
+_NUMPY_ELEMENTWISE = {
+    **{
+        name: name
+        for name in (
+            "exp log log1p expm1 exp2 log2 log10 sqrt cbrt sin cos tan tanh sinh"
+            " cosh fabs hypot"
+        ).split()
+    },
+    "arcsin": "asin",
+    "arccos": "acos",
+    "arctan": "atan",
+    "arcsinh": "asinh",
+    "arccosh": "acosh",
+    "arctanh": "atanh",
+    "arctan2": "atan2",
+    "abs": "fabs",
+    "absolute": "fabs",
+}
+
+
+def _sympy_numpy(sympy_math) -> types.SimpleNamespace:
+    """numpy, with its elementwise functions applying SymPy's to object arrays
+    (sums, means, ``@``, ``**`` and the rest work on object arrays as they are)."""
+    import numpy
+
+    namespace = types.SimpleNamespace(**vars(numpy))
+    for name, math_name in _NUMPY_ELEMENTWISE.items():
+        function = getattr(sympy_math, math_name)
+        arity = 2 if math_name in ("atan2", "hypot") else 1
+        setattr(namespace, name, numpy.frompyfunc(function, arity, 1))
+    return namespace
+
+
 def sympy_function(source: str, func: str) -> Callable:
     """``func`` from ``source``, executed with ``math`` mapped to SymPy's functions.
 
     Called with SymPy symbols it returns the model as a SymPy expression (``abs``,
     ``min`` and ``max`` become ``Abs``, ``Min`` and ``Max``). ``%`` and ``//`` on
-    symbols give ``Mod`` and ``floor``, which SymPy does not differentiate.
+    symbols give ``Mod`` and ``floor``, which SymPy does not differentiate. A model
+    that imports numpy gets :func:`_sympy_numpy` instead: called with object arrays
+    of SymPy symbols (and exact ``sympy.Rational`` data), it returns the expression.
     """
     import sympy
 
@@ -209,6 +252,8 @@ def sympy_function(source: str, func: str) -> Callable:
     def importer(name, globals=None, locals=None, fromlist=(), level=0):
         if name == "math":
             return sympy_math
+        if name == "numpy":
+            return _sympy_numpy(sympy_math)
         return builtins.__import__(name, globals, locals, fromlist, level)
 
     sympy_builtins = dict(vars(builtins))
@@ -271,3 +316,91 @@ def mp_central_diff(
             )
     # the estimate keeps its working-precision digits (no rounding to 53 bits)
     return coarse
+
+
+def mp_partial(
+    f_mp: Callable, point: Sequence[float], index: int, digits: int = 50
+) -> mpmath.mpf:
+    """:func:`mp_central_diff`, also where the derivative is exactly zero.
+
+    The self-check there is relative, so a zero derivative (``w * s + (1 - w) * s``
+    in ``w``) is refused on its rounding noise; it is then taken as
+    d(f + x)/dx - 1, and kept as 0 when below 10**-(digits // 2)."""
+    try:
+        return mp_central_diff(f_mp, point, index, digits)
+    except ValueError:
+
+        def plus_coordinate(*coords):
+            return f_mp(*coords) + coords[index]
+
+        with mpmath.workdps(2 * digits):
+            estimate = mp_central_diff(plus_coordinate, point, index, digits) - 1
+            if abs(estimate) < mpmath.mpf(10) ** -(digits // 2):
+                return mpmath.mpf(0)
+        raise
+
+
+def mp_gradient(
+    f_mp: Callable, args: Sequence, active: Sequence[int], digits: int = 50
+) -> list:
+    """The reference gradient of ``f_mp(*args)`` in the arguments ``active``.
+
+    One :func:`mp_partial` per coordinate: a float argument gets an
+    ``mpmath.mpf``, a list argument a list with one per element; the other
+    arguments (integers, data) stay as given.
+    """
+    slots = []  # (argument index, list index or None) per flat coordinate
+    for p in active:
+        if isinstance(args[p], list):
+            slots += [(p, k) for k in range(len(args[p]))]
+        else:
+            slots.append((p, None))
+
+    def flat_model(*coords):
+        call = [list(a) if isinstance(a, list) else a for a in args]
+        for (p, k), c in zip(slots, coords, strict=True):
+            if k is None:
+                call[p] = c
+            else:
+                call[p][k] = c
+        return f_mp(*call)
+
+    point = [args[p] if k is None else args[p][k] for p, k in slots]
+    flat = [mp_partial(flat_model, point, j, digits) for j in range(len(point))]
+    grads: list = []
+    for (_, k), d in zip(slots, flat, strict=True):
+        if k is None:
+            grads.append(d)
+        elif k == 0:
+            grads.append([d])
+        else:
+            grads[-1].append(d)
+    return grads
+
+
+def command_words(golden: Path) -> list[str]:
+    """The ``# command:`` line of a generated module's header, split as a shell
+    would (``["gradwright", "gen", FILE, FUNC, ..., "-o", OUT]``)."""
+    for line in golden.read_text(encoding="utf-8").splitlines():
+        if line.startswith("# command: "):
+            return shlex.split(line.removeprefix("# command: "))
+    raise AssertionError(f"no command line in {golden.name}")
+
+
+def sample_command(golden: Path) -> tuple[list[str], list[str] | None]:
+    """The functions and ``--wrt`` names of a committed ``*_grad.py``, from its
+    header's ``gradwright gen FILE FUNC ... [--wrt a,b] -o OUT`` (``--wrt`` None:
+    every parameter)."""
+    words = command_words(golden)
+    assert words[:2] == ["gradwright", "gen"], words
+    functions: list[str] = []
+    wrt: list[str] | None = None
+    rest = iter(words[3:])
+    for word in rest:
+        if word in ("--wrt", "-o", "--target"):
+            value = next(rest)
+            if word == "--wrt":
+                wrt = value.split(",")
+        else:
+            functions.append(word)
+    return functions, wrt

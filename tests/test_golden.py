@@ -2,26 +2,21 @@
 
 Any change to the generated text shows up here and, once regenerated, in review as
 a diff of samples/*_grad.py. Regenerate with the command in each file's header.
+This checks bytes only; the gradients the committed files compute are checked against
+SymPy and mpmath in tests/test_samples.py.
 """
 
 from __future__ import annotations
 
-import shlex
 from pathlib import Path
 
 import pytest
+from support import command_words
 
 from gradwright.workflow.cli import main
 
 ROOT = Path(__file__).resolve().parents[1]
 GOLDEN = sorted(ROOT.glob("samples/*_grad.py"))
-
-
-def _command(text: str) -> list[str]:
-    for line in text.splitlines():
-        if line.startswith("# command: "):
-            return shlex.split(line.removeprefix("# command: "))
-    raise AssertionError("no command line in the header")
 
 
 def test_there_are_golden_files() -> None:
@@ -32,7 +27,7 @@ def test_there_are_golden_files() -> None:
 def test_regenerated_output_is_byte_identical(
     golden: Path, monkeypatch: pytest.MonkeyPatch, capsys: pytest.CaptureFixture[str]
 ) -> None:
-    words = _command(golden.read_text(encoding="utf-8"))
+    words = command_words(golden)
     assert words[:2] == ["gradwright", "gen"]
     assert words[words.index("-o") + 1] == golden.relative_to(ROOT).as_posix()
     monkeypatch.chdir(ROOT)

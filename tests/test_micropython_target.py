@@ -24,7 +24,6 @@ import ast
 import contextlib
 import io
 import math
-import shlex
 import sys
 from dataclasses import dataclass
 from functools import cache
@@ -33,7 +32,7 @@ from pathlib import Path
 import black
 import mpmath
 import pytest
-from support import mp_central_diff, mp_function, rel_err
+from support import mp_central_diff, mp_function, rel_err, sample_command
 
 import gradwright
 from gradwright.calculus.primitives import OPS
@@ -257,25 +256,7 @@ def _sample_command(sample: Path) -> tuple[list[str], list[str] | None]:
     golden = sample.with_name(sample.stem + "_grad.py")
     if not golden.exists():
         raise AssertionError(f"{sample.name} has no golden output {golden.name}")
-    for line in golden.read_text(encoding="utf-8").splitlines():
-        if line.startswith("# command: "):
-            words = shlex.split(line.removeprefix("# command: "))
-            break
-    else:
-        raise AssertionError(f"no command line in {golden.name}")
-    args = words[3:]
-    functions: list[str] = []
-    wrt: list[str] | None = None
-    i = 0
-    while i < len(args):
-        if args[i] in ("--wrt", "-o", "--target"):
-            if args[i] == "--wrt":
-                wrt = args[i + 1].split(",")
-            i += 2
-            continue
-        functions.append(args[i])
-        i += 1
-    return functions, wrt
+    return sample_command(golden)
 
 
 def _is_scalar(sample: Path) -> bool:
