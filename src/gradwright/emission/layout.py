@@ -59,7 +59,12 @@ class Layout:
         namer: Namer,
         printer: Printer,
         active: set[Var],
+        share_names: bool = True,
     ) -> None:
+        #: let versions of a variable share its name (readable); off, every stored
+        #: value has a name of its own (the fallback when the check fails)
+        self.share_names = share_names
+        self.bases_used = {p.base for p in function.params}
         self.function = function
         self.sweep = sweep
         self.namer = namer
@@ -105,7 +110,8 @@ class Layout:
         }
         self.tape_names: dict[tuple[Loop, Var], str] = {}
         self._name_all()
-        self._name_carries(sweep.statements)
+        if share_names:
+            self._name_carries(sweep.statements)
 
     # -- analysis -----------------------------------------------------------------
 
@@ -147,7 +153,7 @@ class Layout:
 
     def partials_of(self, call: Var) -> Var:
         """The tuple of partial derivatives a helper call returns, as a value."""
-        pseudo = Var(-call.uid - 1, f"{call.base}_partials", "temp")
+        pseudo = _partials_var(call)
         if pseudo not in self.loop_of:
             self.loop_of[pseudo] = self.loop_of.get(call)
             self.namer.names[pseudo] = self.namer.partials_name(call)
@@ -280,6 +286,16 @@ class Layout:
             names += [self.by_name(loop, inner) for inner in self.saved_lists(child)]
         return names
 
+    def tapes_of(self, loop: Loop, saved: str) -> list[Var]:
+        """The values the saved list named ``saved`` (of ``loop`` or a loop inside
+        it) holds."""
+        found = [
+            v for v in self.tapes.get(loop, []) if self.tape_name(loop, v) == saved
+        ]
+        for child in self.children.get(loop, []):
+            found += self.tapes_of(child, saved)
+        return found
+
     def by_name(self, loop: Loop, inner: str) -> str:
         key = (loop, inner)
         known = self.by_names.get(key)
@@ -323,6 +339,14 @@ class Layout:
     def _liveness(self) -> set[Var]:
         live: set[Var] = {a for a in self.function.result.values if isinstance(a, Var)}
         live |= self.reverse_reads
+        # a helper call whose partials the reverse reads is made even when its
+        # value is not used (the forward sweep would otherwise drop it)
+        live |= {
+            let.target
+            for let in self.defs.values()
+            if let.op.startswith("call:")
+            and _partials_var(let.target) in self.reverse_reads
+        }
         for lets in self.recompute.values():
             for let in lets:
                 live |= {a for a in let.args if isinstance(a, Var)}
@@ -451,6 +475,14 @@ class Layout:
             self.namer.names[var] = self.namer.name(self.roots[var])
             return
         previous = current.get(var.base)
+        if not self.share_names:
+            if var.base in self.bases_used or var.kind not in ("local", "index"):
+                self.namer.names[var] = self.namer.fresh(var.base)
+            else:
+                self.namer.names[var] = var.base
+                self.namer.taken.add(var.base)
+            self.bases_used.add(var.base)
+            return
         if previous is not None and previous in self.namer.names:
             # two versions the reverse body restores or recomputes need two names
             both_replayed = previous in self.replayed and var in self.replayed
@@ -496,7 +528,12 @@ class Layout:
                         a, b = phi.first, phi.second
                         na = self.namer.names.get(a) if isinstance(a, Var) else None
                         nb = self.namer.names.get(b) if isinstance(b, Var) else None
-                        if na is not None and na == nb and phi.target.kind == "local":
+                        if (
+                            self.share_names
+                            and na is not None
+                            and na == nb
+                            and phi.target.kind == "local"
+                        ):
                             self.namer.names[phi.target] = na  # one name on both paths
                         else:
                             self._version_name(phi.target, current)
@@ -524,7 +561,8 @@ class Layout:
                         self.namer.names.get(init) if isinstance(init, Var) else None
                     )
                     if (
-                        init_name is not None
+                        self.share_names
+                        and init_name is not None
                         and init not in self.pinned
                         and init not in self.replayed
                         and phi.target not in self.pinned
@@ -690,6 +728,10 @@ def _writes_then_no_read(body: list[ReverseStmt], header: Var, carry: Var) -> bo
             if any(isinstance(n, Bar) and n.var == carry for n in walk(expr)):
                 return False
     return True
+
+
+def _partials_var(call: Var) -> Var:
+    return Var(-call.uid - 1, f"{call.base}_partials", "temp")
 
 
 def _walk_values(expr: Expr) -> Iterator[Expr]:

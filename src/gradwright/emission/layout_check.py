@@ -99,6 +99,15 @@ class Trace:
         self.read(name, source)
         self._add(("alias", name, target, source))
 
+    def fill(self, saved: str, var: Var) -> None:
+        """``saved[slot] = ...``: the saved list holds ``var`` of each iteration."""
+        self._add(("fill", saved, ("filled", var), self.where))
+
+    def restore(self, name: str, saved: str, var: Var, key: Key) -> None:
+        """``name = saved[slot]``: the value saved for this iteration (the name
+        holds it where the slot was filled; an unfilled slot gives it nothing)."""
+        self._add(("restore", name, key, (saved, ("filled", var))))
+
     @contextmanager
     def capture(self) -> Iterator[list]:
         """Collect the events of a nested block instead of adding them."""
@@ -176,7 +185,8 @@ def _forget(state: State, local: frozenset[Var], branches: frozenset) -> State:
         kept = frozenset(
             (k, g)
             for k, g in facts
-            if k[1] not in local and not any(b in branches for b, _ in g)
+            if k[0] == "filled"  # a slot per iteration: true of every iteration
+            or (k[1] not in local and not any(b in branches for b, _ in g))
         )
         if kept:
             out[name] = kept
@@ -225,7 +235,15 @@ class _Checker:
                         )
                 elif kind == "write":
                     state[name] = frozenset({(key, frozenset())})
+                elif kind == "fill":
+                    state[name] = held | {(key, frozenset())}
+                elif kind == "restore":
+                    saved, filled = event[3]
+                    state[name] = frozenset(
+                        (key, g) for k, g in state.get(saved, ()) if k == filled
+                    )
                 else:  # alias: the name holds the copied value too, where it held it
+                    assert kind == "alias"
                     source = event[3]
                     guards = {g for k, g in held if k == source} or {frozenset()}
                     state[name] = held | {(key, g) for g in guards}
@@ -242,7 +260,7 @@ class _Checker:
         written = set(_written(loop.body))
         state = {n: f for n, f in entry.items() if n not in written}
         state |= _meet({n: f for n, f in entry.items() if n in written}, ends)
-        return _forget(state, loop.local, loop.branches)
+        return _forget(_with_fills(state, ends), loop.local, loop.branches)
 
     def loop(self, loop: _Loop, entry: State, taken: frozenset) -> State:
         head = dict(entry)
@@ -255,8 +273,8 @@ class _Checker:
             head = new_head
         else:
             head = {}  # assume nothing (never seen; safe)
-        self.run(loop.body, dict(head), taken, True)
-        state = dict(head)
+        end = self.run(loop.body, dict(head), taken, True)
+        state = _with_fills(dict(head), end)
         for target, exit_value in loop.exits:
             for name, facts in list(state.items()):
                 extra = {
@@ -275,5 +293,14 @@ def _written(events: list) -> Iterator[str]:
             yield from _written(event.orelse)
         elif isinstance(event, _Loop):
             yield from _written(event.body)
-        elif event[0] != "read":
+        elif event[0] not in ("read", "fill"):
             yield event[1]
+
+
+def _with_fills(state: State, end: State) -> State:
+    """``state`` with the saved-list slots a loop body fills (in every iteration)."""
+    for name, facts in end.items():
+        fills = {(k, g) for k, g in facts if k[0] == "filled"}
+        if fills and name in state:
+            state[name] = state[name] | fills
+    return state

@@ -139,46 +139,55 @@ def render_function(
         | index.module_names
         | {"math", "abs", "min", "max", "len", "sum", "range", "reversed"}
     )
-    namer = Namer(reserved)
-    for param in ssa.params:
-        namer.name(param)
-    for param in sweep.wrt:
-        namer.bar_name(param)  # the documented x_bar names come first
     is_vector = ssa.result.is_tuple
-    seed_name = ""
-    seed_unpack = ""
-    if is_vector:
-        seed_name = namer.claim("seed")
-        names = [namer.name(seed) for seed in sweep.seeds]
-        seed_unpack = (
-            f"{', '.join(names)}{',' if len(names) == 1 else ''} = {seed_name}"
-        )
     # a model that binds its own `math` gets the module under another name
     math_alias = "_gw_math" if "math" in set(checked.params) | ssa.local_names else None
-    printer = Printer(
-        namer.name,
-        namer.bar_name,
-        target.callees(),
-        namer.partials_name,
-        math_alias=math_alias,
-    )
     numpy = bool(index.numpy_modules)
-    reverse_printer = (
-        Printer(
+
+    def lay_out_with(share_names: bool):  # noqa: ANN202
+        namer = Namer(reserved)
+        for param in ssa.params:
+            namer.name(param)
+        for param in sweep.wrt:
+            namer.bar_name(param)  # the documented x_bar names come first
+        seed_name = namer.claim("seed") if is_vector else ""
+        printer = Printer(
             namer.name,
             namer.bar_name,
-            {**target.callees(), **REVERSE_SPELLING},
+            target.callees(),
             namer.partials_name,
-            where_call="np.where",
             math_alias=math_alias,
         )
-        if numpy
-        else None
-    )
-    try:
-        forward, reverse, result_exprs = lay_out(
-            ssa, sweep, namer, printer, set(compiled.active), reverse_printer
+        reverse_printer = (
+            Printer(
+                namer.name,
+                namer.bar_name,
+                {**target.callees(), **REVERSE_SPELLING},
+                namer.partials_name,
+                where_call="np.where",
+                math_alias=math_alias,
+            )
+            if numpy
+            else None
         )
+        laid_out = lay_out(
+            ssa,
+            sweep,
+            namer,
+            printer,
+            set(compiled.active),
+            reverse_printer,
+            share_names,
+        )
+        return namer, seed_name, printer, reverse_printer, laid_out
+
+    try:
+        try:
+            attempt = lay_out_with(share_names=True)
+        except LayoutError:
+            # the readable layout shares names unsafely somewhere: give every
+            # stored value a name of its own, which the check then confirms
+            attempt = lay_out_with(share_names=False)
     except LayoutError as error:
         # a bug of ours, caught before it became a wrong gradient
         fail(
@@ -188,6 +197,14 @@ def render_function(
             index.locate(checked.node.name),
             "please report this model to the gradwright developers; rewriting the"
             " statement named above differently may avoid it meanwhile",
+        )
+    namer, seed_name, printer, reverse_printer, laid_out = attempt
+    forward, reverse, result_exprs = laid_out
+    seed_unpack = ""
+    if is_vector:
+        names = [namer.name(seed) for seed in sweep.seeds]
+        seed_unpack = (
+            f"{', '.join(names)}{',' if len(names) == 1 else ''} = {seed_name}"
         )
     values = [printer(e) for e in result_exprs]
     value = (

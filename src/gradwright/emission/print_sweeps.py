@@ -195,6 +195,7 @@ class _Emitter:
                 trace.read(partials_name, ("partials", target))
                 trace.read(saved, self.tape_key(loop, saved))
                 self.slot_reads(loop)
+                trace.fill(saved, partials)
 
     def save(self, loop: Loop, var: Var, depth: int, out: _Lines) -> None:
         """``var_saved[slot] = var``: this iteration's value, for the reverse."""
@@ -205,6 +206,7 @@ class _Emitter:
         self.trace.read(name, self.key(var))
         self.trace.read(saved, self.tape_key(loop, saved))
         self.slot_reads(loop)
+        self.trace.fill(saved, var)
 
     def _list_live(self, var: Var) -> bool:
         root = self.layout.roots.get(var, var)
@@ -212,7 +214,8 @@ class _Emitter:
 
     def copy(self, target: Var, source: Atom, depth: int, out: _Lines) -> None:
         if target.shape == "list":
-            # the same list object under one name (the check sees if it is not)
+            # no copy is printed: the target's name must hold the source's list
+            self.trace.read(self.namer.name(target), self.key(source))  # type: ignore[arg-type]
             return
         name = self.namer.name(target)
         value = self.value(source)
@@ -325,11 +328,8 @@ class _Emitter:
         out = _Lines()
         layout = self.layout
         self.trace.at("the start of the reverse sweep")
-        for root in layout.sweep.list_roots:
-            bar, name = self.namer.bar_name(root), self.namer.name(root)
-            out.code(f"{bar} = [0.0] * len({name})", 1)
-            self.trace.read(name, self.key(root))
-            self.trace.write(bar, self.bar_key(root))
+        params = [p for p in layout.function.params if p.shape == "list"]
+        self.list_adjoints(params + _lists_made(layout.function.body), 1, out)
         self.reverse_block(layout.sweep.statements, 1, out)
         for var in layout.sweep.unused_wrt:
             if var.shape == "list":
@@ -338,6 +338,17 @@ class _Emitter:
             out.statement(origin, f"{self.namer.bar_name(var)} = 0.0", 1)
             self.trace.write(self.namer.bar_name(var), self.bar_key(var))
         return out.lines
+
+    def list_adjoints(self, made: list[Var], depth: int, out: _Lines) -> None:
+        """Zeroed adjoint lists for the active lists a block makes, at the start of
+        its reverse (a list made in a branch or a loop body exists only there)."""
+        for root in made:
+            if root not in self.layout.sweep.list_roots:
+                continue
+            bar, name = self.namer.bar_name(root), self.namer.name(root)
+            out.code(f"{bar} = [0.0] * len({name})", depth)
+            self.trace.read(name, self.key(root))
+            self.trace.write(bar, self.bar_key(root))
 
     def reverse_block(
         self, statements: tuple[ReverseStmt, ...], depth: int, out: _Lines
@@ -385,12 +396,20 @@ class _Emitter:
             elif isinstance(stmt, ReverseBranch):
                 sides = []
                 events = []
-                for block in (stmt.then, stmt.orelse):
+                forward = stmt.branch
+                made = (
+                    (_lists_made(forward.then), _lists_made(forward.orelse))
+                    if forward is not None
+                    else ([], [])
+                )
+                for block, lists in zip((stmt.then, stmt.orelse), made, strict=True):
                     side = _Lines()
                     side.last_origin = dict(out.last_origin)
                     side.header = dict(out.header)
                     side.open_block(depth, stmt.origin)
                     with trace.capture() as side_events:
+                        if block:
+                            self.list_adjoints(lists, depth + 1, side)
                         self.reverse_block(block, depth + 1, side)
                     sides.append(side.lines)
                     events.append(side_events)
@@ -448,7 +467,9 @@ class _Emitter:
                 trace.read(saved, self.tape_key(loop, saved))
                 self.slot_reads(loop)
                 partials = var.base.endswith("_partials") and var.uid < 0
-                trace.write(name, self._saved_key(var) if partials else self.key(var))
+                key = self._saved_key(var) if partials else self.key(var)
+                trace.restore(name, saved, var, key)
+            self.list_adjoints(_lists_made(loop.body), depth + 1, out)
             for child in layout.children.get(loop, []):
                 for saved in layout.saved_lists(child):
                     by = layout.by_name(loop, saved)
@@ -456,6 +477,10 @@ class _Emitter:
                     trace.read(by, self.tape_key(loop, by))
                     self.slot_reads(loop)
                     trace.write(saved, self.tape_key(child, saved))
+                    # the inner loop's slots, as that iteration of this loop filled
+                    # them (the by-list keeps each list it made: trusted here)
+                    for var in layout.tapes_of(child, saved):
+                        trace.fill(saved, var)
             for let in layout.recompute.get(loop, []):
                 name = self.namer.name(let.target)
                 self.restored.add(name)
@@ -478,6 +503,15 @@ class _Emitter:
                 if self.layout.partials_of(v) == pseudo
             ),
         )
+
+
+def _lists_made(statements: tuple[Stmt, ...]) -> list[Var]:
+    """The lists a block makes itself (not in blocks nested in it)."""
+    return [
+        s.target
+        for s in statements
+        if isinstance(s, Let) and s.op in ("newlist", "listlit")
+    ]
 
 
 def _iteration_values(loop: Loop) -> set[Var]:
@@ -512,13 +546,14 @@ def lay_out(
     printer: Printer,
     active: set[Var],
     reverse_printer: Printer | None = None,
+    share_names: bool = True,
 ) -> tuple[list[str], list[str], tuple[Expr, ...]]:
     """Forward lines, reverse lines and the result expressions.
 
     ``reverse_printer`` prints the reverse sweep's own expressions (NumPy spellings
     in an array model); the forward sweep's always print as the source wrote them.
     """
-    layout = Layout(function, sweep, namer, printer, active)
+    layout = Layout(function, sweep, namer, printer, active, share_names)
     layout.reverse_printer = reverse_printer or printer
     layout.numpy = (
         reverse_printer is not None and reverse_printer.where_call is not None

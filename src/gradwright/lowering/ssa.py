@@ -102,6 +102,8 @@ class _Lowerer(NumpyLowering):
         self.fresh: set[Var] = set()
         #: values that are truth values (results of comparisons and logic)
         self.truth_values: set[Var] = set()
+        #: the list object each list value is a version of
+        self.list_root: dict[Var, Var] = {}
         #: `y = x` copies, to find the parameter behind a name used as a list
         self.copy_of: dict[Var, Atom] = {}
         self.result_arity: int | None = None
@@ -116,11 +118,19 @@ class _Lowerer(NumpyLowering):
         self.blocks[-1].append(Let(target, op, args, self.origin))
         if op in _TRUTH_OPS:
             self.truth_values.add(target)
+        if target.shape == "list":
+            # every version of a list made by element writes is one list object
+            self.list_root[target] = (
+                self.root_of(args[0]) if op == "setitem" else target  # type: ignore[arg-type]
+            )
         if op not in _VIEWS:
             self.fresh.add(target)
         if op == "copy":
             self.copy_of[target] = args[0]
         return target
+
+    def root_of(self, var: Var) -> Var:
+        return self.list_root.get(var, var)
 
     def is_fresh(self, atom: Atom) -> bool:
         """Whether a value is an array of its own (not a parameter, another name's
@@ -398,8 +408,17 @@ class _Lowerer(NumpyLowering):
                 )
                 continue
             shape = a.shape if isinstance(a, Var) else "scalar"
+            if shape == "list" and self.root_of(a) != self.root_of(b):  # type: ignore[arg-type]
+                self.env[name] = _Unbound(
+                    f"'{name}' names a different list on each path of an if",
+                    "make the list once before the if and assign its elements"
+                    f" ({name}[i] = ...) in each branch",
+                )
+                continue
             target = self.new_var("value" if is_result else name, "local", shape)
             merges.append(Phi(target, a, b))
+            if shape == "list":
+                self.list_root[target] = self.root_of(a)  # type: ignore[arg-type]
             if self.is_fresh(a) and self.is_fresh(b):
                 self.fresh.add(target)
             self.env[name] = target
@@ -477,6 +496,8 @@ class _Lowerer(NumpyLowering):
             init = before[n]
             shape = init.shape if isinstance(init, Var) else "scalar"
             headers[n] = self.new_var(n, "local", shape)
+            if shape == "list":
+                self.list_root[headers[n]] = self.root_of(init)  # type: ignore[arg-type]
             if self.is_fresh(init):  # type: ignore[arg-type]
                 self.fresh.add(headers[n])
             self.env[n] = headers[n]
@@ -498,8 +519,22 @@ class _Lowerer(NumpyLowering):
         self.env = dict(before)
         phis = []
         for n in carried:
+            if headers[n].shape == "list" and self.root_of(
+                before[n]  # type: ignore[arg-type]
+            ) != self.root_of(
+                body_env[n]
+            ):  # type: ignore[arg-type]
+                fail(
+                    f"'{n}' is bound to a new list inside the loop (the reverse"
+                    " sweep needs each list to stay one object)",
+                    self.index.locate(node),
+                    f"update the elements of {n} in place ({n}[i] = ...), with a"
+                    " second list made before the loop for the new values",
+                )
             exit_var = self.new_var(n, "local", headers[n].shape)
             phis.append(Phi(headers[n], before[n], body_env[n], exit_var))  # type: ignore[arg-type]
+            if exit_var.shape == "list":
+                self.list_root[exit_var] = self.root_of(headers[n])
             self.env[n] = exit_var
         for n in assigned:
             if n not in carried:
