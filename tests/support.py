@@ -223,16 +223,52 @@ _NUMPY_ELEMENTWISE = {
 }
 
 
-def _sympy_numpy(sympy_math) -> types.SimpleNamespace:
-    """numpy, with its elementwise functions applying SymPy's to object arrays
-    (sums, means, ``@``, ``**`` and the rest work on object arrays as they are)."""
+def _sympy_extreme(function):
+    """np.max or np.min over object arrays: SymPy's ``Max``/``Min`` of the elements
+    along ``axis`` (None, an int or a tuple), as NumPy would pick them."""
     import numpy
+
+    def reduce(x, axis=None, keepdims=False):
+        x = numpy.asarray(x, dtype=object)
+        if axis is None:
+            axis = tuple(range(x.ndim))
+        axes = tuple(a % x.ndim for a in (axis if isinstance(axis, tuple) else (axis,)))
+        rest = [a for a in range(x.ndim) if a not in axes]
+        moved = numpy.transpose(x, rest + list(axes))
+        rows = moved.reshape(moved.shape[: len(rest)] + (-1,))
+        out = numpy.empty(rows.shape[:-1], dtype=object)
+        for index in numpy.ndindex(out.shape):
+            out[index] = function(*rows[index])
+        if keepdims:
+            out = out.reshape([1 if a in axes else n for a, n in enumerate(x.shape)])
+        return out if out.ndim else out[()]
+
+    return reduce
+
+
+def _sympy_numpy(sympy_math) -> types.SimpleNamespace:
+    """numpy over object arrays of SymPy expressions: the elementwise functions
+    apply SymPy's, max/min/maximum/minimum/clip are ``Max`` and ``Min``, norm is the
+    square root of the sum of squares; sums, means, products, ``@``, ``**``, shapes,
+    joins and ``where`` on a numeric condition work on object arrays as they are."""
+    import numpy
+    import sympy
 
     namespace = types.SimpleNamespace(**vars(numpy))
     for name, math_name in _NUMPY_ELEMENTWISE.items():
         function = getattr(sympy_math, math_name)
         arity = 2 if math_name in ("atan2", "hypot") else 1
         setattr(namespace, name, numpy.frompyfunc(function, arity, 1))
+    namespace.maximum = numpy.frompyfunc(sympy.Max, 2, 1)
+    namespace.minimum = numpy.frompyfunc(sympy.Min, 2, 1)
+    namespace.clip = numpy.frompyfunc(
+        lambda x, lo, hi: sympy.Min(sympy.Max(x, lo), hi), 3, 1
+    )
+    namespace.max = namespace.amax = _sympy_extreme(sympy.Max)
+    namespace.min = namespace.amin = _sympy_extreme(sympy.Min)
+    namespace.linalg = types.SimpleNamespace(
+        norm=lambda x: sympy.sqrt(sum(e**2 for e in numpy.ravel(x)))
+    )
     return namespace
 
 
