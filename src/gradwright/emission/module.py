@@ -228,7 +228,7 @@ def render_function(
     helpers |= helpers_for_ops(target, printer.replaced_ops)
     check_helper_names(target, index, checked, ssa.local_names, helpers)
     signature = index.module.code_for_node(node.params)
-    primal = format_function(node, index.module)
+    primal = format_function(node, index.module, index.code)
     jacobian_rows: tuple[str, ...] = ()
     if is_vector:
         outputs = len(ssa.result.values)

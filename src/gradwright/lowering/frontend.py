@@ -8,7 +8,8 @@ module-level constants and the other functions of the file.
 from __future__ import annotations
 
 import ast
-from collections.abc import Mapping
+import re
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from functools import cached_property
 
@@ -60,8 +61,95 @@ class ModuleIndex:
         end = span.end.column if span.end.line == line else len(self.lines[line - 1])
         return Location(self.path, line, span.start.column, end, self.lines[line - 1])
 
+    @cached_property
+    def _quoted(self) -> dict[int, str]:
+        return _statement_spans(self.module, self.source)
+
     def code(self, node: cst.CSTNode) -> str:
-        return self.module.code_for_node(node)
+        """The node's text as written: sliced from the source for statements, ``if``
+        tests and ``for`` iterables (what the comments quote), else re-printed
+        (re-printing every statement cost more than the rest of the lowering)."""
+        text = self._quoted.get(id(node))
+        return text if text is not None else self.module.code_for_node(node)
+
+
+_SEMICOLON = re.compile(r"[ \t]*;")
+_BLANK = " \t\n\\"
+
+
+def _statement_spans(module: cst.Module, source: str) -> dict[int, str]:
+    """id(node) -> its source text, for the statements of every block and the tests
+    and iterables of ``if`` and ``for``, from CPython's parse (a fraction of the
+    cost of printing them again). Positions come from walking libcst's tree and
+    ``ast``'s side by side; a block where they disagree is left out, and so is
+    everything when ``ast`` cannot parse what libcst did."""
+    try:
+        tree = ast.parse(source)
+    except (SyntaxError, ValueError):
+        return {}
+    lines = source.splitlines(keepends=True)
+    starts = [0]
+    for line in lines:
+        starts.append(starts[-1] + len(line))
+
+    def offset(line: int, column: int) -> int:
+        text = lines[line - 1]
+        if not text.isascii():  # ast's columns count UTF-8 bytes
+            column = len(text.encode("utf-8")[:column].decode("utf-8", "replace"))
+        return starts[line - 1] + column
+
+    def span(node: ast.AST) -> tuple[int, int]:
+        start = offset(node.lineno, node.col_offset)  # type: ignore[attr-defined]
+        end = offset(node.end_lineno, node.end_col_offset)  # type: ignore[attr-defined]
+        return start, end
+
+    spans: dict[int, str] = {}
+
+    def expression(node: cst.BaseExpression, twin: ast.expr) -> None:
+        start, end = span(twin)
+        # ast leaves out the parentheses around an expression; libcst keeps them
+        for _ in node.lpar:
+            while start > 0 and source[start - 1] in _BLANK:
+                start -= 1
+            while end < len(source) and source[end] in _BLANK:
+                end += 1
+            if source[start - 1 : start] != "(" or source[end : end + 1] != ")":
+                return  # a comment in the way: printed instead
+            start, end = start - 1, end + 1
+        spans[id(node)] = source[start:end]
+
+    def block(body: Sequence[cst.CSTNode], twins: list[ast.stmt]) -> None:
+        small: list[cst.CSTNode] = []
+        for stmt in body:
+            if isinstance(stmt, cst.SimpleStatementLine):
+                small.extend(stmt.body)
+            else:
+                small.append(stmt)
+        if len(small) != len(twins):
+            return
+        for node, twin in zip(small, twins, strict=True):
+            if isinstance(node, cst.BaseSmallStatement):
+                start, end = span(twin)
+                semicolon = _SEMICOLON.match(source, end)  # libcst's node owns it
+                spans[id(node)] = source[start : semicolon.end() if semicolon else end]
+            elif isinstance(node, cst.If) and isinstance(twin, ast.If):
+                expression(node.test, twin.test)
+                block(node.body.body, twin.body)
+                orelse = node.orelse
+                if isinstance(orelse, cst.If):
+                    block([orelse], twin.orelse)
+                elif orelse is not None:
+                    block(orelse.body.body, twin.orelse)
+            elif isinstance(node, cst.For) and isinstance(twin, ast.For):
+                expression(node.iter, twin.iter)
+                block(node.body.body, twin.body)
+            elif isinstance(node, (cst.FunctionDef, cst.ClassDef)) and isinstance(
+                twin, (ast.FunctionDef, ast.AsyncFunctionDef, ast.ClassDef)
+            ):
+                block(node.body.body, twin.body)
+
+    block(module.body, tree.body)
+    return spans
 
 
 def _syntax_error(path: str, source: str, error: cst.ParserSyntaxError) -> None:
