@@ -443,3 +443,107 @@ def test_verify_keeps_integer_trip_counts() -> None:
     )  # fmt: skip
     assert result.code == 0, result.out + result.err
     assert "steps_per_reading=20" in result.out
+
+
+# ---------------------------------------------------------------------------------
+# parameter kinds: lists, trip counts, indices and arrays are drawn as such
+
+
+@pytest.mark.parametrize(
+    ("model", "function"),
+    [
+        ("cable_sag", "rig_loss"),
+        ("fuel_hedge", "call_value"),
+        ("greenhouse_net", "humidity_loss"),
+        ("kiln_cooling", "kiln_loss"),
+        ("thermistor", "fit_loss"),
+    ],
+)
+@pytest.mark.parametrize("generated", [False, True], ids=["model", "module"])
+def test_every_sample_verifies_with_only_samples(
+    model: str, function: str, generated: bool
+) -> None:
+    path = f"{model}_grad.py" if generated else f"{model}.py"
+    result = cli("verify", path, function, "--samples", "2", cwd=SAMPLES)
+    assert result.code == 0, result.out + result.err
+    assert "agrees with central differences at 2 point(s)" in result.out
+    assert "unchecked" not in result.out
+
+
+def test_kiln_draws_a_list_and_a_trip_count() -> None:
+    result = cli("verify", "kiln_cooling.py", "kiln_loss", "--samples", "1",
+                 "--length", "readings=4", cwd=SAMPLES)  # fmt: skip
+    assert result.code == 0, result.out
+    first = result.out.splitlines()[0]
+    assert re.search(r"readings=\[[^]]*,[^]]*,[^]]*,[^]]*\]", first)  # 4 elements
+    assert re.search(r"steps_per_reading=[1-4]$", first)  # an int, not a float
+    rows = _rows(result.out)
+    assert {"readings[0]", "readings[3]"} <= set(rows)
+    assert " ".join(rows["steps_per_reading"]).endswith("integer: zero by definition")
+
+
+def test_kinds_read_from_the_code() -> None:
+    from gradwright.workflow.kinds import parameter_kinds
+
+    source = (
+        "def h(ys, k):\n    return ys[k]\n\n\n"
+        "def f(a, xs, n, m, k2):\n"
+        "    s = 0.0\n    t = 2 * n\n"
+        "    for i in range(t):\n        s += a * xs[i % len(xs)]\n"
+        "    return s + h(xs, k2) + m\n"
+    )
+    assert parameter_kinds(source, "f") == {
+        "a": "number",
+        "xs": "list",
+        "n": "trip count",  # through the local t
+        "m": "number",
+        "k2": "index",  # through the helper h
+    }
+    numpy = "import numpy as np\n\n\ndef g(W, b, x):\n    return np.sum(x @ W + b)\n"
+    assert parameter_kinds(numpy, "g") == {
+        "W": "array",
+        "b": "number or array",
+        "x": "array",
+    }
+
+
+def test_a_failing_guess_is_named(tmp_path: Path) -> None:
+    model = _model(
+        tmp_path, "shifted", "def shifted(a, xs, k):\n    return a * xs[k + 3]\n"
+    )
+    result = cli("verify", str(model), "shifted", "--wrt", "a", cwd=tmp_path)
+    assert result.code == 2  # every point raises IndexError: outside the domain
+    assert "IndexError" in result.out
+    assert (
+        "parameter kinds guessed from the model's code: xs a list of 3"
+        " (--length xs=K); k an index (--range)" in result.out
+    )
+    longer = cli("verify", str(model), "shifted", "--wrt", "a", "--length", "xs=6",
+                 "--range", "k=0:2",
+                 cwd=tmp_path)  # fmt: skip
+    assert longer.code == 0, longer.out
+    assert "guessed" not in longer.out
+
+
+def test_integer_range_and_length_errors(tmp_path: Path) -> None:
+    model = _model(
+        tmp_path, "rep", "def rep(a, n):\n    for _ in range(n):\n"
+        "        a = a * 0.5\n    return a\n"
+    )  # fmt: skip
+    empty = cli("verify", str(model), "rep", "--range", "n=1.2:1.8", cwd=tmp_path)
+    assert empty.code == 2 and "no integer lies in 1.2:1.8" in empty.err
+    bad = cli("verify", str(model), "rep", "--length", "n=0", cwd=tmp_path)
+    assert bad.code == 2 and "--length n: expected a positive whole number" in bad.err
+    wide = cli("verify", str(model), "rep", "--range", "n=5:7", cwd=tmp_path)
+    assert wide.code == 0, wide.out
+    assert all(re.search(r"n=[567]$", line) for line in wide.out.splitlines()
+               if line.startswith("rep_grad at"))  # fmt: skip
+
+
+def test_numpy_shapes_are_found_without_shape_options() -> None:
+    result = cli("verify", "greenhouse_net.py", "humidity_loss", "--samples", "1",
+                 cwd=SAMPLES)  # fmt: skip
+    assert result.code == 0, result.out
+    first = result.out.splitlines()[0]
+    assert "W1=<3x3 array>" in first and "features=<3x3 array>" in first
+    assert "W1[2,2]" in _rows(result.out)

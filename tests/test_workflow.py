@@ -7,6 +7,7 @@ from __future__ import annotations
 import inspect
 import os
 import re
+import shutil
 import stat
 import subprocess
 import sys
@@ -805,3 +806,16 @@ def test_version_help_and_a_current_check_load_no_generator(built: Path) -> None
     (built / OUT).write_text((built / OUT).read_text() + "\n")
     status, loaded = _modules_loaded(gen, built)
     assert status == 1 and "libcst" in loaded
+
+
+def test_emitted_test_draws_lists_and_trip_counts(tmp_path: Path) -> None:
+    shutil.copy(ROOT / "samples/kiln_cooling.py", tmp_path / "kiln.py")
+    gen = ("gen", "kiln.py", "kiln_loss", "--wrt", "k_conv,k_rad,start_temp")
+    result = cli(*gen, "-o", "k_grad.py", "--emit-test", "test_kiln.py", cwd=tmp_path)
+    assert result.code == 0, result.err
+    text = (tmp_path / "test_kiln.py").read_text()
+    assert re.search(r'"readings": \[\s*[0-9.]+,\s*[0-9.]+,\s*[0-9.]+,?\s*\]', text)
+    assert re.search(r'"steps_per_reading": [1-4],', text)
+    run = _run_pytest(tmp_path, "test_kiln.py")
+    assert run.returncode == 0, run.stdout + run.stderr
+    assert "3 passed" in run.stdout

@@ -8,6 +8,7 @@ and ``verify`` tables go to stdout.
 from __future__ import annotations
 
 import argparse
+import functools
 import os
 import re
 import sys
@@ -34,9 +35,14 @@ from gradwright.workflow.output import (
 )
 from gradwright.workflow.points import (
     DEFAULT_RTOL,
+    Param,
+    Range,
+    Value,
     check_names,
     choose_points,
+    describe_kinds,
     parse_at,
+    parse_lengths,
     parse_ranges,
     parse_scales,
     parse_shapes,
@@ -239,6 +245,13 @@ def _parser() -> argparse.ArgumentParser:
         default=[],
         help="draw a NumPy array of this shape for an array parameter, e.g."
         " W=4x6 or b=6",
+    )
+    verify.add_argument(
+        "--length",
+        metavar="NAME=K",
+        action="append",
+        default=[],
+        help="draw a list parameter with K elements (default 3)",
     )
     verify.add_argument(
         "--rtol",
@@ -545,8 +558,25 @@ def _subjects(args: argparse.Namespace) -> list[Subject]:
     return subjects
 
 
+def _draw(
+    params: Sequence[Param],
+    wrt: Sequence[str],
+    given: dict[str, Value],
+    ranges: dict[str, Range],
+    seed: int,
+    kinds: dict[str, str],
+    lengths: dict[str, int],
+    shapes: dict[str, tuple[int, ...]],
+    samples: int | None,
+) -> list[dict[str, Value]]:
+    return choose_points(
+        params, wrt, given, ranges, samples, seed, shapes, kinds, lengths
+    )
+
+
 def _verify(args: argparse.Namespace) -> int:
-    from gradwright.workflow.verify import check_point, load
+    from gradwright.workflow.kinds import COUNT, INDEX, parameter_kinds
+    from gradwright.workflow.verify import check_point, guess_shapes, load
     from gradwright.workflow.verify import render as render_table
     from gradwright.workflow.verify import summary as verify_summary
 
@@ -558,6 +588,7 @@ def _verify(args: argparse.Namespace) -> int:
     ranges = parse_ranges(args.range)
     scales = parse_scales(args.scale)
     shapes = parse_shapes(args.shape)
+    lengths = parse_lengths(args.length)
     sizes = typical_sizes(ranges, scales)
     subjects = _subjects(args)
     signatures = {
@@ -568,6 +599,7 @@ def _verify(args: argparse.Namespace) -> int:
     check_names(every, list(ranges), "--range", " or ".join(signatures))
     check_names(every, list(scales), "--scale", " or ".join(signatures))
     check_names(every, list(shapes), "--shape", " or ".join(signatures))
+    check_names(every, list(lengths), "--length", " or ".join(signatures))
     try:
         namespace = load(subjects[0].module_text, args.file)
     except Exception as error:
@@ -579,17 +611,25 @@ def _verify(args: argparse.Namespace) -> int:
     for subject in subjects:
         params = signatures[subject.function]
         names = {p.name for p in params}
-        points = choose_points(
-            params,
-            subject.wrt,
-            {n: v for n, v in fixed.items() if n in names},
-            ranges,
-            args.samples,
-            args.seed,
-            shapes,
+        given = {n: v for n, v in fixed.items() if n in names}
+        kinds = parameter_kinds(subject.module_text, subject.function)
+
+        draw = functools.partial(
+            _draw, params, subject.wrt, given, ranges, args.seed, kinds, lengths
         )
-        results = [check_point(subject, namespace, p, args.rtol, sizes) for p in points]
+        primal = namespace[subject.function]
+        shaped = {**guess_shapes(primal, kinds, shapes, given, draw), **shapes}
+        points = draw(shaped, args.samples)
+        integers = frozenset(n for n, k in kinds.items() if k in (COUNT, INDEX))
+        results = [
+            check_point(subject, namespace, p, args.rtol, sizes, integers)
+            for p in points
+        ]
         sys.stdout.write(render_table(subject, results, args.rtol))
+        if any(r.failed or r.skipped is not None for r in results):
+            guessed = describe_kinds(kinds, points[0], set(given) | set(shapes))
+            if guessed is not None:
+                print(f"  {guessed}")
         print(verify_summary(subject, results, args.rtol))
         if any(r.failed for r in results):
             status = EXIT_STALE

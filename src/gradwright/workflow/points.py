@@ -10,8 +10,9 @@ Rules, in order, for each parameter of the function:
   ``--range`` (default :data:`DEFAULT_RANGE`) with a seeded generator;
 - any other parameter keeps its default (it is a model constant).
 Drawn values are rounded to 6 significant digits, so a printed point can be pasted
-back into ``--at`` and reproduces the same numbers. Drawn values are numbers; a list
-parameter's value must be given with ``--at xs=[1.0,2.0]``.
+back into ``--at`` and reproduces the same numbers. What is drawn follows each
+parameter's kind as the model's code uses it (``kinds.py``): a number, a list of
+numbers, an integer trip count or index, or a NumPy array.
 """
 
 from __future__ import annotations
@@ -21,6 +22,7 @@ from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 
 from gradwright.diagnostics import GradwrightError, Location, fail
+from gradwright.workflow.kinds import COUNT, INDEX, LIST, NUMBER
 
 TYPE_CHECKING = False  # random and typing load only where used: start-up cost
 if TYPE_CHECKING:
@@ -48,6 +50,9 @@ class Range:
 DEFAULT_RANGE = Range(0.5, 1.5)
 DEFAULT_SAMPLES = 3
 DEFAULT_SEED = 0
+#: list parameters' length, and where trip counts are drawn
+DEFAULT_LENGTH = 3
+DEFAULT_COUNT = Range(1, 4)
 #: verify's tolerance, and the rounding noise of a central difference in ulps
 DEFAULT_RTOL = 1e-5
 NOISE_ULPS = 64
@@ -218,8 +223,15 @@ def choose_points(
     samples: int | None,
     seed: int,
     shapes: Mapping[str, tuple[int, ...]] | None = None,
+    kinds: Mapping[str, str] | None = None,
+    lengths: Mapping[str, int] | None = None,
 ) -> list[dict[str, Value]]:
-    """Points (name -> value, in signature order), by the rules in the docstring."""
+    """Points (name -> value, in signature order), by the rules in the docstring.
+
+    ``kinds`` (from ``kinds.py``) draws lists (``lengths``, default
+    :data:`DEFAULT_LENGTH`) and integers (trip counts in :data:`DEFAULT_COUNT`,
+    indices within the lists) instead of numbers; a shape of ``()`` is a number.
+    """
     drawn = [
         p.name
         for p in params
@@ -231,6 +243,13 @@ def choose_points(
     count = DEFAULT_SAMPLES if samples is None else samples
     import random
 
+    kinds = kinds or {}
+    lengths = lengths or {}
+    list_lengths = [
+        lengths.get(n, DEFAULT_LENGTH) for n, k in kinds.items() if k == LIST
+    ]
+    # an index must be valid in every list
+    index_range = Range(0, min(list_lengths, default=DEFAULT_LENGTH) - 1)
     generator = random.Random(seed)
     points = []
     for _ in range(count):
@@ -238,25 +257,94 @@ def choose_points(
         for p in params:
             if p.name in fixed:
                 point[p.name] = fixed[p.name]
-            elif p.name in drawn:
-                bounds = ranges.get(p.name, DEFAULT_RANGE)
-                shape = (shapes or {}).get(p.name)
-                if shape is not None:
-                    point[p.name] = _array(generator, bounds, shape)
-                    continue
-                value = generator.uniform(bounds.low, bounds.high)
-                point[p.name] = float(f"{value:.6g}")
+                continue
+            if p.name not in drawn:
+                continue
+            kind = kinds.get(p.name, NUMBER)
+            shape = (shapes or {}).get(p.name)
+            if kind in (COUNT, INDEX):
+                default = DEFAULT_COUNT if kind == COUNT else index_range
+                point[p.name] = _integer(generator, p.name, kind, ranges, default)
+                continue
+            bounds = ranges.get(p.name, DEFAULT_RANGE)
+            if shape:
+                point[p.name] = _array(generator, bounds, shape)
+            elif kind == LIST:
+                size = lengths.get(p.name, DEFAULT_LENGTH)
+                point[p.name] = [_uniform(generator, bounds) for _ in range(size)]
+            else:
+                point[p.name] = _uniform(generator, bounds)
         points.append(point)
     return points
+
+
+def _uniform(generator: random.Random, bounds: Range) -> float:
+    return float(f"{generator.uniform(bounds.low, bounds.high):.6g}")
+
+
+def _integer(
+    generator: random.Random,
+    name: str,
+    kind: str,
+    ranges: Mapping[str, Range],
+    default: Range,
+) -> int:
+    bounds = ranges.get(name, default)
+    low, high = math.ceil(bounds.low), math.floor(bounds.high)
+    if low > high:
+        raise GradwrightError.usage(
+            f"--range {name}: '{name}' is used as {'an' if kind == INDEX else 'a'}"
+            f" {kind}, and no integer lies in {bounds}"
+        )
+    return generator.randint(low, high)
+
+
+def parse_lengths(texts: Sequence[str]) -> dict[str, int]:
+    """``xs=5``: list parameters are drawn with this many elements."""
+    lengths: dict[str, int] = {}
+    for name, value in split_assignments(texts, "--length").items():
+        if not value.isdigit() or int(value) < 1:
+            raise GradwrightError.usage(
+                f"--length {name}: expected a positive whole number, got {value!r}"
+            )
+        lengths[name] = int(value)
+    return lengths
+
+
+def describe_kinds(
+    kinds: Mapping[str, str],
+    drawn: Mapping[str, Value],
+    given: set[str],
+) -> str | None:
+    """Which parameters' kinds were guessed from the code, and how to set them
+    (for a point that failed), or None when every drawn parameter is a number."""
+    parts = []
+    for name, value in drawn.items():
+        kind = kinds.get(name, NUMBER)
+        if name in given or kind == NUMBER:
+            continue
+        if isinstance(value, list):
+            parts.append(f"{name} a list of {len(value)} (--length {name}=K)")
+        elif isinstance(value, int):
+            parts.append(f"{name} {'an' if kind == INDEX else 'a'} {kind} (--range)")
+        elif hasattr(value, "shape"):
+            dims = "x".join(map(str, value.shape))  # type: ignore[union-attr]
+            parts.append(f"{name} an array of shape {dims} (--shape {name}=DIMS)")
+        else:
+            parts.append(f"{name} a number (--shape {name}=DIMS for an array)")
+    if not parts:
+        return None
+    return (
+        "parameter kinds guessed from the model's code: "
+        + "; ".join(parts)
+        + "; or give values with --at"
+    )
 
 
 def _array(generator: random.Random, bounds: Range, shape: tuple[int, ...]) -> Value:
     import numpy as np  # only models with array parameters need it
 
-    count = math.prod(shape)
-    values = [
-        float(f"{generator.uniform(bounds.low, bounds.high):.6g}") for _ in range(count)
-    ]
+    values = [_uniform(generator, bounds) for _ in range(math.prod(shape))]
     return np.array(values).reshape(shape)  # type: ignore[return-value]
 
 

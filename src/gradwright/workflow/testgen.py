@@ -21,6 +21,7 @@ from pathlib import PurePosixPath
 from gradwright import __version__
 from gradwright.diagnostics import GradwrightError, Location, fail
 from gradwright.header import sha256_text, stamp
+from gradwright.workflow.kinds import parameter_kinds
 from gradwright.workflow.points import (
     DEFAULT_RTOL,
     DEFAULT_SEED,
@@ -163,8 +164,9 @@ def render_test(request: TestRequest, module_text: str) -> str:
             ) from None
         wrt = request.wrt if request.wrt is not None else tuple(p.name for p in params)
         used.update(p.name for p in params)
+        kinds = parameter_kinds(module_text, function)
         points = choose_points(
-            params, wrt, {}, request.ranges, TEST_POINTS, DEFAULT_SEED
+            params, wrt, {}, request.ranges, TEST_POINTS, DEFAULT_SEED, kinds=kinds
         )
         parts.append(
             _CHECK.format(

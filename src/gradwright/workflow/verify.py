@@ -34,11 +34,19 @@ from dataclasses import dataclass, field
 from typing import Any
 
 from gradwright.workflow import nonfinite
-from gradwright.workflow.points import DEFAULT_RTOL, NOISE_ULPS, Value, describe
+from gradwright.workflow.kinds import ARRAY, NUMBER_OR_ARRAY
+from gradwright.workflow.points import (
+    DEFAULT_LENGTH,
+    DEFAULT_RTOL,
+    NOISE_ULPS,
+    Value,
+    describe,
+)
 
 __all__ = ["DEFAULT_RTOL", "NOISE_ULPS"]
 
 EPSILON = sys.float_info.epsilon
+INTEGER_NOTE = "integer: zero by definition"
 
 
 @dataclass(frozen=True)
@@ -135,7 +143,10 @@ def check_point(
     point: dict[str, Value],
     rtol: float,
     sizes: Mapping[str, float],
+    integers: frozenset[str] = frozenset(),
 ) -> PointResult:
+    """One point's table rows; ``integers`` are trip counts and indices, whose
+    derivative is zero by definition (the model is piecewise constant in them)."""
     result = PointResult(point)
     primal = namespace[subject.function]
     grad = namespace[f"{subject.function}_grad"]
@@ -169,7 +180,10 @@ def check_point(
     for name, gradient in zip(subject.wrt, grads, strict=True):
         typical = sizes.get(name, 1.0)
         given = point.get(name)
-        if isinstance(given, list) and isinstance(gradient, list):
+        if name in integers:
+            ok = _finite(gradient) and gradient == 0
+            result.entries.append(Entry(name, gradient, None, None, ok, INTEGER_NOTE))
+        elif isinstance(given, list) and isinstance(gradient, list):
             for i, element in enumerate(gradient):
                 entry = _entry(primal, point, name, element, rtol, typical, i)
                 result.entries.append(entry)
@@ -347,7 +361,10 @@ def summary(subject: Subject, results: Sequence[PointResult], rtol: float) -> st
     if not checked:
         return f"verify: {name}: every point is outside the model's domain"
     unchecked = sum(
-        1 for r in checked for e in r.entries if e.ok and e.difference is None
+        1
+        for r in checked
+        for e in r.entries
+        if e.ok and e.difference is None and e.note != INTEGER_NOTE
     )
     note = f"; {unchecked} entries unchecked" if unchecked else ""
     skipped = len(results) - len(checked)
@@ -361,3 +378,52 @@ def summary(subject: Subject, results: Sequence[PointResult], rtol: float) -> st
         f"verify: {name}: agrees with central differences at {len(checked)}"
         f" point(s) (rtol {rtol:g}{note})"
     )
+
+
+#: how many shape assignments guess_shapes tries before giving up
+SHAPE_TRIES = 4096
+
+
+def guess_shapes(
+    primal: Callable[..., Any],
+    kinds: Mapping[str, str],
+    given: Mapping[str, tuple[int, ...]],
+    fixed: Mapping[str, Value],
+    draw: Callable[[dict[str, tuple[int, ...]], int | None], list[dict[str, Value]]],
+) -> dict[str, tuple[int, ...]]:
+    """Shapes for a NumPy model's parameters that ``--shape`` does not give.
+
+    The code says which parameters are arrays and which may be numbers, not their
+    shapes: each is tried as a matrix, a vector (and a number where that may be),
+    every dimension :data:`points.DEFAULT_LENGTH`, so that products always conform,
+    until the model returns a finite number. ``()`` means a number.
+    """
+    open_names = [
+        n
+        for n, k in kinds.items()
+        if k in (ARRAY, NUMBER_OR_ARRAY) and n not in given and n not in fixed
+    ]
+    if not open_names:
+        return {}
+    import itertools
+    import warnings
+
+    import numpy as np
+
+    size = DEFAULT_LENGTH
+    options = [
+        [(size, size), (size,)] if kinds[n] == ARRAY else [(), (size,), (size, size)]
+        for n in open_names
+    ]
+    combinations = itertools.islice(itertools.product(*options), SHAPE_TRIES)
+    with warnings.catch_warnings(), np.errstate(all="ignore"):
+        warnings.simplefilter("ignore")
+        for combination in combinations:
+            shapes = dict(zip(open_names, combination, strict=True))
+            try:
+                result = call(primal, draw({**shapes, **given}, 1)[0])
+                if np.ndim(result) == 0 and nonfinite.is_finite(float(result)):
+                    return shapes
+            except Exception:  # this guess does not fit the model: try the next
+                continue
+    return {}
