@@ -68,7 +68,9 @@ class ModuleIndex:
     def code(self, node: cst.CSTNode) -> str:
         """The node's text as written: sliced from the source for statements, ``if``
         tests and ``for`` iterables (what the comments quote), else re-printed
-        (re-printing every statement cost more than the rest of the lowering)."""
+        (re-printing every statement cost more than the rest of the lowering).
+        A slice keeps the file's indentation on continuation lines, where libcst's
+        printing drops the enclosing block's; the quoting comments join lines."""
         text = self._quoted.get(id(node))
         return text if text is not None else self.module.code_for_node(node)
 
