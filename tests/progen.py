@@ -1,0 +1,1682 @@
+"""Random model programs for ``test_random_programs.py``: trees, strategies, checks.
+
+A program is a tree of statements (:class:`Assign`, :class:`Aug`, :class:`If`,
+:class:`For`, :class:`Return`) over expression trees (:class:`Ex`). Every
+expression form is valid for any real operands (domains are wrapped:
+``asin(0.9 * tanh(u))``, ``log(1.5 + u * u)``), and names are only read where they
+are bound on every path, so a drawn program is valid by construction; no example is
+discarded with ``assume``.
+
+A tree is printed three ways: ``py`` (the model), ``inst`` (the model with every
+switch and magnitude recorded, run in floats to place the point away from kinks)
+and ``mp`` (the model for mpmath: ``a // b`` becomes ``_floordiv(a, b)``, the one
+operator mpmath numbers lack; everything else is the same text).
+
+:func:`evaluate` runs one program at one point and returns an :class:`Outcome`;
+:func:`shrink` reduces a failing program while it keeps failing the same way.
+"""
+
+from __future__ import annotations
+
+import builtins
+import copy
+import math
+import random
+import types
+from collections import Counter
+from collections.abc import Callable, Iterator
+from dataclasses import dataclass, field
+
+import mpmath
+import numpy as np
+from hypothesis import strategies as st
+from support import MP_MATH, mp_central_diff, same_bits
+
+import gradwright
+from gradwright.diagnostics import GradwrightError
+
+# ---------------------------------------------------------------------------------
+# programs as trees
+
+
+@dataclass(eq=False)
+class Ex:
+    """An expression: ``form`` with ``{0}``, ``{1}``... filled by ``kids``.
+
+    ``inst`` is the instrumented form, ``mp`` the mpmath form where it differs;
+    ``kind`` is ``num`` or ``cond``; ``tag`` names the feature it uses (for the
+    coverage counts and expected rejections). In ``inst``, ``@k`` marks a recorded
+    switch whose tie is broken by moving operand ``k``: :func:`place_point` adds
+    ``shift[k]`` to that operand when the tie is permanent (``t < t`` after a copy).
+    """
+
+    form: str
+    kids: tuple[Ex, ...] = ()
+    inst: str | None = None
+    mp: str | None = None
+    kind: str = "num"
+    tag: str = ""
+    shift: dict[int, str] = field(default_factory=dict)
+
+    def render(self, mode: str = "py", switches: list | None = None) -> str:
+        text = self.form
+        if mode == "inst" and self.inst is not None:
+            text = self.inst
+            for k in range(len(self.kids)):
+                if f"@{k}" in text and switches is not None:
+                    text = text.replace(f"@{k}", str(len(switches)))
+                    switches.append((self, k))
+        elif mode == "mp" and self.mp is not None:
+            text = self.mp
+        kids = [kid.render(mode, switches) for kid in self.kids]
+        for k, offset in self.shift.items():
+            kids[k] = f"({kids[k]} + {offset})"
+        return text.format(*kids)
+
+    def tags(self) -> Iterator[str]:
+        if self.tag:
+            yield self.tag
+        for k in self.kids:
+            yield from k.tags()
+
+
+def leaf(text: str) -> Ex:
+    return Ex(text.replace("{", "{{").replace("}", "}}"))
+
+
+@dataclass
+class Assign:
+    targets: list[str]
+    values: list[Ex]
+
+
+@dataclass
+class Aug:
+    target: str
+    op: str
+    value: Ex
+
+
+@dataclass
+class If:
+    arms: list[tuple[Ex, list]]  # (condition, body); the second and later are elif
+    orelse: list | None = None
+
+
+@dataclass
+class For:
+    var: str
+    iter: str  # "range(3)", "xs", "range(n, 0, -1)"
+    body: list
+
+
+@dataclass
+class Return:
+    values: list[Ex]
+
+
+@dataclass
+class Func:
+    name: str
+    params: list[str]
+    body: list
+    defaults: dict[str, str] = field(default_factory=dict)
+
+
+@dataclass
+class Program:
+    funcs: list[Func]  # the target is the last
+    numpy: bool = False
+
+    @property
+    def target(self) -> Func:
+        return self.funcs[-1]
+
+    def source(self, mode: str = "py", switches: list | None = None) -> str:
+        out = ["import numpy as np", ""] if self.numpy and mode != "mp" else []
+        if mode == "py" and not self.numpy:
+            out += ["import math", ""]
+        for fn in self.funcs:
+            params = [
+                f"{p}={fn.defaults[p]}" if p in fn.defaults else p for p in fn.params
+            ]
+            out.append(f"def {fn.name}({', '.join(params)}):")
+            out.extend(_lines(fn.body, 1, mode, switches))
+            out.append("")
+        return "\n".join(out) + "\n"
+
+    def tags(self) -> set[str]:
+        found = set()
+        for fn in self.funcs:
+            for stmt in walk(fn.body):
+                for e in stmt_exprs(stmt):
+                    found.update(e.tags())
+                if isinstance(stmt, If):
+                    found.add("elif" if len(stmt.arms) > 1 else "if")
+                if isinstance(stmt, For):
+                    found.add("for")
+        return found
+
+
+def _lines(body: list, depth: int, mode: str, sw: list | None = None) -> list[str]:
+    pad = "    " * depth
+    out: list[str] = []
+    for stmt in body:
+        if isinstance(stmt, Assign):
+            vals = [v.render(mode, sw) for v in stmt.values]
+            if mode == "inst":  # record every assigned value's magnitude
+                vals = [f"_m({v})" for v in vals]
+            out.append(f"{pad}{', '.join(stmt.targets)} = {', '.join(vals)}")
+        elif isinstance(stmt, Aug):
+            value = stmt.value.render(mode, sw)
+            out.append(f"{pad}{stmt.target} {stmt.op}= {value}")
+            if mode == "inst":
+                out.append(f"{pad}_m({stmt.target})")
+        elif isinstance(stmt, Return):
+            vals = ", ".join(v.render(mode, sw) for v in stmt.values)
+            out.append(f"{pad}return {vals}")
+        elif isinstance(stmt, If):
+            for k, (cond, arm) in enumerate(stmt.arms):
+                head = "if" if k == 0 else "elif"
+                out.append(f"{pad}{head} {cond.render(mode, sw)}:")
+                out.extend(_lines(arm, depth + 1, mode, sw) or [f"{pad}    pass"])
+            if stmt.orelse:
+                out.append(f"{pad}else:")
+                out.extend(_lines(stmt.orelse, depth + 1, mode, sw))
+        elif isinstance(stmt, For):
+            out.append(f"{pad}for {stmt.var} in {stmt.iter}:")
+            out.extend(_lines(stmt.body, depth + 1, mode, sw) or [f"{pad}    pass"])
+        else:  # pragma: no cover - a bug in this file
+            raise AssertionError(stmt)
+    return out
+
+
+def walk(body: list) -> Iterator:
+    for stmt in body:
+        yield stmt
+        if isinstance(stmt, If):
+            for _, arm in stmt.arms:
+                yield from walk(arm)
+            yield from walk(stmt.orelse or [])
+        elif isinstance(stmt, For):
+            yield from walk(stmt.body)
+
+
+def stmt_exprs(stmt) -> list[Ex]:
+    if isinstance(stmt, Assign | Return):
+        return list(stmt.values)
+    if isinstance(stmt, Aug):
+        return [stmt.value]
+    if isinstance(stmt, If):
+        return [c for c, _ in stmt.arms]
+    return []
+
+
+# ---------------------------------------------------------------------------------
+# expression forms; every form is defined for all real operands
+
+
+def _f(form: str, inst: str | None = None, tag: str = "", mp: str | None = None):
+    return (form, inst, tag, mp)
+
+
+# unary forms over {0}; the tag names the rule they exercise
+BASIC_UNARY = [
+    _f("math.sin({0})", tag="sin"),
+    _f("math.cos({0})", tag="cos"),
+    _f("math.tanh({0})", tag="tanh"),
+    _f("math.atan({0})", tag="atan"),
+    _f("math.exp(math.tanh({0}))", tag="exp"),
+    _f("math.log(1.5 + {0} * {0})", tag="log"),
+    _f("math.sqrt(1.0 + {0} * {0})", tag="sqrt"),
+    _f("({0} ** 2)", tag="pow_int"),
+    _f("(-{0})", tag="neg"),
+]
+RULE_UNARY = [
+    _f("math.tan(0.7 * math.tanh({0}))", tag="tan"),
+    _f("math.asin(0.9 * math.tanh({0}))", tag="asin"),
+    _f("math.acos(0.9 * math.tanh({0}))", tag="acos"),
+    _f("math.sinh({0})", tag="sinh"),
+    _f("math.cosh({0})", tag="cosh"),
+    _f("math.asinh({0})", tag="asinh"),
+    _f("math.acosh(1.5 + {0} * {0})", tag="acosh"),
+    _f("math.atanh(0.9 * math.tanh({0}))", tag="atanh"),
+    _f("math.expm1({0})", tag="expm1"),
+    _f("math.exp2(math.sin({0}))", tag="exp2"),
+    _f("math.log2(1.25 + {0} * {0})", tag="log2"),
+    _f("math.log10(0.5 + abs({0}))", "math.log10(0.5 + abs(_k(@0, {0})))", "log10"),
+    _f("math.log1p({0} * {0})", tag="log1p"),
+    _f("math.log(2.0 + {0} * {0}, 3.0)", tag="log_base"),
+    _f("math.cbrt({0})", "math.cbrt(_k(@0, {0}))", "cbrt"),
+    _f("math.erf({0})", tag="erf"),
+    _f("math.erfc({0})", tag="erfc"),
+    _f("math.fabs({0})", "math.fabs(_k(@0, {0}))", "fabs"),
+    _f("abs({0})", "abs(_k(@0, {0}))", "abs"),
+    _f("({0} ** 3)", tag="pow_int"),
+    _f("math.pow({0}, 2.0)", tag="pow"),
+    _f("(1.0 + {0} * {0}) ** 1.5", tag="pow_real"),
+    _f("math.hypot({0}, 1.0)", tag="hypot"),
+    _f("({0} % 1.75)", "_mod(@0, {0}, 1.75)", "mod"),
+    # // has a zero derivative: subtracted from its operand, the result still varies
+    _f(
+        "({0} - {0} // 0.75)",
+        "({0} - _fdiv(@0, {0}, 0.75))",
+        "floordiv",
+        "({0} - _floordiv({0}, 0.75))",
+    ),
+]
+BASIC_BINARY = [
+    _f("({0} + {1})"),
+    _f("({0} - {1})"),
+    _f("({0} * {1})"),
+    _f("({0} / (1.25 + {1} * {1}))", tag="div"),
+]
+RULE_BINARY = [
+    _f("({0} / {1})", "({0} / _k(@1, {1}))", "div"),
+    _f("math.atan2({0}, {1})", "math.atan2(_k(@0, {0}), _k(@1, {1}))", "atan2"),
+    _f("math.pow(1.25 + {0} * {0}, {1})", tag="pow_active"),
+    _f("(1.5 + {0} * {0}) ** math.tanh({1})", tag="pow_active"),
+    _f(
+        "math.copysign({0}, {1})", "math.copysign(_k(@0, {0}), _k(@1, {1}))", "copysign"
+    ),
+    _f("math.log(1.5 + {0} * {0}, 2.0 + {1} * {1})", tag="log_base"),
+    _f("math.hypot({0}, {1})", "math.hypot(_k(@0, {0}), {1})", "hypot"),
+    _f("({0} % (1.25 + {1} * {1}))", "_mod(@0, {0}, 1.25 + {1} * {1})", "mod_active"),
+    _f(
+        "({0} - {0} // (1.25 + {1} * {1}))",
+        "({0} - _fdiv(@0, {0}, 1.25 + {1} * {1}))",
+        "floordiv",
+        "({0} - _floordiv({0}, 1.25 + {1} * {1}))",
+    ),
+    _f("min({0}, {1})", "_min(@1, {0}, {1})", "min"),
+    _f("max({0}, {1})", "_max(@1, {0}, {1})", "max"),
+]
+CONSTANTS = ("0.5", "1.5", "2.0", "0.75", "-1.25", "3.0", "0.1")
+
+
+def apply(spec, *kids: Ex) -> Ex:
+    form, inst, tag, mp = spec
+    return Ex(form, tuple(kids), inst, mp, "num", tag)
+
+
+# ---------------------------------------------------------------------------------
+# scopes and knobs
+
+
+@dataclass
+class Knobs:
+    """Which shapes a family's programs may contain."""
+
+    statements: tuple[int, int] = (2, 6)
+    branches: bool = False
+    nested_if: bool = False
+    early_return: bool = False
+    loops: bool = False
+    nested_loops: bool = False
+    lists: bool = False
+    helpers: bool = False
+    tuple_out: bool = False
+    boolvalues: bool = False
+    rules: bool = True
+    kinks: bool = True
+    int_param: bool = False
+    list_param: bool = False
+    max_depth: int = 2
+
+
+@dataclass
+class Helper:
+    name: str
+    params: list[str]
+    defaults: dict[str, str]
+
+
+@dataclass
+class Scope:
+    """What a statement may read: names bound on every path to it."""
+
+    floats: list[str]
+    ints: list[str]
+    lists: dict[str, int]  # local lists and list parameters: name -> length
+    helpers: list[Helper]
+    knobs: Knobs
+    fresh: list[int]  # a shared counter for new names
+    in_loop: bool = False
+    depth: int = 0
+
+    def copy(self) -> Scope:
+        return Scope(
+            list(self.floats),
+            list(self.ints),
+            dict(self.lists),
+            self.helpers,
+            self.knobs,
+            self.fresh,
+            self.in_loop,
+            self.depth,
+        )
+
+    def new_name(self, stem: str = "t") -> str:
+        self.fresh[0] += 1
+        return f"{stem}{self.fresh[0]}"
+
+
+# ---------------------------------------------------------------------------------
+# strategies
+
+
+def _reads(sc: Scope) -> list[str]:
+    """Float-valued reads: names, list elements, loop indices as floats."""
+    reads = list(sc.floats)
+    for name, n in sc.lists.items():
+        if n:
+            reads += [f"{name}[0]", f"{name}[{n - 1}]", f"{name}[-1]"]
+    reads += [f"(0.25 * {i})" for i in sc.ints]
+    return reads
+
+
+@st.composite
+def atom(draw, sc: Scope, const: bool = True) -> Ex:
+    reads = _reads(sc)
+    if const and draw(st.integers(0, 5)) == 0 or not reads:
+        return leaf(draw(st.sampled_from(CONSTANTS)))
+    # the most recent names are likelier: the program's statements then matter
+    weights = sc.floats[-3:]
+    if weights and draw(st.booleans()):
+        return leaf(draw(st.sampled_from(weights)))
+    return leaf(draw(st.sampled_from(reads)))
+
+
+@st.composite
+def num(draw, sc: Scope, depth: int = 2, const: bool = False) -> Ex:
+    """A float expression of at most ``depth`` levels; it reads a name unless
+    ``const`` (so a gradient can flow through it)."""
+    if depth <= 0 or draw(st.integers(0, 3)) == 0:
+        return draw(atom(sc, const))
+    k = sc.knobs
+    kinds = ["unary", "binary", "binary"]
+    if k.rules:
+        kinds += ["rule_unary", "rule_binary"]
+    if k.kinks:
+        kinds += ["ifexp"]
+    if k.boolvalues:
+        kinds += ["boolvalue"]
+    if sc.helpers:
+        kinds += ["call", "call"]
+    kind = draw(st.sampled_from(kinds))
+    a = draw(num(sc, depth - 1, const))
+    if kind == "unary":
+        return apply(draw(st.sampled_from(BASIC_UNARY)), a)
+    if kind == "rule_unary":
+        return apply(draw(st.sampled_from(RULE_UNARY)), a)
+    b = draw(num(sc, depth - 1, True))
+    if draw(st.booleans()):
+        a, b = b, a
+    if kind == "binary":
+        spec = draw(st.sampled_from(BASIC_BINARY))
+        if spec[0] == "({0} - {1})" and a.render() == b.render():
+            spec = BASIC_BINARY[0]  # not u - u: that would be a constant
+        return apply(spec, a, b)
+    if kind == "rule_binary":
+        return apply(draw(st.sampled_from(RULE_BINARY)), a, distinct(a, b))
+    if kind == "ifexp":
+        c = draw(cond(sc, 1))  # operands of depth 0: names and constants
+        b = draw(num(sc, depth - 1, const))  # both arms vary
+        if draw(st.integers(0, 3)) == 0:
+            b = a  # identical arms
+        return Ex("({1} if {0} else {2})", (c, a, b), tag="ifexp")
+    if kind == "boolvalue":
+        op = draw(st.sampled_from(("and", "or")))
+        inst = f"(_k(@0, {{0}}) {op} {{1}})"
+        return Ex(f"({{0}} {op} {{1}})", (a, b), inst, tag=op)
+    return draw(call(sc, a, b))
+
+
+@st.composite
+def call(draw, sc: Scope, a: Ex, b: Ex) -> Ex:
+    """A call of a helper: positional, by keyword, or leaving a default."""
+    h = draw(st.sampled_from(sc.helpers))
+    given = [a, b, draw(num(sc, 1))][: len(h.params)]
+    required = [p for p in h.params if p not in h.defaults]
+    n = draw(st.integers(len(required), len(h.params)))
+    style = draw(st.sampled_from(("pos", "kw", "mixed")))
+    parts = []
+    for idx in range(n):
+        p = h.params[idx]
+        if style == "kw" or (style == "mixed" and idx > 0):
+            parts.append(f"{p}={{{idx}}}")
+        else:
+            parts.append(f"{{{idx}}}")
+    if style == "kw" and n > 1 and draw(st.booleans()):
+        parts.reverse()  # keywords in another order
+    tag = "call_kw" if style != "pos" else "call"
+    if n < len(h.params):
+        tag = "call_default"
+    return Ex(f"{h.name}({', '.join(parts)})", tuple(given[:n]), tag=tag)
+
+
+@st.composite
+def cond(draw, sc: Scope, depth: int = 2) -> Ex:
+    """A condition: comparisons (some chained), ==/!= on exact selections, not,
+    and/or, and integer tests on loop indices."""
+    kinds = ["cmp", "cmp", "cmp", "eq", "chain"]
+    if depth > 0:
+        kinds += ["not", "andor"]
+    if sc.ints:
+        kinds += ["int"]
+    kind = draw(st.sampled_from(kinds))
+    d = max(depth - 1, 0)
+    if kind in ("cmp", "chain"):
+        a = draw(num(sc, d))
+        b = distinct(a, draw(num(sc, d, True)))
+        op = draw(st.sampled_from(("<", "<=", ">", ">=")))
+        if kind == "cmp":
+            inst = f"_g(@1, {{0}}, {{1}}) {op} {{1}}"
+            return Ex(f"{{0}} {op} {{1}}", (a, b), inst, kind="cond", tag="cmp")
+        c = distinct(b, draw(num(sc, d, True)))
+        return Ex(
+            f"{{0}} {op} {{1}} {op} {{2}}",
+            (a, b, c),
+            f"_g(@1, {{0}}, {{1}}) {op} _g(@2, {{1}}, {{2}}) {op} {{2}}",
+            kind="cond",
+            tag="chain",
+        )
+    if kind == "eq":
+        # == and != hold exactly on either side of a selection's switch
+        a = draw(num(sc, d))
+        b = distinct(a, draw(num(sc, d)))
+        op = draw(st.sampled_from(("==", "!=")))
+        form = draw(
+            st.sampled_from(
+                (
+                    ("max({0}, {1}) OP {0}", "_max(@1, {0}, {1}) OP {0}"),
+                    ("min({0}, {1}) OP {1}", "_min(@1, {0}, {1}) OP {1}"),
+                    ("abs({0}) OP {0}", "abs(_k(@0, {0})) OP {0}"),
+                )
+            )
+        )
+        inst = form[1].replace("OP", op)
+        return Ex(form[0].replace("OP", op), (a, b), inst, kind="cond", tag="eq")
+    if kind == "int":
+        i = draw(st.sampled_from(sc.ints))
+        text = draw(
+            st.sampled_from(
+                (f"{i} == 1", f"{i} != 0", f"{i} > 1", f"{i} % 2 == 0", f"{i} < 2")
+            )
+        )
+        return Ex(text, (), kind="cond", tag="int_cond")
+    if kind == "not":
+        return Ex("not ({0})", (draw(cond(sc, depth - 1)),), kind="cond", tag="not")
+    op = draw(st.sampled_from(("and", "or")))
+    a, b = draw(cond(sc, depth - 1)), draw(cond(sc, depth - 1))
+    return Ex(f"({{0}}) {op} ({{1}})", (a, b), kind="cond", tag=f"cond_{op}")
+
+
+LOOP_RANGES = (
+    "range(0)",
+    "range(1)",
+    "range(2)",
+    "range(3)",
+    "range(1, 3)",
+    "range(3, 0, -1)",
+    "range(3, -1, -2)",
+    "range(2, 2)",
+    "range(0, 4, 2)",
+)
+
+
+@st.composite
+def loop_iter(draw, sc: Scope) -> tuple[str, str, bool]:
+    """(variable, iterable, variable is a float) for a new loop."""
+    var = sc.new_name("i")
+    options = list(LOOP_RANGES)
+    if "n" in sc.ints:
+        options += ["range(n)", "range(1, n)", "range(n, 0, -1)", "range(0, n, 2)"]
+    outer = [i for i in sc.ints if i != "n"]
+    if outer:
+        i = draw(st.sampled_from(outer))
+        options += [f"range({i})", f"range({i} + 1)", f"range({i}, 3)"]
+    lists = [name for name in sc.lists if name.startswith("xs")]
+    if lists and draw(st.integers(0, 2)) == 0:
+        return var.replace("i", "v"), draw(st.sampled_from(lists)), True
+    if lists:
+        options.append(f"range(len({lists[0]}))")
+    return var, draw(st.sampled_from(options)), False
+
+
+@st.composite
+def statement(draw, sc: Scope, allow_return: bool, tuple_out: int) -> list:
+    """One or a few statements; updates ``sc`` with names bound on every path."""
+    k = sc.knobs
+    kinds = ["new", "new", "new", "rebind", "rebind", "aug", "copy", "swap"]
+    if k.branches and sc.depth < k.max_depth:
+        kinds += ["if", "if"]
+    if k.loops and sc.depth < k.max_depth and (k.nested_loops or not sc.in_loop):
+        kinds += ["for", "for"]
+    if k.lists:
+        kinds += ["list", "listwrite"]
+    if sc.helpers:
+        kinds += ["deadcall"]
+    if allow_return and k.early_return and not sc.in_loop:
+        kinds += ["ifreturn", "ifreturn"]
+    kind = draw(st.sampled_from(kinds))
+    if kind == "new":
+        name = sc.new_name()
+        value = draw(num(sc))
+        sc.floats.append(name)
+        return [Assign([name], [value])]
+    if kind == "rebind":
+        target = draw(st.sampled_from(sc.floats))
+        return [Assign([target], [draw(num(sc))])]
+    if kind == "aug":
+        target = draw(st.sampled_from(sc.floats))
+        op = draw(st.sampled_from(("+", "-", "*", "/")))
+        value = draw(num(sc))
+        if op == "/":
+            value = Ex("(1.25 + {0} * {0})", (value,))
+        if op == "-" and value.render() == target:
+            op = "+"  # not u -= u: that would be a constant
+        return [Aug(target, op, value)]
+    if kind == "copy":  # a plain copy (rarely of itself): the aliasing shapes
+        name = draw(st.sampled_from([sc.new_name(), sc.new_name(), *sc.floats]))
+        source = draw(st.sampled_from(sc.floats))
+        if source == name and draw(st.integers(0, 3)):
+            name = sc.new_name()
+        if name not in sc.floats:
+            sc.floats.append(name)
+        return [Assign([name], [leaf(source)])]
+    if kind == "swap" and len(sc.floats) >= 2:
+        a, b = draw(st.permutations(sc.floats))[:2]
+        other = draw(st.sampled_from([leaf(a), draw(num(sc, 1))]))
+        return [Assign([a, b], [leaf(b), other])]
+    if kind == "swap":
+        return [Assign([sc.floats[0]], [draw(num(sc))])]
+    if kind == "deadcall":  # a call whose result is overwritten or never read
+        name = sc.new_name("d")
+        value = draw(call(sc, draw(num(sc, 1)), draw(num(sc, 1))))
+        out = [Assign([name], [value])]
+        if draw(st.booleans()):
+            out.append(Assign([name], [draw(num(sc, 1))]))
+            sc.floats.append(name)
+        return out
+    if kind == "list":
+        name = sc.new_name("buf")
+        n = draw(st.integers(1, 3))
+        if draw(st.booleans()):
+            elems = [draw(num(sc, 1)) for _ in range(n)]
+            form = "[" + ", ".join(f"{{{j}}}" for j in range(n)) + "]"
+            out = [Assign([name], [Ex(form, tuple(elems), tag="list")])]
+        else:
+            out = [Assign([name], [Ex(f"[0.0] * {n}", tag="list")])]
+            out.append(Assign([f"{name}[{n - 1}]"], [draw(num(sc, 1))]))
+        sc.lists[name] = n
+        return out
+    if kind == "listwrite":
+        local = [name for name in sc.lists if name.startswith("buf")]
+        if not local:
+            return draw(statement(sc, allow_return, tuple_out))
+        name = draw(st.sampled_from(local))
+        idx = draw(st.integers(0, sc.lists[name] - 1))
+        value = draw(num(sc))
+        if draw(st.booleans()):
+            return [Aug(f"{name}[{idx}]", draw(st.sampled_from("+-*")), value)]
+        return [Assign([f"{name}[{idx}]"], [value])]
+    if kind == "for":
+        var, iterable, is_float = draw(loop_iter(sc))
+        inner = sc.copy()
+        inner.in_loop = True
+        inner.depth += 1
+        (inner.floats if is_float else inner.ints).append(var)
+        body = draw(block(inner, 1, 3, False, tuple_out))
+        return [For(var, iterable, body)]
+    if kind in ("if", "ifreturn"):
+        return [draw(if_statement(sc, kind == "ifreturn", tuple_out))]
+    raise AssertionError(kind)  # pragma: no cover
+
+
+@st.composite
+def if_statement(draw, sc: Scope, must_return: bool, tuple_out: int) -> If:
+    """if / elif / else; arms may nest another if, loop, list or return."""
+    n_arms = draw(st.integers(1, 3))
+    has_else = draw(st.booleans())
+    # a name every arm binds (copying in one arm, computing in another)
+    shared = sc.new_name("b")
+    bodies, scopes = [], []
+    for a in range(n_arms + has_else):
+        inner = sc.copy()
+        inner.depth += 1
+        # no return inside a loop (rejected by design: fixed trip counts)
+        body = draw(block(inner, 0, 2, not sc.in_loop, tuple_out))
+        if must_return and a == 0 and not (body and isinstance(body[-1], Return)):
+            body.append(Return(draw(returned(inner, tuple_out))))
+        bodies.append(body)
+        scopes.append(inner)
+    falls = [not (b and isinstance(b[-1], Return)) for b in bodies]
+    if has_else and not any(falls):  # some path must reach the code after the if
+        bodies[-1].pop()
+        falls[-1] = True
+    bound_sets = []
+    for body, inner, fall in zip(bodies, scopes, falls, strict=True):
+        if fall:
+            value = leaf(draw(st.sampled_from(inner.floats)))
+            if draw(st.integers(0, 2)):
+                value = draw(num(inner))
+            body.append(Assign([shared], [value]))
+            inner.floats.append(shared)
+            bound_sets.append(set(inner.floats))
+    arms = [(draw(cond(sc)), body) for body in bodies[:n_arms]]
+    # names bound on every path that falls through (without an else, none)
+    if has_else:
+        for name in sorted(set.intersection(*bound_sets)):
+            if name not in sc.floats:
+                sc.floats.append(name)
+    return If(arms, bodies[-1] if has_else else None)
+
+
+def distinct(a: Ex, b: Ex) -> Ex:
+    """``b``, moved off ``a`` when both are the same text (a permanent tie)."""
+    return Ex("({0} + 0.5)", (b,)) if a.render() == b.render() else b
+
+
+@st.composite
+def returned(draw, sc: Scope, tuple_out: int) -> list[Ex]:
+    """The returned value(s): over the latest names, so the statements matter."""
+    values = []
+    for _ in range(tuple_out or 1):
+        recent = sc.floats[-3:]
+        e = leaf(draw(st.sampled_from(recent)))
+        for _ in range(draw(st.integers(0, 2))):
+            other = draw(num(sc, 1, True))
+            op = draw(st.sampled_from(BASIC_BINARY))
+            e = apply(op, e, other)
+        values.append(e)
+    return values
+
+
+@st.composite
+def block(draw, sc: Scope, lo: int, hi: int, allow_return: bool, tuple_out: int):
+    """A block of statements; ends with a return when a path returns early."""
+    out: list = []
+    for _ in range(draw(st.integers(lo, hi))):
+        out += draw(statement(sc, allow_return, tuple_out))
+    if allow_return and sc.knobs.early_return and draw(st.integers(0, 4)) == 0:
+        out.append(Return(draw(returned(sc, tuple_out))))
+    return out
+
+
+@dataclass
+class RawProgram:
+    """A program given as text (the regression tests): no switches to record."""
+
+    text: str
+    name: str = "f"
+    numpy: bool = False
+
+    def source(self, mode: str = "py", switches: list | None = None) -> str:
+        return self.text.replace("import math\n", "") if mode == "mp" else self.text
+
+    @property
+    def target(self) -> types.SimpleNamespace:
+        return types.SimpleNamespace(name=self.name)
+
+    def tags(self) -> set[str]:
+        words = set(self.text.replace("(", " ").replace(")", " ").split())
+        return words & {"and", "or"}
+
+
+@dataclass
+class Case:
+    """A drawn program and what its point is made of."""
+
+    program: Program
+    params: dict[str, str]  # name -> "float" | "int" | "list:N"
+    wrt: list[str] | None
+    seed: int
+    family: str = ""
+
+    @property
+    def tuple_out(self) -> bool:
+        return any(
+            isinstance(s, Return) and len(s.values) > 1
+            for s in walk(self.program.target.body)
+        )
+
+
+@st.composite
+def helper_func(draw, name: str, others: list[Helper], knobs: Knobs) -> Func:
+    params = ["a", "b"][: draw(st.integers(1, 2))]
+    defaults = {}
+    if len(params) == 2 and draw(st.booleans()):
+        defaults["b"] = draw(st.sampled_from(("0.5", "1.5", "-0.75")))
+    hk = Knobs(
+        statements=(0, 3),
+        branches=knobs.branches,
+        early_return=True,
+        rules=knobs.rules,
+        kinks=knobs.kinks,
+        max_depth=1,
+    )
+    sc = Scope(list(params), [], {}, others, hk, [0])
+    body = draw(block(sc, 0, 3, True, 0))
+    if not body or not isinstance(body[-1], Return):
+        body.append(Return(draw(returned(sc, 0))))
+    return Func(name, params, body, defaults)
+
+
+@st.composite
+def programs(draw, knobs: Knobs, family: str) -> Case:
+    floats = ["x", "y", "z"][: draw(st.integers(1, 3))]
+    params = {p: "float" for p in floats}
+    lists: dict[str, int] = {}
+    ints: list[str] = []
+    if knobs.int_param and draw(st.booleans()):
+        params["n"] = "int"
+        ints.append("n")
+    if knobs.list_param and draw(st.booleans()):
+        n = draw(st.integers(0, 3))
+        params["xs"] = f"list:{n}"
+        lists["xs"] = n
+    funcs: list[Func] = []
+    helpers: list[Helper] = []
+    if knobs.helpers:
+        for k in range(draw(st.integers(1, 2))):
+            fn = draw(helper_func(f"h{k}", list(helpers), knobs))
+            funcs.append(fn)
+            helpers.append(Helper(fn.name, fn.params, fn.defaults))
+    sc = Scope(list(floats), ints, lists, helpers, knobs, [0])
+    tuple_out = draw(st.sampled_from((0, 2))) if knobs.tuple_out else 0
+    body = draw(block(sc, *knobs.statements, True, tuple_out))
+    if not body or not isinstance(body[-1], Return):
+        body.append(Return(draw(returned(sc, tuple_out))))
+    funcs.append(Func("f", list(params), body))
+    wrt = None
+    if "n" in params:  # an int parameter is never differentiated
+        wrt = [p for p in params if params[p] != "int"]
+    if draw(st.integers(0, 4)) == 0:  # sometimes a subset
+        wrt = [p for p in params if params[p] != "int" and draw(st.booleans())]
+        wrt = wrt or [floats[0]]
+    seed = draw(st.integers(0, 2**32 - 1))
+    return Case(Program(funcs), params, wrt, seed, family)
+
+
+# ---------------------------------------------------------------------------------
+# placing the point away from kinks
+
+
+MARGIN = 1e-3  # every switch is at least this far (absolute) from flipping
+MAGNITUDE = 1e3  # and no intermediate exceeds this in magnitude
+
+
+class _Recorder:
+    """The instrumented program's helpers: each records (switch id, distance to
+    flipping) or a magnitude, and returns what the model's own expression would."""
+
+    def __init__(self) -> None:
+        self.gaps: list[tuple[int, float]] = []
+        self.mags: list[float] = []
+
+    def namespace(self) -> dict:
+        gaps, mags = self.gaps, self.mags
+
+        def k(i, v):
+            gaps.append((i, abs(v)))
+            return v
+
+        def g(i, a, b):
+            gaps.append((i, abs(a - b)))
+            return a
+
+        def m(v):
+            if isinstance(v, list):
+                mags.extend(abs(e) for e in v)
+            elif isinstance(v, float):
+                mags.append(abs(v))
+            return v
+
+        def mod(i, a, b):
+            q = a / b
+            gaps.append((i, abs(q - round(q)) * abs(b)))
+            return a % b
+
+        def fdiv(i, a, b):
+            mod(i, a, b)
+            return a // b
+
+        def mn(i, a, b):
+            gaps.append((i, abs(a - b)))
+            return min(a, b)
+
+        def mx(i, a, b):
+            gaps.append((i, abs(a - b)))
+            return max(a, b)
+
+        def wrap(fn):
+            def wrapped(*args):
+                mags.extend(abs(a) for a in args)
+                out = fn(*args)
+                mags.append(abs(out))
+                return out
+
+            return wrapped
+
+        names = [n for n in dir(math) if callable(getattr(math, n))]
+        rec_math = types.SimpleNamespace(**{n: wrap(getattr(math, n)) for n in names})
+        return {
+            "__builtins__": builtins,
+            "math": rec_math,
+            "_k": k,
+            "_g": g,
+            "_m": m,
+            "_mod": mod,
+            "_fdiv": fdiv,
+            "_min": mn,
+            "_max": mx,
+        }
+
+
+def clear_switches(program: Program, args: list) -> tuple[bool, set]:
+    """Run the instrumented program in floats. Returns (every switch at least
+    MARGIN from flipping and every intermediate finite and below MAGNITUDE,
+    the (node, operand) of the switches that were too close)."""
+    if program.numpy:
+        return clear_switches_numpy(program, args)
+    rec = _Recorder()
+    ns = rec.namespace()
+    switches: list = []
+    source = program.source("inst", switches)
+    try:
+        exec(compile(source, "<instrumented>", "exec"), ns)
+        result = ns[program.target.name](*args)
+    except (ArithmeticError, ValueError):
+        return False, set()
+    outs = result if isinstance(result, tuple) else (result,)
+    rec.mags.extend(abs(o) for o in outs)
+    close = {switches[i] for i, gap in rec.gaps if gap < MARGIN}
+    big = not all(math.isfinite(m) and m <= MAGNITUDE for m in rec.mags)
+    return not close and not big, close
+
+
+def point_is_clear(program: Program, args: list) -> bool:
+    return clear_switches(program, args)[0]
+
+
+def draw_args(params: dict[str, str], rnd: random.Random, shrinkage: float) -> list:
+    def coordinate() -> float:
+        return rnd.choice((1.0, -1.0)) * rnd.uniform(0.25, 0.25 + 1.25 * shrinkage)
+
+    args: list = []
+    for kind in params.values():
+        if kind == "float":
+            args.append(coordinate())
+        elif kind == "int":
+            args.append(rnd.randint(0, 4))
+        else:
+            args.append([coordinate() for _ in range(int(kind.split(":")[1]))])
+    return args
+
+
+def place_point(case: Case, attempts: int = 30) -> list | None:
+    """A point at which ``case`` is away from every kink, or None.
+
+    Points are redrawn (later ones smaller, against large intermediates); a switch
+    that is too close at three points is a tie by construction (``min(t, u)``
+    after ``u = t``), and its operand is moved by a constant (the program is
+    changed in place: ``min(t, (u + 0.375))``).
+    """
+    rnd = random.Random(case.seed)
+    misses: Counter = Counter()
+    for k in range(attempts):
+        make = _np_args if case.program.numpy else draw_args
+        args = make(case.params, rnd, 1.0 / (1 + k // 10))
+        ok, close = clear_switches(case.program, args)
+        if ok:
+            return args
+        for node, operand in close:
+            misses[id(node), operand] += 1
+            if misses[id(node), operand] % 3 == 0:
+                old = float(node.shift.get(operand, "0.0"))
+                node.shift[operand] = repr(old + 0.375)
+    return None
+
+
+# ---------------------------------------------------------------------------------
+# the check: generated gradient against mpmath central differences
+
+
+def _floordiv(a, b):
+    return mpmath.floor(a / b)
+
+
+def mp_model(source: str, func: str) -> Callable:
+    """``func`` from the ``mp`` rendering, with ``math`` mapped to mpmath
+    (support.MP_MATH), evaluated in mpmath numbers when called with them."""
+    ns: dict = {"__builtins__": builtins, "math": MP_MATH, "_floordiv": _floordiv}
+    exec(compile(source, "<model in mpmath>", "exec"), ns)
+    return ns[func]
+
+
+def reference_partial(f_mp: Callable, point: list, j: int) -> mpmath.mpf:
+    """d f / d point[j]: mpmath central difference (support.mp_central_diff, 60
+    digits, step 1e-30 relative). Its self-check is relative, so an exactly zero
+    derivative is taken as d(f + x_j)/dx_j - 1 and kept as 0 below 1e-20."""
+    try:
+        return mp_central_diff(f_mp, point, j, digits=30)
+    except ValueError:
+
+        def shifted(*coords):
+            return f_mp(*coords) + coords[j]
+
+        with mpmath.workdps(60):
+            estimate = mp_central_diff(shifted, point, j, digits=30) - 1
+        return mpmath.mpf(0) if abs(estimate) < 1e-20 else estimate
+
+
+# Tolerance, checked per entry: |g_j - r_j| <= REL_TOL * (|r_j| + FLOOR * S), S the
+# largest |value| or |r_k| of the example. The generated gradient is at most a few
+# hundred correctly rounded operations on intermediates bounded by MAGNITUDE (1e3),
+# each adding ~1.1e-16 relative to the terms it combines; entries that come from
+# cancelling terms of size ~S carry an absolute error ~1e-13 * S, hence the small
+# floor. A wrong rule or a dropped or doubled contribution is off by a sizable
+# fraction of |r_j| and fails by orders of magnitude.
+REL_TOL = 1e-10
+FLOOR = 1e-3
+
+
+@dataclass
+class Outcome:
+    status: str  # "ok", "expected", "kink", "fail"
+    signature: str = ""
+    message: str = ""
+    nonzero: bool = False
+
+
+def expected_rejection(error: GradwrightError, tags: set[str]) -> bool:
+    """The rejections a program of this generator may get: ``a and b`` / ``a or b``
+    as a value (unsupported, pending a decision: a located error naming and/or is
+    fine) and a result that does not depend on the wrt names (checked against the
+    reference by the caller)."""
+    text = str(error)
+    boolvalue = ("and" in tags or "or" in tags) and (" and" in text or " or" in text)
+    return boolvalue
+
+
+def _fail(sig: str, msg: str) -> Outcome:
+    return Outcome("fail", sig, msg)
+
+
+def evaluate(case: Case, args: list) -> Outcome:
+    """Generate ``case``'s gradient and compare it at ``args`` (placed away from
+    kinks) with mpmath; the value must be the primal's bit for bit."""
+    if case.program.numpy:
+        return evaluate_numpy(case, args)
+    program, params = case.program, list(case.params)
+    source = program.source()
+    func = program.target.name
+    chosen = case.wrt if case.wrt is not None else list(params)
+    primal = _run_py(source)[func](*args)
+    outs = primal if isinstance(primal, tuple) else (primal,)
+
+    def constant() -> bool:  # the reference: every derivative is exactly zero
+        refs = _references(program, params, chosen, args, len(outs))
+        return all(r == 0 for row in refs for r in row)
+
+    ns = _generate(case, func, constant)
+    if isinstance(ns, Outcome):
+        return ns
+    try:
+        if len(outs) > 1:
+            value, jac = ns[func + "_jacobian"](*args)
+            rows = [list(row) for row in jac]
+            seed = [0.75, -1.25][: len(outs)]
+            value_vjp, vjp = ns[func + "_vjp"](*args, seed=tuple(seed))
+        else:
+            value, grads = ns[func + "_grad"](*args)
+            rows = [list(grads)]
+            value_vjp = value
+        copied = ns[func](*args)
+    except Exception as error:  # noqa: BLE001
+        return _fail(f"run {type(error).__name__}", f"{type(error).__name__}: {error}")
+    values = value if isinstance(value, tuple) else (value,)
+    for got, want in zip(values, outs, strict=False):
+        if len(values) != len(outs) or not same_bits(got, want):
+            return _fail(
+                "value differs from primal", f"value {value!r}, primal {primal!r}"
+            )
+    if not (same_bits(copied, primal) if len(outs) == 1 else copied == primal):
+        return _fail("copied primal differs", f"{copied!r} vs {primal!r}")
+    if value_vjp != value:
+        return _fail("vjp value differs", f"{value_vjp!r} vs {value!r}")
+    refs = _references(program, params, chosen, args, len(outs))
+    nonzero = False
+    for out_k, (row, ref_row) in enumerate(zip(rows, refs, strict=True)):
+        flat: list = []
+        for name, g in zip(chosen, row, strict=True):
+            if case.params[name].startswith("list"):
+                if not isinstance(g, list):
+                    return _fail("list entry not a list", f"{name}_bar = {g!r}")
+                flat += g
+            else:
+                flat.append(g)
+        if len(flat) != len(ref_row):
+            return _fail("gradient shape", f"{row!r}")
+        scale = max([abs(mpmath.mpf(o)) for o in outs] + [abs(r) for r in ref_row])
+        for j, (g, r) in enumerate(zip(flat, ref_row, strict=True)):
+            if not isinstance(g, float):
+                return _fail("entry not a float", f"entry {j}: {g!r}")
+            # reference: mpmath central difference of the same program
+            err = abs(mpmath.mpf(g) - r)
+            if err > REL_TOL * (abs(r) + FLOOR * scale):
+                return _fail(
+                    "gradient wrong",
+                    f"output {out_k}, entry {j}: got {g!r}, mpmath"
+                    f" {mpmath.nstr(r, 17)} (error {mpmath.nstr(err, 3)})",
+                )
+            nonzero = nonzero or r != 0
+    if len(outs) > 1:  # the vjp is the seed-weighted sum of the Jacobian's rows
+        flat_vjp = [e for g in vjp for e in (g if isinstance(g, list) else [g])]
+        flat_jac = [
+            [e for g in row for e in (g if isinstance(g, list) else [g])]
+            for row in rows
+        ]
+        for j, g in enumerate(flat_vjp):
+            want = sum(s * row[j] for s, row in zip(seed, flat_jac, strict=True))
+            if abs(g - want) > 1e-12 * (abs(want) + 1):
+                return _fail(
+                    "vjp differs from jacobian", f"entry {j}: {g!r} vs {want!r}"
+                )
+    return Outcome("ok", nonzero=nonzero)
+
+
+def _generate(case: Case, func: str, constant: Callable[[], bool]) -> dict | Outcome:
+    """The generated module's namespace, or the Outcome of a rejection: expected
+    for and/or values (see :func:`expected_rejection`) and for a result that
+    does not depend on the wrt names when ``constant()`` (the reference) agrees."""
+    try:
+        text = gradwright.generate(case.program.source(), [func], wrt=case.wrt)
+    except GradwrightError as error:
+        if expected_rejection(error, case.program.tags()):
+            return Outcome("expected", "boolvalue", str(error))
+        if "does not depend differentiably" in str(error) and constant():
+            return Outcome("expected", "no-dependence", str(error))
+        first = str(error).splitlines()[0].split("error:")[-1].strip()[:60]
+        return _fail(f"GradwrightError: {first}", str(error))
+    except Exception as error:  # noqa: BLE001 - a crash of the generator
+        return _fail(f"generate crash {type(error).__name__}", repr(error))
+    ns: dict = {}
+    try:
+        exec(compile(text, "<generated>", "exec"), ns)
+    except Exception as error:  # noqa: BLE001 - any failure is a finding
+        return _fail(f"compile {type(error).__name__}", f"{error}\n{text}")
+    return ns
+
+
+def _run_py(source: str) -> dict:
+    ns: dict = {"__builtins__": builtins}
+    exec(compile(source, "<model>", "exec"), ns)
+    return ns
+
+
+def _references(program, params, chosen, args, n_out: int) -> list[list]:
+    """mpmath central differences of every output in every wrt coordinate."""
+    f_mp = mp_model(program.source("mp"), program.target.name)
+    slots = []  # (param index, list index or None) per flat coordinate
+    for name in chosen:
+        p = params.index(name)
+        if isinstance(args[p], list):
+            slots += [(p, k) for k in range(len(args[p]))]
+        else:
+            slots.append((p, None))
+    point = [args[p] if k is None else args[p][k] for p, k in slots]
+    rows = []
+    for out_k in range(n_out):
+
+        def flat_model(*coords, out_k=out_k):
+            call = [list(a) if isinstance(a, list) else a for a in args]
+            for (p, k), c in zip(slots, coords, strict=True):
+                if k is None:
+                    call[p] = c
+                else:
+                    call[p][k] = c
+            result = f_mp(*call)
+            return result[out_k] if isinstance(result, tuple) else result
+
+        rows.append(
+            [reference_partial(flat_model, point, j) for j in range(len(point))]
+        )
+    return rows
+
+
+# ---------------------------------------------------------------------------------
+# shrinking a failure: smaller programs that fail the same way
+
+
+def _blocks(program: Program) -> list[list]:
+    """Every statement list of ``program``, in a fixed order."""
+    out: list[list] = []
+
+    def visit(body: list) -> None:
+        out.append(body)
+        for stmt in body:
+            if isinstance(stmt, If):
+                for _, arm in stmt.arms:
+                    visit(arm)
+                if stmt.orelse is not None:
+                    visit(stmt.orelse)
+            elif isinstance(stmt, For):
+                visit(stmt.body)
+
+    for fn in program.funcs:
+        visit(fn.body)
+    return out
+
+
+def _subexprs(e: Ex, path: tuple = ()) -> Iterator[tuple[tuple, Ex]]:
+    yield path, e
+    for k, kid in enumerate(e.kids):
+        yield from _subexprs(kid, (*path, k))
+
+
+def _replace(e: Ex, path: tuple, new: Ex) -> Ex:
+    if not path:
+        return new
+    kids = list(e.kids)
+    kids[path[0]] = _replace(kids[path[0]], path[1:], new)
+    return Ex(e.form, tuple(kids), e.inst, e.mp, e.kind, e.tag, dict(e.shift))
+
+
+def _expr_slots(stmt) -> list[tuple[Callable, Ex]]:
+    """(setter, expression) for every expression a statement holds."""
+    slots = []
+    if isinstance(stmt, Assign | Return):
+        for k, v in enumerate(stmt.values):
+            slots.append((lambda new, k=k: stmt.values.__setitem__(k, new), v))
+    elif isinstance(stmt, Aug):
+        slots.append((lambda new: setattr(stmt, "value", new), stmt.value))
+    elif isinstance(stmt, If):
+        for k, (c, arm) in enumerate(stmt.arms):
+            slots.append(
+                (lambda new, k=k, arm=arm: stmt.arms.__setitem__(k, (new, arm)), c)
+            )
+    return slots
+
+
+def _candidates(case: Case, args: list) -> Iterator[tuple[Case, list]]:
+    """Smaller variants of ``case`` (and simpler points), biggest cuts first."""
+    n_blocks = len(_blocks(case.program))
+    for bi in range(n_blocks):
+        for j in range(len(_blocks(case.program)[bi])):
+            c = copy.deepcopy(case)
+            block_ = _blocks(c.program)[bi]
+            stmt = block_[j]
+            del block_[j]
+            yield c, args
+            if isinstance(stmt, If):
+                for k in range(len(stmt.arms)):
+                    c = copy.deepcopy(case)
+                    block_ = _blocks(c.program)[bi]
+                    s = block_[j]
+                    block_[j : j + 1] = s.arms[k][1]
+                    yield c, args
+                    if len(s.arms) > 1:
+                        c = copy.deepcopy(case)
+                        del _blocks(c.program)[bi][j].arms[k]
+                        yield c, args
+                if stmt.orelse is not None:
+                    c = copy.deepcopy(case)
+                    block_ = _blocks(c.program)[bi]
+                    block_[j : j + 1] = block_[j].orelse
+                    yield c, args
+                    c = copy.deepcopy(case)
+                    _blocks(c.program)[bi][j].orelse = None
+                    yield c, args
+            if isinstance(stmt, For):
+                c = copy.deepcopy(case)
+                block_ = _blocks(c.program)[bi]
+                block_[j : j + 1] = block_[j].body
+                yield c, args
+                for it in ("range(1)", "range(2)", "range(0)"):
+                    if stmt.iter != it and not stmt.iter.startswith("xs"):
+                        c = copy.deepcopy(case)
+                        _blocks(c.program)[bi][j].iter = it
+                        yield c, args
+    # expressions: a node by one of its operands of the same kind, or by a leaf
+    for bi in range(n_blocks):
+        for j in range(len(_blocks(case.program)[bi])):
+            stmt = _blocks(case.program)[bi][j]
+            for si, (_, e) in enumerate(_expr_slots(stmt)):
+                for path, node in list(_subexprs(e)):
+                    options = [k for k in node.kids if k.kind == node.kind]
+                    if node.kind == "num" and node.kids:
+                        options += [leaf(p) for p in case.program.target.params[:3]]
+                        options.append(leaf("0.5"))
+                    for new in options:
+                        c = copy.deepcopy(case)
+                        setter, old = _expr_slots(_blocks(c.program)[bi][j])[si]
+                        setter(_replace(old, path, new))
+                        yield c, args
+    # helpers nobody calls, parameters nobody reads
+    text = case.program.source()
+    for k, fn in enumerate(case.program.funcs[:-1]):
+        if text.count(f"{fn.name}(") == 1:
+            c = copy.deepcopy(case)
+            del c.program.funcs[k]
+            yield c, args
+    target = case.program.target
+    for k, p in enumerate(target.params):
+        body_text = "\n".join(text.split(f"def {target.name}(")[1].splitlines()[1:])
+        if len(target.params) > 1 and not _mentions(body_text, p):
+            c = copy.deepcopy(case)
+            del c.program.target.params[k]
+            del c.params[p]
+            if c.wrt is not None:
+                c.wrt = [w for w in c.wrt if w != p] or None
+            yield c, args[:k] + args[k + 1 :]
+    # simpler coordinates
+    for k, a in enumerate(args):
+        if isinstance(a, float):
+            for simple in (0.5, -0.5, 1.0, -1.0, 0.75, 0.25, round(a, 1)):
+                if simple != a:
+                    yield case, args[:k] + [simple] + args[k + 1 :]
+
+
+def _mentions(text: str, name: str) -> bool:
+    import re
+
+    return re.search(rf"\b{re.escape(name)}\b", text) is not None
+
+
+def _still_fails(case: Case, args: list, signature: str) -> bool:
+    try:
+        source = case.program.source()
+        _run_py(source)[case.program.target.name](*args)
+        if not point_is_clear(case.program, args):
+            return False
+        outcome = evaluate(case, args)
+    except Exception:  # noqa: BLE001 - the variant is not a valid program
+        return False
+    return outcome.status == "fail" and outcome.signature == signature
+
+
+def shrink(case: Case, args: list, signature: str, budget: int = 3000):
+    """Greedy reduction of a failing ``case`` (delta debugging over the tree)."""
+    tries = 0
+    improved = True
+    while improved and tries < budget:
+        improved = False
+        for c, a in _candidates(case, args):
+            tries += 1
+            if tries >= budget:
+                break
+            if _still_fails(c, a, signature):
+                case, args, improved = c, a, True
+                break
+    return case, args
+
+
+# ---------------------------------------------------------------------------------
+# NumPy programs: shapes tracked, elementwise forms on safe domains, reductions,
+# products; the reference runs the same text on object arrays of mpmath numbers
+
+NP_UNARY = [
+    _f("np.sin({0})", tag="np.sin"),
+    _f("np.cos({0})", tag="np.cos"),
+    _f("np.tanh({0})", tag="np.tanh"),
+    _f("np.arctan({0})", tag="np.arctan"),
+    _f("np.exp(np.tanh({0}))", tag="np.exp"),
+    _f("np.log(1.5 + {0} * {0})", tag="np.log"),
+    _f("np.sqrt(1.0 + {0} * {0})", tag="np.sqrt"),
+    _f("np.log1p({0} * {0})", tag="np.log1p"),
+    _f("np.square({0})", tag="np.square"),
+    _f("np.arcsinh({0})", tag="np.arcsinh"),
+    _f("np.expm1(np.sin({0}))", tag="np.expm1"),
+    _f("np.exp2(np.tanh({0}))", tag="np.exp2"),
+    _f("np.log2(1.25 + {0} * {0})", tag="np.log2"),
+    _f("np.log10(1.25 + {0} * {0})", tag="np.log10"),
+    _f("np.tan(0.7 * np.tanh({0}))", tag="np.tan"),
+    _f("np.arcsin(0.9 * np.tanh({0}))", tag="np.arcsin"),
+    _f("np.arccos(0.9 * np.tanh({0}))", tag="np.arccos"),
+    _f("np.arctanh(0.9 * np.tanh({0}))", tag="np.arctanh"),
+    _f("np.sinh({0})", tag="np.sinh"),
+    _f("np.cosh({0})", tag="np.cosh"),
+    _f("np.arccosh(1.5 + {0} * {0})", tag="np.arccosh"),
+    _f("np.cbrt({0})", "np.cbrt(_nk(@0, {0}))", "np.cbrt"),
+    _f("np.abs({0})", "np.abs(_nk(@0, {0}))", "np.abs"),
+    _f("np.fabs({0})", "np.fabs(_nk(@0, {0}))", "np.fabs"),
+    _f("np.clip({0}, -0.5, 0.5)", "np.clip(_nclip(@0, {0}), -0.5, 0.5)", "np.clip"),
+    _f("({0} ** 2)", tag="np.pow_int"),
+    _f("np.power(1.25 + {0} * {0}, 1.5)", tag="np.power"),
+    _f("(-{0})", tag="neg"),
+]
+NP_BINARY = [
+    _f("({0} + {1})"),
+    _f("({0} - {1})"),
+    _f("({0} * {1})"),
+    _f("({0} / (1.25 + {1} * {1}))", tag="div"),
+    _f("np.maximum({0}, {1})", "np.maximum(_ng(@1, {0}, {1}), {1})", "np.maximum"),
+    _f("np.minimum({0}, {1})", "np.minimum(_ng(@1, {0}, {1}), {1})", "np.minimum"),
+    _f("np.arctan2({0}, 1.5 + {1} * {1})", tag="np.arctan2"),
+    _f("np.hypot({0}, {1})", "np.hypot(_nk(@0, {0}), {1})", "np.hypot"),
+    _f(
+        "np.where({0} > {1}, {0}, {1} * {1})",
+        "np.where(_ng(@1, {0}, {1}) > {1}, {0}, {1} * {1})",
+        "np.where",
+    ),
+    _f("np.power(1.25 + {0} * {0}, np.tanh({1}))", tag="np.power_active"),
+]
+# (form, instrumented form, input shape -> output shape or None, tag)
+NP_REDUCE = [
+    ("np.sum({0})", None, lambda s: (), "np.sum"),
+    ("np.mean({0})", None, lambda s: (), "np.mean"),
+    ("{0}.sum()", None, lambda s: (), "sum_method"),
+    ("np.prod(np.tanh({0}))", None, lambda s: (), "np.prod"),
+    ("np.max({0})", "np.max(_nmax(@0, {0}))", lambda s: (), "np.max"),
+    ("np.min({0})", "np.min(_nmin(@0, {0}))", lambda s: (), "np.min"),
+    ("np.sum({0}, axis=0)", None, lambda s: s[1:] if len(s) == 2 else None, "axis"),
+    ("np.mean({0}, axis=1)", None, lambda s: s[:1] if len(s) == 2 else None, "axis"),
+    (
+        "np.sum({0}, axis=1, keepdims=True)",
+        None,
+        lambda s: (s[0], 1) if len(s) == 2 else None,
+        "keepdims",
+    ),
+]
+NP_SHAPES = {"x": (3,), "w": (2,), "A": (2, 3), "s": ()}
+
+
+def _product(a: tuple, b: tuple) -> tuple | None:
+    """Shape of a @ b, or None."""
+    if len(a) == 2 and len(b) == 1 and a[1] == b[0]:
+        return (a[0],)
+    if len(a) == 1 and len(b) == 2 and a[0] == b[0]:
+        return (b[1],)
+    if len(a) == 1 and len(b) == 1 and a == b:
+        return ()
+    if len(a) == 2 and len(b) == 2 and a[1] == b[0]:
+        return (a[0], b[1])
+    return None
+
+
+@st.composite
+def np_expr(draw, names: dict[str, tuple], depth: int = 2) -> tuple[Ex, tuple]:
+    """An array (or scalar) expression over ``names`` and its shape."""
+    if depth <= 0 or draw(st.integers(0, 3)) == 0:
+        name = draw(st.sampled_from(sorted(names)))
+        return leaf(name), names[name]
+    kind = draw(st.sampled_from(("unary", "binary", "binary", "reduce", "matmul")))
+    a, sa = draw(np_expr(names, depth - 1))
+    if kind == "unary":
+        return apply(draw(st.sampled_from(NP_UNARY)), a), sa
+    if kind == "reduce":
+        form, inst, shape_of, tag = draw(st.sampled_from(NP_REDUCE))
+        out = shape_of(sa)
+        if out is None or not sa:
+            return a, sa
+        if inst and len(sa) == 2 and "np.max" in form:
+            pass
+        return Ex(form, (a,), inst, tag=tag), out
+    b, sb = draw(np_expr(names, depth - 1))
+    if kind == "matmul":
+        for x, y, sx, sy in ((a, b, sa, sb), (b, a, sb, sa)):
+            for tx, stx in ((x, sx), (Ex("{0}.T", (x,), tag="T"), sx[::-1])):
+                out = _product(stx, sy)
+                if out is not None and sx and sy:
+                    form = draw(st.sampled_from(("({0} @ {1})", "np.dot({0}, {1})")))
+                    return Ex(form, (tx, y), tag="matmul"), out
+        kind = "binary"
+    try:
+        out = np.broadcast_shapes(sa, sb)
+    except ValueError:
+        b, sb = Ex("np.sum({0})", (b,), tag="np.sum"), ()
+        out = sa
+    spec = draw(st.sampled_from(NP_BINARY))
+    if spec[0] == "({0} - {1})" and a.render() == b.render():
+        spec = NP_BINARY[0]
+    if a.render() == b.render() and spec[1] is not None:
+        b = Ex("({0} + 0.5)", (b,))
+    return apply(spec, a, b), tuple(out)
+
+
+@st.composite
+def numpy_programs(draw, family: str = "numpy") -> Case:
+    chosen = draw(st.sets(st.sampled_from(sorted(NP_SHAPES)), min_size=1))
+    params = sorted(chosen, key=list(NP_SHAPES).index)
+    names = {p: NP_SHAPES[p] for p in params}
+    body: list = []
+    for k in range(draw(st.integers(1, 4))):
+        e, shape = draw(np_expr(names, 2))
+        target = draw(st.sampled_from([f"u{k}", f"u{k}", *sorted(names)]))
+        if target in NP_SHAPES and NP_SHAPES.get(target) != shape:
+            target = f"u{k}"
+        if target in names and names[target] != shape:
+            target = f"u{k}"
+        body.append(Assign([target], [e]))
+        names[target] = shape
+    recent = [t for s in body[-2:] for t in s.targets] or params
+    e, shape = draw(np_expr({n: names[n] for n in recent}, 1))
+    if shape:
+        e = Ex(draw(st.sampled_from(("np.sum({0})", "np.mean({0})"))), (e,))
+    body.append(Return([e]))
+    kinds = {
+        p: "array:" + "x".join(map(str, NP_SHAPES[p])) if NP_SHAPES[p] else "float"
+        for p in params
+    }
+    wrt = None
+    if draw(st.integers(0, 3)) == 0:
+        wrt = [p for p in params if draw(st.booleans())] or params[:1]
+    return Case(
+        Program([Func("f", params, body)], numpy=True),
+        kinds,
+        wrt,
+        draw(st.integers(0, 2**32 - 1)),
+        family,
+    )
+
+
+def _np_namespace(rec: _Recorder) -> dict:
+    """The instrumented NumPy program's helpers (see :class:`_Recorder`)."""
+    gaps, mags = rec.gaps, rec.mags
+
+    def low(v) -> float:
+        return float(np.min(np.abs(v))) if np.size(v) else math.inf
+
+    def nk(i, v):
+        gaps.append((i, low(v)))
+        return v
+
+    def ng(i, a, b):
+        gaps.append((i, low(np.subtract(a, b))))
+        return a
+
+    def nclip(i, v):
+        gaps.append((i, min(low(np.add(v, 0.5)), low(np.subtract(v, 0.5)))))
+        return v
+
+    def top_gap(v) -> float:
+        flat = np.sort(np.ravel(v))
+        return float(flat[1] - flat[0]) if flat.size > 1 else math.inf
+
+    def nmax(i, v):
+        gaps.append((i, top_gap(-np.asarray(v))))
+        return v
+
+    def nmin(i, v):
+        gaps.append((i, top_gap(v)))
+        return v
+
+    def m(v):
+        if np.size(v):
+            mags.append(float(np.max(np.abs(v))))
+        return v
+
+    return {
+        "__builtins__": builtins,
+        "_nk": nk,
+        "_ng": ng,
+        "_nclip": nclip,
+        "_nmax": nmax,
+        "_nmin": nmin,
+        "_m": m,
+    }
+
+
+def _mp_ufunc(fn: Callable, nin: int = 1) -> Callable:
+    return np.frompyfunc(fn, nin, 1)
+
+
+def _mp_clip(a, lo, hi):
+    return _mp_ufunc(lambda v: lo if v < lo else hi if v > hi else v)(a)
+
+
+MP_NUMPY = types.SimpleNamespace(
+    sin=_mp_ufunc(mpmath.sin),
+    cos=_mp_ufunc(mpmath.cos),
+    tan=_mp_ufunc(mpmath.tan),
+    tanh=_mp_ufunc(mpmath.tanh),
+    sinh=_mp_ufunc(mpmath.sinh),
+    cosh=_mp_ufunc(mpmath.cosh),
+    arctan=_mp_ufunc(mpmath.atan),
+    arcsin=_mp_ufunc(mpmath.asin),
+    arccos=_mp_ufunc(mpmath.acos),
+    arcsinh=_mp_ufunc(mpmath.asinh),
+    arccosh=_mp_ufunc(mpmath.acosh),
+    arctanh=_mp_ufunc(mpmath.atanh),
+    exp=_mp_ufunc(mpmath.exp),
+    expm1=_mp_ufunc(mpmath.expm1),
+    exp2=_mp_ufunc(lambda v: mpmath.power(2, v)),
+    log=_mp_ufunc(mpmath.log),
+    log1p=_mp_ufunc(mpmath.log1p),
+    log2=_mp_ufunc(lambda v: mpmath.log(v, 2)),
+    log10=_mp_ufunc(mpmath.log10),
+    sqrt=_mp_ufunc(mpmath.sqrt),
+    cbrt=_mp_ufunc(lambda v: mpmath.sign(v) * mpmath.cbrt(abs(v))),
+    square=lambda v: v * v,
+    abs=_mp_ufunc(abs),
+    fabs=_mp_ufunc(abs),
+    clip=_mp_clip,
+    maximum=_mp_ufunc(lambda a, b: b if b > a else a, 2),
+    minimum=_mp_ufunc(lambda a, b: b if b < a else a, 2),
+    arctan2=_mp_ufunc(mpmath.atan2, 2),
+    hypot=_mp_ufunc(lambda a, b: mpmath.sqrt(a * a + b * b), 2),
+    power=_mp_ufunc(mpmath.power, 2),
+    where=lambda c, a, b: np.where(np.asarray(c, dtype=bool), a, b),
+    sum=np.sum,
+    mean=np.mean,
+    prod=np.prod,
+    max=np.max,
+    min=np.min,
+    dot=np.dot,
+)
+
+
+def _np_args(params: dict[str, str], rnd: random.Random, shrinkage: float) -> list:
+    args: list = []
+    for kind in params.values():
+        shape = () if kind == "float" else tuple(map(int, kind[6:].split("x")))
+        size = int(np.prod(shape)) if shape else 1
+        coords = [
+            rnd.choice((1.0, -1.0)) * rnd.uniform(0.25, 0.25 + 1.25 * shrinkage)
+            for _ in range(size)
+        ]
+        args.append(coords[0] if not shape else np.array(coords).reshape(shape))
+    return args
+
+
+def clear_switches_numpy(program: Program, args: list) -> tuple[bool, set]:
+    rec = _Recorder()
+    ns = _np_namespace(rec)
+    switches: list = []
+    try:
+        with np.errstate(all="raise"):
+            exec(compile(program.source("inst", switches), "<inst>", "exec"), ns)
+            result = ns[program.target.name](*args)
+    except (ArithmeticError, ValueError, FloatingPointError):
+        return False, set()
+    rec.mags.append(abs(float(result)))
+    close = {switches[i] for i, gap in rec.gaps if gap < MARGIN}
+    big = not all(math.isfinite(m) and m <= MAGNITUDE for m in rec.mags)
+    return not close and not big, close
+
+
+def evaluate_numpy(case: Case, args: list) -> Outcome:
+    """As :func:`evaluate`, for a NumPy program: the reference runs the same text
+    on object arrays of mpmath numbers (MP_NUMPY), 60 digits."""
+    program, params = case.program, list(case.params)
+    source = program.source()
+    chosen = case.wrt if case.wrt is not None else params
+    primal = _run_py(source)["f"](*args)
+    ns = _generate(case, "f", lambda: not any(_numpy_references(case, args)[1]))
+    if isinstance(ns, Outcome):
+        return ns
+    try:
+        value, grads = ns["f_grad"](*args)
+        copied = ns["f"](*args)
+    except Exception as error:  # noqa: BLE001
+        return _fail(f"run {type(error).__name__}", f"{type(error).__name__}: {error}")
+    if type(value) is not type(primal) or not same_bits(float(value), float(primal)):
+        return _fail("value differs from primal", f"value {value!r}, primal {primal!r}")
+    if not same_bits(float(copied), float(primal)):
+        return _fail("copied primal differs", f"{copied!r} vs {primal!r}")
+    slots, refs = _numpy_references(case, args)
+    flat: list = []
+    for name, g in zip(chosen, grads, strict=True):
+        want = np.shape(args[params.index(name)])
+        if want and (not isinstance(g, np.ndarray) or g.shape != want):
+            return _fail("entry shape", f"{name}_bar = {g!r}, shape {want}")
+        if not want and not isinstance(g, float):
+            return _fail("entry not a float", f"{name}_bar = {g!r}")
+        flat += list(np.ravel(g)) if want else [g]
+    scale = max([abs(mpmath.mpf(float(value)))] + [abs(r) for r in refs])
+    nonzero = False
+    for j, (g, r) in enumerate(zip(flat, refs, strict=True)):
+        # reference: mpmath central difference of the same program
+        err = abs(mpmath.mpf(float(g)) - r)
+        if err > REL_TOL * (abs(r) + FLOOR * scale):
+            return _fail(
+                "gradient wrong",
+                f"entry {j} {slots[j]}: got {float(g)!r}, mpmath"
+                f" {mpmath.nstr(r, 17)} (error {mpmath.nstr(err, 3)})",
+            )
+        nonzero = nonzero or r != 0
+    return Outcome("ok", nonzero=nonzero)
+
+
+def _numpy_references(case: Case, args: list) -> tuple[list, list]:
+    """(slots, mpmath central differences) of a NumPy program in every wrt
+    coordinate; a slot is (parameter index, flat index or None)."""
+    params = list(case.params)
+    chosen = case.wrt if case.wrt is not None else params
+    f_mp = mp_numpy_model(case.program.source("mp"))
+    slots = []
+    for name in chosen:
+        p = params.index(name)
+        shape = np.shape(args[p])
+        slots += [(p, k) for k in range(int(np.prod(shape)))] if shape else [(p, None)]
+
+    def flat_model(*coords):
+        call = [
+            (
+                np.array([mpmath.mpf(v) for v in np.ravel(a)], dtype=object).reshape(
+                    np.shape(a)
+                )
+                if np.shape(a)
+                else mpmath.mpf(a)
+            )
+            for a in args
+        ]
+        for (p, k), c in zip(slots, coords, strict=True):
+            if k is None:
+                call[p] = c
+            else:
+                call[p].reshape(-1)[k] = c
+        return f_mp(*call)
+
+    point = [args[p] if k is None else float(np.ravel(args[p])[k]) for p, k in slots]
+    with mpmath.workdps(60):
+        refs = [reference_partial(flat_model, point, j) for j in range(len(point))]
+    return slots, refs
+
+
+def mp_numpy_model(source: str) -> Callable:
+    ns: dict = {"__builtins__": builtins, "np": MP_NUMPY}
+    exec(compile(source, "<numpy model in mpmath>", "exec"), ns)
+    return ns["f"]
