@@ -423,12 +423,14 @@ def _build(args: argparse.Namespace) -> int:
     try:
         for k, job in enumerate(jobs):  # reported in target order
             outcome = outcomes[k]
-            if outcome is None:
-                outcome = (
-                    futures[k].result()
-                    if pool is not None
-                    else _build_target(job, options)
-                )
+            if outcome is None and pool is None:
+                outcome = _build_target(job, options)
+            elif outcome is None:
+                try:
+                    outcome = futures[k].result()
+                except Exception as error:  # the worker process itself died
+                    message = f"error: the process generating it stopped: {error!r}"
+                    outcome = _Outcome("failed", [job.output or ""], message)
             counts[outcome.word] = counts.get(outcome.word, 0) + 1
             sys.stdout.write(outcome.diff)
             report.status(outcome.word, outcome.labels)
