@@ -3,7 +3,9 @@
 from __future__ import annotations
 
 import gc
-from collections.abc import Iterator, Sequence
+import sys
+import threading
+from collections.abc import Callable, Iterator, Sequence
 from contextlib import contextmanager
 
 import libcst as cst
@@ -137,7 +139,8 @@ def generate(
             f"function {', '.join(repeated)} is listed more than once"
         )
     runtime = get_target(target)
-    with _collector_paused():
+
+    def work() -> str:
         index = parse_module(source, path)
         if index.numpy_modules and not runtime.numpy:
             fail(
@@ -150,6 +153,49 @@ def generate(
         command = regeneration_command(path, functions, wrt, output, target)
         # the digest line lets --check see an untouched output without generating
         return stamp(render_module(index, compiled, command, runtime))
+
+    with _collector_paused():
+        try:
+            return _with_deep_stack(work)
+        except RecursionError:
+            raise GradwrightError.usage(
+                f"{path}: an expression or block is nested too deeply to generate",
+                "split the long expression into several statements (CPython itself"
+                " stops compiling near 3,000 terms in one sum)",
+            ) from None
+
+
+#: generation recurses over expression trees as deep as the source's; a one-line
+#: sum of thousands of terms, which CPython compiles, needs this much
+_RECURSION_LIMIT = 100_000
+_STACK_BYTES = 512 * 1024 * 1024
+
+
+def _with_deep_stack(work: Callable[[], str]) -> str:
+    """Run ``work`` in a thread with a large stack and recursion limit (common
+    practice for recursive compilers in Python), re-raising what it raises."""
+    outcome: list = []
+
+    def run() -> None:
+        try:
+            outcome.append((True, work()))
+        except BaseException as error:  # handed to the caller unchanged
+            outcome.append((False, error))
+
+    limit = sys.getrecursionlimit()
+    size = threading.stack_size(_STACK_BYTES)
+    sys.setrecursionlimit(max(limit, _RECURSION_LIMIT))
+    try:
+        thread = threading.Thread(target=run, name="gradwright-generate")
+        thread.start()
+        thread.join()
+    finally:
+        threading.stack_size(size)
+        sys.setrecursionlimit(limit)
+    ok, value = outcome[0]
+    if not ok:
+        raise value
+    return value
 
 
 @contextmanager

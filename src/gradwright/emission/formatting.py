@@ -54,6 +54,8 @@ def format_statement(text: str, depth: int) -> str:
     indent = INDENT * depth
     if "\n" not in text and len(indent) + len(text) <= LINE_LENGTH:
         return indent + text
+    if text == "else:":  # deep in nested blocks; black cannot split it either
+        return indent + text
     header = text.rstrip().endswith(":")  # `if ...:` / `for ...:` lines
     source = f"{text}\n{INDENT}pass\n" if header else text
     formatted = _black(source, LINE_LENGTH - len(indent))

@@ -149,19 +149,24 @@ def _branches(events: list) -> Iterator[object]:
 State = dict[str, frozenset]
 
 
+#: "whatever the name held when the loop iteration began" (summaries only)
+_SAME = ("same", None)
+
+
 def _meet(a: State, b: State) -> State:
-    """Facts true at a join of two paths (same guard on both, or either guard)."""
+    """Facts true at a join of two paths (a fact on both, under both guards)."""
     out: State = {}
     for name, facts in a.items():
         other = b.get(name)
         if not other:
             continue
-        common = {
-            (key, guard | other_guard)
-            for key, guard in facts
-            for other_key, other_guard in other
-            if key == other_key
-        }
+        common = set()
+        for key, guard in facts:
+            for other_key, other_guard in other:
+                if key == other_key or other_key == _SAME:
+                    common.add((key, guard | other_guard))
+                elif key == _SAME:
+                    common.add((other_key, guard | other_guard))
         if common:
             out[name] = frozenset(common)
     return out
@@ -252,12 +257,13 @@ class _Checker:
     def summary(self, loop: _Loop, entry: State) -> State:
         """The state after ``loop`` without analysing it again: a name it writes
         holds what it held before (no trip) and what every iteration leaves in it,
-        worked out once from an empty start."""
+        worked out once for any start (``_SAME``: what the name held before)."""
+        written = set(_written(loop.body))
         ends = self.summaries.get(id(loop))
         if ends is None:
-            ends = self.run(loop.body, {}, frozenset(), False)
+            start = {name: frozenset({(_SAME, frozenset())}) for name in written}
+            ends = self.run(loop.body, start, frozenset(), False)
             self.summaries[id(loop)] = ends
-        written = set(_written(loop.body))
         state = {n: f for n, f in entry.items() if n not in written}
         state |= _meet({n: f for n, f in entry.items() if n in written}, ends)
         return _forget(_with_fills(state, ends), loop.local, loop.branches)

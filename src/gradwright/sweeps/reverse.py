@@ -188,6 +188,8 @@ class _Reverse:
         self.has: set[Var] = set()
         self.root: dict[Var, Var] = {}
         self.carries: dict[Var, Var] = {}
+        #: working out which values gain adjoint, the statements are thrown away
+        self.dry = False
         self.defs = {let.target: let for let in _walk_lets(function.body)}
         self.next_uid = 1 + max(
             [v.uid for v in function.params]
@@ -406,10 +408,20 @@ class _Reverse:
             out.append(AdjointAssign(carry, value, False, loop.origin))
             self.has.add(carry)
         inside = defined_in(loop.body) | {phi.target for phi in loop.carried}
-        # a dry run finds the outer values that gain adjoint inside the loop
+        if self.dry:  # only which values gain adjoint matters here
+            self.loop_body(loop, carries)
+            self.has = {v for v in self.has if v not in inside}
+            for phi, carry in carries.items():
+                self.contribute(phi.first, Bar(carry), loop.origin, out)
+            self.has -= set(carries.values())
+            return
+        # a dry run finds the outer values that gain adjoint inside the loop (loops
+        # inside it run once in it, so the cost stays quadratic in the nesting)
         before = set(self.has)
         saved_uid = self.next_uid
+        self.dry = True
         self.loop_body(loop, carries)
+        self.dry = False
         outer = sorted(
             v for v in self.has - before if v not in inside and v not in self.carries
         )
