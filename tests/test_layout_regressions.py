@@ -1,0 +1,310 @@
+"""Wrong gradients found by random programs, and the layout check that stops them.
+
+Each model below once gave a wrong gradient, a value different from the primal, or a
+module that failed when called. Every gradient is checked against mpmath central
+differences at 50 digits of the model's own source (``support.mp_gradient``), at
+points on both sides of each branch; values must equal the primal's bit for bit.
+"""
+
+from __future__ import annotations
+
+import time
+
+import pytest
+from support import build, mp_function, mp_gradient, rel_err, run_source
+
+import gradwright
+from gradwright import GradwrightError
+from gradwright.emission import print_sweeps
+
+CASES = {
+    # a loop on one path of an if zeroed the adjoint on the other path
+    "loop-after-early-return": (
+        """
+def f(x, c):
+    if c > 0.0:
+        return x * 2.0
+    for i in range(2):
+        x = x * 0.5
+    return x
+""",
+        ["x"],
+        [(0.7, 0.5), (0.7, -0.5)],
+    ),
+    "loop-inside-if-without-else": (
+        """
+def f(x, c):
+    s = x
+    if c > 0.0:
+        for i in range(2):
+            s = s * 0.5
+    return s
+""",
+        ["x"],
+        [(0.7, 0.5), (0.7, -0.5)],
+    ),
+    # a local list bound in a branch: its adjoint list was made before the test
+    "list-bound-in-branch": (
+        """
+def f(x, c):
+    if c > 0.0:
+        y = [x, 2.0]
+        x = y[0] * y[1]
+    return x * x
+""",
+        ["x"],
+        [(0.5, 1.0), (0.5, -1.0)],
+    ),
+    # a name re-bound in an if inside a loop, read after it
+    "rebound-in-if-in-loop": (
+        """
+def f(x, c):
+    a = x
+    for i in range(1):
+        if c > 0.0:
+            a = a * a
+        a = a * x
+    return a
+""",
+        ["x"],
+        [(0.5, 1.0), (0.5, -1.0)],
+    ),
+    "rebound-in-if-in-loop-test-reads-it": (
+        """
+def f(x, a):
+    for i in range(1):
+        if a < 0.5:
+            a = a * 3.0
+        x = x * a
+    return x
+""",
+        ["x", "a"],
+        [(0.7, 0.3), (0.7, 0.6)],
+    ),
+    # identical arms aliased two names: the value differed from the primal
+    "identical-arms": (
+        """
+def f(a):
+    y = a if a < 0.3 else a
+    y = y + 1.0
+    return a * y
+""",
+        ["a"],
+        [(0.5,), (0.2,)],
+    ),
+    # `and`/`or` between numbers select an operand; they were treated as constant
+    "and-or-as-values": (
+        """
+def f(p0, p1):
+    t = p0 and p1
+    u = p0 * 2.0 or p1
+    return t * p0 + u
+""",
+        ["p0", "p1"],
+        [(0.5, 0.7), (-0.25, 0.7)],
+    ),
+    # a helper call whose value is dead: the forward sweep dropped the call while
+    # the reverse still read its partials
+    "dead-helper-call-in-loop": (
+        """
+def h(a):
+    return a * a
+def f(x):
+    t = 0.0
+    for i in range(1):
+        t = h(x)
+        x = x * 0.5
+    return x
+""",
+        ["x"],
+        [(0.5,)],
+    ),
+    # one arm copies, the other computes; the reverse of exp read the new t
+    "copying-arm": (
+        """
+import math
+def f(x, c):
+    if c > 0.0:
+        t = x
+    else:
+        t = math.exp(x)
+    t = t + x
+    return t
+""",
+        ["x"],
+        [(0.5, -1.0), (0.5, 1.0)],
+    ),
+    "list-made-in-loop-body": (
+        """
+def f(x, c):
+    s = 0.0
+    for i in range(3):
+        tmp = [x * i, 2.0 + x]
+        if c > 0:
+            tmp[1] = tmp[0] * x
+        s = s + tmp[0] * tmp[1]
+    return s
+""",
+        ["x"],
+        [(0.5, 1.0), (0.5, -1.0)],
+    ),
+    "three-nested-loops": (
+        """
+def f(x):
+    y = x
+    for i in range(2):
+        for j in range(i + 1):
+            for k in range(2):
+                y = y * x
+    return y
+""",
+        ["x"],
+        [(0.9,)],
+    ),
+}
+
+
+@pytest.mark.parametrize("name", sorted(CASES))
+def test_regression_case_matches_mpmath(name):
+    source, wrt, points = CASES[name]
+    module = build(source, "f", wrt)
+    primal = run_source(source)["f"]
+    reference = mp_function(source, "f")
+    params = ["x", "c"] if "def f(x, c)" in source else None
+    names = params or [
+        n.strip() for n in source.split("def f(")[1].split(")")[0].split(",")
+    ]
+    active = [names.index(w) for w in wrt]
+    for point in points:
+        value, grads = module["f_grad"](*point)
+        assert value == primal(*point)  # bit-identical to the primal
+        expected = mp_gradient(reference, list(point), active)  # mpmath differences
+        for got, want in zip(grads, expected, strict=True):
+            assert rel_err(got, float(want)) < 1e-12, (name, point, got, want)
+
+
+def test_differently_bound_lists_on_two_paths_are_located_errors():
+    source = """
+def f(x, c):
+    if c > 0.0:
+        y = [x, 2.0]
+    else:
+        y = [3.0, x]
+    return y[0] * y[1]
+"""
+    with pytest.raises(GradwrightError) as error:
+        gradwright.generate(source, ["f"], wrt=["x"])
+    text = str(error.value)
+    assert "<string>:7:12:" in text and "different list on each path" in text
+
+
+def test_list_rebound_inside_a_loop_is_a_located_error():
+    source = """
+def f(x):
+    y = [x, 2.0]
+    for i in range(3):
+        y = [y[1], y[0] * x]
+    return y[0] * y[1]
+"""
+    with pytest.raises(GradwrightError) as error:
+        gradwright.generate(source, ["f"], wrt=["x"])
+    assert "<string>:4:5:" in str(error.value)
+    assert "new list inside the loop" in str(error.value)
+
+
+def _nested_loops(depth: int) -> str:
+    lines = ["def f(x):", "    y = x"]
+    for k in range(depth):
+        lines.append("    " * (k + 1) + f"for i{k} in range(1):")
+    lines.append("    " * (depth + 1) + "y = y * x")
+    lines.append("    return y")
+    return "\n".join(lines) + "\n"
+
+
+def test_deeply_nested_loops_generate_quickly_and_correctly():
+    # 19 loops: CPython compiles at most 20 nested blocks, model or module
+    start = time.perf_counter()
+    module = build(_nested_loops(19), "f", ["x"])
+    elapsed = time.perf_counter() - start
+    value, (x_bar,) = module["f_grad"](0.7)
+    assert value == 0.7 * 0.7
+    assert x_bar == 2.0 * 0.7  # d(x*x)/dx, closed form
+    # was exponential in the depth (12 levels 0.34 s, 19 about a minute); a wide
+    # margin for a loaded machine, not a benchmark
+    assert elapsed < 20.0
+
+
+def test_deeply_nested_ifs_generate():
+    lines = ["def f(x, c):", "    y = x"]
+    for k in range(40):
+        lines.append("    " * (k + 1) + f"if c > {k}.0:")
+        lines.append("    " * (k + 2) + "y = y * x")
+    lines.append("    return y")
+    module = build("\n".join(lines) + "\n", "f", ["x"])
+    value, (x_bar,) = module["f_grad"](0.5, 2.5)  # three ifs taken: y = x**4
+    assert value == 0.5**4
+    assert x_bar == 4 * 0.5**3  # d(x**4)/dx, closed form
+
+
+def test_long_sum_generates():
+    terms = 1200  # past the old recursion limit (490); CPython compiles it
+    source = "def f(x):\n    return " + " + ".join(
+        f"{k}.5 * x * x" for k in range(terms)
+    )
+    module = build(source + "\n", "f", ["x"])
+    value, (x_bar,) = module["f_grad"](0.25)
+    coefficient = sum(k + 0.5 for k in range(terms))
+    assert rel_err(x_bar, 2 * coefficient * 0.25) < 1e-12  # d(c x^2)/dx
+
+
+def test_layout_check_catches_a_broken_layout(monkeypatch):
+    """Drop the zero an adjoint gets on the side of a branch that does not touch
+    it: the check must refuse the module (x_bar unset when c <= 0)."""
+    from gradwright.ir import AdjointAssign, Const, ReverseBranch
+
+    real_block = print_sweeps._Emitter.reverse_block
+
+    def without_zeros(self, statements, depth, out):
+        if depth > 1:  # inside a branch side
+            statements = tuple(
+                s
+                for s in statements
+                if not (isinstance(s, AdjointAssign) and s.expr == Const("0.0", 0.0))
+            )
+        return real_block(self, statements, depth, out)
+
+    monkeypatch.setattr(print_sweeps._Emitter, "reverse_block", without_zeros)
+    source = """
+def f(x, c):
+    s = x
+    if c > 0.0:
+        s = s * x
+    return s * 3.0
+"""
+    assert ReverseBranch  # the statement kind the broken printer mishandles
+    with pytest.raises(GradwrightError) as error:
+        gradwright.generate(source, ["f"], wrt=["x"])
+    assert "internal error" in str(error.value)
+    assert "please report" in str(error.value)
+    assert "x_bar" in str(error.value)
+
+
+def test_unsafe_sharing_falls_back_to_one_name_per_value(monkeypatch):
+    """The readable layout of this model fails the check; the module written is
+    the fallback layout, which passes it and gives the right gradient."""
+    source = CASES["rebound-in-if-in-loop"][0]
+    failures = []
+    real_lay_out = print_sweeps.lay_out
+
+    def spy(*args, **kwargs):
+        try:
+            return real_lay_out(*args, **kwargs)
+        except print_sweeps.LayoutError as error:
+            failures.append(error)
+            raise
+
+    monkeypatch.setattr("gradwright.emission.module.lay_out", spy)
+    module = build(source, "f", ["x"])
+    assert len(failures) <= 1
+    _, (x_bar,) = module["f_grad"](0.5, 1.0)
+    assert x_bar == 3 * 0.5**2  # a = x**3 on this side: 3x^2, closed form
