@@ -28,7 +28,10 @@ class Artifact:
 
 
 def read_existing(path: Path) -> str | None:
-    """The file's text, or None when there is no file."""
+    """The file's text, or None when there is no file (or it is a device or a pipe,
+    which hold nothing to compare with and may block a reader)."""
+    if path.exists() and not path.is_file():
+        return None
     try:
         with open(path, encoding="utf-8", newline="") as handle:
             return handle.read()
@@ -96,6 +99,11 @@ def write_generated(path: Path, text: str) -> None:
 
     if path.is_symlink():  # replace what the link points at, keep the link
         path = path.resolve()
+    if path.exists() and not path.is_file():
+        # a device or a pipe (`-o /dev/null`): written to, never renamed over
+        with open(path, "w", encoding="utf-8", newline="\n") as handle:
+            handle.write(text)
+        return
     directory = path.parent if str(path.parent) else Path(".")
     fd, temporary = tempfile.mkstemp(
         prefix=f".{path.name}.", suffix=".tmp", dir=directory
