@@ -150,3 +150,41 @@ def test_copied_statements_keep_their_source_text() -> None:
     body = index.functions["f"].body.body
     assert isinstance(body[1], cst.SimpleStatementLine)
     assert index.code(body[1].body[0]) == "z = y + x"
+
+
+def _black_in_place(text: str, depth: int) -> str:
+    """black's formatting of the statement where it stands, ``depth`` blocks deep."""
+    lines = [f"{'    ' * k}if c{k}:" for k in range(depth)] + ["    " * depth + text]
+    formatted = black.format_str("\n".join(lines) + "\n", mode=MODE)
+    return "\n".join(formatted.splitlines()[depth:])
+
+
+def _conditional(rng: random.Random) -> str:
+    def term() -> str:
+        k = rng.randint(0, 999)
+        return rng.choice(
+            [f"math.cosh(v{k}_1)", f"v{k}_bar", f"(v{k} + 1.0)", f"abs(v{k})", "2.0"]
+        )
+
+    name = "v" + "x" * rng.randint(1, 40) + "_bar"
+    body = " / ".join(term() for _ in range(rng.randint(1, 7)))
+    test = f"abs({term()}) < 710.0" if rng.random() < 0.8 else f"{term()} > 0.0"
+    orelse = rng.choice(["0.0", term(), f"{term()} * {term()}"])
+    op = rng.choice(["=", "+="])
+    return f"{name} {op} {body} if {test} else {orelse}"
+
+
+@pytest.mark.parametrize("seed", range(4))
+def test_long_conditionals_are_split_as_black_splits_them(seed: int) -> None:
+    rng = random.Random(seed)
+    shortcut = 0
+    for _ in range(150):
+        text = _conditional(rng)
+        depth = rng.randint(0, 4)
+        if len("    " * depth + text) <= formatting.LINE_LENGTH:
+            continue
+        shortcut += formatting._wrapped_conditional(text, depth) is not None
+        assert formatting.format_statement(text, depth) == _black_in_place(
+            text, depth
+        ), text
+    assert shortcut > 20  # the shortcut was taken, not only black

@@ -56,6 +56,9 @@ def format_statement(text: str, depth: int) -> str:
         return indent + text
     if text == "else:":  # deep in nested blocks; black cannot split it either
         return indent + text
+    wrapped = _wrapped_conditional(text, depth)
+    if wrapped is not None:
+        return wrapped
     header = text.rstrip().endswith(":")  # `if ...:` / `for ...:` lines
     source = f"{text}\n{INDENT}pass\n" if header else text
     formatted = _black(source, LINE_LENGTH - len(indent))
@@ -82,10 +85,16 @@ def settled(text: str, depth: int) -> bool:
     trip through ``ast`` is black's output already. The test is one-sided: any
     doubt sends the statement to black.
     """
+    if "\n" in text or len(INDENT * depth) + len(text) > LINE_LENGTH:
+        return False
+    return _canonical(text)
+
+
+def _canonical(text: str) -> bool:
+    """Spelled as ``ast.unparse`` spells it, and free of the constructs where that
+    and black's spelling differ."""
     if (
-        "\n" in text
-        or len(INDENT * depth) + len(text) > LINE_LENGTH
-        or not text.isascii()  # black measures wide characters differently
+        not text.isascii()  # black measures wide characters differently
         or "**" in text
         or not _UNSETTLED_CHARACTERS.isdisjoint(text)
         or text.startswith("del ")
@@ -99,6 +108,59 @@ def _round_trips(text: str) -> bool:
         return ast.unparse(ast.parse(text)) == text
     except (SyntaxError, ValueError):
         return False
+
+
+def _wrapped_conditional(text: str, depth: int) -> str | None:
+    """black's split of ``NAME = A if C else B`` (or ``NAME += ...``) too long for
+    its line, when the conditional fits on a line of its own; else None.
+
+    black puts the right-hand side of an assignment in optional parentheses and
+    keeps them when the expression inside has more than one delimiter of its
+    highest priority, which ``if`` and ``else`` at the top are; the head and the
+    body then fit, so they are final. Only for canonical text (:func:`settled`'s
+    round trip): the body is then black's own spelling too.
+    """
+    if "\n" in text or not _canonical(text):
+        return None
+    statement = ast.parse(text).body[0]
+    if isinstance(statement, ast.Assign) and len(statement.targets) == 1:
+        target = statement.targets[0]
+    elif isinstance(statement, ast.AugAssign):
+        target = statement.target
+    else:
+        return None
+    value = statement.value
+    if not isinstance(target, ast.Name) or not isinstance(value, ast.IfExp):
+        return None
+    if any(isinstance(n, ast.IfExp) for n in ast.walk(value) if n is not value):
+        return None  # nested conditionals: more delimiters to split at
+    head, equals, body = text.partition("= ")
+    indent = INDENT * depth
+    inner = indent + INDENT
+    if not equals or len(indent) + len(head) + len("= (") > LINE_LENGTH:
+        return None
+    if len(inner) + len(body) <= LINE_LENGTH:
+        lines = [body]
+    else:
+        # too long still: black splits before `if` and before `else`
+        lines = _split_conditional(body)
+        if any(len(inner) + len(line) > LINE_LENGTH for line in lines):
+            return None
+    middle = "".join(f"{inner}{line}\n" for line in lines)
+    return f"{indent}{head}= (\n{middle}{indent})"
+
+
+def _split_conditional(body: str) -> list[str]:
+    """``A if C else B`` -> ``[A, "if C", "else B"]``, at bracket depth 0."""
+    cuts, depth = [], 0
+    for position, char in enumerate(body):
+        depth += {"(": 1, "[": 1, "{": 1, ")": -1, "]": -1, "}": -1}.get(char, 0)
+        if depth == 0 and body.startswith((" if ", " else "), position):
+            cuts.append(position)
+    if len(cuts) != 2:
+        return [body]  # not the shape expected: the caller's check fails it
+    first, second = cuts
+    return [body[:first], body[first + 1 : second], body[second + 1 :]]
 
 
 #: statements per black call when formatting a long copied function
