@@ -2,7 +2,9 @@
 
 Generated statements are printed in black's style already (``printer.py``); only a
 statement longer than the line limit is handed to black, on its own, with the limit
-reduced by its indentation, which gives the text black gives it in place. The copied
+reduced by its indentation, which gives the text black gives it in place; the most
+common long one, an assignment of a conditional (the guarded derivatives), is split
+here as black splits it (:func:`_wrapped_conditional`). The copied
 primal is formatted function by function, and within a function only the statements
 black could change go to black: a one-line statement already in the canonical
 spelling (:func:`settled`) is copied as written. Whole-module black on the result is
