@@ -1,0 +1,195 @@
+"""Lowering assignments: names, tuples, list elements and augmented assignment."""
+
+from __future__ import annotations
+
+import libcst as cst
+
+from gradwright.calculus.primitives import BINARY_OPERATORS
+from gradwright.diagnostics import fail
+from gradwright.ir import (
+    Atom,
+    Var,
+)
+from gradwright.lowering.syntax import (
+    _AUGMENTED_SYMBOLS,
+)
+
+
+class AssignmentLowering:
+    """Part of the lowering (see ``ssa._Lowerer``); state lives on the lowerer."""
+
+    # -- assignments ----------------------------------------------------------------
+
+    def bind_targets(
+        self, targets: list[cst.BaseAssignTargetExpression], value: cst.BaseExpression
+    ) -> None:
+        first = targets[0]
+        for target in targets:
+            self.check_target(target)
+        if isinstance(first, cst.Subscript):
+            if len(targets) > 1:
+                fail(
+                    "chained element assignment is not supported",
+                    self.index.locate(first),
+                )
+            self.set_element(first, lambda base: self.expr(value, base, None))
+            return
+        if isinstance(first, (cst.Tuple, cst.List)):
+            names = [el.value for el in first.elements]
+            if not isinstance(value, (cst.Tuple, cst.List)):
+                fail(
+                    "tuple unpacking needs a tuple of expressions on the right",
+                    self.index.locate(value),
+                    "write `a, b = expr_a, expr_b`",
+                )
+            assert isinstance(value, (cst.Tuple, cst.List))
+            if len(value.elements) != len(names):
+                fail(
+                    f"cannot unpack {len(value.elements)} values into {len(names)}"
+                    " names",
+                    self.index.locate(value),
+                )
+            if len(targets) > 1:
+                fail(
+                    "chained tuple assignment is not supported",
+                    self.index.locate(first),
+                )
+            # every right-hand side is evaluated before any name is bound
+            computed = [
+                self.bind_value(el.value, name.value)  # type: ignore[union-attr]
+                for el, name in zip(value.elements, names, strict=True)
+            ]
+            for name, var in zip(names, computed, strict=True):
+                self.env[name.value] = var  # type: ignore[union-attr]
+            return
+        assert isinstance(first, cst.Name)
+        var = self.bind_value(value, first.value)
+        self.env[first.value] = var
+        for other in targets[1:]:
+            if not isinstance(other, cst.Name):
+                fail(
+                    "chained tuple assignment is not supported",
+                    self.index.locate(other),
+                )
+            assert isinstance(other, cst.Name)
+            if var.shape == "list":
+                fail(
+                    "a second name for a list is not supported",
+                    self.index.locate(other),
+                )
+            self.env[other.value] = self.emit(
+                "copy", (var,), self.new_var(other.value, "local")
+            )
+
+    def check_target(self, target: cst.BaseExpression) -> None:
+        if isinstance(target, cst.Name):
+            return
+        if isinstance(target, (cst.Tuple, cst.List)):
+            for el in target.elements:
+                if not isinstance(el.value, cst.Name):
+                    fail("only names can be unpacked into", self.index.locate(el.value))
+            return
+        if isinstance(target, cst.Attribute):
+            fail(
+                "assigning to an attribute is not supported (the model must not"
+                " change objects)",
+                self.index.locate(target),
+                "assign to a local name",
+            )
+        if isinstance(target, cst.Subscript):
+            return
+        fail("unsupported assignment target", self.index.locate(target))
+
+    def element_target(self, target: cst.Subscript) -> tuple[Var, Atom, str]:
+        if not isinstance(target.value, cst.Name):
+            fail(
+                "only a local list's elements can be assigned",
+                self.index.locate(target),
+            )
+        assert isinstance(target.value, cst.Name)
+        name = target.value.value
+        current = self.read_name(target.value)
+        self.as_list(current)
+        if self.numpy:
+            what = (
+                "a parameter" if getattr(current, "kind", "") == "param" else "an array"
+            )
+            fail(
+                f"'{name}' is {what}: changing an array in place is not supported (the"
+                " reverse sweep needs the values it had)",
+                self.index.locate(target),
+                "build a new array instead, with np.where or np.concatenate",
+            )
+        if not (isinstance(current, Var) and current.shape == "list"):
+            fail(f"'{name}' is not a list", self.index.locate(target.value))
+        assert isinstance(current, Var)
+        if current.kind == "param":
+            fail(
+                f"'{name}' is a parameter: changing it in place is not supported",
+                self.index.locate(target),
+                f"build a local list first: `{name}_local = [0.0] * len({name})`",
+            )
+        index = self.subscript_index(target)
+        return current, index, name
+
+    def set_element(self, target: cst.Subscript, value) -> None:  # noqa: ANN001
+        current, index, name = self.element_target(target)
+        element = self.scalar(value(name), target)
+        new = self.new_var(name, "local", "list")
+        self.emit("setitem", (current, index, element), new)
+        self.env[name] = new
+
+    def subscript_index(self, node: cst.Subscript) -> Atom:
+        if len(node.slice) != 1 or not isinstance(node.slice[0].slice, cst.Index):
+            fail(
+                "only single-number indexing is supported on lists",
+                self.index.locate(node),
+                f"write {self.index.code(node.value)}[i]",
+            )
+        index_node = node.slice[0].slice.value  # type: ignore[union-attr]
+        return self.scalar(self.expr(index_node, "index", None), index_node)
+
+    def augmented(self, stmt: cst.AugAssign) -> None:
+        target = stmt.target
+        self.check_target(target)
+        symbol = _AUGMENTED_SYMBOLS.get(type(stmt.operator))
+        if symbol is None:
+            fail(
+                "this augmented assignment is not supported",
+                self.index.locate(stmt.operator),
+                "supported: += -= *= /= //= %= **=",
+            )
+        assert symbol is not None
+        op = BINARY_OPERATORS[symbol]
+        if isinstance(target, cst.Subscript):
+            current, index, name = self.element_target(target)
+
+            def updated(base: str) -> Atom:
+                old = self.emit("getitem", (current, index), self.new_var(name, "temp"))
+                operand = self.scalar(self.expr(stmt.value, base, None), stmt.value)
+                return self.emit(op, (old, operand), self.new_var(name, "temp"))
+
+            self.set_element(target, updated)
+            return
+        if not isinstance(target, cst.Name):
+            fail("unsupported assignment target", self.index.locate(target))
+        assert isinstance(target, cst.Name)
+        current = self.scalar(self.read_name(target), target)
+        if self.numpy and not self.is_fresh(current):
+            what = (
+                "is a parameter"
+                if isinstance(current, Var) and current.kind == "param"
+                else "may share its array with another name (a copy, a slice or a"
+                " view)"
+            )
+            fail(
+                f"'{target.value}' {what}: `{target.value} {symbol}= ...` would"
+                " change that array in place",
+                self.index.locate(stmt),
+                f"write `{target.value} = {target.value} {symbol} ...` to make a new"
+                " one",
+            )
+        operand = self.scalar(self.expr(stmt.value, target.value, None), stmt.value)
+        var = self.new_var(target.value, "local")
+        self.emit(op, (current, operand), var)
+        self.env[target.value] = var

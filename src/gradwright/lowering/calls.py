@@ -1,0 +1,208 @@
+"""Lowering calls: math functions, builtins, and calls to the file's own functions."""
+
+from __future__ import annotations
+
+import libcst as cst
+
+from gradwright.calculus.primitives import OPS
+from gradwright.diagnostics import fail
+from gradwright.ir import (
+    Atom,
+    Var,
+)
+from gradwright.lowering.frontend import (
+    math_function_op,
+)
+from gradwright.lowering.syntax import (
+    _callee_list_uses,
+    _returns_tuple,
+)
+
+
+class CallLowering:
+    """Part of the lowering (see ``ssa._Lowerer``); state lives on the lowerer."""
+
+    def call(self, node: cst.Call, base: str, target: Var | None) -> Atom:
+        func = node.func
+        if self.numpy:
+            lowered = self.numpy_call(node, base, target)
+            if lowered is not None:
+                return lowered
+            if isinstance(func, cst.Name) and func.value == "len":
+                if len(node.args) == 1:
+                    array = self.expr(node.args[0].value, base, None)
+                    return self.emit(
+                        "len", (array,), target or self.new_var(base, "temp")
+                    )
+        if isinstance(func, cst.Name) and func.value not in self.index.module_names:
+            if func.value in ("len", "sum"):
+                return self.list_builtin(node, func.value, base, target)
+        if isinstance(func, cst.Name) and func.value in self.index.functions:
+            return self.user_call(node, func.value, base, target)
+        op = math_function_op(self.index, func)
+        if (
+            op is None
+            and isinstance(func, cst.Name)
+            and func.value in ("abs", "min", "max")
+        ):
+            if func.value not in self.index.module_names:
+                op = func.value
+        if op is None:
+            self.reject_call(func)
+        assert op is not None
+        for arg in node.args:
+            if arg.keyword is not None or arg.star:
+                fail(
+                    "keyword and starred arguments are not supported in this call",
+                    self.index.locate(arg),
+                )
+        spec = OPS[op]
+        count = len(node.args)
+        if op in ("min", "max"):
+            if count < 2:
+                fail(
+                    f"{op}() needs two or more numbers here",
+                    self.index.locate(node),
+                    f"write {op}(a, b, ...)",
+                )
+        elif count < spec.min_args or (
+            spec.max_args is not None and count > spec.max_args
+        ):
+            expected = (
+                str(spec.min_args)
+                if spec.max_args == spec.min_args
+                else (
+                    f"{spec.min_args} or more"
+                    if spec.max_args is None
+                    else f"{spec.min_args} to {spec.max_args}"
+                )
+            )
+            fail(
+                f"{spec.symbol}() takes {expected} arguments, not {count}",
+                self.index.locate(node),
+            )
+        args = tuple(
+            self.scalar(self.expr(a.value, base, None), a.value) for a in node.args
+        )
+        if op in ("min", "max"):
+            # min(a, b, c) == min(min(a, b), c), selecting the same element
+            acc = args[0]
+            for i, arg in enumerate(args[1:], start=2):
+                last = i == count
+                acc = self.emit(
+                    op,
+                    (acc, arg),
+                    (target if last and target else self.new_var(base, "temp")),
+                )
+            return acc
+        return self.emit(op, args, target or self.new_var(base, "temp"))
+
+    def list_builtin(
+        self, node: cst.Call, name: str, base: str, target: Var | None
+    ) -> Atom:
+        if len(node.args) != 1 or node.args[0].keyword or node.args[0].star:
+            fail(f"{name}() takes one list here", self.index.locate(node))
+        argument = self.expr(node.args[0].value, base, None)
+        self.as_list(argument)
+        if not (isinstance(argument, Var) and argument.shape == "list"):
+            fail(f"{name}() needs a list", self.index.locate(node.args[0].value))
+        return self.emit(name, (argument,), target or self.new_var(base, "temp"))
+
+    def user_call(
+        self, node: cst.Call, name: str, base: str, target: Var | None
+    ) -> Atom:
+        """A call to another function of the file; its gradient code is shared."""
+        if name in self.call_stack:
+            fail(
+                f"'{name}' is called recursively ({' -> '.join(self.call_stack)} ->"
+                f" {name}): recursion is not supported",
+                self.index.locate(node.func),
+                "rewrite the recursion as a loop",
+            )
+        callee = self.index.functions[name]
+        if _returns_tuple(callee):
+            fail(
+                f"'{name}' returns a tuple: helpers called by the model must return"
+                " one number",
+                self.index.locate(node.func),
+                "call a helper for each output, or differentiate it on its own",
+            )
+        params = callee.params
+        if (
+            params.star_arg not in (None, cst.MaybeSentinel.DEFAULT)
+            or params.star_kwarg
+        ):
+            fail(f"'{name}' takes *args or **kwargs", self.index.locate(node.func))
+        declared = [*params.posonly_params, *params.params, *params.kwonly_params]
+        positional_limit = len(params.posonly_params) + len(params.params)
+        slots: dict[str, cst.BaseExpression] = {}
+        for position, arg in enumerate(node.args):
+            if arg.star:
+                fail("starred arguments are not supported", self.index.locate(arg))
+            if arg.keyword is None:
+                if position >= positional_limit:
+                    fail(f"too many arguments for '{name}'", self.index.locate(arg))
+                slots[declared[position].name.value] = arg.value
+            else:
+                key = arg.keyword.value
+                if key in slots:
+                    fail(
+                        f"'{key}' is given twice in the call to '{name}'",
+                        self.index.locate(arg),
+                    )
+                if key not in {p.name.value for p in declared}:
+                    fail(
+                        f"'{name}' has no parameter '{key}'",
+                        self.index.locate(arg),
+                        f"parameters: {', '.join(p.name.value for p in declared)}",
+                    )
+                slots[key] = arg.value
+        list_params = _callee_list_uses(callee)
+        args: list[Atom] = []
+        for param in declared:
+            given = slots.get(param.name.value)
+            if given is None:
+                given = param.default
+            if given is None:
+                fail(
+                    f"missing argument '{param.name.value}' in the call to '{name}'",
+                    self.index.locate(node),
+                )
+            assert given is not None
+            if param.name.value in list_params:
+                fail(
+                    f"'{name}' takes a list ('{param.name.value}'): passing lists to"
+                    " helper functions is not supported",
+                    self.index.locate(given),
+                    "index the list in the caller and pass the numbers",
+                )
+            args.append(self.scalar(self.expr(given, base, None), given))
+        self.callees[name] = None
+        return self.emit(
+            f"call:{name}", tuple(args), target or self.new_var(base, "temp")
+        )
+
+    def reject_call(self, func: cst.BaseExpression) -> None:
+        loc = self.index.locate(func)
+        if isinstance(func, cst.Attribute) and isinstance(func.value, cst.Name):
+            if func.value.value in self.index.math_modules:
+                fail(
+                    f"math.{func.attr.value} is not supported",
+                    loc,
+                    "see the supported-subset table in the README",
+                )
+        if isinstance(func, cst.Name):
+            name = func.value
+            if name == "range":
+                fail(
+                    "range() is supported only as the iterable of a for-loop",
+                    loc,
+                )
+            if name in self.index.math_names:
+                fail(f"math.{self.index.math_names[name]} is not supported", loc)
+        fail(
+            "unsupported call",
+            loc,
+            "models call math functions, abs, min, max, len, sum and functions"
+            " defined in the same file",
+        )

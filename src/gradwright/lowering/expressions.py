@@ -1,0 +1,303 @@
+"""Lowering expressions: operators, comparisons, and/or, conditionals, names."""
+
+from __future__ import annotations
+
+import libcst as cst
+
+from gradwright.calculus.primitives import BINARY_OPERATORS, MATH_CONSTANTS
+from gradwright.diagnostics import fail
+from gradwright.ir import (
+    Atom,
+    Branch,
+    Const,
+    Let,
+    Phi,
+    Var,
+)
+from gradwright.lowering.base import (
+    _TRUTH_OPS,
+    _Unbound,
+)
+from gradwright.lowering.frontend import (
+    literal_value,
+)
+from gradwright.lowering.syntax import (
+    _BINARY_SYMBOLS,
+    _COMPARE_OPS,
+    _EXPRESSION_REJECTIONS,
+    _normalize_number,
+)
+
+
+class ExpressionLowering:
+    """Part of the lowering (see ``ssa._Lowerer``); state lives on the lowerer."""
+
+    # -- expressions --------------------------------------------------------------
+
+    def expr(self, node: cst.BaseExpression, base: str, target: Var | None) -> Atom:
+        """Lower ``node``; its outermost primitive defines ``target`` when given."""
+        if isinstance(node, (cst.Integer, cst.Float)):
+            return Const(_normalize_number(node.value), literal_value(node))
+        if isinstance(node, cst.Name):
+            return self.read_name(node)
+        if isinstance(node, cst.Attribute):
+            if self.numpy and not (
+                isinstance(node.value, cst.Name)
+                and node.value.value in self.index.math_modules
+            ):
+                return self.numpy_attribute(node, base, target)
+            return self.attribute(node)
+        if isinstance(node, cst.UnaryOperation):
+            return self.unary(node, base, target)
+        if isinstance(node, cst.BinaryOperation):
+            return self.binary(node, base, target)
+        if isinstance(node, cst.Call):
+            return self.call(node, base, target)
+        if isinstance(node, cst.Comparison):
+            return self.comparison(node, base, target)
+        if isinstance(node, cst.BooleanOperation):
+            return self.boolean(node, base, target)
+        if isinstance(node, cst.IfExp):
+            return self.conditional(node, base, target)
+        if isinstance(node, cst.Subscript) and self.numpy:
+            return self.numpy_subscript(node, base, target)
+        if isinstance(node, cst.Subscript):
+            container = self.expr(node.value, base, None)
+            self.as_list(container)
+            if not (isinstance(container, Var) and container.shape == "list"):
+                fail("only lists can be indexed", self.index.locate(node.value))
+            index = self.subscript_index(node)
+            return self.emit(
+                "getitem", (container, index), target or self.new_var(base, "temp")
+            )
+        if isinstance(node, cst.List) or (
+            isinstance(node, cst.Tuple)
+            and target is not None
+            and target.shape == "list"
+        ):
+            if target is None or target.shape != "list":
+                fail(
+                    "a list literal can only be assigned to a name",
+                    self.index.locate(node),
+                )
+            elements = tuple(
+                self.scalar(self.expr(el.value, base, None), el.value)
+                for el in node.elements
+            )
+            return self.emit("listlit", elements, target)  # type: ignore[arg-type]
+        message, hint = _EXPRESSION_REJECTIONS.get(
+            type(node), (f"{type(node).__name__} expressions are not supported", None)
+        )
+        fail(message, self.index.locate(node), hint)
+        raise AssertionError  # unreachable
+
+    def binary(self, node: cst.BinaryOperation, base: str, target: Var | None) -> Atom:
+        symbol = _BINARY_SYMBOLS[type(node.operator)]
+        op = BINARY_OPERATORS.get(symbol)
+        if symbol == "@" and self.numpy:
+            op = "matmul"
+        if op is None:
+            fail(
+                f"the {symbol} operator is not supported on numbers here",
+                self.index.locate(node.operator),
+                "supported: + - * / // % **",
+            )
+        assert op is not None
+        if op == "mul" and (
+            isinstance(node.left, cst.List) or isinstance(node.right, cst.List)
+        ):
+            # [fill] * n: a new list of n copies of one number
+            literal, count = (
+                (node.left, node.right)
+                if isinstance(node.left, cst.List)
+                else (node.right, node.left)
+            )
+            if len(literal.elements) != 1 or target is None:  # type: ignore[union-attr]
+                fail(
+                    "only `[value] * n`, assigned to a name, builds a list",
+                    self.index.locate(node),
+                )
+            fill_node = literal.elements[0].value  # type: ignore[union-attr]
+            fill = self.scalar(self.expr(fill_node, base, None), literal)
+            size = self.scalar(self.expr(count, base, None), count)
+            return self.emit("newlist", (fill, size), target)  # type: ignore[arg-type]
+        left = self.scalar(self.expr(node.left, base, None), node.left)
+        right = self.scalar(self.expr(node.right, base, None), node.right)
+        return self.emit(op, (left, right), target or self.new_var(base, "temp"))
+
+    def comparison(self, node: cst.Comparison, base: str, target: Var | None) -> Atom:
+        left = self.scalar(self.expr(node.left, base, None), node.left)
+        results: list[Atom] = []
+        for position, part in enumerate(node.comparisons):
+            op = _COMPARE_OPS.get(type(part.operator))
+            if op is None:
+                fail(
+                    "only < <= > >= == != comparisons are supported",
+                    self.index.locate(part.operator),
+                )
+            assert op is not None
+            right = self.scalar(self.expr(part.comparator, base, None), part.comparator)
+            last = position == len(node.comparisons) - 1 and len(node.comparisons) == 1
+            results.append(
+                self.emit(
+                    op,
+                    (left, right),
+                    (target if last and target else self.new_var(base, "temp")),
+                )
+            )
+            left = right
+        combined = results[0]
+        for i, item in enumerate(results[1:], start=2):
+            last = i == len(results)
+            combined = self.emit(
+                "and",
+                (combined, item),
+                target if last and target else self.new_var(base, "temp"),
+            )
+        return combined
+
+    def boolean(
+        self, node: cst.BooleanOperation, base: str, target: Var | None
+    ) -> Atom:
+        """``a and b`` / ``a or b``.
+
+        Between truth values (comparisons, not, and, or) it is a logic primitive
+        with no derivative. Otherwise it selects one operand, and the right one is
+        evaluated only when needed: ``b if a else a`` (and), ``a if a else b`` (or),
+        a branch like a conditional expression, so adjoints flow to the operand
+        it picked.
+        """
+        is_and = isinstance(node.operator, cst.And)
+        left = self.scalar(self.expr(node.left, base, None), node.left)
+        self.blocks.append([])
+        right = self.scalar(self.expr(node.right, base, None), node.right)
+        right_block = self.blocks.pop()
+        if (
+            self.is_truth(left)
+            and self.is_truth(right)
+            and all(isinstance(s, Let) and s.op in _TRUTH_OPS for s in right_block)
+        ):
+            # comparisons cannot raise, so evaluating the right side always is safe
+            self.blocks[-1].extend(right_block)
+            op = "and" if is_and else "or"
+            return self.emit(op, (left, right), target or self.new_var(base, "temp"))
+        result = target or self.new_var(base, "temp")
+        merge = Phi(result, right, left) if is_and else Phi(result, left, right)
+        then_block, else_block = (right_block, []) if is_and else ([], right_block)
+        self.blocks[-1].append(
+            Branch(left, tuple(then_block), tuple(else_block), (merge,), self.origin)
+        )
+        return result
+
+    def is_truth(self, atom: Atom) -> bool:
+        """Whether a value is a truth value made by a comparison or logic."""
+        return isinstance(atom, Var) and atom in self.truth_values
+
+    def conditional(self, node: cst.IfExp, base: str, target: Var | None) -> Atom:
+        """``a if c else b`` evaluates only the side it picks: a branch."""
+        condition = self.condition(node.test)
+        self.blocks.append([])
+        then_value = self.scalar(self.expr(node.body, base, None), node.body)
+        then_block = self.blocks.pop()
+        self.blocks.append([])
+        else_value = self.scalar(self.expr(node.orelse, base, None), node.orelse)
+        else_block = self.blocks.pop()
+        result = target or self.new_var(base, "temp")
+        self.blocks[-1].append(
+            Branch(
+                condition,
+                tuple(then_block),
+                tuple(else_block),
+                (Phi(result, then_value, else_value),),
+                self.origin,
+            )
+        )
+        return result
+
+    def read_name(self, node: cst.Name) -> Atom:
+        name = node.value
+        if name in self.env:
+            bound = self.env[name]
+            if isinstance(bound, _Unbound):
+                fail(bound.message, self.index.locate(node), bound.hint)
+            return bound  # type: ignore[return-value]
+        if name in self.local_names:
+            fail(
+                f"'{name}' is used before it is assigned",
+                self.index.locate(node),
+                "assign it earlier in the function",
+            )
+        if name in self.index.constants:
+            self.constants_read[name] = None
+            return Const(name, None)
+        imported = self.index.math_names.get(name)
+        if imported in MATH_CONSTANTS:
+            return Const(f"math.{imported}", MATH_CONSTANTS[imported])
+        if name in ("True", "False", "None"):
+            fail(f"{name} is not a number", self.index.locate(node))
+        if name in self.index.functions or imported is not None:
+            fail(
+                f"'{name}' is a function: call it",
+                self.index.locate(node),
+            )
+        if name in self.index.module_names:
+            fail(
+                f"'{name}' is not a numeric module-level constant",
+                self.index.locate(node),
+                "models may read module-level names bound once to a number, such as"
+                " `GRAVITY = 9.80665`",
+            )
+        fail(
+            f"name '{name}' is not defined",
+            self.index.locate(node),
+            "a model reads its parameters, its own variables, math, and module-level"
+            " numeric constants",
+        )
+        raise AssertionError  # unreachable
+
+    def attribute(self, node: cst.Attribute) -> Atom:
+        if (
+            isinstance(node.value, cst.Name)
+            and node.value.value in self.index.math_modules
+        ):
+            if node.attr.value in MATH_CONSTANTS:
+                return Const(f"math.{node.attr.value}", MATH_CONSTANTS[node.attr.value])
+            fail(
+                f"math.{node.attr.value} is not a supported constant",
+                self.index.locate(node),
+                "supported: " + ", ".join(f"math.{c}" for c in MATH_CONSTANTS),
+            )
+        fail(
+            "attribute access is not supported",
+            self.index.locate(node),
+            "models read plain names; math functions and constants are the exception",
+        )
+        raise AssertionError  # unreachable
+
+    def unary(self, node: cst.UnaryOperation, base: str, target: Var | None) -> Atom:
+        operator = node.operator
+        if isinstance(operator, (cst.Minus, cst.Plus)):
+            if isinstance(node.expression, (cst.Integer, cst.Float)) and not (
+                node.expression.lpar
+            ):
+                # a negative literal is one constant, not an operation
+                sign = "-" if isinstance(operator, cst.Minus) else ""
+                value = literal_value(node.expression)
+                return Const(
+                    sign + _normalize_number(node.expression.value),
+                    -value if sign else value,
+                )
+            operand = self.expr(node.expression, base, None)
+            operand = self.scalar(operand, node.expression)
+            op = "neg" if isinstance(operator, cst.Minus) else "pos"
+            return self.emit(op, (operand,), target or self.new_var(base, "temp"))
+        if isinstance(operator, cst.Not):
+            operand = self.scalar(
+                self.expr(node.expression, base, None), node.expression
+            )
+            return self.emit("not", (operand,), target or self.new_var(base, "temp"))
+        fail(
+            "this unary operator is not supported on numbers",
+            self.index.locate(node),
+        )
+        raise AssertionError  # unreachable

@@ -1,0 +1,226 @@
+"""Lowering statements: sequences, simple statements, returns, and ifs
+(the statements after an if that may return go into each path that falls through)."""
+
+from __future__ import annotations
+
+import libcst as cst
+
+from gradwright.diagnostics import fail
+from gradwright.ir import (
+    Atom,
+    Branch,
+    Phi,
+    Var,
+)
+from gradwright.lowering.base import (
+    _RESULT,
+    _Unbound,
+)
+from gradwright.lowering.syntax import (
+    _STATEMENT_REJECTIONS,
+    _always_returns,
+    _block_statements,
+    _else_statements,
+    _keyword_span,
+    _may_return,
+    _statement_text,
+)
+
+
+class StatementLowering:
+    """Part of the lowering (see ``ssa._Lowerer``); state lives on the lowerer."""
+
+    # -- statements ---------------------------------------------------------------
+
+    def sequence(
+        self,
+        statements: list[cst.CSTNode],
+        after: tuple[list[cst.CSTNode], ...] = (),
+    ) -> bool:
+        """Lower statements in order; True when every path through them returned.
+
+        ``after`` is what runs next on paths that fall through (the statements
+        after enclosing ``if``s that have a return in them), innermost first: an
+        ``if`` that may return takes the rest into each of its branches, so that
+        it runs only on the paths that did not return.
+        """
+        for position, stmt in enumerate(statements):
+            if isinstance(stmt, cst.If):
+                if not _may_return([stmt]):
+                    self.if_statement(stmt, (), "if")
+                    continue
+                if _always_returns([stmt]) and position + 1 < len(statements):
+                    self.unreachable(statements[position + 1])
+                local = list(statements[position + 1 :])
+                return self.if_statement(
+                    stmt, ((local,) if local else ()) + after, "if"
+                )
+            if isinstance(stmt, cst.For):
+                self.for_statement(stmt)
+                continue
+            self.set_origin(_statement_text(self.index, stmt))
+            if self.statement(stmt):
+                if position + 1 < len(statements):
+                    self.unreachable(statements[position + 1])
+                return True
+        return self.sequence(after[0], after[1:]) if after else False
+
+    def unreachable(self, stmt: cst.CSTNode) -> None:
+        fail(
+            "code after the return statement is never run",
+            self.index.locate(stmt),
+            "remove it, or move the return to the end",
+        )
+
+    def statement(self, stmt: cst.CSTNode) -> bool:
+        """Lower one simple statement; True for a return."""
+        if isinstance(stmt, cst.Pass):
+            return False
+        if isinstance(stmt, cst.Return):
+            self.return_statement(stmt)
+            return True
+        if isinstance(stmt, cst.Assign):
+            self.bind_targets([t.target for t in stmt.targets], stmt.value)
+            return False
+        if isinstance(stmt, cst.AnnAssign):
+            if stmt.value is None:
+                fail(
+                    "an annotation without a value binds nothing",
+                    self.index.locate(stmt),
+                )
+            assert stmt.value is not None
+            self.bind_targets([stmt.target], stmt.value)
+            return False
+        if isinstance(stmt, cst.AugAssign):
+            self.augmented(stmt)
+            return False
+        if isinstance(stmt, cst.Expr):
+            fail(
+                "an expression statement has no effect on the result",
+                self.index.locate(stmt),
+                "assign the value to a name, or remove the statement",
+            )
+        if isinstance(stmt, (cst.Break, cst.Continue)) and self.loop_depth:
+            word = "break" if isinstance(stmt, cst.Break) else "continue"
+            fail(
+                f"{word} is not supported (the reverse sweep needs every loop to run"
+                " its full trip count)",
+                self.index.locate(stmt),
+                "guard the rest of the body with an if instead",
+            )
+        message, hint = _STATEMENT_REJECTIONS.get(
+            type(stmt), (f"{type(stmt).__name__} statements are not supported", None)
+        )
+        fail(message, self.index.locate(_keyword_span(stmt)), hint)
+        return False
+
+    def return_statement(self, stmt: cst.Return) -> None:
+        value = stmt.value
+        if value is None:
+            fail("return without a value: there is no result", self.index.locate(stmt))
+        assert value is not None
+        if self.loop_depth:
+            fail(
+                "return inside a loop is not supported (the loop must run its full"
+                " trip count)",
+                self.index.locate(stmt),
+                "keep the result in a variable and return it after the loop",
+            )
+        elements = (
+            [el.value for el in value.elements]
+            if isinstance(value, cst.Tuple)
+            else [value]
+        )
+        arity = -len(elements) if isinstance(value, cst.Tuple) else 1
+        if self.result_arity is not None and arity != self.result_arity:
+            fail(
+                "every return must give the same number of values",
+                self.index.locate(value),
+            )
+        self.result_arity = arity
+        self.return_origins.append(self.origin)
+        atoms = []
+        for element in elements:
+            target = self.new_var("value", "local")
+            atoms.append(self.scalar(self.expr(element, "value", target), element))
+        for i, atom in enumerate(atoms):
+            self.env[f"{_RESULT}{i}"] = atom
+
+    # -- branches -----------------------------------------------------------------
+
+    def condition(self, test: cst.BaseExpression) -> Atom:
+        return self.scalar(self.expr(test, "cond", None), test)
+
+    def if_statement(
+        self, node: cst.If, rest: tuple[list[cst.CSTNode], ...], keyword: str
+    ) -> bool:
+        """Lower an if, with ``rest`` lowered into each branch that falls through;
+        True when every path returned."""
+        self.set_origin(f"{keyword} {_statement_text(self.index, node.test)}:")
+        origin = self.origin
+        condition = self.condition(node.test)
+        before = dict(self.env)
+        self.blocks.append([])
+        returned_then = self.sequence(_block_statements(node.body), rest)
+        then_block, then_env = self.blocks.pop(), self.env
+        self.env = dict(before)
+        self.blocks.append([])
+        if isinstance(node.orelse, cst.If):
+            returned_else = self.if_statement(node.orelse, rest, "elif")
+        else:
+            returned_else = self.sequence(_else_statements(node), rest)
+        else_block, else_env = self.blocks.pop(), self.env
+        self.env = dict(before)
+        merges = self.merge(before, then_env, else_env, returned_then, returned_else)
+        self.origin = origin
+        self.blocks[-1].append(
+            Branch(condition, tuple(then_block), tuple(else_block), merges, origin)
+        )
+        return returned_then and returned_else
+
+    def merge(
+        self,
+        before: dict[str, Atom | _Unbound],
+        then_env: dict[str, Atom | _Unbound],
+        else_env: dict[str, Atom | _Unbound],
+        then_returned: bool,
+        else_returned: bool,
+    ) -> tuple[Phi, ...]:
+        names = list(dict.fromkeys([*before, *then_env, *else_env]))
+        merges: list[Phi] = []
+        for name in names:
+            is_result = name.startswith(_RESULT)
+            if (then_returned or else_returned) and not is_result:
+                continue  # only the result leaves a path that returned
+            a, b = then_env.get(name), else_env.get(name)
+            if a is b and a is not None:
+                self.env[name] = a
+                continue
+            if (
+                a is None
+                or b is None
+                or isinstance(a, _Unbound)
+                or isinstance(b, _Unbound)
+            ):
+                self.env[name] = _Unbound(
+                    f"'{name}' is assigned in only one branch of an if and not before"
+                    " it",
+                    "assign it before the if, or in every branch",
+                )
+                continue
+            shape = a.shape if isinstance(a, Var) else "scalar"
+            if shape == "list" and self.root_of(a) != self.root_of(b):  # type: ignore[arg-type]
+                self.env[name] = _Unbound(
+                    f"'{name}' names a different list on each path of an if",
+                    "make the list once before the if and assign its elements"
+                    f" ({name}[i] = ...) in each branch",
+                )
+                continue
+            target = self.new_var("value" if is_result else name, "local", shape)
+            merges.append(Phi(target, a, b))
+            if shape == "list":
+                self.list_root[target] = self.root_of(a)  # type: ignore[arg-type]
+            if self.is_fresh(a) and self.is_fresh(b):
+                self.fresh.add(target)
+            self.env[name] = target
+        return tuple(merges)
