@@ -59,7 +59,7 @@ PROFILE = os.environ.get("GRADWRIGHT_RANDOM_PROFILE", "ci")
 LONG = PROFILE == "long"
 LONG_EXAMPLES = int(os.environ.get("GRADWRIGHT_RANDOM_EXAMPLES", "3000"))
 FAILURE_LOG = os.environ.get("GRADWRIGHT_RANDOM_FAILURES", "")
-SHRINK_PER_SIGNATURE = 3  # long profile: shrink this many failures of each kind
+SHRINK_PER_SIGNATURE = 5  # long profile: shrink this many failures of each kind
 
 # family -> (knobs, or None for NumPy programs; CI example count)
 FAMILIES: dict[str, tuple[Knobs | None, int]] = {
@@ -138,13 +138,16 @@ class Stats:
     tags: Counter = field(default_factory=Counter)
     shrunk: list = field(default_factory=list)
     seconds: float = 0.0
+    worst: float = 0.0  # largest error / (|r_j| + FLOOR * S) of the compared
+    first_failure: int = 0  # the example number of the first failure
 
     def line(self, name: str) -> str:
         return (
             f"{name:14s} programs {self.programs:6d} compared {self.compared:6d}"
             f" nonzero {self.nonzero:6d} rejected {self.rejected:4d}"
             f" expected {sum(self.expected.values()):4d}"
-            f" failures {sum(self.failures.values()):5d} ({self.seconds:.0f} s)"
+            f" failures {sum(self.failures.values()):5d} worst {self.worst:.1e}"
+            f" ({self.seconds:.0f} s)"
         )
 
 
@@ -162,6 +165,8 @@ def _report(case: Case, args: list, outcome) -> str:
 def check_case(case: Case, stats: Stats) -> None:
     """One example: place the point, compare, count; fail (CI) or log (long)."""
     stats.programs += 1
+    if LONG and stats.programs % 250 == 0:
+        print(f"\n  ... {stats.line(case.family)}", flush=True)
     stats.tags.update(case.program.tags())
     args = place_point(case)
     if args is None:
@@ -174,10 +179,15 @@ def check_case(case: Case, stats: Stats) -> None:
     if outcome.status == "ok":
         stats.compared += 1
         stats.nonzero += outcome.nonzero
+        stats.worst = max(stats.worst, outcome.worst)
         return
     stats.failures[outcome.signature] += 1
+    stats.first_failure = stats.first_failure or stats.programs
     if not LONG:
-        raise AssertionError(_report(case, args, outcome))
+        raise AssertionError(
+            f"(first failure at example {stats.first_failure})\n"
+            + _report(case, args, outcome)
+        )
     if stats.failures[outcome.signature] <= SHRINK_PER_SIGNATURE:
         small, small_args = shrink(case, args, outcome.signature)
         stats.shrunk.append(_report(small, small_args, evaluate(small, small_args)))
