@@ -308,3 +308,64 @@ def test_unsafe_sharing_falls_back_to_one_name_per_value(monkeypatch):
     assert len(failures) <= 1
     _, (x_bar,) = module["f_grad"](0.5, 1.0)
     assert x_bar == 3 * 0.5**2  # a = x**3 on this side: 3x^2, closed form
+
+
+def test_inner_trip_count_read_from_a_list():
+    """The saved list of an inner loop is sized by the bound the forward sweep
+    has (it raised UnboundLocalError)."""
+    source = """
+def f(a, ns):
+    x = a
+    for k in range(len(ns)):
+        for s in range(ns[k]):
+            x = x * a
+    return x
+"""
+    module = build(source, "f", ["a"])
+    ns = [1, 2, 0, 3]
+    value, (a_bar,) = module["f_grad"](0.9, ns)
+    power = 1 + sum(ns)  # x = a**(1 + sum(ns)): closed form
+    assert rel_err(value, 0.9**power) < 1e-14
+    assert rel_err(a_bar, power * 0.9 ** (power - 1)) < 1e-13
+
+
+@pytest.mark.parametrize(
+    ("helper", "call"),
+    [
+        ("def normalize(z):\n    return z / np.sum(z)", "normalize(z)"),
+        ("def dense(x, W, b):\n    return np.tanh(x @ W + b)", "dense(z, W, c)"),
+    ],
+)
+def test_array_helper_that_is_not_elementwise_is_a_located_error(helper, call):
+    """Its partials would have stood for its derivative: a silent wrong gradient
+    (normalize gave [0, 0, 0]) or a broadcasting error at run time."""
+    source = f"import numpy as np\n{helper}\ndef f(z, c, W):\n"
+    source += f"    return np.sum({call} * c)\n"
+    with pytest.raises(GradwrightError) as error:
+        gradwright.generate(source, ["f"], wrt=["z"])
+    text = str(error.value)
+    assert "does not work element by element" in text
+    assert "<string>:5:19:" in text
+    assert "hint: write the body of" in text
+
+
+def test_elementwise_array_helper_with_a_broadcast_operand():
+    import numpy as np
+
+    source = """
+import numpy as np
+def act(u, b):
+    return np.tanh(u + b) * 2.0
+def f(X, w, b):
+    return np.sum(act(X @ w, b) ** 2)
+"""
+    module = build(source, "f", ["w", "b"])
+    rng = np.random.default_rng(1)
+    X, w, b = rng.normal(size=(5, 3)), rng.normal(size=3), np.array([0.3])
+    _, (w_bar, b_bar) = module["f_grad"](X, w, b)
+    # closed form: act = 2 tanh(s), s = Xw + b; d/ds act**2 = 2 act * 2 (1 - tanh**2)
+    t = np.tanh(X @ w + b)
+    ds = 2 * (2 * t) * 2 * (1 - t**2)
+    np.testing.assert_allclose(w_bar, X.T @ ds, rtol=1e-13)
+    np.testing.assert_allclose(b_bar, [ds.sum()], rtol=1e-13)
+    assert b_bar.shape == b.shape

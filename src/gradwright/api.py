@@ -10,6 +10,7 @@ from contextlib import contextmanager
 
 import libcst as cst
 
+from gradwright.calculus.rules import ELEMENTWISE_OPS
 from gradwright.diagnostics import GradwrightError, fail, file_location
 from gradwright.emission.module import Compiled, render_module
 from gradwright.emission.targets import DEFAULT_TARGET, get_target
@@ -23,7 +24,12 @@ from gradwright.lowering.frontend import (
 )
 from gradwright.lowering.ssa import lower
 from gradwright.sweeps.optimize import inline_adjoints, reuse_forward_values
-from gradwright.sweeps.reverse import active_values, defined_in, reverse_sweep
+from gradwright.sweeps.reverse import (
+    active_values,
+    defined_in,
+    reverse_sweep,
+    walk_lets,
+)
 
 
 def compile_function(
@@ -40,7 +46,10 @@ def compile_function(
         seeds = tuple(
             Var(first + k, f"seed_{k}", "param") for k in range(len(ssa.result.values))
         )
-    sweep = reverse_sweep(ssa, checked.wrt, seeds, numpy=bool(index.numpy_modules))
+    # a helper's partials stay at the broadcast shape of its result: each call
+    # site sums them back to its own operands' shapes
+    broadcasting = bool(index.numpy_modules) and not call_stack
+    sweep = reverse_sweep(ssa, checked.wrt, seeds, numpy=broadcasting)
     if len(sweep.unused_wrt) == len(sweep.wrt) and not call_stack:
         fail(
             f"the result of '{name}' does not depend differentiably on "
@@ -79,7 +88,71 @@ def compile_with_callees(
         compiled.append(item)
         pending += [(callee, c) for c in item.ssa.callees]
     _reject_cycles(index, compiled)
+    if index.numpy_modules:
+        _reject_array_helpers(index, compiled, set(names))
     return compiled
+
+
+#: primitives on truth values and copies, elementwise on arrays too
+_ELEMENTWISE_EXTRA = frozenset(
+    {"lt", "le", "gt", "ge", "eq", "ne", "and", "or", "not", "copy"}
+)
+
+
+def _reject_array_helpers(
+    index: ModuleIndex, compiled: list[Compiled], targets: set[str]
+) -> None:
+    """In an array model, a helper's partials are exact only when the helper works
+    element by element; a call to any other helper is a located error (its
+    reverse would need the helper's vector-Jacobian product, not partials). A
+    listed function's gradient sums over broadcasting, so it cannot serve as a
+    helper's partials either."""
+    by_name = {c.ssa.name: c for c in compiled}
+    verdicts: dict[str, bool] = {}
+
+    def elementwise(name: str) -> bool:
+        if name not in verdicts:
+            verdicts[name] = False  # no recursion reaches here (rejected before)
+            ops = {let.op for let in walk_lets(by_name[name].ssa.body)}
+            verdicts[name] = all(
+                op in ELEMENTWISE_OPS
+                or op in _ELEMENTWISE_EXTRA
+                or (op.startswith("call:") and elementwise(op.removeprefix("call:")))
+                for op in ops
+            )
+        return verdicts[name]
+
+    for item in compiled:
+        for callee in item.ssa.callees:
+            if callee in targets:
+                fail(
+                    f"'{callee}' is both differentiated on its own and called by"
+                    f" '{item.ssa.name}': in an array model its gradient cannot also"
+                    " serve the call",
+                    index.locate(_first_call(item.checked, callee)),
+                    f"generate '{callee}' in a run of its own",
+                )
+            if not elementwise(callee):
+                fail(
+                    f"'{callee}' does not work element by element (it reduces,"
+                    " indexes or multiplies matrices), so its partial derivatives"
+                    " cannot stand for its derivative in an array model",
+                    index.locate(_first_call(item.checked, callee)),
+                    f"write the body of '{callee}' into '{item.ssa.name}' where it"
+                    " is called",
+                )
+
+
+def _first_call(checked: CheckedFunction, callee: str) -> cst.CSTNode:
+    found: list[cst.CSTNode] = []
+
+    class Calls(cst.CSTVisitor):
+        def visit_Call(self, node: cst.Call) -> None:
+            if isinstance(node.func, cst.Name) and node.func.value == callee:
+                found.append(node)
+
+    checked.node.visit(Calls())
+    return found[0] if found else checked.node.name
 
 
 def _reject_cycles(index: ModuleIndex, compiled: list[Compiled]) -> None:

@@ -279,3 +279,12 @@ ARRAY_OPS: frozenset[str] = frozenset(
     {k for k in RULES if k.startswith("np.")} | {"matmul", "T", "reshape", "npindex"}
 )
 SCALAR_OPS: frozenset[str] = frozenset(set(RULES) - ARRAY_OPS)
+
+#: primitives whose every output element depends only on the same element of each
+#: operand (after broadcasting): a helper made only of these has elementwise
+#: partials, so the caller's reverse sweep may multiply by them
+ELEMENTWISE_OPS: frozenset[str] = (
+    SCALAR_OPS
+    | {f"np.{name}" for name in _SHARED}
+    | {"np.tanh", "np.square", "np.where", "np.clip"}
+)

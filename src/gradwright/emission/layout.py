@@ -678,18 +678,16 @@ class Layout:
             position = Apply("floordiv", (position, step))
         return self.expr(position)
 
-    def trip_count(self, loop: Loop) -> str:
+    def trip_count(self, loop: Loop, folded: dict[Var, Expr]) -> tuple[str, Expr]:
+        """A saved list's allocation before the forward ``loop``, and the
+        expression it reads (the bounds as the forward sweep has them)."""
         if _is_const(loop.start, 0) and _is_const(loop.step, 1):
-            return self.expr(
-                Apply(
-                    "mul",
-                    (
-                        Apply("listlit", (const(0.0),)),
-                        self.cheap(loop.stop, everywhere=True),
-                    ),
-                )
-            )
-        return f"[0.0] * len(range({self.range_args(loop)}))"
+            stop = self.atom_expr(loop.stop, folded)
+            return self.expr(Apply("mul", (Apply("listlit", (const(0.0),)), stop))), stop
+        bounds = Apply(
+            "listlit", tuple(self.atom_expr(b, folded) for b in _bounds(loop))
+        )
+        return f"[0.0] * len(range({self.range_args(loop, folded)}))", bounds
 
 
 def _first_write_of(statements: list[ReverseStmt], var: Atom) -> AdjointAssign | None:
@@ -744,6 +742,10 @@ def _walk_values(expr: Expr) -> Iterator[Expr]:
             yield from _walk_values(arg)
     else:
         yield expr
+
+
+def _bounds(loop: Loop) -> tuple[Atom, Atom, Atom]:
+    return (loop.start, loop.stop, loop.step)
 
 
 def _is_const(atom: Expr, value: int) -> bool:

@@ -283,7 +283,9 @@ class _Emitter:
         for bound in bounds:
             self.reads(layout.atom_expr(bound, self.folded))
         for saved in layout.saved_lists(loop):
-            out.code(f"{saved} = {layout.trip_count(loop)}", depth)
+            trip, read = layout.trip_count(loop, self.folded)
+            out.code(f"{saved} = {trip}", depth)
+            self.reads(read)
             trace.write(saved, self.tape_key(loop, saved))
             if enclosing is not None:
                 slot = layout.slot(enclosing)

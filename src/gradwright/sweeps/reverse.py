@@ -56,15 +56,15 @@ def differentiable(op: str) -> bool:
     return op in RULES or op in _LIST_FLOW or op.startswith("call:")
 
 
-def _walk_lets(statements: Iterable[Stmt]) -> Iterable[Let]:
+def walk_lets(statements: Iterable[Stmt]) -> Iterable[Let]:
     for stmt in statements:
         if isinstance(stmt, Let):
             yield stmt
         elif isinstance(stmt, Branch):
-            yield from _walk_lets(stmt.then)
-            yield from _walk_lets(stmt.orelse)
+            yield from walk_lets(stmt.then)
+            yield from walk_lets(stmt.orelse)
         else:
-            yield from _walk_lets(stmt.body)
+            yield from walk_lets(stmt.body)
 
 
 def defined_in(statements: Iterable[Stmt]) -> set[Var]:
@@ -190,7 +190,7 @@ class _Reverse:
         self.carries: dict[Var, Var] = {}
         #: working out which values gain adjoint, the statements are thrown away
         self.dry = False
-        self.defs = {let.target: let for let in _walk_lets(function.body)}
+        self.defs = {let.target: let for let in walk_lets(function.body)}
         self.next_uid = 1 + max(
             [v.uid for v in function.params]
             + [v.uid for v in defined_in(function.body)]
@@ -278,7 +278,11 @@ class _Reverse:
         if op.startswith("call:"):
             for k, arg in enumerate(args):
                 partial = Apply("partial", (target, const(k)))
-                self.contribute(arg, Apply("mul", (g, partial)), origin, out)
+                total: Expr = Apply("mul", (g, partial))
+                if self.numpy and any(isinstance(a, Var) for a in args if a != arg):
+                    # an elementwise helper broadcasts its operands like `+`
+                    total = Apply("_gw_unbroadcast", (total, arg))
+                self.contribute(arg, total, origin, out)
             return
         parts = RULES[op](E(g), E(target), *(E(a) for a in args))
         grouped: dict[Var, Expr] = {}
