@@ -2,7 +2,7 @@
 # source: samples/fuel_hedge.py
 # source sha256: 0ea00fed34a5da6fdf8d79be718d957302aa63a99bc63f8c28269a24d0084725
 # command: gradwright gen samples/fuel_hedge.py call_value --wrt spot,vol,rate,years -o samples/fuel_hedge_grad.py
-# output sha256: eb202ee3aec685c0d4f843059cebfade40f15f65db77194abb7aa4f3d3db6460
+# output sha256: 9195a70ba29a8d4be76bcdbbbf0ea2796186f1668ad4e95442a11a1f044331d3
 
 import math
 from math import erf, exp, log, sqrt
@@ -52,11 +52,11 @@ def call_value_grad(spot, strike, vol, rate, years):
     n2_bar = -value_3
     value_4_bar = -n2 * strike * value_2
     years_bar = value_4_bar * value_1
-    rate_bar = -(value_4_bar * years)
+    rate_bar = -value_4_bar * years
     # n2 = 0.5 * (1.0 + erf(d2 / SQRT2))
-    d2_bar = n2_bar * 0.5641895835477563 * math.exp(-(n2_1 * n2_1)) / SQRT2
+    d2_bar = 0.5641895835477563 * n2_bar * math.exp(-n2_1 * n2_1) / SQRT2
     # n1 = 0.5 * (1.0 + erf(d1 / SQRT2))
-    d1_bar = spot * 0.5641895835477563 * math.exp(-(n1_1 * n1_1)) / SQRT2
+    d1_bar = 0.5641895835477563 * spot * math.exp(-n1_1 * n1_1) / SQRT2
     # d2 = d1 - vol * root_t
     d1_bar += d2_bar
     d2_1_bar = -d2_bar

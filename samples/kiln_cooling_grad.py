@@ -2,7 +2,7 @@
 # source: samples/kiln_cooling.py
 # source sha256: a06d7e41ceb820bdb9f7afefdfd582c36125c98be226eb56a6a555feac5b0ed6
 # command: gradwright gen samples/kiln_cooling.py kiln_loss --wrt k_conv,k_rad,start_temp -o samples/kiln_cooling_grad.py
-# output sha256: c68a6696f14112eebcd9ff3ed2770b778a79873eadf7ff4009cbf4893ca12476
+# output sha256: 68f555c344b34b325d659a652d7c8e79d76a6673a6cd5f30dcd1d1c5169cbfd2
 
 AMBIENT = 293.15  # kelvin
 SAFE_POINT = 700.0  # kelvin: below this the heater comes on
@@ -29,7 +29,7 @@ def cooling_rate_grad(temp, k_conv, k_rad):
     # return k_conv * excess + k_rad * (temp**4 - AMBIENT**4) * 1e-9
     k_conv_bar = excess
     k_rad_bar = 1e-09 * value_1
-    temp_bar = 1e-09 * k_rad * 4.0 * temp**3
+    temp_bar = 4e-09 * k_rad * temp**3
     # excess = temp - AMBIENT
     temp_bar += k_conv
     return value, (temp_bar, k_conv_bar, k_rad_bar)
@@ -102,7 +102,7 @@ def kiln_loss_grad(k_conv, k_rad, start_temp, readings, dt, steps_per_reading):
         for _ in reversed(range(steps_per_reading)):
             temp_1_partials = temp_1_partials_saved[_]
             # temp = temp + dt * (heating - cooling_rate(temp, k_conv, k_rad))
-            temp_1_bar = -(temp_bar * dt)
+            temp_1_bar = -temp_bar * dt
             temp_bar += temp_1_bar * temp_1_partials[0]
             k_conv_bar += temp_1_bar * temp_1_partials[1]
             k_rad_bar += temp_1_bar * temp_1_partials[2]

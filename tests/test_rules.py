@@ -27,6 +27,7 @@ import random
 from collections.abc import Callable
 from dataclasses import dataclass
 
+import mpmath
 import pytest
 import sympy
 from support import (
@@ -40,7 +41,12 @@ from support import (
     sympy_value,
 )
 
+import gradwright
+from gradwright.calculus import rules
+from gradwright.calculus.algebra import E, simplify
 from gradwright.calculus.rules import RULES, SCALAR_OPS
+from gradwright.emission.printer import Printer
+from gradwright.ir import Apply, Const, Expr, Var
 from gradwright.lowering.frontend import check_function, parse_module
 from gradwright.lowering.ssa import lower
 
@@ -160,6 +166,12 @@ CASES = [
     c("pow-negative-int-exponent", "pow", "x**-2 + y", both_signed(0.2, 3.0)),
     c("pow-float-exponent", "pow", "x**2.5 + y", POSITIVE),
     c("pow-half", "pow", "x**0.5 * y", POSITIVE),
+    # the rule's branches for a constant exponent (rules._constant_power)
+    c("pow-int-exponent-four", "pow", "x**4 * y", UNIT),
+    c("pow-fraction-below-one", "pow", "x**0.3 * y", POSITIVE),
+    c("pow-negative-float-exponent", "pow", "x**-1.5 + y", POSITIVE),
+    c("pow-minus-one", "pow", "x**-1 * y", both_signed(0.2, 3.0)),
+    c("pow-zero-exponent", "pow", "x**0 * y + x", UNIT),
     c("pow-named-exponent", "pow", "x**K * y", POSITIVE, prelude="K = 1.75"),
     c("pow-constant-base", "pow", "1.7**y * x", UNIT),
     c("pow-active-exponent", "pow", "x**y", box(0.2, 3.0, -2.0, 2.0)),
@@ -201,6 +213,8 @@ CASES = [
     c("log-active-base", "log", "math.log(x, y)", box(0.1, 10.0, 1.5, 10.0)),
     c("log-base-below-one", "log", "math.log(x, y)", box(0.1, 10.0, 0.1, 0.8)),
     c("log-constant-base", "log", "math.log(x, 10.0) * y", POSITIVE),
+    c("log-base-two", "log", "math.log(x, 2.0) * y", POSITIVE),
+    c("log-constant-base-below-one", "log", "math.log(x, 0.3) + y", POSITIVE),
     c("atan2", "atan2", "math.atan2(x, y)", both_signed(0.1, 5.0)),
     c("hypot-one-arg", "hypot", "math.hypot(x) * y", both_signed(0.1, 5.0)),
     c("hypot-two-args", "hypot", "math.hypot(x, y)", both_signed(0.1, 5.0)),
@@ -360,6 +374,18 @@ def _edge_error(expr: str, x: float) -> float:
         ("math.exp(x)", -700.0),
         ("math.sqrt(x)", 1e-300),
         ("math.cbrt(x)", -1e-300),
+        # rules._constant_power: p * out / x for p < 1 neither overflows nor loses
+        # digits to underflow; x**(p-1) is kept for p > 1 where out is subnormal
+        ("x**0.5", 1e-300),
+        ("x**0.5", 1e300),
+        ("x**0.3", 1e-320),
+        ("x**-2", 1e-100),
+        ("x**-2", -1e100),
+        ("x**-1.5", 1e-100),
+        ("x**-1.5", 1e100),
+        ("x**2.5", 1e-125),
+        ("x**3", 1e-100),
+        ("x**3", -1e100),
     ],
 )
 def test_rule_accurate_at_domain_edge(expr: str, x: float) -> None:
@@ -446,3 +472,83 @@ def test_rules_math_calls_survive_a_local_named_math(source: str) -> None:
     for i, grad in enumerate(grads):
         exact = mp_central_diff(f_mp, (0.5, 1.5), i)
         assert rel_err(grad, exact) <= TOLERANCE, "mpmath central difference"
+
+
+def test_power_rule_reads_out_instead_of_recomputing() -> None:
+    # rules._constant_power: no second pow for x**-2 and x**0.5 (issue 12)
+    source = "def f(x, y):\n    return x**-2 + y**0.5\n"
+    text = gradwright.generate(source, ["f"])
+    reverse = text.split("# reverse sweep")[1].splitlines()
+    code = [line for line in reverse if not line.lstrip().startswith("#")]
+    assert not any("**" in line for line in code), reverse
+
+
+@pytest.mark.parametrize(
+    ("name", "exact"),
+    [
+        ("LN2", mpmath.log(2)),
+        ("LN10", mpmath.log(10)),
+        ("TWO_OVER_SQRT_PI", 2 / mpmath.sqrt(mpmath.pi)),
+    ],
+)
+def test_rule_constants_are_correctly_rounded(name: str, exact: mpmath.mpf) -> None:
+    # rules.py writes these as literals; reference: mpmath at 50 digits
+    with mpmath.workdps(50):
+        value = getattr(rules, name)
+        assert abs(mpmath.mpf(value) - exact) <= math.ulp(value) / 2
+
+
+# ---------------------------------------------------------------------------------
+# algebra.simplify: the sign and constant rewrites give the same bits
+
+
+def _evaluate(expr: Expr, values: dict[str, float]) -> float:
+    if isinstance(expr, Const):
+        return float(expr.value)
+    if isinstance(expr, Var):
+        return values[expr.base]
+    assert isinstance(expr, Apply)
+    args = [_evaluate(a, values) for a in expr.args]
+    return {
+        "neg": lambda a: -a,
+        "add": lambda a, b: a + b,
+        "sub": lambda a, b: a - b,
+        "mul": lambda a, b: a * b,
+        "div": lambda a, b: a / b,
+    }[expr.op](*args)
+
+
+_A, _B, _C = (E(Var(k, name, "local")) for k, name in enumerate("abc"))
+SIMPLIFY_CASES = [
+    # (built expression, printed simplified form)
+    (-(-_A * _B), "a * b"),
+    (-(_A * _B), "-a * b"),
+    (-(_A.__neg__() * _B / _C * _A).__neg__(), "-a * b / c * a"),
+    (-(-_A * _B / _C * _A), "a * b / c * a"),
+    (_A - (-_B * _C), "a + b * c"),
+    (_A + (-_B * _C), "a - b * c"),
+    (_A * -_B, "-a * b"),
+    (2.0 * (3.0 * _A), "6.0 * a"),
+    (2.0 * (_A * 3.0), "6.0 * a"),
+    ((_A * 3.0) * 0.5, "1.5 * a"),
+    (0.25 * (4.0 / _A), "1.0 / a"),
+    # neither constant a power of two: merging would change the rounding
+    (3.0 * (5.0 * _A), "3.0 * (5.0 * a)"),
+    (_A * 1.0, "a"),
+    (0.0 + _A, "a"),
+    (-1.0 * _A, "-a"),
+    (_A * -1.0, "-a"),
+    (-(_A * _A), "-a * a"),
+    (_A - -2.0, "a + 2.0"),
+]
+
+
+@pytest.mark.parametrize(("built", "printed"), SIMPLIFY_CASES, ids=lambda v: str(v))
+def test_simplify_keeps_the_bits(built: E, printed: str) -> None:
+    simplified = simplify(built.node)
+    text = Printer(lambda v: v.base, lambda v: f"{v.base}_bar")(simplified)
+    assert text == printed
+    rng = random.Random(f"test_rules:simplify:{printed}")
+    for _ in range(200):
+        values = {n: signed(1e-3, 1e3, rng) for n in "abc"}
+        assert same_bits(_evaluate(simplified, values), _evaluate(built.node, values))

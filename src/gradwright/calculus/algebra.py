@@ -2,9 +2,17 @@
 
 :class:`E` wraps an :data:`~gradwright.ir.Expr` so the rule table can be written as
 ordinary arithmetic (``g * cos(x)``). :func:`simplify` folds the zeros, ones and
-constant arithmetic the rules produce once the seed or a constant argument is known.
-Every rewrite here is exact in IEEE arithmetic except dropping ``0 * x`` (which would
-be NaN for infinite x), the usual convention for adjoint contributions.
+constant arithmetic the rules produce once the seed or a constant argument is known,
+and keeps signs where a person would write them: a product or quotient carries at most
+one minus, on its leftmost factor (``-(-a * b)`` is ``a * b``, ``-(a * b)`` is
+``-a * b``), and ``a + -b`` is ``a - b``.
+
+Every rewrite here is exact in IEEE arithmetic (round to nearest is symmetric in sign,
+so moving a minus through ``*`` and ``/`` gives the same bits), except dropping
+``0 * x`` (which would be NaN for infinite x), the usual convention for adjoint
+contributions. Constant factors are merged only when one of them is a power of two,
+where the merged product gives the same bits (outside overflow and underflow); other
+constants stay where the rule put them, so no folding changes the rounding.
 """
 
 from __future__ import annotations
@@ -137,13 +145,47 @@ def _fold(op: str, a: float | int, b: float | int) -> Expr | None:
     return const(result)
 
 
-def _negate(expr: Expr) -> Expr:
+def _split_sign(expr: Expr) -> tuple[bool, Expr]:
+    """``(negative, m)`` with ``expr == -m if negative else m`` bit for bit and no
+    minus left in m's chain of products and quotients."""
     n = number(expr)
+    if n is not None and n < 0:
+        return True, const(-n)
+    if isinstance(expr, Apply):
+        if expr.op == "neg":
+            negative, magnitude = _split_sign(expr.args[0])
+            return not negative, magnitude
+        if expr.op in ("mul", "div"):
+            left_negative, left = _split_sign(expr.args[0])
+            right_negative, right = _split_sign(expr.args[1])
+            if left_negative or right_negative:
+                return left_negative != right_negative, Apply(expr.op, (left, right))
+    return False, expr
+
+
+def _signed(negative: bool, magnitude: Expr) -> Expr:
+    """``-magnitude`` written with the minus on the leftmost factor (``-a * b``)."""
+    if not negative:
+        return magnitude
+    if isinstance(magnitude, Apply) and magnitude.op in ("mul", "div"):
+        left, right = magnitude.args
+        return Apply(magnitude.op, (_signed(True, left), right))
+    n = number(magnitude)
     if n is not None:
         return const(-n)
-    if isinstance(expr, Apply) and expr.op == "neg":
-        return expr.args[0]
-    return Apply("neg", (expr,))
+    return Apply("neg", (magnitude,))
+
+
+def _fold_constants(op: str, a: Expr, b: Expr) -> Expr | None:
+    na, nb = number(a), number(b)
+    if na is None or nb is None:
+        return None
+    return _fold(op, na, nb)
+
+
+def _negate(expr: Expr) -> Expr:
+    negative, magnitude = _split_sign(expr)
+    return _signed(not negative, magnitude)
 
 
 def simplify(expr: Expr) -> Expr:
@@ -155,54 +197,37 @@ def simplify(expr: Expr) -> Expr:
         return _negate(args[0])
     if op == "pos":
         return args[0]
-    if len(args) == 2 and op in ("add", "sub", "mul", "div"):
+    if len(args) == 2 and op in ("mul", "div"):
+        a_negative, a = _split_sign(args[0])
+        b_negative, b = _split_sign(args[1])
+        return _signed(a_negative != b_negative, _product(op, a, b))
+    if len(args) == 2 and op in ("add", "sub"):
         a, b = args
-        na, nb = number(a), number(b)
-        if na is not None and nb is not None:
-            folded = _fold(op, na, nb)
-            if folded is not None:
-                return folded
-        if op == "mul":
-            # (x * c1) * c2 -> x * (c1 * c2), exact when c1 or c2 is a power of two
-            if nb is not None and isinstance(a, Apply) and a.op == "mul":
-                inner = number(a.args[1])
-                if inner is not None and (_power_of_two(inner) or _power_of_two(nb)):
-                    return simplify(Apply("mul", (a.args[0], const(inner * nb))))
-            if _is(a, 0) or _is(b, 0):
-                return const(0.0)
-            if _is(a, 1):
-                return b
-            if _is(b, 1):
-                return a
-            if _is(a, -1):
-                return _negate(b)
-            if _is(b, -1):
-                return _negate(a)
-        elif op == "div":
-            if _is(b, 1):
-                return a
-            if _is(b, -1):
-                return _negate(a)
-            if _is(a, 0):
-                return const(0.0)
-        elif op == "add":
+        folded = _fold_constants(op, a, b)
+        if folded is not None:
+            return folded
+        if op == "add":
             if _is(a, 0):
                 return b
             if _is(b, 0):
                 return a
             if a == b:
                 return Apply("mul", (const(2.0), a))
-            if isinstance(b, Apply) and b.op == "neg":
-                return Apply("sub", (a, b.args[0]))
-            if isinstance(a, Apply) and a.op == "neg":
-                return Apply("sub", (b, a.args[0]))
+            # a + -m is a - m, and -m + b is b - m (IEEE + commutes)
+            b_negative, b_magnitude = _split_sign(b)
+            if b_negative:
+                return Apply("sub", (a, b_magnitude))
+            a_negative, a_magnitude = _split_sign(a)
+            if a_negative:
+                return Apply("sub", (b, a_magnitude))
         elif op == "sub":
             if _is(b, 0):
                 return a
             if _is(a, 0):
                 return _negate(b)
-            if isinstance(b, Apply) and b.op == "neg":
-                return Apply("add", (a, b.args[0]))
+            b_negative, b_magnitude = _split_sign(b)
+            if b_negative:
+                return Apply("add", (a, b_magnitude))
     if op == "_gw_unbroadcast" and isinstance(args[0], Const):
         # a constant adjoint belongs to a scalar result: nothing was broadcast
         return args[0]
@@ -233,6 +258,50 @@ _COMPARISONS: dict[str, Callable[[float, float], bool]] = {
     "eq": lambda a, b: a == b,
     "ne": lambda a, b: a != b,
 }
+
+
+def _product(op: str, a: Expr, b: Expr) -> Expr:
+    """``a * b`` or ``a / b`` for operands without a sign of their own."""
+    folded = _fold_constants(op, a, b)
+    if folded is not None:
+        return folded
+    na, nb = number(a), number(b)
+    if op == "div":
+        if _is(b, 1):
+            return a
+        if _is(a, 0):
+            return const(0.0)
+        return Apply("div", (a, b))
+    if _is(a, 0) or _is(b, 0):
+        return const(0.0)
+    if _is(a, 1):
+        return b
+    if _is(b, 1):
+        return a
+    merged = _merge_constant(na, b) if na is not None else None
+    if merged is None and nb is not None:
+        merged = _merge_constant(nb, a)  # IEEE * commutes
+    return merged if merged is not None else Apply("mul", (a, b))
+
+
+def _merge_constant(c: float | int, other: Expr) -> Expr | None:
+    """``c * other`` with c merged into a constant factor of ``other``: c1 * (c2 * x),
+    c1 * (x * c2) and c1 * (c2 / x) become (c1 * c2) * x or (c1 * c2) / x, the same
+    bits when c1 or c2 is a power of two (outside overflow and underflow)."""
+    if not isinstance(other, Apply) or other.op not in ("mul", "div"):
+        return None
+    places = (0, 1) if other.op == "mul" else (0,)
+    for k in places:
+        inner = number(other.args[k])
+        if inner is None or not (_power_of_two(inner) or _power_of_two(c)):
+            continue
+        folded = _fold("mul", c, inner)
+        if folded is not None:
+            rest = other.args[1 - k]
+            if other.op == "div":
+                return _product("div", folded, rest)
+            return _product("mul", folded, rest)
+    return None
 
 
 def _power_of_two(value: float | int) -> bool:

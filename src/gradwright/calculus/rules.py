@@ -20,11 +20,10 @@ in ``tests/test_rules.py`` against an outside reference.
 
 from __future__ import annotations
 
-import math
 from collections.abc import Callable
 
-from gradwright.calculus.algebra import E, call, where
-from gradwright.ir import Apply, Const, const
+from gradwright.calculus.algebra import E, call, number, where
+from gradwright.ir import Apply, Const
 
 Rule = Callable[..., tuple["E | None", ...]]
 
@@ -35,30 +34,70 @@ exp = call("exp")
 log = call("log")
 hypot = call("hypot")
 copysign = call("copysign")
-# Constant factors as literals: the reverse sweep should not recompute them per call.
-TWO_OVER_SQRT_PI = 2.0 / math.sqrt(math.pi)
-LN2 = math.log(2.0)
-LN10 = math.log(10.0)
+# Constant factors as literals, the correctly rounded values (checked against mpmath
+# in tests/test_rules.py): the reverse sweep does not recompute them per call, and
+# the output does not depend on the generating machine's libm.
+TWO_OVER_SQRT_PI = 1.1283791670955126
+LN2 = 0.6931471805599453
+LN10 = 2.302585092994046
 
 
-def _power(g: E, out: E, x: E, y: E) -> tuple[E, E]:
-    # d(x**y)/dx = y*x**(y-1) stays finite at x == 0 for y >= 1, unlike y*out/x.
+def _power(g: E, out: E, x: E, y: E) -> tuple[E | None, E]:
     # d/dy = out*log(x) has the limit 0 at x == 0; a negative x has no real
     # derivative in y, and log(x) says so by raising.
-    coefficient = y
-    node = y.node
-    if isinstance(node, Const) and isinstance(node.value, int):
-        coefficient = E(const(float(node.value)))  # 2.0 * x, like every other factor
-    return g * coefficient * x ** (y - 1), where(x.eq(0), 0.0, g * out * log(x))
+    d_exponent = where(x.eq(0), 0.0, g * out * log(x))
+    p = number(y.node)
+    if p is None or isinstance(p, bool):
+        return g * y * x ** (y - 1), d_exponent
+    return _constant_power(g, out, x, p), d_exponent
+
+
+def _constant_power(g: E, out: E, x: E, p: float | int) -> E | None:
+    """d(x**p)/dx for a constant p, from out where that is safe.
+
+    p < 1: p * out / x, one rounding more than x**(p-1) (within about 1.5 ulp of the
+    derivative at x) and no second pow. Safe because x**p lies between x and 1 (0 < p
+    < 1) or shrinks as |x| grows (p < 0): out neither overflows nor underflows where
+    x**(p-1) does not. p == 0.5 is the sqrt rule, 0.5 / out. At x == 0 the derivative
+    is infinite for p < 1; Python floats raise ZeroDivisionError there as before (the
+    primal raises first for p < 0), NumPy arrays get inf for p == 0.5 and p < 0 and
+    nan for other 0 < p < 1 (x**(p-1) gave inf).
+    p > 1: p * x**(p-1), which stays finite at x == 0 and accurate where out is
+    subnormal (p * out / x would lose digits there, or overflow for large x); x**2 as
+    x * x (correctly rounded, and no pow call).
+    """
+    if p == 0:
+        return None
+    if p == 0.5:
+        return 0.5 * g / out
+    # 2.0 * x, like every other factor, also for an integer exponent
+    coefficient = float(p)
+    if p < 1:
+        return g * coefficient * out / x
+    if p == 3:
+        return g * coefficient * (x * x)
+    return g * coefficient * x ** (p - 1)
 
 
 def _hypot(g: E, out: E, *xs: E) -> tuple[E, ...]:
-    return tuple(g * x / out for x in xs)
+    # at the origin the first argument takes the whole adjoint, as abs does at 0
+    # (hypot(x, 0) is abs(x), whose derivative at 0 is +1 by the kink convention)
+    first = where(out.eq(0.0), g, g * xs[0] / out)
+    return (first,) + tuple(where(out.eq(0.0), 0.0, g * x / out) for x in xs[1:])
 
 
-def _log(g: E, out: E, x: E, base: E | None = None) -> tuple[E, ...]:
+def _log(g: E, out: E, x: E, base: E | None = None) -> tuple[E | None, ...]:
     if base is None:
         return (g / x,)
+    b = number(base.node)
+    if b == 2.0:
+        # any libm within 0.79 ulp returns LN2 for log(2.0): ln 2 is 0.21 ulp from it.
+        # log(10.0) is not folded: ln 10 is 0.49 ulp from LN10, near a tie, so a libm
+        # that is not correctly rounded may return the other neighbour.
+        return g / (x * LN2), None
+    if b is not None:
+        # a constant base: its log is left to the runtime libm, like the primal's
+        return g / (x * log(base)), None
     return g / (x * log(base)), -g * out / (base * log(base))
 
 
