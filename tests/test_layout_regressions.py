@@ -369,3 +369,22 @@ def f(X, w, b):
     np.testing.assert_allclose(w_bar, X.T @ ds, rtol=1e-13)
     np.testing.assert_allclose(b_bar, [ds.sum()], rtol=1e-13)
     assert b_bar.shape == b.shape
+
+
+def test_hypot_at_the_origin_follows_the_abs_convention():
+    """hypot(x, 0) is abs(x): at the origin the first argument gets +1, the others
+    0 (the project's kink convention, abs'(0) = +1); it raised ZeroDivisionError."""
+    source = "import math\ndef f(x, y):\n    return math.hypot(x - x, y - y)\n"
+    module = build(source, "f")
+    assert module["f_grad"](0.5, 0.25) == (0.0, (0.0, 0.0))  # (1 - 1, 0 - 0)
+    source = "import math\ndef f(x, y):\n    return math.hypot(x, y)\n"
+    module = build(source, "f")
+    assert module["f_grad"](0.0, 0.0) == (0.0, (1.0, 0.0))
+    assert module["f_grad"](3.0, 4.0) == (5.0, (0.6, 0.8))  # x/r, y/r: closed form
+
+
+def test_empty_wrt_is_a_usage_error():
+    with pytest.raises(GradwrightError) as error:
+        gradwright.generate("def f(x):\n    return x * 2.0\n", ["f"], wrt=[])
+    assert "wrt names no parameter" in str(error.value)
+    assert "differentiably on  (" not in str(error.value)

@@ -211,6 +211,11 @@ def generate(
         raise GradwrightError.usage(
             f"function {', '.join(repeated)} is listed more than once"
         )
+    if wrt is not None and not list(wrt):
+        raise GradwrightError.usage(
+            "wrt names no parameter",
+            "name at least one parameter, or leave wrt out to take them all",
+        )
     runtime = get_target(target)
 
     def work() -> str:
