@@ -1037,36 +1037,38 @@ CASES = [
                 x = x * 2.0
             return x
         """,
-        "for-loops run over range(...) or a list",
+        "for-loops run over range(...), a list, zip(...)",
         2,
         "3",
         "for i in range(n):",
     ),
     case(
-        "loop-over-a-tuple",
-        """
-        def f(x):
-            for t in (1.0, 2.0):
-                x = x * t
-            return x
-        """,
-        "for-loops run over range(...) or a list parameter",
-        2,
-        "1.0, 2.0",
-        "name the values in a list parameter, or write one statement per value",
-    ),
-    case(
-        "loop-unpacking-target",
+        "loop-target-not-a-name",
         """
         def f(x):
             s = 0.0
-            for i, t in enumerate(x):
-                s = s + i * t
+            for x[0] in range(3):
+                s = s + x[0]
             return s
         """,
-        "the loop variable must be a single name",
+        "the loop target must be a name or a tuple of names",
         3,
-        "i, t",
+        "x[0]",
+        "write `for x, y in zip(xs, ys):` or `for i, x in enumerate(xs):`",
+    ),
+    case(
+        "loop-target-does-not-match",
+        """
+        def f(x, y):
+            s = 0.0
+            for a, b, c in zip(x, y):
+                s = s + a * b * c
+            return s
+        """,
+        "the loop target does not match what the loop runs over",
+        3,
+        "a, b, c",
+        "zip(a, b) gives pairs, enumerate(xs) gives (index, value)",
     ),
     case(
         "assign-element-of-list-parameter",

@@ -2,10 +2,13 @@
 
 from __future__ import annotations
 
+from collections.abc import Callable
+
 import libcst as cst
 
 from gradwright.diagnostics import fail
 from gradwright.ir import (
+    Atom,
     Const,
     Loop,
     Phi,
@@ -31,65 +34,33 @@ class LoopLowering:
             fail("for-else is not supported", self.index.locate(node.orelse))
         if node.asynchronous is not None:
             fail("async for is not supported", self.index.locate(node))
-        if not isinstance(node.target, cst.Name):
-            fail(
-                "the loop variable must be a single name",
-                self.index.locate(node.target),
-            )
-        assert isinstance(node.target, cst.Name)
-        name = node.target.value
-        self.set_origin(f"for {name} in {_statement_text(self.index, node.iter)}:")
+        target_text = _statement_text(self.index, node.target)
+        self.set_origin(
+            f"for {target_text} in {_statement_text(self.index, node.iter)}:"
+        )
         origin = self.origin
-        over_list: Var | None = None
-        if (
-            isinstance(node.iter, cst.Call)
-            and isinstance(node.iter.func, cst.Name)
-            and node.iter.func.value == "range"
-            and "range" not in self.index.module_names
-        ):
-            args = node.iter.args
-            if not 1 <= len(args) <= 3 or any(a.keyword or a.star for a in args):
-                fail(
-                    "range() takes one to three positional arguments",
-                    self.index.locate(node.iter),
-                )
-            bounds = [
-                self.scalar(self.expr(a.value, name, None), a.value) for a in args
-            ]
-            if len(bounds) == 1:
-                start, stop, step = Const("0", 0), bounds[0], Const("1", 1)
-            elif len(bounds) == 2:
-                start, stop, step = bounds[0], bounds[1], Const("1", 1)
-            else:
-                start, stop, step = bounds
-        else:
-            if isinstance(node.iter, (cst.Tuple, cst.List)):
-                fail(
-                    "for-loops run over range(...) or a list parameter",
-                    self.index.locate(node.iter),
-                    "name the values in a list parameter, or write one statement"
-                    " per value",
-                )
-            iterable = self.expr(node.iter, name, None)
-            self.as_list(iterable)
-            if not (isinstance(iterable, Var) and iterable.shape == "list"):
-                fail(
-                    "for-loops run over range(...) or a list",
-                    self.index.locate(node.iter),
-                    "write `for i in range(n):`",
-                )
-            assert isinstance(iterable, Var)
-            over_list = iterable
-            start, step = Const("0", 0), Const("1", 1)
-            stop = self.emit("len", (iterable,), self.new_var(name, "temp"))
+        names = _target_names(node.target)
+        if names is None:
+            fail(
+                "the loop target must be a name or a tuple of names",
+                self.index.locate(node.target),
+                "write `for x, y in zip(xs, ys):` or `for i, x in enumerate(xs):`",
+            )
+        assert names is not None
+        plan = self.iteration(node.iter, node.target)
+        start, stop, step, index_base, bind = plan
 
+        assigned = _assigned_names(_block_statements(node.body))
+        for name in names:
+            assigned[name] = None
+        name = names[0]
         assigned = _assigned_names(_block_statements(node.body))
         assigned[name] = None
         before = dict(self.env)
         carried = [
             n
             for n in before
-            if n in assigned and n != name and not isinstance(before[n], _Unbound)
+            if n in assigned and n not in names and not isinstance(before[n], _Unbound)
         ]
         headers: dict[str, Var] = {}
         for n in carried:
@@ -101,17 +72,10 @@ class LoopLowering:
             if self.is_fresh(init):  # type: ignore[arg-type]
                 self.fresh.add(headers[n])
             self.env[n] = headers[n]
-        index_var = self.new_var(
-            name if over_list is None else f"{name}_index", "index"
-        )
+        index_var = self.new_var(index_base, "index")
         self.blocks.append([])
         self.loop_depth += 1
-        if over_list is None:
-            self.env[name] = index_var
-        else:
-            self.env[name] = self.emit(
-                "getitem", (over_list, index_var), self.new_var(name, "local")
-            )
+        bind(index_var)
         self.sequence(_block_statements(node.body))
         self.loop_depth -= 1
         body = self.blocks.pop()
@@ -147,3 +111,215 @@ class LoopLowering:
         self.blocks[-1].append(
             Loop(index_var, start, stop, step, tuple(phis), tuple(body), origin)
         )
+
+    # -- what a loop runs over ------------------------------------------------------
+
+    def iteration(
+        self, iterable: cst.BaseExpression, target: cst.BaseExpression
+    ) -> tuple[Atom, Atom, Atom, str, Callable[[Var], None]]:
+        """The index range of a loop over ``iterable`` and how each iteration binds
+        ``target`` from the index: (start, stop, step, index name, bind)."""
+        call = _builtin_call(self, iterable)
+        if call == "range" and isinstance(target, cst.Name):
+            start, stop, step = self.range_bounds(iterable)  # type: ignore[arg-type]
+            name = target.value
+            return start, stop, step, name, lambda index: self.bind_name(name, index)
+        if call == "reversed" and isinstance(target, cst.Name):
+            inner = iterable.args[0].value  # type: ignore[attr-defined]
+            if _builtin_call(self, inner) == "range":
+                start, stop, step = self.range_bounds(inner)  # type: ignore[arg-type]
+                if not (isinstance(step, Const) and step.value == 1):
+                    fail(
+                        "reversed(range(...)) with a step is not supported",
+                        self.index.locate(inner),
+                        "write range(start, stop, -step) with the bounds you mean",
+                    )
+                one = Const("1", 1)
+                first = self.emit("sub", (stop, one), self.new_var("start", "temp"))
+                last = self.emit("sub", (start, one), self.new_var("stop", "temp"))
+                name = target.value
+                bind = lambda index: self.bind_name(name, index)  # noqa: E731
+                return first, last, Const("-1", -1), name, bind
+        length, read, _ = self.sequence_reader(iterable)
+
+        def bind(index: Var) -> None:
+            self.bind_target(target, read(index), index)
+
+        # the index is named for the target: `for reading in readings` counts with
+        # reading_index; `for i, x in enumerate(xs)` with i itself
+        first = target
+        while isinstance(first, (cst.Tuple, cst.List)):
+            first = first.elements[0].value
+        base = f"{first.value}_index"  # type: ignore[attr-defined]
+        if (
+            call == "enumerate"
+            and isinstance(target, (cst.Tuple, cst.List))
+            and len(iterable.args) == 1  # type: ignore[attr-defined]
+            and isinstance(target.elements[0].value, cst.Name)
+        ):
+            base = target.elements[0].value.value
+        return Const("0", 0), length, Const("1", 1), base, bind
+
+    def range_bounds(self, node: cst.Call) -> tuple[Atom, Atom, Atom]:
+        args = node.args
+        if not 1 <= len(args) <= 3 or any(a.keyword or a.star for a in args):
+            fail(
+                "range() takes one to three positional arguments",
+                self.index.locate(node),
+            )
+        bounds = [self.scalar(self.expr(a.value, "range", None), a.value) for a in args]
+        if len(bounds) == 1:
+            return Const("0", 0), bounds[0], Const("1", 1)
+        if len(bounds) == 2:
+            return bounds[0], bounds[1], Const("1", 1)
+        return bounds[0], bounds[1], bounds[2]
+
+    def bind_name(self, name: str, value: Atom) -> None:
+        self.env[name] = value
+
+    def sequence_reader(
+        self, node: cst.BaseExpression
+    ) -> tuple[Atom, Callable[[Var], object], str]:
+        """(length, read, index name): ``read(index)`` gives what iteration
+        ``index`` binds (a value, or a tuple of them for zip and enumerate)."""
+        call = _builtin_call(self, node)
+        if call in ("zip", "enumerate", "reversed") and any(
+            a.keyword or a.star for a in node.args  # type: ignore[attr-defined]
+        ):
+            if call != "enumerate" or any(
+                a.star or (a.keyword and a.keyword.value != "start")
+                for a in node.args  # type: ignore[attr-defined]
+            ):
+                fail(f"{call}() takes plain arguments here", self.index.locate(node))
+        if call == "zip":
+            parts = [self.sequence_reader(a.value) for a in node.args]  # type: ignore[attr-defined]
+            if len(parts) < 2:
+                fail("zip() needs two or more sequences here", self.index.locate(node))
+            length = parts[0][0]
+            for other, _, _ in parts[1:]:  # zip stops at the shortest
+                length = self.emit("min", (length, other), self.new_var("n", "temp"))
+            readers = [read for _, read, _ in parts]
+            return length, lambda i: tuple(r(i) for r in readers), parts[0][2]
+        if call == "enumerate":
+            args = node.args  # type: ignore[attr-defined]
+            if not 1 <= len(args) <= 2:
+                fail(
+                    "enumerate() takes a sequence and a start", self.index.locate(node)
+                )
+            length, read, base = self.sequence_reader(args[0].value)
+            offset = (
+                self.scalar(self.expr(args[1].value, "start", None), args[1].value)
+                if len(args) == 2
+                else Const("0", 0)
+            )
+
+            def counted(index: Var) -> tuple[object, object]:
+                if isinstance(offset, Const) and offset.value == 0:
+                    return index, read(index)
+                position = self.emit("add", (index, offset), self.new_var("k", "temp"))
+                return position, read(index)
+
+            return length, counted, base
+        if call == "reversed":
+            args = node.args  # type: ignore[attr-defined]
+            if len(args) != 1:
+                fail("reversed() takes one sequence", self.index.locate(node))
+            length, read, base = self.sequence_reader(args[0].value)
+
+            def backwards(index: Var) -> object:
+                last = self.emit(
+                    "sub", (length, Const("1", 1)), self.new_var("k", "temp")
+                )
+                position = self.emit("sub", (last, index), self.new_var("k", "temp"))
+                return read(position)  # type: ignore[arg-type]
+
+            return length, backwards, base
+        if isinstance(node, (cst.Tuple, cst.List)):
+            # a tuple of values written out: a local list of them
+            values = tuple(
+                self.scalar(self.expr(el.value, "values", None), el.value)
+                for el in node.elements
+            )
+            if not values or any(
+                isinstance(el, cst.StarredElement) for el in node.elements
+            ):
+                fail("loop over a tuple of plain values", self.index.locate(node))
+            listed = self.emit(
+                "listlit", values, self.new_var("values", "local", "list")
+            )
+            count = Const(str(len(values)), len(values))
+            return count, lambda i: self.element(listed, i), "k"
+        sequence = self.expr(node, "xs", None)
+        self.as_list(sequence)
+        if not (isinstance(sequence, Var) and sequence.shape == "list"):
+            fail(
+                "for-loops run over range(...), a list, zip(...), enumerate(...) or"
+                " reversed(...)",
+                self.index.locate(node),
+                "write `for i in range(n):`",
+            )
+        assert isinstance(sequence, Var)
+        length = self.emit("len", (sequence,), self.new_var("n", "temp"))
+        return length, lambda i: self.element(sequence, i), f"{sequence.base}_index"
+
+    def element(self, sequence: Var, index: Atom) -> Callable[[str], Var]:
+        """Reading one element, under the name of the target it binds."""
+        return lambda name: self.emit(
+            "getitem", (sequence, index), self.new_var(name, "local")
+        )
+
+    def bind_target(
+        self, target: cst.BaseExpression, value: object, index: Var
+    ) -> None:
+        """Bind a loop target (a name or nested tuple of names) to what one
+        iteration reads."""
+        if isinstance(target, cst.Name):
+            if isinstance(value, tuple):
+                fail(
+                    f"each item here is a tuple of {len(value)} values",
+                    self.index.locate(target),
+                    "unpack it: `for a, b in ...`",
+                )
+            # an element is read under the target's name (``x = xs[i]``)
+            name = target.value
+            self.env[name] = value(name) if callable(value) else value  # type: ignore[assignment]
+            return
+        assert isinstance(target, (cst.Tuple, cst.List))
+        elements = [el.value for el in target.elements]
+        if not isinstance(value, tuple) or len(value) != len(elements):
+            fail(
+                "the loop target does not match what the loop runs over",
+                self.index.locate(target),
+                "zip(a, b) gives pairs, enumerate(xs) gives (index, value)",
+            )
+        for element, part in zip(elements, value, strict=True):  # type: ignore[arg-type]
+            self.bind_target(element, part, index)
+
+
+def _target_names(target: cst.BaseExpression) -> list[str] | None:
+    if isinstance(target, cst.Name):
+        return [target.value]
+    if isinstance(target, (cst.Tuple, cst.List)):
+        names: list[str] = []
+        for element in target.elements:
+            if isinstance(element, cst.StarredElement):
+                return None
+            inner = _target_names(element.value)
+            if inner is None:
+                return None
+            names += inner
+        return names
+    return None
+
+
+def _builtin_call(lowering: object, node: cst.BaseExpression) -> str | None:
+    """``range``/``zip``/``enumerate``/``reversed`` when ``node`` calls the builtin
+    (not a module-level name that shadows it)."""
+    if (
+        isinstance(node, cst.Call)
+        and isinstance(node.func, cst.Name)
+        and node.func.value in ("range", "zip", "enumerate", "reversed")
+        and node.func.value not in lowering.index.module_names  # type: ignore[attr-defined]
+    ):
+        return node.func.value
+    return None

@@ -1,0 +1,144 @@
+"""Loops written the way engineers write them: zip, enumerate, reversed, tuples of
+values, nested targets. Each gradient against a closed form or mpmath central
+differences (named beside the check); values bit-identical to the primal."""
+
+from __future__ import annotations
+
+import math
+
+import pytest
+from support import build, mp_function, mp_gradient, rel_err, run_source
+
+LINE_FIT = """
+def line_loss(a, b, xs, ys):
+    total = 0.0
+    for x, y in zip(xs, ys):
+        r = a * x + b - y
+        total += r * r
+    return total
+"""
+
+XS = [0.5, 1.25, 2.0, 3.5, 4.0]
+YS = [1.1, 2.3, 3.2, 5.9, 6.1, 99.0]  # one more: zip stops at the shortest
+
+
+def test_line_fit_with_zip_against_normal_equations():
+    module = build(LINE_FIT, "line_loss", ["a", "b"])
+    primal = run_source(LINE_FIT)["line_loss"]
+    n = len(XS)
+    ys = YS[:n]
+    # least-squares line by the normal equations (textbook closed form)
+    mx, my = sum(XS) / n, sum(ys) / n
+    sxx = sum((x - mx) ** 2 for x in XS)
+    sxy = sum((x - mx) * (y - my) for x, y in zip(XS, ys, strict=True))
+    slope = sxy / sxx
+    intercept = my - slope * mx
+    value, (a_bar, b_bar) = module["line_loss_grad"](slope, intercept, XS, YS)
+    assert value == primal(slope, intercept, XS, YS)
+    scale = sum(abs(x * y) for x, y in zip(XS, ys, strict=True))
+    assert abs(a_bar) < 1e-12 * scale and abs(b_bar) < 1e-12 * scale
+    # elsewhere: d/da = 2 sum r x, d/db = 2 sum r (closed form)
+    a, b = 1.3, -0.2
+    _, (a_bar, b_bar) = module["line_loss_grad"](a, b, XS, YS)
+    residuals = [a * x + b - y for x, y in zip(XS, ys, strict=True)]
+    assert (
+        rel_err(a_bar, 2 * sum(r * x for r, x in zip(residuals, XS, strict=True)))
+        < 1e-13
+    )
+    assert rel_err(b_bar, 2 * sum(residuals)) < 1e-13
+
+
+def test_zip_gradient_in_the_data_lists():
+    module = build(LINE_FIT, "line_loss", ["xs", "ys"])
+    a, b = 1.3, -0.2
+    _, (xs_bar, ys_bar) = module["line_loss_grad"](a, b, XS, YS)
+    n = len(XS)
+    for k in range(n):
+        r = a * XS[k] + b - YS[k]
+        assert rel_err(xs_bar[k], 2 * r * a) < 1e-13  # closed form
+        assert rel_err(ys_bar[k], -2 * r) < 1e-13
+    assert ys_bar[n] == 0.0  # past the shortest: never read
+
+
+def test_enumerate_with_a_start():
+    source = """
+def weighted(a, xs):
+    s = 0.0
+    for i, x in enumerate(xs, 1):
+        s = s + i * a * x * x
+    return s
+"""
+    module = build(source, "weighted")
+    xs = [0.5, -1.5, 2.0]
+    value, (a_bar, xs_bar) = module["weighted_grad"](0.75, xs)
+    assert value == run_source(source)["weighted"](0.75, xs)
+    # closed form: d/da = sum (i+1) x_i^2, d/dx_i = 2 (i+1) a x_i
+    assert rel_err(a_bar, sum((i + 1) * x * x for i, x in enumerate(xs))) < 1e-14
+    for i, x in enumerate(xs):
+        assert rel_err(xs_bar[i], 2 * (i + 1) * 0.75 * x) < 1e-14
+
+
+def test_horner_over_reversed_coefficients():
+    source = """
+def poly(x, coeffs):
+    p = 0.0
+    for c in reversed(coeffs):
+        p = p * x + c
+    return p
+"""
+    module = build(source, "poly")
+    coeffs = [0.5, -1.25, 2.0, 0.75]  # c0 + c1 x + c2 x^2 + c3 x^3
+    x = 1.3
+    value, (x_bar, c_bar) = module["poly_grad"](x, coeffs)
+    assert value == run_source(source)["poly"](x, coeffs)
+    # closed form: p'(x) = sum k c_k x^(k-1); dp/dc_k = x^k
+    assert (
+        rel_err(x_bar, sum(k * c * x ** (k - 1) for k, c in enumerate(coeffs) if k))
+        < 1e-14
+    )
+    for k in range(len(coeffs)):
+        assert rel_err(c_bar[k], x**k) < 1e-14
+
+
+def test_loop_over_a_tuple_of_values():
+    source = """
+import math
+def spread(q1, q2, q3):
+    s = 0.0
+    for q in (q1, q2, q3):
+        s = s + math.sin(q) * q
+    return s
+"""
+    module = build(source, "spread")
+    point = (0.3, -1.1, 2.2)
+    value, grads = module["spread_grad"](*point)
+    assert value == run_source(source)["spread"](*point)
+    for q, g in zip(point, grads, strict=True):
+        assert rel_err(g, math.cos(q) * q + math.sin(q)) < 1e-14  # product rule
+
+
+@pytest.mark.parametrize("n", [0, 1, 4])
+def test_reversed_range_and_nested_targets(n):
+    source = """
+def mixed(x, xs, ys):
+    acc = x
+    for i in reversed(range(len(xs))):
+        acc = acc * x + i * xs[i]
+    for k, (u, v) in enumerate(zip(xs, ys)):
+        acc = acc + k * u * v * x
+    return acc
+"""
+    module = build(source, "mixed")
+    xs = [0.5, -0.25, 1.5, 0.75][:n]
+    ys = [1.25, 0.5, -2.0, 0.25, 9.0][: n + 1]
+    point = (0.9, xs, ys)
+    value, grads = module["mixed_grad"](*point)
+    assert value == run_source(source)["mixed"](*point)
+    if n == 0:  # zero-trip loops: acc = x (closed form); ys is never read
+        assert grads == (1.0, [], [0.0])
+        return
+    reference = mp_gradient(mp_function(source, "mixed"), list(point), [0, 1, 2])
+    flat = [grads[0], *grads[1], *grads[2]]  # mpmath central differences, 50 digits
+    want = [reference[0], *reference[1], *reference[2]]
+    for got, expected in zip(flat, want, strict=True):
+        assert rel_err(got, float(expected)) < 1e-12
