@@ -2,7 +2,7 @@
 # source: samples/cable_sag.py
 # source sha256: 60a95002dd1d21d9e5e7f63265caaee126765d6ffe25172b57604f5de1edd964
 # command: gradwright gen samples/cable_sag.py rig_loss -o samples/cable_sag_grad.py
-# output sha256: 90cbc205838dedeb0517ff49fddcce990e2b6fdf31cc27beaadc48f017288e20
+# output sha256: ca563b72e3b58ce89db10c65947428d4c07780285520523f71f7106d991c2c82
 
 import math
 
@@ -47,15 +47,15 @@ def rig_loss_grad(a, span):
 
     # reverse sweep
     # loss += LENGTH_WEIGHT * length_err**2
-    length_err_bar = LENGTH_WEIGHT * 2.0 * length_err
+    length_err_bar = 2.0 * LENGTH_WEIGHT * length_err
     # loss = sag_err**2
     sag_err_bar = 2.0 * sag_err
     # sag, length = a * (math.cosh(half) - 1.0), 2.0 * a * math.sinh(half)
-    a_bar = length_err_bar * length_2 * 2.0
+    a_bar = 2.0 * length_err_bar * length_2
     half_bar = length_err_bar * length_1 * sag_1
     a_bar += sag_err_bar * sag_2
     half_bar += sag_err_bar * a * length_2
     # half = span / (2.0 * a)
     span_bar = half_bar / half_1
-    a_bar += -half_bar * half / half_1 * 2.0
+    a_bar += -2.0 * half_bar * half / half_1
     return loss, (a_bar, span_bar)

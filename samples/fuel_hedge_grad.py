@@ -2,7 +2,7 @@
 # source: samples/fuel_hedge.py
 # source sha256: 0ea00fed34a5da6fdf8d79be718d957302aa63a99bc63f8c28269a24d0084725
 # command: gradwright gen samples/fuel_hedge.py call_value --wrt spot,vol,rate,years -o samples/fuel_hedge_grad.py
-# output sha256: 9195a70ba29a8d4be76bcdbbbf0ea2796186f1668ad4e95442a11a1f044331d3
+# output sha256: a77d3cf7e42ab8343ae74464a62bdbf7de22922a75ac7cecce1ae991d0461fad
 
 import math
 from math import erf, exp, log, sqrt
@@ -69,7 +69,7 @@ def call_value_grad(spot, strike, vol, rate, years):
     d1_3_bar = d1_5_bar * years
     years_bar += d1_5_bar * d1_3
     rate_bar += d1_3_bar
-    vol_bar += d1_3_bar * d1_2 + d1_3_bar * vol * 0.5 + d1_4_bar * root_t
+    vol_bar += d1_3_bar * d1_2 + 0.5 * d1_3_bar * vol + d1_4_bar * root_t
     root_t_bar += d1_4_bar * vol
     # root_t = sqrt(years)
     years_bar += 0.5 * root_t_bar / root_t

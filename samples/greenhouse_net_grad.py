@@ -2,7 +2,7 @@
 # source: samples/greenhouse_net.py
 # source sha256: f94a505cbabce5a779320a9a523463a3af5a29e82a9d607fbc7c2942e6341334
 # command: gradwright gen samples/greenhouse_net.py humidity_loss --wrt W1,b1,w2,b2 -o samples/greenhouse_net_grad.py
-# output sha256: 32cfff11910286f19c6ec499ccbdfd24f96d36594a2f3107f786627145e05f6f
+# output sha256: 5c394b596bf9fc6ef4f8dd76e32646758e2e3814385dae83994790fc0df8b730
 
 import numpy as np
 
@@ -33,21 +33,32 @@ def _gw_unreduce(g, x, axis, keepdims):
 def _gw_unmean(g, x, axis, keepdims):
     """The adjoint of a mean over axis, spread back over x's shape."""
     count = np.size(x) if axis is None else np.prod(np.take(np.shape(x), axis))
-    return _gw_unreduce(g, x, axis, keepdims) / count
+    # divide before spreading: the same quotient, computed once per output element
+    return _gw_unreduce(np.divide(g, count), x, axis, keepdims)
 
 
 def _gw_matmul_left(g, a, b):
     """The adjoint of a in a @ b (vectors and matrices)."""
     if np.ndim(b) == 1:
         return np.outer(g, b) if np.ndim(a) == 2 else g * b
-    return g @ np.swapaxes(b, -1, -2) if np.ndim(a) == 2 else b @ g
+    if np.ndim(a) != 2:
+        return b @ g
+    if np.shape(g)[-1] == 1:
+        # an outer product (a column times b's row): one multiply, not a gemm
+        return g * np.swapaxes(b, -1, -2)
+    return g @ np.swapaxes(b, -1, -2)
 
 
 def _gw_matmul_right(g, a, b):
     """The adjoint of b in a @ b (vectors and matrices)."""
     if np.ndim(a) == 1:
         return np.outer(a, g) if np.ndim(b) == 2 else g * a
-    return np.swapaxes(a, -1, -2) @ g if np.ndim(b) == 2 else g @ a
+    if np.ndim(b) != 2:
+        return g @ a
+    if np.shape(g)[-2] == 1:
+        # an outer product (a's column times a row of g): one multiply, not a gemm
+        return np.swapaxes(a, -1, -2) * g
+    return np.swapaxes(a, -1, -2) @ g
 
 
 def _gw_shaped(g, x):
@@ -88,9 +99,9 @@ def humidity_loss_grad(W1, b1, w2, b2, features, humidity):
 
     # reverse sweep
     # return np.mean(err**2) + penalty
-    err_bar = _gw_unmean(1.0, value_1, None, False) * 2.0 * err
+    err_bar = 2.0 * _gw_unmean(1.0, value_1, None, False) * err
     # penalty = PENALTY * (np.sum(W1**2) + w2 @ w2)
-    W1_bar = _gw_unreduce(PENALTY, penalty_1, None, False) * 2.0 * W1
+    W1_bar = 2.0 * _gw_unreduce(PENALTY, penalty_1, None, False) * W1
     w2_bar = _gw_matmul_left(PENALTY, w2, w2) + _gw_matmul_right(PENALTY, w2, w2)
     # err = predicted - humidity
     predicted_bar = _gw_unbroadcast(err_bar, predicted)

@@ -2,7 +2,7 @@
 # source: samples/kiln_cooling.py
 # source sha256: a06d7e41ceb820bdb9f7afefdfd582c36125c98be226eb56a6a555feac5b0ed6
 # command: gradwright gen samples/kiln_cooling.py kiln_loss --wrt k_conv,k_rad,start_temp -o samples/kiln_cooling_grad.py
-# output sha256: 68f555c344b34b325d659a652d7c8e79d76a6673a6cd5f30dcd1d1c5169cbfd2
+# output sha256: 55626162ae97cddfcba38980ca50a26fd7d69f84e5855d10fdadcf16025d2b27
 
 AMBIENT = 293.15  # kelvin
 SAFE_POINT = 700.0  # kelvin: below this the heater comes on
@@ -95,7 +95,7 @@ def kiln_loss_grad(k_conv, k_rad, start_temp, readings, dt, steps_per_reading):
         temp_1_partials_saved = temp_1_partials_saved_by_reading_index[reading_index]
         temp_bar = temp_bar_1
         # loss += err * err
-        err_bar = 2.0 * (loss_bar * err)
+        err_bar = 2.0 * loss_bar * err
         # err = temp - reading
         temp_bar += err_bar
         # for _ in range(steps_per_reading):

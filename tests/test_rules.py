@@ -392,9 +392,20 @@ def test_rule_accurate_at_domain_edge(expr: str, x: float) -> None:
     assert _edge_error(expr, x) <= TOLERANCE, "mpmath central difference, 50 digits"
 
 
-@pytest.mark.parametrize("x", [10.0, -25.0])
+@pytest.mark.parametrize("x", [10.0, -25.0, 1e-8, 0.5, -3.0, 300.0, -354.0])
 def test_tanh_rule_accurate_in_the_tails(x: float) -> None:
     assert _edge_error("math.tanh(x)", x) <= TOLERANCE, "mpmath central difference"
+
+
+@pytest.mark.parametrize("x", [355.0, -400.0, 709.0, 1e300])
+def test_tanh_rule_is_zero_below_the_normal_range(x: float) -> None:
+    # documented convention (rules.py): past |x| = 355 sech(x)**2 < 2e-308, below
+    # the smallest normal float, and the rule returns 0 (cosh(2x) would overflow)
+    source = "import math\n\ndef f(x):\n    return math.tanh(x)\n"
+    assert _grad(source, x) == (0.0,), "documented convention (rules.py)"
+    # reference: mpmath central difference at 50 digits: the exact value is tiny
+    exact = mp_central_diff(mp_function(source, "f"), (x,), 0)
+    assert abs(exact) < 2e-308
 
 
 @pytest.mark.parametrize("x", [-20.0, -40.0])
@@ -540,6 +551,15 @@ SIMPLIFY_CASES = [
     (_A * -1.0, "-a"),
     (-(_A * _A), "-a * a"),
     (_A - -2.0, "a + 2.0"),
+    # a power-of-two factor scales the leftmost factor of a chain; others stay put
+    (2.0 * (_A * _B), "2.0 * a * b"),
+    ((_A * _B) * 2.0, "2.0 * a * b"),
+    (-2.0 * (_A * _B / _C * _A), "-2.0 * a * b / c * a"),
+    (0.5 * (-_A / _B), "-0.5 * a / b"),
+    (3.0 * (_A * _B), "3.0 * (a * b)"),
+    ((_A * _B) * 3.0, "3.0 * (a * b)"),
+    (_A * 0.25, "0.25 * a"),
+    (_A * 0.9, "0.9 * a"),
 ]
 
 

@@ -278,10 +278,31 @@ def _product(op: str, a: Expr, b: Expr) -> Expr:
         return b
     if _is(b, 1):
         return a
-    merged = _merge_constant(na, b) if na is not None else None
-    if merged is None and nb is not None:
-        merged = _merge_constant(nb, a)  # IEEE * commutes
-    return merged if merged is not None else Apply("mul", (a, b))
+    if na is None and nb is not None:
+        a, b, na, nb = (
+            b,
+            a,
+            nb,
+            na,
+        )  # the constant first, as written by hand (* commutes)
+    if na is None:
+        return Apply("mul", (a, b))
+    merged = _merge_constant(na, b)
+    if merged is not None:
+        return merged
+    if _power_of_two(na) and isinstance(b, Apply) and b.op in ("mul", "div"):
+        return _scale_leftmost(a, b)
+    return Apply("mul", (a, b))
+
+
+def _scale_leftmost(c: Expr, chain: Expr) -> Expr:
+    """``c * chain`` as ``c * x * y / z``: for a power of two c, scaling the leftmost
+    factor instead of the product gives the same bits (outside overflow and
+    underflow)."""
+    if isinstance(chain, Apply) and chain.op in ("mul", "div"):
+        left, right = chain.args
+        return Apply(chain.op, (_scale_leftmost(c, left), right))
+    return Apply("mul", (c, chain))
 
 
 def _merge_constant(c: float | int, other: Expr) -> Expr | None:

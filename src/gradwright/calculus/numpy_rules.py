@@ -83,7 +83,8 @@ HELPERS: dict[str, str] = {
     "_gw_unmean": '''def _gw_unmean(g, x, axis, keepdims):
     """The adjoint of a mean over axis, spread back over x's shape."""
     count = np.size(x) if axis is None else np.prod(np.take(np.shape(x), axis))
-    return _gw_unreduce(g, x, axis, keepdims) / count
+    # divide before spreading: the same quotient, computed once per output element
+    return _gw_unreduce(np.divide(g, count), x, axis, keepdims)
 ''',
     "_gw_unextreme": '''def _gw_unextreme(g, x, axis, keepdims, pick):
     """The adjoint of a max or min: the first extreme element gets it all."""
@@ -123,13 +124,23 @@ HELPERS: dict[str, str] = {
     """The adjoint of a in a @ b (vectors and matrices)."""
     if np.ndim(b) == 1:
         return np.outer(g, b) if np.ndim(a) == 2 else g * b
-    return g @ np.swapaxes(b, -1, -2) if np.ndim(a) == 2 else b @ g
+    if np.ndim(a) != 2:
+        return b @ g
+    if np.shape(g)[-1] == 1:
+        # an outer product (a column times b's row): one multiply, not a gemm
+        return g * np.swapaxes(b, -1, -2)
+    return g @ np.swapaxes(b, -1, -2)
 ''',
     "_gw_matmul_right": '''def _gw_matmul_right(g, a, b):
     """The adjoint of b in a @ b (vectors and matrices)."""
     if np.ndim(a) == 1:
         return np.outer(a, g) if np.ndim(b) == 2 else g * a
-    return np.swapaxes(a, -1, -2) @ g if np.ndim(b) == 2 else g @ a
+    if np.ndim(b) != 2:
+        return g @ a
+    if np.shape(g)[-2] == 1:
+        # an outer product (a's column times a row of g): one multiply, not a gemm
+        return np.swapaxes(a, -1, -2) * g
+    return np.swapaxes(a, -1, -2) @ g
 ''',
     "_gw_scatter": '''def _gw_scatter(g, x, index):
     """The adjoint of x[index]: g in the selected places, zeros elsewhere."""

@@ -134,10 +134,16 @@ RULES: dict[str, Rule] = {
     ),
     "sinh": lambda g, out, x: (g * call("cosh")(x),),
     "cosh": lambda g, out, x: (g * call("sinh")(x),),
-    # sech(x)**2 from cosh: 1 - out*out cancels for |x| > 1 (and is 0 past 19);
-    # cosh overflows past 710, where the derivative is below the smallest float
+    # sech(x)**2 = 1 / cosh(x)**2 = 1 / (0.5 + 0.5 * cosh(2x)): one cosh, within
+    # about 2 ulp (all terms positive); 1 - out*out cancels for |x| > 1 (and is 0
+    # past 19). cosh(2x) overflows past |x| = 355.2, where sech(x)**2 < 2e-308 is
+    # below the smallest normal float: the rule returns 0 there
     "tanh": lambda g, out, x: (
-        where(call("abs")(x).lt(710.0), g / call("cosh")(x) / call("cosh")(x), 0.0),
+        where(
+            call("abs")(x).lt(355.0),
+            g / (0.5 + 0.5 * call("cosh")(2.0 * x)),
+            0.0,
+        ),
     ),
     # hypot(x, 1) avoids the overflow of x*x + 1 for |x| > 1e154
     "asinh": lambda g, out, x: (g / hypot(x, 1.0),),
