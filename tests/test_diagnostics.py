@@ -197,15 +197,16 @@ CASES = [
         "define a module-level function",
     ),
     case(
-        "list-comprehension",
+        "comprehension-with-two-for-clauses",
         """
         def f(x):
-            ys = [x * k for k in range(3)]
+            ys = [x * k * j for k in range(3) for j in range(2)]
             return x
         """,
-        "list comprehensions are not supported",
+        "a comprehension with several `for` clauses is not supported",
         2,
-        "[x * k for k in range(3)]",
+        "range(2)",
+        "write the outer loop as a for statement around it",
     ),
     case(
         "set-comprehension",
@@ -236,9 +237,10 @@ CASES = [
             ys = (x * k for k in range(3))
             return x
         """,
-        "generator expressions are not supported",
+        "a comprehension is a list here: assign it to a name, or sum it",
         2,
         "x * k for k in range(3)",
+        "write `terms = [... for x in xs]` or `sum(... for x in xs)`",
     ),
     case(
         "global-statement",
@@ -595,25 +597,24 @@ CASES = [
         def f(x):
             return x * NAME
         """,
-        "'NAME' is not a numeric module-level constant",
+        "'NAME' is a string, not a number",
         5,
         "NAME",
         "GRAVITY = 9.80665",
     ),
     case(
-        "module-constant-rebound",
+        "module-table-as-a-number",
         """
-        SCALE = 2.0
-        SCALE = 3.0
+        SCALES = [2.0, 3.0]
 
 
         def f(x):
-            return x * SCALE
+            return x * SCALES
         """,
-        "'SCALE' is not a numeric module-level constant",
-        6,
-        "SCALE",
-        "bound once to a number",
+        "'SCALES' is a list, not a number",
+        5,
+        "SCALES",
+        "index it: SCALES[i]",
     ),
     case(
         "returns-of-different-lengths",
@@ -1159,6 +1160,7 @@ CASES = [
         "a parameter default must be a numeric constant",
         1,
         "None",
+        "def f(a, span=SPAN)",
     ),
     case(
         "no-parameters",

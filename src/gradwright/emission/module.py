@@ -306,7 +306,7 @@ def render_module(
     helper_text = "\n\n\n".join(
         t for t in (helper_source(helpers), numpy_helper_sources(numpy_helpers)) if t
     )
-    constants = _constants_used(index, [c.ssa for c in compiled])
+    constants = _module_slice(index, compiled)
 
     header = {
         "version": __version__,
@@ -329,14 +329,79 @@ def render_module(
     return text
 
 
-def _constants_used(index: ModuleIndex, functions: list[SSAFunction]) -> list[str]:
-    """The module constants the functions read, with what they read, in source order."""
-    wanted = {name for fn in functions for name in fn.constants}
-    pending = list(wanted)
-    while pending:
-        name = pending.pop()
-        for dep in index.constants[name].depends_on:
-            if dep not in wanted:
-                wanted.add(dep)
-                pending.append(dep)
-    return [c.text for name, c in index.constants.items() if name in wanted]
+def _default_names(node: cst.FunctionDef) -> set[str]:
+    """Names the parameter defaults read (``def f(a, span=SPAN)``)."""
+    params = node.params
+    found: set[str] = set()
+    for param in (*params.posonly_params, *params.params, *params.kwonly_params):
+        if param.default is not None:
+            found |= {
+                n.value
+                for n in _names_in(param.default)
+                if isinstance(n, cst.Name)  # attribute names are not read
+            }
+    return found
+
+
+def _names_in(node: cst.CSTNode) -> list[cst.Name]:
+    found: list[cst.Name] = []
+
+    class Visitor(cst.CSTVisitor):
+        def visit_Name(self, name: cst.Name) -> None:
+            found.append(name)
+
+        def visit_Attribute(self, attribute: cst.Attribute) -> bool:
+            attribute.value.visit(self)
+            return False  # the attribute's own name is not read
+
+    node.visit(Visitor())
+    return found
+
+
+def _module_slice(index: ModuleIndex, compiled: list[Compiled]) -> list[str]:
+    """The module statements the functions depend on, in source order, as text.
+
+    Names the functions read -> every statement binding them -> the names those
+    read, and so on; a statement that may change a needed value in place (a call,
+    an element assignment, a block) comes along too. def and class statements are
+    copied only for a name they bind; math and numpy imports are written by the
+    output itself; the ``__main__`` block never. Nothing is run: the copy is text.
+    """
+    wanted = {name for c in compiled for name in c.ssa.constants}
+    for c in compiled:
+        wanted |= _default_names(c.checked.node)
+    wanted &= index.module_names
+    statements = index.statements
+    taken = [False] * len(statements)
+    changed = True
+    while changed:
+        changed = False
+        for k, statement in enumerate(statements):
+            if taken[k] or statement.kind == "main":
+                continue
+            if statement.binds & wanted or (
+                statement.kind == "other"
+                and statement.mutates
+                and statement.reads & wanted & index.data_names
+            ):
+                taken[k] = True
+                changed = True
+                wanted |= statement.reads & index.module_names
+    parts: list[tuple[str, str]] = []
+    for k, statement in enumerate(statements):
+        if not taken[k] or statement.kind == "generated":
+            continue
+        if parts and parts[-1][1] == statement.text:
+            continue  # two statements on one line: the line once
+        parts.append((statement.kind, statement.text))
+    # black's spacing: two blank lines around a def or class, one after imports
+    blocks: list[str] = []
+    for k, (kind, text) in enumerate(parts):
+        previous = parts[k - 1][0] if k else ""
+        if kind in ("def", "class") or previous in ("def", "class"):
+            blocks.append(("\n\n" if blocks else "\n") + text)
+        elif previous == "import" and kind != "import":
+            blocks.append("\n" + text)
+        else:
+            blocks.append(text)
+    return blocks

@@ -24,6 +24,18 @@ class CallLowering:
 
     def call(self, node: cst.Call, base: str, target: Var | None) -> Atom:
         func = node.func
+        if (
+            isinstance(func, cst.Name)
+            and func.value in ("len", "sum", "min", "max")
+            and func.value not in self.index.module_names
+            and len(node.args) == 1
+            and not node.args[0].keyword
+            and not node.args[0].star
+            and self.data_root(node.args[0].value) is not None
+        ):
+            # a measure of module-level data: inactive, computed once where it is
+            table = self.data(node.args[0].value, base)
+            return self.emit(func.value, (table,), target or self.new_var(base, "temp"))
         if self.numpy:
             lowered = self.numpy_call(node, base, target)
             if lowered is not None:
@@ -35,6 +47,9 @@ class CallLowering:
                         "len", (array,), target or self.new_var(base, "temp")
                     )
         if isinstance(func, cst.Name) and func.value not in self.index.module_names:
+            folded = self.comprehension_call(node, func.value, base, target)
+            if folded is not None:
+                return folded
             if func.value in ("len", "sum"):
                 return self.list_builtin(node, func.value, base, target)
         if isinstance(func, cst.Name) and func.value in self.index.functions:

@@ -5,6 +5,7 @@ from __future__ import annotations
 import libcst as cst
 
 from gradwright.calculus.primitives import BINARY_OPERATORS, MATH_CONSTANTS
+from gradwright.calculus.rules import RULES
 from gradwright.diagnostics import fail
 from gradwright.ir import (
     Atom,
@@ -28,6 +29,9 @@ from gradwright.lowering.syntax import (
     _normalize_number,
 )
 
+#: list primitives adjoints flow through (as sweeps.reverse._LIST_FLOW)
+_LIST_FLOW = frozenset({"getitem", "setitem", "newlist", "listlit", "sum"})
+
 
 class ExpressionLowering:
     """Part of the lowering (see ``ssa._Lowerer``); state lives on the lowerer."""
@@ -38,6 +42,28 @@ class ExpressionLowering:
         """Lower ``node``; its outermost primitive defines ``target`` when given."""
         if isinstance(node, (cst.Integer, cst.Float)):
             return Const(_normalize_number(node.value), literal_value(node))
+        if self.data_root(node) is not None:
+            kind = (
+                self.index.data_kinds.get(node.value)
+                if isinstance(node, cst.Name)
+                else None
+            )
+            if kind is not None:
+                fail(
+                    f"'{node.value}' is {kind}, not a number",
+                    self.index.locate(node),
+                    (
+                        f"index it: {node.value}[i]"
+                        if kind != "a string"
+                        else "models compute with numbers: bind the module-level"
+                        " name to one, such as `GRAVITY = 9.80665`"
+                    ),
+                )
+            value = self.data(node, base)
+            if self.numpy and isinstance(value, Const):
+                # a Var, so an active operand broadcast against it is summed back
+                return self.emit("copy", (value,), target or self.new_var(base, "temp"))
+            return value
         if isinstance(node, cst.Name):
             return self.read_name(node)
         if isinstance(node, cst.Attribute):
@@ -57,6 +83,14 @@ class ExpressionLowering:
             return self.comparison(node, base, target)
         if isinstance(node, cst.BooleanOperation):
             return self.boolean(node, base, target)
+        if isinstance(node, (cst.ListComp, cst.GeneratorExp)):
+            if target is None or target.shape != "list":
+                fail(
+                    "a comprehension is a list here: assign it to a name, or sum it",
+                    self.index.locate(node),
+                    "write `terms = [... for x in xs]` or `sum(... for x in xs)`",
+                )
+            return self.comprehension(node, base, target)  # type: ignore[arg-type]
         if isinstance(node, cst.IfExp):
             return self.conditional(node, base, target)
         if isinstance(node, cst.Subscript) and self.numpy:
@@ -213,6 +247,86 @@ class ExpressionLowering:
             )
         )
         return result
+
+    # -- module-level data ------------------------------------------------------------
+
+    def data_root(self, node: cst.BaseExpression) -> str | None:
+        """The module-level data name ``node`` reads (``TABLE``, ``TABLE[i][j]``,
+        ``D["k"]``, ``CFG.field``), unless a parameter or local hides it."""
+        while isinstance(node, (cst.Attribute, cst.Subscript)):
+            node = node.value
+        if (
+            isinstance(node, cst.Name)
+            and node.value in self.index.data_names
+            and node.value not in self.env
+            and node.value not in self.local_names
+        ):
+            return node.value
+        return None
+
+    def data(self, node: cst.BaseExpression, base: str) -> Atom:
+        """Module-level data is an inactive constant: no adjoint ever reaches it.
+
+        Reads with constant keys stay constants (printed as written); an index
+        computed in the function makes a ``getitem`` whose index must be inert,
+        so that it can never become active (the reverse sweep has no adjoint for
+        the module's values)."""
+        if isinstance(node, cst.Name):
+            self.constants_read[node.value] = None
+            return Const(node.value, None)
+        if isinstance(node, cst.Attribute):
+            head = self.data(node.value, base)
+            if not isinstance(head, Const):
+                fail(
+                    "an attribute of an element picked by a computed index is not"
+                    " supported",
+                    self.index.locate(node),
+                    "keep the field in a module-level table of its own and index"
+                    " that",
+                )
+            return Const(f"{head.text}.{node.attr.value}", None)
+        assert isinstance(node, cst.Subscript)
+        head = self.data(node.value, base)
+        if len(node.slice) != 1 or not isinstance(node.slice[0].slice, cst.Index):
+            fail(
+                "only one index at a time reads module-level data",
+                self.index.locate(node),
+                "index one level at a time: TABLE[i][j]",
+            )
+        key = node.slice[0].slice.value  # type: ignore[union-attr]
+        if isinstance(key, cst.SimpleString):
+            index: Atom = Const(key.value, None)
+        else:
+            index = self.scalar(self.expr(key, base, None), key)
+            if not self.is_inert(index):
+                fail(
+                    "this index may depend on a --wrt parameter: module-level data"
+                    " has no derivative to pass on",
+                    self.index.locate(key),
+                    "index it with a loop counter, a parameter left out of --wrt,"
+                    " or an integer made from them (int(...), round(...), //)",
+                )
+        if isinstance(head, Const) and isinstance(index, Const):
+            return Const(f"{head.text}[{index.text}]", None)
+        return self.emit("getitem", (head, index), self.new_var(base, "temp"))
+
+    def is_inert(self, atom: Atom) -> bool:
+        """Whether a value can never be active: a constant, a loop counter, a
+        parameter left out of --wrt, or a result of primitives on inert values or
+        of a primitive with no derivative (a conservative, purely local check)."""
+        if isinstance(atom, Const):
+            return True
+        if atom.kind == "index":
+            return True
+        if atom.kind == "param":
+            return atom.base not in self.function.wrt
+        return atom in self.inert_values
+
+    def note_inert(self, op: str, args: tuple[Atom, ...], target: Var) -> None:
+        # mirrors reverse.differentiable: RULES, list flow and helper calls
+        passes = op in RULES or op in _LIST_FLOW or op.startswith("call:")
+        if not passes or all(self.is_inert(a) for a in args):
+            self.inert_values.add(target)
 
     def read_name(self, node: cst.Name) -> Atom:
         name = node.value

@@ -30,6 +30,23 @@ class ConstantDef:
 
 
 @dataclass(frozen=True)
+class ModuleStatement:
+    """One top-level statement: its text (with the comment lines right above it)
+    and the names it binds and reads, found without running it."""
+
+    text: str
+    binds: frozenset[str]
+    reads: frozenset[str]
+    #: "def" or "class" (copied only when a name they bind is needed), "import",
+    #: "generated" (math and numpy imports, which the output writes itself),
+    #: "main" (the ``if __name__ == "__main__":`` block, never copied) or "other"
+    kind: str
+    #: whether running it may change a value it reads (a call, an element or
+    #: attribute assignment, a block), so a needed value's statements include it
+    mutates: bool
+
+
+@dataclass(frozen=True)
 class ModuleIndex:
     path: str
     source: str
@@ -48,6 +65,13 @@ class ModuleIndex:
     functions: Mapping[str, cst.FunctionDef]
     #: every name bound at module level (for name-clash checks)
     module_names: frozenset[str] = field(default_factory=frozenset)
+    #: every top-level statement, for copying the ones the models depend on
+    statements: tuple[ModuleStatement, ...] = ()
+    #: module-level names bound to something other than a number, a function or
+    #: the math and numpy modules: inactive data the models may read
+    data_names: frozenset[str] = field(default_factory=frozenset)
+    #: data bound once to a literal that is not a number: name -> "a string", ...
+    data_kinds: Mapping[str, str] = field(default_factory=dict)
 
     @cached_property
     def positions(self) -> Mapping[cst.CSTNode, CodeRange]:
@@ -248,6 +272,7 @@ def _index(
     functions: dict[str, cst.FunctionDef] = {}
     candidates: list[tuple[str, cst.BaseExpression, str]] = []
     bound_count: dict[str, int] = {}
+    literal_kinds: dict[str, str] = {}
 
     def bind(name: str) -> None:
         bound_count[name] = bound_count.get(name, 0) + 1
@@ -331,11 +356,19 @@ def _index(
                         else module.code_for_node(small)
                     )
                     candidates.append((targets[0].value, small.value, text))
+                    kind = _LITERAL_KINDS.get(type(small.value))
+                    if kind is not None:
+                        literal_kinds[targets[0].value] = kind
             elif isinstance(small, cst.AugAssign) and isinstance(
                 small.target, cst.Name
             ):
                 bind(small.target.value)
 
+    statements = _module_statements(source)
+    for statement in statements:
+        if statement.kind != "main":
+            for name in statement.binds:
+                bound_count.setdefault(name, 1)
     constants: dict[str, ConstantDef] = {}
     frozen_modules = frozenset(math_modules)
     for name, value, text in candidates:
@@ -358,7 +391,122 @@ def _index(
         constants=constants,
         functions=functions,
         module_names=frozenset(bound_count),
+        statements=statements,
+        data_kinds={
+            name: kind
+            for name, kind in sorted(literal_kinds.items())
+            if bound_count.get(name) == 1
+        },
+        data_names=frozenset(bound_count)
+        - set(constants)
+        - set(functions)
+        - math_modules
+        - numpy_modules
+        - set(math_names),
     )
+
+
+_SCOPES = (ast.FunctionDef, ast.AsyncFunctionDef, ast.ClassDef, ast.Lambda)
+_COMPREHENSIONS = (ast.ListComp, ast.SetComp, ast.DictComp, ast.GeneratorExp)
+
+
+def _bound_names(node: ast.AST) -> set[str]:
+    """Names a top-level statement binds in the module (not in nested scopes)."""
+    found: set[str] = set()
+
+    def visit(item: ast.AST) -> None:
+        if isinstance(item, (ast.FunctionDef, ast.AsyncFunctionDef, ast.ClassDef)):
+            found.add(item.name)
+            return
+        if isinstance(item, (ast.Lambda, *_COMPREHENSIONS)):
+            return
+        if isinstance(item, ast.Name) and isinstance(item.ctx, (ast.Store, ast.Del)):
+            found.add(item.id)
+        elif isinstance(item, (ast.Import, ast.ImportFrom)):
+            for alias in item.names:
+                found.add(alias.asname or alias.name.split(".")[0])
+        for child in ast.iter_child_nodes(item):
+            visit(child)
+
+    visit(node)
+    found.discard("*")
+    return found
+
+
+def _is_main_guard(node: ast.stmt) -> bool:
+    test = node.test if isinstance(node, ast.If) else None
+    return (
+        isinstance(test, ast.Compare)
+        and isinstance(test.left, ast.Name)
+        and test.left.id == "__name__"
+    )
+
+
+def _statement_kind(node: ast.stmt) -> str:
+    if isinstance(node, (ast.FunctionDef, ast.AsyncFunctionDef)):
+        return "def"
+    if isinstance(node, ast.ClassDef):
+        return "class"
+    if isinstance(node, ast.Import):
+        plain = all(a.name in ("math", "numpy") for a in node.names)
+        return "generated" if plain else "import"
+    if isinstance(node, ast.ImportFrom):
+        return "generated" if node.module == "math" and not node.level else "import"
+    if _is_main_guard(node):
+        return "main"
+    return "other"
+
+
+def _may_mutate(node: ast.stmt) -> bool:
+    if isinstance(node, (ast.Assign, ast.AnnAssign)):
+        targets = node.targets if isinstance(node, ast.Assign) else [node.target]
+        return not all(isinstance(t, (ast.Name, ast.Tuple)) for t in targets)
+    return not isinstance(node, (ast.Pass, ast.Import, ast.ImportFrom))
+
+
+def _module_statements(source: str) -> tuple[ModuleStatement, ...]:
+    """The top-level statements as text (whole lines, so trailing comments come
+    along, and the comment lines right above), with the names each binds and
+    reads. ``ast`` only parses; nothing is run."""
+    try:
+        tree = ast.parse(source)
+    except (SyntaxError, ValueError):
+        return ()
+    lines = source.splitlines()
+    out: list[ModuleStatement] = []
+    for node in tree.body:
+        first = node.lineno
+        if isinstance(node, (ast.FunctionDef, ast.AsyncFunctionDef, ast.ClassDef)):
+            first = min([first, *(d.lineno for d in node.decorator_list)])
+        last = node.end_lineno or node.lineno
+        while first > 1 and lines[first - 2].lstrip().startswith("#"):
+            first -= 1
+        reads = {
+            n.id
+            for n in ast.walk(node)
+            if isinstance(n, ast.Name) and isinstance(n.ctx, ast.Load)
+        }
+        out.append(
+            ModuleStatement(
+                text="\n".join(lines[first - 1 : last]),
+                binds=frozenset(_bound_names(node)),
+                reads=frozenset(reads),
+                kind=_statement_kind(node),
+                mutates=_may_mutate(node),
+            )
+        )
+    return tuple(out)
+
+
+_LITERAL_KINDS: dict[type, str] = {
+    cst.SimpleString: "a string",
+    cst.ConcatenatedString: "a string",
+    cst.FormattedString: "a string",
+    cst.List: "a list",
+    cst.Tuple: "a tuple",
+    cst.Dict: "a dict",
+    cst.Set: "a set",
+}
 
 
 def _alias_local(alias: cst.ImportAlias) -> str:
@@ -430,15 +578,19 @@ def check_function(
     all_params = [*params.posonly_params, *params.params, *params.kwonly_params]
     names = tuple(p.name.value for p in all_params)
     for param in all_params:
-        if param.default is not None and (
-            _constant_dependencies(
+        if (
+            param.default is not None
+            and _constant_dependencies(
                 param.default, index.constants, index.math_modules, index.math_names
             )
             is None
+            and not _is_data_read(param.default, index.data_names)
         ):
             fail(
-                "a parameter default must be a numeric constant",
+                "a parameter default must be a numeric constant or module-level data",
                 index.locate(param.default),
+                "write the value as a module-level constant (SPAN = 2.5) and name"
+                " it: def f(a, span=SPAN)",
             )
     if not names:
         fail(
@@ -473,6 +625,23 @@ def check_function(
                     "leave it out of --wrt, or annotate it float",
                 )
     return CheckedFunction(name, node, names, chosen)
+
+
+def _is_data_read(node: cst.BaseExpression, data_names: frozenset[str]) -> bool:
+    """``NAME``, ``NAME.field`` or ``NAME[k]`` with NAME module-level data and k a
+    literal: a default that the generated signature can keep as written."""
+    if isinstance(node, cst.Name):
+        return node.value in data_names
+    if isinstance(node, cst.Attribute):
+        return _is_data_read(node.value, data_names)
+    if isinstance(node, cst.Subscript):
+        keys = [s.slice for s in node.slice]
+        return all(
+            isinstance(k, cst.Index)
+            and isinstance(k.value, (cst.Integer, cst.SimpleString))
+            for k in keys
+        ) and _is_data_read(node.value, data_names)
+    return False
 
 
 def literal_value(node: cst.Integer | cst.Float) -> int | float:
