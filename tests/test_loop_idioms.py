@@ -9,6 +9,8 @@ import math
 import pytest
 from support import build, mp_function, mp_gradient, rel_err, run_source
 
+import gradwright
+
 LINE_FIT = """
 def line_loss(a, b, xs, ys):
     total = 0.0
@@ -142,3 +144,54 @@ def mixed(x, xs, ys):
     want = [reference[0], *reference[1], *reference[2]]
     for got, expected in zip(flat, want, strict=True):
         assert rel_err(got, float(expected)) < 1e-12
+
+
+COMPREHENSIONS = """
+import math
+def fit(a, b, xs, ys):
+    loss = 0.5 * sum((a * x + b - y) ** 2 for x, y in zip(xs, ys) if x > 0.0)
+    preds = [math.exp(a * x) for x in xs]
+    return loss + sum(p * b for p in preds) + sum([a * i for i in range(2, 5)])
+"""
+
+
+def test_comprehensions_against_sympy():
+    import sympy
+
+    module = build(COMPREHENSIONS, "fit", ["a", "b"])
+    xs, ys = [0.5, -1.0, 2.0], [1.0, 0.2, 3.0, 4.0]
+    a, b = sympy.symbols("a b")
+    # the same model written out by hand for SymPy (x > 0 keeps x = 0.5 and 2.0)
+    loss = sympy.Rational(1, 2) * sum(
+        (a * sympy.Float(x) + b - sympy.Float(y)) ** 2
+        for x, y in zip(xs, ys, strict=False)
+        if x > 0.0
+    )
+    model = loss + sum(sympy.exp(a * sympy.Float(x)) * b for x in xs)
+    model += sum(a * i for i in range(2, 5))
+    point = {a: 0.7, b: -0.3}
+    value, (a_bar, b_bar) = module["fit_grad"](0.7, -0.3, xs, ys)
+    assert value == run_source(COMPREHENSIONS)["fit"](0.7, -0.3, xs, ys)
+    assert rel_err(a_bar, float(sympy.diff(model, a).evalf(30, subs=point))) < 1e-13
+    assert rel_err(b_bar, float(sympy.diff(model, b).evalf(30, subs=point))) < 1e-13
+
+
+def test_comprehension_with_two_for_clauses_is_a_located_error():
+    source = "def f(x, xs):\n    return sum(x * u * v for u in xs for v in xs)\n"
+    with pytest.raises(gradwright.GradwrightError) as error:
+        gradwright.generate(source, ["f"], wrt=["x"])
+    assert "several `for` clauses" in str(error.value)
+    assert "<string>:2:" in str(error.value)
+
+
+def test_loop_targets_are_not_visible_after_the_loop():
+    source = """
+def f(x, xs, ys):
+    s = 0.0
+    for u, v in zip(xs, ys):
+        s = s + u * v * x
+    return s + v
+"""
+    with pytest.raises(gradwright.GradwrightError) as error:
+        gradwright.generate(source, ["f"], wrt=["x"])
+    assert "assigned only inside the loop" in str(error.value)

@@ -37,7 +37,7 @@ from gradwright.lowering.frontend import (
     CheckedFunction,
     ModuleIndex,
 )
-from gradwright.lowering.loops import LoopLowering
+from gradwright.lowering.loops import ComprehensionLowering, LoopLowering
 from gradwright.lowering.numpy_calls import NumpyLowering
 from gradwright.lowering.statements import StatementLowering
 from gradwright.lowering.syntax import (
@@ -47,9 +47,21 @@ from gradwright.lowering.syntax import (
 )
 
 
+def _is_list_call(node: cst.BaseExpression) -> bool:
+    """``list(<generator>)``."""
+    return (
+        isinstance(node, cst.Call)
+        and isinstance(node.func, cst.Name)
+        and node.func.value == "list"
+        and len(node.args) == 1
+        and isinstance(node.args[0].value, (cst.GeneratorExp, cst.ListComp))
+    )
+
+
 class _Lowerer(
     StatementLowering,
     LoopLowering,
+    ComprehensionLowering,
     AssignmentLowering,
     ExpressionLowering,
     CallLowering,
@@ -126,6 +138,9 @@ class _Lowerer(
         """Evaluate ``node`` into a fresh local value named after ``base``."""
         target = self.new_var(base, "local", self.shape_of_expression(node))
         atom = self.expr(node, base, target)
+        if isinstance(atom, Var) and atom.shape == "list" and target.shape == "list":
+            if self.root_of(atom) == target:
+                return atom  # the list itself, after the writes that filled it
         if atom is not target:
             if isinstance(atom, Var) and atom.shape == "list":
                 fail(
@@ -138,7 +153,9 @@ class _Lowerer(
         return target
 
     def shape_of_expression(self, node: cst.BaseExpression) -> str:
-        if isinstance(node, cst.List):
+        if isinstance(node, (cst.List, cst.ListComp)):
+            return "list"
+        if _is_list_call(node):
             return "list"
         if isinstance(node, cst.BinaryOperation) and isinstance(
             node.operator, cst.Multiply
