@@ -701,8 +701,8 @@ def statement(draw, sc: Scope, allow_return: bool, tuple_out: int) -> list:
         return [For(var, iterable, body)]
     if kind in ("if", "ifreturn"):
         stmt = draw(if_statement(sc, kind == "ifreturn", tuple_out))
-        shared = [s.targets[0] for _, arm in stmt.arms for s in arm[-1:]]
-        name = shared[0] if shared and isinstance(shared[0], str) else ""
+        last = [s for _, arm in stmt.arms for s in arm[-1:] if isinstance(s, Assign)]
+        name = last[0].targets[0] if last else ""
         return [stmt, *draw(follow_up(sc, name))]
     raise AssertionError(kind)  # pragma: no cover
 

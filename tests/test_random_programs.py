@@ -26,9 +26,11 @@ Profiles (``GRADWRIGHT_RANDOM_PROFILE``):
 - ``ci`` (default): derandomized, a fixed example count per family, shrinks and
   fails on the first failure.
 - ``long``: random, ``GRADWRIGHT_RANDOM_EXAMPLES`` examples per family (3000 unless
-  set); failures are counted, shrunk (``progen.shrink``) and appended as JSON lines
-  to ``GRADWRIGHT_RANDOM_FAILURES`` (when set) instead of stopping the run; each
-  family prints its counts and fails at the end if anything failed.
+  set); failures are counted, the first ``GRADWRIGHT_RANDOM_SHRINK`` (5) of each
+  kind shrunk (``progen.shrink``) and appended as JSON lines to
+  ``GRADWRIGHT_RANDOM_FAILURES`` (when set) instead of stopping the run; each family
+  prints its counts (every 250 programs and at the end) and fails at the end if
+  anything failed. ``GRADWRIGHT_RANDOM_SLOW`` (10 s) bounds one generate().
 
 Every family also checks its counts: rejections within budget and most compared
 examples with a nonzero gradient (the reference's), so passing means comparing.
@@ -59,7 +61,8 @@ PROFILE = os.environ.get("GRADWRIGHT_RANDOM_PROFILE", "ci")
 LONG = PROFILE == "long"
 LONG_EXAMPLES = int(os.environ.get("GRADWRIGHT_RANDOM_EXAMPLES", "3000"))
 FAILURE_LOG = os.environ.get("GRADWRIGHT_RANDOM_FAILURES", "")
-SHRINK_PER_SIGNATURE = 5  # long profile: shrink this many failures of each kind
+# long profile: shrink this many failures of each kind (each takes seconds)
+SHRINK_PER_SIGNATURE = int(os.environ.get("GRADWRIGHT_RANDOM_SHRINK", "5"))
 
 # family -> (knobs, or None for NumPy programs; CI example count)
 FAMILIES: dict[str, tuple[Knobs | None, int]] = {
@@ -369,6 +372,24 @@ def f(x, y):
 """,
         [[0.75, 1.0]],
     ),
+    "nested_loop_if_rebinds_to_parameter": (
+        """\
+def f(x, y):
+    for i in range(1):
+        for j in range(1):
+            if x > 0.0:
+                x = y
+    return x
+""",
+        [[1.36, 0.5], [-1.36, -0.94]],
+    ),
+    "unread_list_parameter": (
+        """\
+def f(x, xs):
+    return x
+""",
+        [[0.5, [0.25, 0.5]], [0.5, []]],
+    ),
     "nested_loop_restores": (
         """\
 def f(x):
@@ -389,4 +410,8 @@ def test_regression(name: str) -> None:
     source, points = REGRESSIONS[name]
     params = source.split("def f(")[1].split(")")[0].split(", ")
     for args in points:
-        check_source(source, {p: "float" for p in params}, args)
+        kinds = {
+            p: f"list:{len(a)}" if isinstance(a, list) else "float"
+            for p, a in zip(params, args, strict=True)
+        }
+        check_source(source, kinds, args)
