@@ -195,3 +195,54 @@ def f(x, xs, ys):
     with pytest.raises(gradwright.GradwrightError) as error:
         gradwright.generate(source, ["f"], wrt=["x"])
     assert "assigned only inside the loop" in str(error.value)
+
+
+def test_loop_over_module_level_rows():
+    source = """
+import math
+
+SAMPLES = [(0.5, 4.1), (1.0, 3.6), (2.0, 2.7), (4.0, 1.6)]
+DOSE = 100.0
+
+
+def pk_loss(volume, k_el):
+    total = 0.0
+    for t, conc in SAMPLES:
+        predicted = DOSE / volume * math.exp(-k_el * t)
+        total += (math.log(predicted) - math.log(conc)) ** 2
+    return total / len(SAMPLES)
+"""
+    import sympy
+
+    module = build(source, "pk_loss")
+    v, k = sympy.symbols("v k")
+    samples = [(0.5, 4.1), (1.0, 3.6), (2.0, 2.7), (4.0, 1.6)]
+    model = sum(
+        (sympy.log(100 / v * sympy.exp(-k * t)) - sympy.log(sympy.Float(c))) ** 2
+        for t, c in samples
+    ) / len(samples)
+    value, (v_bar, k_bar) = module["pk_loss_grad"](12.0, 0.3)
+    assert value == run_source(source)["pk_loss"](12.0, 0.3)
+    point = {v: 12.0, k: 0.3}  # SymPy diff of the same model written by hand
+    assert rel_err(v_bar, float(sympy.diff(model, v).evalf(30, subs=point))) < 1e-13
+    assert rel_err(k_bar, float(sympy.diff(model, k).evalf(30, subs=point))) < 1e-13
+
+
+def test_helper_that_loops_over_a_list_is_a_located_error():
+    """It generated a module that failed when called (the helper's partial for a
+    list is a list)."""
+    source = """
+def horner(coeffs, x):
+    acc = 0.0
+    for c in reversed(coeffs):
+        acc = acc * x + c
+    return acc
+
+
+def fit(coeffs, xs, ys):
+    return sum((horner(coeffs, x) - y) ** 2 for x, y in zip(xs, ys))
+"""
+    with pytest.raises(gradwright.GradwrightError) as error:
+        gradwright.generate(source, ["fit"], wrt=["coeffs"])
+    assert "<string>:10:17:" in str(error.value)
+    assert "'horner' takes a list ('coeffs')" in str(error.value)

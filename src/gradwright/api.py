@@ -88,6 +88,7 @@ def compile_with_callees(
         compiled.append(item)
         pending += [(callee, c) for c in item.ssa.callees]
     _reject_cycles(index, compiled)
+    _reject_list_helpers(index, compiled, set(names))
     if index.numpy_modules:
         _reject_array_helpers(index, compiled, set(names))
     return compiled
@@ -140,6 +141,28 @@ def _reject_array_helpers(
                     index.locate(_first_call(item.checked, callee)),
                     f"write the body of '{callee}' into '{item.ssa.name}' where it"
                     " is called",
+                )
+
+
+def _reject_list_helpers(
+    index: ModuleIndex, compiled: list[Compiled], targets: set[str]
+) -> None:
+    """A helper found to take a list (however it uses it) cannot be called: its
+    partials are numbers, one per parameter. (The call site's own check reads the
+    helper's syntax; this one reads what its lowering found.)"""
+    lists = {
+        c.ssa.name: [p.base for p in c.ssa.params if p.shape == "list"]
+        for c in compiled
+        if c.ssa.name not in targets
+    }
+    for item in compiled:
+        for callee in item.ssa.callees:
+            if lists.get(callee):
+                fail(
+                    f"'{callee}' takes a list ('{lists[callee][0]}'): passing lists"
+                    " to helper functions is not supported",
+                    index.locate(_first_call(item.checked, callee)),
+                    "write the helper's loop into the caller, or pass the numbers",
                 )
 
 

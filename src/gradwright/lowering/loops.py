@@ -258,6 +258,15 @@ class LoopLowering:
             )
             count = Const(str(len(values)), len(values))
             return count, lambda i: self.element(listed, i), "k"
+        if self.data_root(node) is not None:
+            # module-level data: its elements (or rows) are inactive constants
+            table = self.data(node, "table")
+            length = self.emit("len", (table,), self.new_var("n", "temp"))
+
+            def row(index: Var) -> object:
+                return _DataRow(self, table, index)
+
+            return length, row, "row_index"
         sequence = self.expr(node, "xs", None)
         self.as_list(sequence)
         if not (isinstance(sequence, Var) and sequence.shape == "list"):
@@ -282,6 +291,8 @@ class LoopLowering:
     ) -> None:
         """Bind a loop target (a name or nested tuple of names) to what one
         iteration reads."""
+        if isinstance(value, _DataRow):
+            value = value.unpacked(target)
         if isinstance(target, cst.Name):
             if isinstance(value, tuple):
                 fail(
@@ -303,6 +314,33 @@ class LoopLowering:
             )
         for element, part in zip(elements, value, strict=True):  # type: ignore[arg-type]
             self.bind_target(element, part, index)
+
+
+class _DataRow:
+    """Element ``index`` of a module-level table: a number, or a row that a tuple
+    target unpacks (``for t, conc in SAMPLES``)."""
+
+    def __init__(self, lowering: object, table: Atom, index: Var) -> None:
+        self.lowering, self.table, self.index = lowering, table, index
+
+    def unpacked(self, target: cst.BaseExpression) -> object:
+        low = self.lowering
+        if isinstance(target, cst.Name):
+            return lambda name: low.emit(  # type: ignore[attr-defined]
+                "getitem", (self.table, self.index), low.new_var(name, "local")  # type: ignore[attr-defined]
+            )
+        row = low.emit(  # type: ignore[attr-defined]
+            "getitem", (self.table, self.index), low.new_var("row", "temp")  # type: ignore[attr-defined]
+        )
+        count = len(target.elements)  # type: ignore[attr-defined]
+        return tuple(
+            (
+                lambda name, j=j: low.emit(  # type: ignore[attr-defined]
+                    "getitem", (row, Const(str(j), j)), low.new_var(name, "local")  # type: ignore[attr-defined]
+                )
+            )
+            for j in range(count)
+        )
 
 
 def _target_names(target: cst.BaseExpression) -> list[str] | None:
