@@ -126,6 +126,11 @@ MP_MATH = types.SimpleNamespace(
     pow=mpmath.power,
     copysign=_mp_copysign,
     hypot=_mp_hypot,
+    radians=lambda x: x * mpmath.pi / 180,
+    degrees=lambda x: x * 180 / mpmath.pi,
+    floor=lambda x: int(mpmath.floor(x)),
+    ceil=lambda x: int(mpmath.ceil(x)),
+    trunc=int,
     # the float constants, as the model sees them (not the exact numbers)
     pi=mpmath.mpf(math.pi),
     e=mpmath.mpf(math.e),
@@ -194,6 +199,8 @@ def _sympy_math():
         # copysign(x, y) = |x| * sign(y) for y != 0 (C99 Annex F; common practice)
         copysign=lambda x, y: sympy.Abs(x) * sympy.sign(y),
         hypot=hypot,
+        radians=lambda x: x * sympy.pi / 180,
+        degrees=lambda x: x * 180 / sympy.pi,
         # the float constants, as the model sees them
         pi=math.pi,
         e=math.e,
@@ -294,7 +301,11 @@ def sympy_function(source: str, func: str) -> Callable:
 
     sympy_builtins = dict(vars(builtins))
     sympy_builtins.update(
-        __import__=importer, abs=sympy.Abs, min=sympy.Min, max=sympy.Max
+        __import__=importer,
+        abs=sympy.Abs,
+        min=sympy.Min,
+        max=sympy.Max,
+        float=lambda x: x,  # the identity on numbers, kept symbolic
     )
     namespace: dict = {"__builtins__": sympy_builtins}
     exec(compile(source, "<model in sympy>", "exec"), namespace)

@@ -83,6 +83,13 @@ def _operator_cases() -> list[Case]:
         Case("floordiv_case", xy, "return x * (x // y)", ((7.5, 2.0), (-7.5, 2.25))),
         Case("pow_case", xy, "return x**y", ((1.75, 2.3), (0.5, -1.25))),
         Case("pow_int_case", xy, "return x**3 * y**-2", pair),
+        Case("float_case", xy, "return float(x) * y", pair),
+        Case(
+            "piecewise_case",
+            xy,
+            "return x * (int(x) + round(y) + math.floor(x) + math.ceil(y))",
+            pair,
+        ),
         Case(
             "abs_case", xy, "return abs(x) * y", ((-1.5, 2.0), (0.0, 2.0), (1.5, 2.0))
         ),
@@ -141,6 +148,8 @@ _UNARY_POINTS: dict[str, tuple[float, ...]] = {
     "cbrt": (0.7, -27.5),
     "erf": (0.3, -1.1),
     "erfc": (0.3, -1.1),
+    "radians": (0.7, -135.0),
+    "degrees": (0.7, -2.1),
 }
 
 

@@ -264,6 +264,7 @@ def test_mutated_table_keeps_its_mutations() -> None:
 @pytest.mark.parametrize(
     ("body", "column", "hint"),
     [
+        ("    return TABLE[int(x)] * x\n", None, None),
         ("    k = 2 * x\n    return TABLE[k] * x\n", 17, "loop counter"),
         ("    return TABLE[x] * 2.0\n", 17, "int(...)"),
     ],
@@ -297,3 +298,48 @@ def test_name_bound_twice_is_copied_with_both_bindings() -> None:
     assert "SCALE = SCALE + 1.0  # recalibrated" in gradwright.generate(source, ["f"])
     # reference: d/dx (3 x^2) = 6 x
     assert build(source, "f")["f_grad"](2.0) == (12.0, (12.0,))
+
+
+BUILTINS = """\
+import math
+
+
+def tariff(x, y):
+    band = int(x * 3.0)
+    step = round(y) + math.floor(y) + math.ceil(x) + math.trunc(x * y)
+    rate = pow(x, 2.5) * math.radians(y) + math.degrees(x) * 0.01
+    return rate * step + band * y + round(x, 1) * y + min(x, float("inf"))
+"""
+
+
+def test_piecewise_constant_and_simple_builtins() -> None:
+    # int, round, floor, ceil, trunc have zero derivative between their jumps;
+    # pow is **, radians and degrees scale. Reference: mpmath central differences
+    # of the same text (math -> mpmath), at points away from the jumps
+    ns = build(BUILTINS, "tariff")
+    f_mp = mp_function(BUILTINS, "tariff")
+    for point in ([0.9, 1.3], [2.2, 0.6], [1.43, 2.71]):
+        value, grads = ns["tariff_grad"](*point)
+        assert value == run_source(BUILTINS)["tariff"](*point)
+        for g, ref in zip(grads, mp_gradient(f_mp, point, [0, 1]), strict=True):
+            assert rel_err(g, ref) < 1e-12
+    text = gradwright.generate(BUILTINS, ["tariff"])
+    assert "int(x * 3.0)" in text and 'float("inf")' in text
+
+
+@pytest.mark.parametrize(
+    ("body", "message", "hint"),
+    [
+        ("return pow(x, 2.0, 5)", "pow() takes two arguments here", "(x ** y) % m"),
+        ('return x * float("2.5")', "float() of a string", 'float("inf")'),
+        ("return int(x)", "does not depend", None),
+    ],
+)
+def test_builtin_rejections(body: str, message: str, hint: str | None) -> None:
+    with pytest.raises(GradwrightError) as error:
+        gradwright.generate(f"def f(x):\n    {body}\n", ["f"])
+    diagnostic = error.value.diagnostic
+    assert message in diagnostic.message
+    assert diagnostic.location is not None
+    if hint is not None:
+        assert hint in (diagnostic.hint or "")

@@ -220,6 +220,10 @@ CASES = [
     c("hypot-two-args", "hypot", "math.hypot(x, y)", both_signed(0.1, 5.0)),
     c("hypot-three-args", "hypot", "math.hypot(x, y, x - 2.0 * y)", UNIT),
     c("hypot-constant-arg", "hypot", "math.hypot(x, 1.5, y)", UNIT),
+    # unit conversions and float(x), the identity
+    c("radians", "radians", "math.radians(x) * y", UNIT),
+    c("degrees", "degrees", "math.degrees(x) + y * x", UNIT),
+    c("float", "float", "float(x) * y", UNIT),
 ]
 
 

@@ -105,6 +105,16 @@ _SPECS = [
     _math("pow", 2, 2),
     _math("copysign", 2, 2),
     _math("hypot", 1, None),
+    _math("radians"),
+    _math("degrees"),
+    # float(x) is the identity on numbers (kept in the output: int -> float)
+    OpSpec("float", "call", "float", PREC_ATOM, 1, 1),
+    # piecewise constant, integer results: no rule, so never active
+    OpSpec("int", "call", "int", PREC_ATOM, 1, 1),
+    OpSpec("round", "call", "round", PREC_ATOM, 1, 2),
+    _math("floor"),
+    _math("ceil"),
+    _math("trunc"),
 ]
 
 

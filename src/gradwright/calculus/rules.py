@@ -319,6 +319,13 @@ RULES.update(
     }
 )
 
+# radians and degrees multiply by these (CPython: x * (pi / 180.0)); float(x) is
+# the identity. int, round, floor, ceil and trunc have no rule: piecewise constant,
+# their results are inactive
+RULES["radians"] = lambda g, out, x: (g * 0.017453292519943295,)
+RULES["degrees"] = lambda g, out, x: (g * 57.29577951308232,)
+RULES["float"] = lambda g, out, x: (g,)
+
 #: primitives that only array (NumPy) models have; the rest are the scalar rules
 ARRAY_OPS: frozenset[str] = frozenset(
     {k for k in RULES if k.startswith("np.")} | {"matmul", "T", "reshape", "npindex"}

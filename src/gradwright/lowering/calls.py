@@ -8,6 +8,7 @@ from gradwright.calculus.primitives import OPS
 from gradwright.diagnostics import fail
 from gradwright.ir import (
     Atom,
+    Const,
     Var,
 )
 from gradwright.lowering.frontend import (
@@ -17,6 +18,18 @@ from gradwright.lowering.syntax import (
     _callee_list_uses,
     _returns_tuple,
 )
+
+#: builtins lowered to primitives: name -> op (pow is the ** operator: Python's
+#: pow(x, y) and x ** y are one operation)
+_BUILTINS = {
+    "abs": "abs",
+    "min": "min",
+    "max": "max",
+    "pow": "pow",
+    "float": "float",
+    "int": "int",
+    "round": "round",
+}
 
 
 class CallLowering:
@@ -58,10 +71,13 @@ class CallLowering:
         if (
             op is None
             and isinstance(func, cst.Name)
-            and func.value in ("abs", "min", "max")
+            and func.value in _BUILTINS
+            and func.value not in self.index.module_names
         ):
-            if func.value not in self.index.module_names:
-                op = func.value
+            special = self.special_builtin(node, func.value)
+            if special is not None:
+                return special
+            op = _BUILTINS[func.value]
         if op is None:
             self.reject_call(func)
         assert op is not None
@@ -111,6 +127,33 @@ class CallLowering:
                 )
             return acc
         return self.emit(op, args, target or self.new_var(base, "temp"))
+
+    def special_builtin(self, node: cst.Call, name: str) -> Atom | None:
+        """``float("inf")`` is a constant; ``pow`` takes two arguments here."""
+        args = node.args
+        if name == "float" and len(args) == 1:
+            text = args[0].value
+            if isinstance(text, cst.SimpleString):
+                word = text.evaluated_value
+                try:
+                    value = float(word)  # a string, never code: nothing runs
+                except (TypeError, ValueError):
+                    value = None
+                if value is None or value == value and abs(value) != float("inf"):
+                    fail(
+                        "float() of a string is supported only for infinities and"
+                        " nan",
+                        self.index.locate(text),
+                        'write the number itself, or float("inf")',
+                    )
+                return Const(f"float({text.value})", value)
+        if name == "pow" and len(args) != 2:
+            fail(
+                "pow() takes two arguments here",
+                self.index.locate(node),
+                "write pow(x, y) or x ** y; for pow(x, y, m) compute (x ** y) % m",
+            )
+        return None
 
     def list_builtin(
         self, node: cst.Call, name: str, base: str, target: Var | None
@@ -218,6 +261,6 @@ class CallLowering:
         fail(
             "unsupported call",
             loc,
-            "models call math functions, abs, min, max, len, sum and functions"
-            " defined in the same file",
+            "models call math functions, abs, min, max, pow, float, int, round, len,"
+            " sum and functions defined in the same file",
         )

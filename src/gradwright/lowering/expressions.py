@@ -365,7 +365,7 @@ class ExpressionLowering:
             f"name '{name}' is not defined",
             self.index.locate(node),
             "a model reads its parameters, its own variables, math, and module-level"
-            " numeric constants",
+            " constants and data (numbers, tables, dicts, arrays)",
         )
         raise AssertionError  # unreachable
 
