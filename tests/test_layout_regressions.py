@@ -148,6 +148,20 @@ def f(x, c):
         ["x"],
         [(0.5, 1.0), (0.5, -1.0)],
     ),
+    # the layout check wrongly refused it (an adjoint accumulated on one side of
+    # a branch in an inner loop was lost in the inner loop's summary)
+    "nested-loop-if-rebinds-to-parameter": (
+        """
+def f(x, y):
+    for i in range(1):
+        for j in range(2):
+            if x > 0.0:
+                x = y * x
+    return x
+""",
+        ["x", "y"],
+        [(1.36, 0.5), (-1.36, -0.94)],
+    ),
     "three-nested-loops": (
         """
 def f(x):

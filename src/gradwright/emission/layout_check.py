@@ -168,8 +168,27 @@ def _meet(a: State, b: State) -> State:
                 elif key == _SAME:
                     common.add((other_key, guard | other_guard))
         if common:
-            out[name] = frozenset(common)
+            out[name] = _resolve(frozenset(common))
     return out
+
+
+def _resolve(facts: frozenset) -> frozenset:
+    """A fact held on both sides of one branch holds whichever side was taken:
+    (k, g + {(b, 0)}) and (k, g + {(b, 1)}) give (k, g)."""
+    found = set(facts)
+    changed = True
+    while changed:
+        changed = False
+        for key, guard in list(found):
+            for branch, side in guard:
+                rest = guard - {(branch, side)}
+                if (key, rest | {(branch, 1 - side)}) in found and (
+                    key,
+                    rest,
+                ) not in found:
+                    found.add((key, rest))
+                    changed = True
+    return frozenset(found)
 
 
 def _join_branch(branch: object, then: State, orelse: State) -> State:
@@ -187,6 +206,7 @@ def _join_branch(branch: object, then: State, orelse: State) -> State:
 def _forget(state: State, local: frozenset[Var], branches: frozenset) -> State:
     out: State = {}
     for name, facts in state.items():
+        facts = _resolve(facts)
         kept = frozenset(
             (k, g)
             for k, g in facts

@@ -252,11 +252,11 @@ class _Emitter:
         then_lines, else_lines = sides
         if not then_lines and not else_lines:
             # nothing printed, but copies left out still hold on both paths
-            self.trace.branch(branch, *events)
+            self.trace.branch(id(branch), *events)
             return
         self.trace.at(branch.origin.text)
         self.reads(self.value(branch.condition))
-        self.trace.branch(branch, *events)
+        self.trace.branch(id(branch), *events)
         condition = self.print(self.value(branch.condition))
         out.comment(branch.origin, depth)
         out.code(f"if {condition}:", depth)
@@ -417,13 +417,13 @@ class _Emitter:
                     events.append(side_events)
                 then_lines, else_lines = sides
                 if not then_lines and not else_lines:
-                    trace.branch(stmt.branch, *events)
+                    trace.branch(id(stmt.branch), *events)
                     continue
                 out.comment(stmt.origin, depth)
                 condition_expr = self.layout.cheap(stmt.condition, True)
                 trace.at(stmt.origin.text)
                 self.reads(condition_expr)
-                trace.branch(stmt.branch, *events)
+                trace.branch(id(stmt.branch), *events)
                 condition = self.rprint(condition_expr)
                 out.code(f"if {condition}:", depth)
                 out.lines.extend(then_lines or ["    " * (depth + 1) + "pass"])
