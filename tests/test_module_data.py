@@ -343,3 +343,40 @@ def test_builtin_rejections(body: str, message: str, hint: str | None) -> None:
     assert diagnostic.location is not None
     if hint is not None:
         assert hint in (diagnostic.hint or "")
+
+
+def test_measures_of_module_data() -> None:
+    source = (
+        "RATES = [0.5, 2.0, 1.25]\n\n\n"
+        "def f(x):\n"
+        "    spread = min(RATES) / len(RATES)\n"
+        "    return x * sum(RATES, 1.0) + max(RATES) * x * x + spread\n"
+    )
+    ns = build(source, "f")
+    # reference: d/dx (4.75 x + 2 x^2 + c) = 4.75 + 4 x
+    value, (g,) = ns["f_grad"](1.5)
+    assert value == run_source(source)["f"](1.5)
+    assert g == 4.75 + 4.0 * 1.5
+
+
+@pytest.mark.parametrize(
+    ("body", "message", "hint"),
+    [
+        (
+            "    TABLE[0] = x\n    return x",
+            "a model may read it, not change it",
+            "t[i]",
+        ),
+        ("    return sum(TABLE, x)", "may depend on a --wrt parameter", "+ sum(TABLE)"),
+        ("    t = TABLE\n    return x * t[0]", "'TABLE' is a list", "TABLE[i]"),
+        ("    return x * TABLE[0, 1]", "one index at a time", "TABLE[i][j]"),
+    ],
+)
+def test_module_data_rejections(body: str, message: str, hint: str) -> None:
+    source = "TABLE = [1.0, 2.0]\n\n\ndef f(x):\n" + body + "\n"
+    with pytest.raises(GradwrightError) as error:
+        gradwright.generate(source, ["f"])
+    diagnostic = error.value.diagnostic
+    assert message in diagnostic.message
+    assert diagnostic.location is not None and diagnostic.location.line >= 5
+    assert hint in (diagnostic.hint or "")

@@ -41,14 +41,25 @@ class CallLowering:
             isinstance(func, cst.Name)
             and func.value in ("len", "sum", "min", "max")
             and func.value not in self.index.module_names
-            and len(node.args) == 1
-            and not node.args[0].keyword
-            and not node.args[0].star
+            and len(node.args) in (1, 2)
+            and not any(arg.keyword or arg.star for arg in node.args)
             and self.data_root(node.args[0].value) is not None
+            and (len(node.args) == 1 or func.value == "sum")
         ):
             # a measure of module-level data: inactive, computed once where it is
             table = self.data(node.args[0].value, base)
-            return self.emit(func.value, (table,), target or self.new_var(base, "temp"))
+            args: tuple[Atom, ...] = (table,)
+            if len(node.args) == 2:
+                start = node.args[1].value
+                args += (self.scalar(self.expr(start, base, None), start),)
+                if not self.is_inert(args[1]):
+                    fail(
+                        "the start of a sum of module-level data may depend on a"
+                        " --wrt parameter",
+                        self.index.locate(start),
+                        "add it after summing: start + sum(TABLE)",
+                    )
+            return self.emit(func.value, args, target or self.new_var(base, "temp"))
         if self.numpy:
             lowered = self.numpy_call(node, base, target)
             if lowered is not None:
@@ -159,11 +170,23 @@ class CallLowering:
         self, node: cst.Call, name: str, base: str, target: Var | None
     ) -> Atom:
         if len(node.args) != 1 or node.args[0].keyword or node.args[0].star:
-            fail(f"{name}() takes one list here", self.index.locate(node))
+            fail(
+                f"{name}() takes one list here",
+                self.index.locate(node),
+                (
+                    "add the start after summing: start + sum(xs)"
+                    if name == "sum"
+                    else f"write {name}(xs)"
+                ),
+            )
         argument = self.expr(node.args[0].value, base, None)
         self.as_list(argument)
         if not (isinstance(argument, Var) and argument.shape == "list"):
-            fail(f"{name}() needs a list", self.index.locate(node.args[0].value))
+            fail(
+                f"{name}() needs a list",
+                self.index.locate(node.args[0].value),
+                "pass a list parameter, a local list or module-level data",
+            )
         return self.emit(name, (argument,), target or self.new_var(base, "temp"))
 
     def user_call(

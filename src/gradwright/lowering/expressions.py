@@ -335,6 +335,13 @@ class ExpressionLowering:
             if isinstance(bound, _Unbound):
                 fail(bound.message, self.index.locate(node), bound.hint)
             return bound  # type: ignore[return-value]
+        if name in self.local_names and name in self.index.data_names:
+            fail(
+                f"'{name}' is module-level data: a model may read it, not change it",
+                self.index.locate(node),
+                f"copy what you need into a local list first (t = [0.0] *"
+                f" len({name}), then t[i] = ...), or use a new name",
+            )
         if name in self.local_names:
             fail(
                 f"'{name}' is used before it is assigned",
