@@ -2,7 +2,7 @@
 # source: samples/thermistor.py
 # source sha256: a9d4d503eda8743b77c7fe5fefba61d3cc0e699054f5ccafe02040fd3e72a4cb
 # command: gradwright gen samples/thermistor.py fit_loss --wrt a,b,c -o samples/thermistor_grad.py
-# output sha256: de99db73b2446cd7236e09c66328fa6f733b7ce956fb6e2a17d3f5fbce62fef7
+# output sha256: 01e8495dfb43af57f517ac72798ea553a0ffe853eda3472c836c57ddb455de10
 
 import math
 
@@ -34,7 +34,7 @@ def fit_loss_grad(a, b, c, resistance, kelvin):
     # return err * err
     err_bar = 2.0 * err
     # err = 1.0 / inv_t - kelvin
-    inv_t_bar = -err_bar * err_1 / inv_t
+    inv_t_bar = -err_bar * err_1 * err_1
     # inv_t = a + b * ln_r + c * ln_r**3
     a_bar = inv_t_bar
     b_bar = inv_t_bar * ln_r

@@ -146,6 +146,8 @@ CASES = [
     c("mul-same-argument", "mul", "x * x + y", UNIT),
     c("div", "div", "x / y", both_signed(0.2, 5.0)),
     c("div-constant-numerator", "div", "1.5 / x + y", both_signed(0.2, 5.0)),
+    c("div-unit-numerator", "div", "1.0 / x * y", both_signed(0.2, 5.0)),
+    c("div-unit-numerator-int", "div", "1 / (x * y)", both_signed(0.2, 5.0)),
     c(
         "mod",
         "mod",

@@ -3,8 +3,10 @@
 Each entry maps a primitive to its adjoint rule ``rule(g, out, *args)``: given the
 incoming adjoint ``g`` of the primitive's output ``out`` and its arguments, it returns
 one contribution per argument (``None`` where the derivative is identically zero).
-Rules reuse ``out`` wherever the derivative is a function of it (exp, sqrt, tanh,
-tan, division), so the reverse sweep does not recompute the primal.
+Rules reuse ``out`` wherever the derivative is a function of it (exp, sqrt, tan,
+division, powers with a constant exponent below 1, NumPy's tanh), so the reverse
+sweep does not recompute the primal; where the accurate form needs an argument twice
+(``g / cosh(x)**2``) it is rewritten to need it once.
 
 Kinks follow one convention: the argument (or piece) that the primal's own selection
 picks receives the whole adjoint. ``abs(x)`` is ``x`` for ``x >= 0`` so its derivative
@@ -79,6 +81,13 @@ def _constant_power(g: E, out: E, x: E, p: float | int) -> E | None:
     return g * coefficient * x ** (p - 1)
 
 
+def _divisor(g: E, out: E, x: E, y: E) -> E:
+    # d(x/y)/dy = -out / y; for 1 / y that is -out * out, a multiply for a divide
+    if number(x.node) == 1:
+        return -g * out * out
+    return -g * out / y
+
+
 def _hypot(g: E, out: E, *xs: E) -> tuple[E, ...]:
     # at the origin the first argument takes the whole adjoint, as abs does at 0
     # (hypot(x, 0) is abs(x), whose derivative at 0 is +1 by the kink convention)
@@ -112,7 +121,7 @@ RULES: dict[str, Rule] = {
     "add": lambda g, out, x, y: (g, g),
     "sub": lambda g, out, x, y: (g, -g),
     "mul": lambda g, out, x, y: (g * y, g * x),
-    "div": lambda g, out, x, y: (g / y, -g * out / y),
+    "div": lambda g, out, x, y: (g / y, _divisor(g, out, x, y)),
     # x % y == x - y * (x // y), and x // y is piecewise constant
     "mod": lambda g, out, x, y: (g, -g * (x // y)),
     "pow": _power,
