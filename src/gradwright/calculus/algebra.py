@@ -279,27 +279,29 @@ def _product(op: str, a: Expr, b: Expr) -> Expr:
     if _is(b, 1):
         return a
     if na is None and nb is not None:
-        a, b, na, nb = (
-            b,
-            a,
-            nb,
-            na,
-        )  # the constant first, as written by hand (* commutes)
+        if _is_chain(a) and _merge_constant(nb, a) is None and not _power_of_two(nb):
+            return Apply("mul", (a, b))  # x * y * 0.9: first would need parentheses
+        # the constant first, as written by hand (IEEE * commutes)
+        a, b, na, nb = b, a, nb, na
     if na is None:
         return Apply("mul", (a, b))
     merged = _merge_constant(na, b)
     if merged is not None:
         return merged
-    if _power_of_two(na) and isinstance(b, Apply) and b.op in ("mul", "div"):
+    if _power_of_two(na) and _is_chain(b):
         return _scale_leftmost(a, b)
     return Apply("mul", (a, b))
+
+
+def _is_chain(expr: Expr) -> bool:
+    return isinstance(expr, Apply) and expr.op in ("mul", "div")
 
 
 def _scale_leftmost(c: Expr, chain: Expr) -> Expr:
     """``c * chain`` as ``c * x * y / z``: for a power of two c, scaling the leftmost
     factor instead of the product gives the same bits (outside overflow and
     underflow)."""
-    if isinstance(chain, Apply) and chain.op in ("mul", "div"):
+    if _is_chain(chain):
         left, right = chain.args
         return Apply(chain.op, (_scale_leftmost(c, left), right))
     return Apply("mul", (c, chain))
