@@ -53,12 +53,37 @@ class Diagnostic:
         return "\n".join(lines)
 
 
+#: errors reported at most in one run
+MAX_REPORTED = 20
+
+
 class GradwrightError(Exception):
     """Bad input: the function cannot be differentiated as written."""
 
     def __init__(self, diagnostic: Diagnostic) -> None:
         super().__init__(diagnostic.render())
         self.diagnostic = diagnostic
+        self.diagnostics = [diagnostic]
+
+    @classmethod
+    def several(cls, errors: list[GradwrightError]) -> GradwrightError:
+        """Every error of one run, in source order (a compiler's report): the first
+        is the error's ``diagnostic``, all are in ``diagnostics``."""
+        unique: list[Diagnostic] = []
+        for error in errors:
+            for diagnostic in error.diagnostics:
+                if diagnostic not in unique:
+                    unique.append(diagnostic)
+        if len(unique) == 1:
+            return cls(unique[0])
+        combined = cls(unique[0])
+        combined.diagnostics = unique
+        shown = unique[:MAX_REPORTED]
+        text = "\n".join(d.render() for d in shown)
+        more = len(unique) - len(shown)
+        text += f"\n{len(unique)} errors" + (f" ({more} not shown)" if more else "")
+        combined.args = (text,)
+        return combined
 
     @classmethod
     def usage(cls, message: str, hint: str | None = None) -> GradwrightError:

@@ -23,6 +23,12 @@ class _Unbound:
 
     message: str
     hint: str
+    #: bound by a statement already reported as an error: reading it adds no error
+    silent: bool = False
+
+
+class _Reported(Exception):
+    """Unwinds a statement that reads a name of a statement already reported."""
 
 
 class _ListParameter(Exception):

@@ -17,6 +17,7 @@ from gradwright.ir import (
 )
 from gradwright.lowering.base import (
     _TRUTH_OPS,
+    _Reported,
     _Unbound,
 )
 from gradwright.lowering.frontend import (
@@ -333,6 +334,8 @@ class ExpressionLowering:
         if name in self.env:
             bound = self.env[name]
             if isinstance(bound, _Unbound):
+                if bound.silent:
+                    raise _Reported
                 fail(bound.message, self.index.locate(node), bound.hint)
             return bound  # type: ignore[return-value]
         if name in self.local_names and name in self.index.data_names:

@@ -12,7 +12,7 @@ import itertools
 
 import libcst as cst
 
-from gradwright.diagnostics import fail
+from gradwright.diagnostics import GradwrightError, fail
 from gradwright.ir import (
     Atom,
     Const,
@@ -96,6 +96,8 @@ class _Lowerer(
         self.fresh: set[Var] = set()
         #: values that are truth values (results of comparisons and logic)
         self.truth_values: set[Var] = set()
+        #: errors met so far (the lowering goes on to report them all)
+        self.errors: list[GradwrightError] = []
         #: the list object each list value is a version of
         self.list_root: dict[Var, Var] = {}
         #: `y = x` copies, to find the parameter behind a name used as a list
@@ -200,6 +202,8 @@ class _Lowerer(
             statements = statements[1:]
         self.local_names = frozenset(_assigned_names(statements))
         returned = self.sequence(statements)
+        if self.errors:
+            raise GradwrightError.several(self.errors)
         if not returned:
             if self.result_arity is None:
                 fail(

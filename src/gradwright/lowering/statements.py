@@ -5,7 +5,7 @@ from __future__ import annotations
 
 import libcst as cst
 
-from gradwright.diagnostics import fail
+from gradwright.diagnostics import GradwrightError, fail
 from gradwright.ir import (
     Atom,
     Branch,
@@ -14,6 +14,7 @@ from gradwright.ir import (
 )
 from gradwright.lowering.base import (
     _RESULT,
+    _Reported,
     _Unbound,
 )
 from gradwright.lowering.syntax import (
@@ -45,25 +46,44 @@ class StatementLowering:
         it runs only on the paths that did not return.
         """
         for position, stmt in enumerate(statements):
-            if isinstance(stmt, cst.If):
-                if not _may_return([stmt]):
-                    self.if_statement(stmt, (), "if")
-                    continue
+            if isinstance(stmt, cst.If) and _may_return([stmt]):
                 if _always_returns([stmt]) and position + 1 < len(statements):
-                    self.unreachable(statements[position + 1])
+                    self.recovering(self.unreachable, statements[position + 1])
                 local = list(statements[position + 1 :])
-                return self.if_statement(
-                    stmt, ((local,) if local else ()) + after, "if"
-                )
+                rest = ((local,) if local else ()) + after
+                returned = self.recovering(self.if_statement, stmt, rest, "if")
+                return bool(returned) or returned is None
+            if isinstance(stmt, cst.If):
+                self.recovering(self.if_statement, stmt, (), "if")
+                continue
             if isinstance(stmt, cst.For):
-                self.for_statement(stmt)
+                self.recovering(self.for_statement, stmt)
                 continue
             self.set_origin(_statement_text(self.index, stmt))
-            if self.statement(stmt):
+            if self.recovering(self.statement, stmt):
                 if position + 1 < len(statements):
-                    self.unreachable(statements[position + 1])
+                    self.recovering(self.unreachable, statements[position + 1])
                 return True
         return self.sequence(after[0], after[1:]) if after else False
+
+    def recovering(self, lower, stmt: cst.CSTNode, *args):  # noqa: ANN001, ANN201
+        """``lower(stmt, *args)``; a rejected statement is recorded and the lowering
+        goes on with the next one, so one run reports every error (the names the
+        statement binds read as already reported). None after an error."""
+        env, blocks = dict(self.env), [list(b) for b in self.blocks]
+        depth, origin = self.loop_depth, self.origin
+        try:
+            return lower(stmt, *args)
+        except (GradwrightError, _Reported) as error:
+            if isinstance(error, GradwrightError):
+                self.errors.append(error)
+            self.env = env
+            self.blocks[:] = blocks
+            self.loop_depth, self.origin = depth, origin
+            silent = _Unbound("", "", silent=True)
+            for name in _bound_anywhere(stmt):
+                self.env[name] = silent
+            return None
 
     def unreachable(self, stmt: cst.CSTNode) -> None:
         fail(
@@ -224,3 +244,57 @@ class StatementLowering:
                 self.fresh.add(target)
             self.env[name] = target
         return tuple(merges)
+
+
+def _bound_anywhere(stmt: cst.CSTNode) -> set[str]:
+    """Every name a statement may bind, in any construct (a rejected ``try``,
+    ``with`` or ``import`` included), so that reads of them add no error."""
+    found: set[str] = set()
+
+    def names(node: cst.CSTNode | None) -> None:
+        if node is None:
+            return
+        if isinstance(node, cst.Name):
+            found.add(node.value)
+        elif isinstance(node, (cst.Tuple, cst.List)):
+            for element in node.elements:
+                names(element.value)
+        elif isinstance(node, cst.StarredElement):
+            names(node.value)
+        elif isinstance(node, (cst.Subscript, cst.Attribute)):
+            names(node.value)
+
+    class Binders(cst.CSTVisitor):
+        def visit_AssignTarget(self, node: cst.AssignTarget) -> None:
+            names(node.target)
+
+        def visit_AugAssign(self, node: cst.AugAssign) -> None:
+            names(node.target)
+
+        def visit_AnnAssign(self, node: cst.AnnAssign) -> None:
+            names(node.target)
+
+        def visit_For(self, node: cst.For) -> None:
+            names(node.target)
+
+        def visit_AsName(self, node: cst.AsName) -> None:
+            names(node.name)
+
+        def visit_ImportAlias(self, node: cst.ImportAlias) -> None:
+            if node.asname is None:
+                head = node.name
+                while isinstance(head, cst.Attribute):
+                    head = head.value
+                names(head)
+
+        def visit_NamedExpr(self, node: cst.NamedExpr) -> None:
+            names(node.target)
+
+        def visit_FunctionDef(self, node: cst.FunctionDef) -> None:
+            found.add(node.name.value)
+
+        def visit_ClassDef(self, node: cst.ClassDef) -> None:
+            found.add(node.name.value)
+
+    stmt.visit(Binders())
+    return found

@@ -486,7 +486,7 @@ def _build_target(job: Job, options: _BuildOptions) -> _Outcome:
             check_overwrite(artifact, options.force)
         changed = [a.label for a in artifacts if write_artifact(a, options.force)]
     except GradwrightError as error:
-        return _Outcome("failed", [job.output or ""], error.diagnostic.render())
+        return _Outcome("failed", [job.output or ""], str(error))
     except Exception:  # a bug in one target must not hide the others' results
         import traceback
 
@@ -646,7 +646,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     try:
         return handlers[args.command](args)
     except GradwrightError as error:
-        print(error.diagnostic.render(), file=sys.stderr)
+        print(str(error), file=sys.stderr)
         return EXIT_BAD_INPUT
 
 
