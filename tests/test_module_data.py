@@ -380,3 +380,30 @@ def test_module_data_rejections(body: str, message: str, hint: str) -> None:
     assert message in diagnostic.message
     assert diagnostic.location is not None and diagnostic.location.line >= 5
     assert hint in (diagnostic.hint or "")
+
+
+DISTANCE = """\
+import math
+from math import dist as gap
+
+
+def spread(x, y):
+    return math.dist((x, y), (1.0, 2.5)) + gap([x], [3.0]) * y
+"""
+
+
+def test_math_dist_of_points_written_out() -> None:
+    # math.dist is hypot of the differences, bit for bit (same CPython routine)
+    ns = build(DISTANCE, "spread")
+    for x, y in ((0.3, -1.2), (4.0, 2.5), (1.0, 7.0)):
+        value, (g_x, g_y) = ns["spread_grad"](x, y)
+        assert value == run_source(DISTANCE)["spread"](x, y)
+        # reference: d|p - q| / dp = (p - q) / |p - q| (closed form)
+        r = math.hypot(x - 1.0, y - 2.5)
+        assert rel_err(g_x, (x - 1.0) / r + math.copysign(1.0, x - 3.0) * y) < 1e-14
+        assert rel_err(g_y, (y - 2.5) / r + abs(x - 3.0)) < 1e-14
+    with pytest.raises(GradwrightError) as error:
+        gradwright.generate(
+            "import math\n\n\ndef f(x, p):\n    return math.dist(p, (x,))\n", ["f"]
+        )
+    assert "math.hypot(x1 - x2" in (error.value.diagnostic.hint or "")

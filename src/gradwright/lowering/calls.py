@@ -11,8 +11,8 @@ from gradwright.ir import (
     Const,
     Var,
 )
-from gradwright.lowering.base import _Reported, _Unbound
 from gradwright.lowering.frontend import (
+    ModuleIndex,
     math_function_op,
 )
 from gradwright.lowering.syntax import (
@@ -33,17 +33,21 @@ _BUILTINS = {
 }
 
 
+def _math_name(index: ModuleIndex, func: cst.BaseExpression) -> str | None:
+    """The math function a callee names (``math.dist``, ``m.dist``, ``dist``)."""
+    if isinstance(func, cst.Attribute) and isinstance(func.value, cst.Name):
+        if func.value.value in index.math_modules:
+            return func.attr.value
+    if isinstance(func, cst.Name):
+        return index.math_names.get(func.value)
+    return None
+
+
 class CallLowering:
     """Part of the lowering (see ``ssa._Lowerer``); state lives on the lowerer."""
 
     def call(self, node: cst.Call, base: str, target: Var | None) -> Atom:
         func = node.func
-        head = func
-        while isinstance(head, cst.Attribute):
-            head = head.value
-        bound = self.env.get(head.value) if isinstance(head, cst.Name) else None
-        if isinstance(bound, _Unbound) and bound.silent:
-            raise _Reported  # bound by a statement already reported
         if (
             isinstance(func, cst.Name)
             and func.value in ("len", "sum", "min", "max")
@@ -85,6 +89,8 @@ class CallLowering:
                 return self.list_builtin(node, func.value, base, target)
         if isinstance(func, cst.Name) and func.value in self.index.functions:
             return self.user_call(node, func.value, base, target)
+        if _math_name(self.index, func) == "dist":
+            return self.distance(node, base, target)
         op = math_function_op(self.index, func)
         if (
             op is None
@@ -172,6 +178,37 @@ class CallLowering:
                 "write pow(x, y) or x ** y; for pow(x, y, m) compute (x ** y) % m",
             )
         return None
+
+    def distance(self, node: cst.Call, base: str, target: Var | None) -> Atom:
+        """``math.dist((a, b), (c, d))`` is ``math.hypot(a - c, b - d)`` bit for
+        bit (CPython scales the same absolute differences the same way), so it
+        takes hypot's rule."""
+        points = [arg.value for arg in node.args]
+        if (
+            len(points) != 2
+            or any(arg.keyword or arg.star for arg in node.args)
+            or not all(isinstance(p, (cst.Tuple, cst.List)) for p in points)
+            or len(points[0].elements) != len(points[1].elements)  # type: ignore[attr-defined]
+            or not points[0].elements  # type: ignore[attr-defined]
+        ):
+            fail(
+                "math.dist() takes two points written out, of the same length",
+                self.index.locate(node),
+                "write math.dist((x1, y1), (x2, y2)), or math.hypot(x1 - x2, y1 - y2)",
+            )
+        pairs = zip(points[0].elements, points[1].elements, strict=True)  # type: ignore[attr-defined]
+        diffs = tuple(
+            self.emit(
+                "sub",
+                (
+                    self.scalar(self.expr(p.value, base, None), p.value),
+                    self.scalar(self.expr(q.value, base, None), q.value),
+                ),
+                self.new_var(base, "temp"),
+            )
+            for p, q in pairs
+        )
+        return self.emit("hypot", diffs, target or self.new_var(base, "temp"))
 
     def list_builtin(
         self, node: cst.Call, name: str, base: str, target: Var | None
