@@ -60,3 +60,23 @@ def test_command_line_prints_them_all_and_writes_nothing(tmp_path):
     assert result.out == ""
     assert result.err.count(": error: ") == 4 and "4 errors" in result.err
     assert not (tmp_path / "out.py").exists()
+
+
+def test_no_cascade_through_loops_and_branches():
+    source = """
+def rod(alpha, u0, c):
+    u = list(u0)
+    for _ in range(3):
+        new = u[:]
+        for i in range(1, len(u) - 1):
+            new[i] = u[i] + alpha * (u[i - 1] - 2.0 * u[i] + u[i + 1])
+        if c > 0.0:
+            new[0] = alpha
+        u = new
+    return u[0]
+"""
+    with pytest.raises(gradwright.GradwrightError) as error:
+        gradwright.generate(source, ["rod"], wrt=["alpha"])
+    text = str(error.value)
+    assert text.count(": error: ") == 1  # only `list(u0)`; the rest reads u
+    assert "<string>:3:9:" in text

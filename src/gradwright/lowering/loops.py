@@ -110,7 +110,9 @@ class LoopLowering:
                 self.list_root[exit_var] = self.root_of(headers[n])
             self.env[n] = exit_var
         for n in assigned:
-            if n not in carried:
+            if _silent(before.get(n)) or _silent(body_env.get(n)):
+                self.env[n] = _Unbound("", "", silent=True)  # reported already
+            elif n not in carried:
                 self.env[n] = _Unbound(
                     f"'{n}' is assigned only inside the loop (which may run zero"
                     " times)",
@@ -341,6 +343,10 @@ class _DataRow:
             )
             for j in range(count)
         )
+
+
+def _silent(bound: object) -> bool:
+    return isinstance(bound, _Unbound) and bound.silent
 
 
 def _target_names(target: cst.BaseExpression) -> list[str] | None:

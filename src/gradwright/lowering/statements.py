@@ -216,6 +216,9 @@ class StatementLowering:
             if a is b and a is not None:
                 self.env[name] = a
                 continue
+            if any(isinstance(x, _Unbound) and x.silent for x in (a, b)):
+                self.env[name] = _Unbound("", "", silent=True)  # reported already
+                continue
             if (
                 a is None
                 or b is None
