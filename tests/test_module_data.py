@@ -202,6 +202,7 @@ from pathlib import Path
 RATES = [0.25, 0.5]  # per hour
 Path("touched.txt").write_text("the model file ran")
 LOG = open("log.txt", "w")
+print("loaded", len(RATES))
 
 
 def growth(k, n: int):
@@ -231,6 +232,7 @@ def test_generated_module_is_self_contained_and_the_file_never_runs(
     text = (out / "growth_grad.py").read_text()
     assert "RATES = [0.25, 0.5]  # per hour" in text
     assert "touched" not in text and "__main__" not in text and "LOG" not in text
+    assert "loaded" not in text  # a report, not a change of RATES
     # imported on its own, in a directory holding nothing else
     run = subprocess.run(
         [sys.executable, "-c", "import growth_grad as g; print(g.growth_grad(0.3, 1))"],

@@ -458,6 +458,13 @@ def _statement_kind(node: ast.stmt) -> str:
 
 
 def _may_mutate(node: ast.stmt) -> bool:
+    if (
+        isinstance(node, ast.Expr)
+        and isinstance(node.value, ast.Call)
+        and isinstance(node.value.func, ast.Name)
+        and node.value.func.id == "print"
+    ):
+        return False  # a report, not a change: left out of the output
     if isinstance(node, (ast.Assign, ast.AnnAssign)):
         targets = node.targets if isinstance(node, ast.Assign) else [node.target]
         return not all(isinstance(t, (ast.Name, ast.Tuple)) for t in targets)
