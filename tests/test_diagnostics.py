@@ -1645,7 +1645,9 @@ def test_output_is_a_directory(tmp_path: Path) -> None:
     assert "Traceback" not in stderr
     assert status == 2
     assert stdout == ""
-    assert stderr.startswith("error: gen: ") and "Is a directory" in stderr, stderr
+    assert (
+        stderr.startswith("gen: error: cannot write: ") and "Is a directory" in stderr
+    ), stderr
     assert stderr.count("\n") == 1, stderr
     assert list((tmp_path / "gen").iterdir()) == []
 
