@@ -29,6 +29,10 @@ from support import build, mp_function, mp_gradient, rel_err, run_source
 import gradwright
 from gradwright.diagnostics import GradwrightError
 
+sys.path.insert(0, str(Path(__file__).resolve().parent / "micropython"))
+
+from harness import require_micropython, run_micropython  # noqa: E402
+
 LINE_FIT = """\
 import math
 
@@ -409,3 +413,17 @@ def test_math_dist_of_points_written_out() -> None:
             "import math\n\n\ndef f(x, p):\n    return math.dist(p, (x,))\n", ["f"]
         )
     assert "math.hypot(x1 - x2" in (error.value.diagnostic.hint or "")
+
+
+def test_module_tables_under_micropython() -> None:
+    # the copied tables run under the real MicroPython interpreter; reference: the
+    # normal equations' minimum (zero gradient) and the same module under CPython
+    require_micropython()
+    text = gradwright.generate(LINE_FIT, ["line_loss"], target="micropython")
+    slope, intercept = _normal_equations(run_source(LINE_FIT)["SAMPLES"])
+    call = f"print(repr(line_loss_grad({slope!r}, {intercept!r})))\n"
+    printed = run_micropython(text + "\n" + call)
+    value, (g_slope, g_intercept) = eval(printed.strip())  # a tuple of floats
+    expected = run_source(text)["line_loss_grad"](slope, intercept)
+    assert rel_err(value, expected[0]) < 1e-15
+    assert abs(g_slope) < 1e-12 and abs(g_intercept) < 1e-12
