@@ -800,7 +800,11 @@ class RawProgram:
     numpy: bool = False
 
     def source(self, mode: str = "py", switches: list | None = None) -> str:
-        return self.text.replace("import math\n", "") if mode == "mp" else self.text
+        if mode != "mp":
+            return self.text
+        return self.text.replace("import math\n", "").replace(
+            "import numpy as np\n", ""
+        )
 
     @property
     def target(self) -> types.SimpleNamespace:

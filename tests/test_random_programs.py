@@ -14,8 +14,10 @@ Points: coordinates are +-[0.25, 1.5], never 0. An instrumented run in floats
 records every switch (condition, abs/min/max/fabs/copysign argument, % and //
 remainder, and/or operand, divisor, cbrt argument) and every intermediate; a point
 is used only when each switch is at least ``progen.MARGIN`` from flipping and each
-intermediate below ``progen.MAGNITUDE``; otherwise the point is redrawn (30 tries).
-A program with no such point is counted as rejected, against a budget.
+intermediate below ``progen.MAGNITUDE``; otherwise the point is redrawn (30 tries),
+and a switch that is close at every point (a tie by construction: ``t < u`` after
+``u = t``) gets one operand moved by a constant. A program with no such point is
+counted as rejected, against a budget (the long runs reject ~1 in 2000).
 
 Reference for every gradient entry: an mpmath central difference of the same
 program at 60 digits (``progen.reference_partial``, ``support.mp_central_diff``),
@@ -44,6 +46,7 @@ import time
 from collections import Counter
 from dataclasses import dataclass, field
 
+import numpy as np
 import pytest
 from hypothesis import HealthCheck, Phase, given, settings
 from progen import (
@@ -125,9 +128,11 @@ FAMILIES: dict[str, tuple[Knobs | None, int]] = {
     "numpy": (None, 40),
 }
 
-REJECT_BUDGET = 0.05  # programs with no point away from kinks
-COMPARED_MIN = 0.85  # share of programs compared (or rightly found constant)
-NONZERO_MIN = 0.75  # share of programs compared with a nonzero gradient
+# Budgets per family (the long runs: ~0.05% rejected, ~90% compared, 75-90% of
+# programs with a nonzero reference gradient; the CI counts are small, so margins)
+REJECT_BUDGET = 0.03  # programs with no point away from kinks
+COMPARED_MIN = 0.8  # share of programs compared (or rightly found constant)
+NONZERO_MIN = 0.7  # share of programs compared with a nonzero gradient
 
 
 @dataclass
@@ -415,3 +420,14 @@ def test_regression(name: str) -> None:
             for p, a in zip(params, args, strict=True)
         }
         check_source(source, kinds, args)
+
+
+def test_regression_numpy_scalar_parameter_gets_a_float() -> None:
+    # found by the numpy family: np.abs of a Python-float parameter gave s_bar as
+    # a 0-d array; checked against mpmath central differences like the rest
+    source = "import numpy as np\n\ndef f(w, s):\n    return np.abs(s) + np.sum(w)\n"
+    program = RawProgram(source, numpy=True)
+    case = Case(program, {"w": "array:2", "s": "float"}, None, 0, "regression")
+    args = [np.array([-1.25, -0.25]), -0.75]
+    outcome = evaluate(case, args)
+    assert outcome.status == "ok", _report(case, args, outcome)
