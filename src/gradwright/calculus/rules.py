@@ -57,13 +57,14 @@ def _power(g: E, out: E, x: E, y: E) -> tuple[E | None, E]:
 def _constant_power(g: E, out: E, x: E, p: float | int) -> E | None:
     """d(x**p)/dx for a constant p, from out where that is safe.
 
-    p < 1: p * out / x, one rounding more than x**(p-1) (within about 1.5 ulp of the
-    derivative at x) and no second pow. Safe because x**p lies between x and 1 (0 < p
-    < 1) or shrinks as |x| grows (p < 0): out neither overflows nor underflows where
-    x**(p-1) does not. p == 0.5 is the sqrt rule, 0.5 / out. At x == 0 the derivative
-    is infinite for p < 1; Python floats raise ZeroDivisionError there as before (the
-    primal raises first for p < 0), NumPy arrays get inf for p == 0.5 and p < 0 and
-    nan for other 0 < p < 1 (x**(p-1) gave inf).
+    p < 1: p * out / x, two roundings after pow's (within about 3 ulp of the
+    derivative at x, where x**(p-1) is within about 2) and no second pow. Safe
+    because x**p lies between x and 1 (0 < p < 1) or shrinks as |x| grows (p < 0):
+    out neither overflows nor underflows where x**(p-1) does not. p == 0.5 is the
+    sqrt rule, 0.5 / out. At x == 0 the derivative is infinite for p < 1; Python
+    floats raise ZeroDivisionError there as before (the primal raises first for
+    p < 0), NumPy arrays get inf for p == 0.5 and p < 0 and nan for other 0 < p < 1
+    (x**(p-1) gave inf).
     p > 1: p * x**(p-1), which stays finite at x == 0 and accurate where out is
     subnormal (p * out / x would lose digits there, or overflow for large x); x**2 as
     x * x (correctly rounded, and no pow call).
