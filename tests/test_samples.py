@@ -250,7 +250,29 @@ def test_greenhouse_net_against_sympy(seed: int) -> None:
 # every sample, every wrt parameter
 
 
+#: (amp_m2, phase_m2, amp_s2, phase_s2): near the fit and away from it
+TIDE_POINTS = [
+    (0.95, 0.1, 0.2, 0.4),
+    (1.1, -0.3, 0.05, 1.2),
+    (0.4, 2.0, 0.6, -0.7),
+]
+
+
+def test_tide_gauge_against_mpmath() -> None:
+    # module-level data (a frozen dataclass, a table, a dict) read by a loop
+    source = source_of("tide_gauge")
+    f_mp = mp_function(source, "tide_misfit")
+    for point in TIDE_POINTS:
+        _, grads, params = call_committed("tide_gauge", point)
+        active = [params.index(name) for name in grads]
+        # reference: mpmath central differences of the sample's own text, 50 digits
+        reference = mp_gradient(f_mp, point, active)
+        for (name, grad), exact in zip(grads.items(), reference, strict=True):
+            what = f"tide_gauge d/d{name} at {point}: mpmath central difference"
+            assert_close(grad, exact, 1e-12, what)
+
+
 def test_every_sample_has_a_reference_test() -> None:
     # a new sample without a test here fails
-    tested = set(SYMPY_POINTS) | {"kiln_cooling", "greenhouse_net"}
+    tested = set(SYMPY_POINTS) | {"kiln_cooling", "greenhouse_net", "tide_gauge"}
     assert tested == set(SAMPLE_NAMES)

@@ -306,7 +306,8 @@ def render_module(
     helper_text = "\n\n\n".join(
         t for t in (helper_source(helpers), numpy_helper_sources(numpy_helpers)) if t
     )
-    constants = _module_slice(index, compiled)
+    hoisted, constants = _module_slice(index, compiled)
+    imports += hoisted
 
     header = {
         "version": __version__,
@@ -358,8 +359,11 @@ def _names_in(node: cst.CSTNode) -> list[cst.Name]:
     return found
 
 
-def _module_slice(index: ModuleIndex, compiled: list[Compiled]) -> list[str]:
-    """The module statements the functions depend on, in source order, as text.
+def _module_slice(
+    index: ModuleIndex, compiled: list[Compiled]
+) -> tuple[list[str], list[str]]:
+    """The module statements the functions depend on, in source order, as text:
+    (the imports it starts with, to join the output's own; the rest).
 
     Names the functions read -> every statement binding them -> the names those
     read, and so on; a statement that may change a needed value in place (a call,
@@ -394,14 +398,22 @@ def _module_slice(index: ModuleIndex, compiled: list[Compiled]) -> list[str]:
         if parts and parts[-1][1] == statement.text:
             continue  # two statements on one line: the line once
         parts.append((statement.kind, statement.text))
+    # the imports the slice starts with join the output's own (one block, as
+    # isort wants it); an import after other statements stays where it is
+    hoisted: list[str] = []
+    while parts and parts[0][0] == "import" and not parts[0][1].startswith("#"):
+        hoisted.append(parts.pop(0)[1])
     # black's spacing: two blank lines around a def or class, one after imports
     blocks: list[str] = []
     for k, (kind, text) in enumerate(parts):
         previous = parts[k - 1][0] if k else ""
         if kind in ("def", "class") or previous in ("def", "class"):
             blocks.append(("\n\n" if blocks else "\n") + text)
-        elif previous == "import" and kind != "import":
+        elif (previous == "import" and kind != "import") or (
+            k and text.startswith("#")
+        ):
+            # after imports, and before a statement with its own comment lines
             blocks.append("\n" + text)
         else:
             blocks.append(text)
-    return blocks
+    return hoisted, blocks

@@ -16,6 +16,8 @@ from __future__ import annotations
 import ast
 import bisect
 import math
+import sys
+import types
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass
 from types import TracebackType
@@ -217,8 +219,16 @@ def trace(
     function.body = instrument.instrument(function.body)
     ast.fix_missing_locations(tree)
     recorder = _Recorder(instrument.statements)
-    namespace: dict[str, Any] = {"__name__": "gradwright_verify_trace", PROBE: recorder}
-    exec(compile(tree, FILENAME, "exec"), namespace)
+    module = types.ModuleType("gradwright_verify_trace")
+    namespace: dict[str, Any] = vars(module)
+    namespace[PROBE] = recorder
+    # registered while it runs: a dataclass among the copied module data looks
+    # its module up in sys.modules
+    sys.modules[module.__name__] = module
+    try:
+        exec(compile(tree, FILENAME, "exec"), namespace)
+    finally:
+        del sys.modules[module.__name__]
     error: Finding | None = None
     try:
         call(namespace[grad_name])

@@ -29,6 +29,7 @@ from __future__ import annotations
 
 import inspect
 import sys
+import types
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any
@@ -132,9 +133,15 @@ def central_difference(
 
 def load(module_text: str, label: str) -> dict[str, Any]:
     """Execute the generated module (this is where ``verify`` runs user code)."""
-    namespace: dict[str, Any] = {"__name__": "gradwright_verify_module"}
-    exec(compile(module_text, label, "exec"), namespace)
-    return namespace
+    module = types.ModuleType("gradwright_verify_module")
+    # registered while it runs: a dataclass among the copied module data looks
+    # its module up in sys.modules
+    sys.modules[module.__name__] = module
+    try:
+        exec(compile(module_text, label, "exec"), vars(module))
+    finally:
+        del sys.modules[module.__name__]
+    return vars(module)
 
 
 def check_point(
