@@ -246,3 +246,45 @@ def fit(coeffs, xs, ys):
         gradwright.generate(source, ["fit"], wrt=["coeffs"])
     assert "<string>:10:17:" in str(error.value)
     assert "'horner' takes a list ('coeffs')" in str(error.value)
+
+
+TUPLE_STATE = """
+import math
+
+
+def swing(x, v, dt):
+    state = (x, v)
+    for _ in range(3):
+        p, q = state
+        state = (p + dt * q, q - dt * math.sin(p))
+    if state[0] > 0.0:
+        state = (state[1], state[0] * x)
+    a, b = state
+    return a * b + state[-1]
+"""
+
+
+@pytest.mark.parametrize("point", [(0.3, 0.5, 0.1), (-0.8, 0.5, 0.1)])
+def test_tuple_state_through_a_loop_and_a_branch(point):
+    module = build(TUPLE_STATE, "swing", ["x", "v"])
+    value, grads = module["swing_grad"](*point)
+    assert value == run_source(TUPLE_STATE)["swing"](*point)
+    reference = mp_gradient(mp_function(TUPLE_STATE, "swing"), list(point), [0, 1])
+    for got, want in zip(grads, reference, strict=True):  # mpmath differences
+        assert rel_err(got, float(want)) < 1e-12
+
+
+def test_returning_a_tuple_name():
+    source = "def g(x, y):\n    pair = (x * y, x + y)\n    return pair\n"
+    module = build(source, "g")
+    value, jac = module["g_jacobian"](0.5, 2.0)
+    assert value == (1.0, 2.5)
+    assert jac == ((2.0, 0.5), (1.0, 1.0))  # d(xy, x+y)/d(x, y): closed form
+
+
+def test_tuple_used_as_a_number_is_a_located_error():
+    source = "def g(x, y):\n    pair = (x, y)\n    return pair * 2.0\n"
+    with pytest.raises(gradwright.GradwrightError) as error:
+        gradwright.generate(source, ["g"])
+    assert "<string>:3:12:" in str(error.value)
+    assert "'pair' is a tuple of 2 numbers" in str(error.value)

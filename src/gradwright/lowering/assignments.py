@@ -8,8 +8,10 @@ from gradwright.calculus.primitives import BINARY_OPERATORS
 from gradwright.diagnostics import fail
 from gradwright.ir import (
     Atom,
+    Const,
     Var,
 )
+from gradwright.lowering.base import _Reported, _Tuple, _Unbound, element_key
 from gradwright.lowering.syntax import (
     _AUGMENTED_SYMBOLS,
 )
@@ -37,11 +39,11 @@ class AssignmentLowering:
         if isinstance(first, (cst.Tuple, cst.List)):
             names = [el.value for el in first.elements]
             if not isinstance(value, (cst.Tuple, cst.List)):
-                fail(
-                    "tuple unpacking needs a tuple of expressions on the right",
-                    self.index.locate(value),
-                    "write `a, b = expr_a, expr_b`",
-                )
+                if len(targets) == 1 and self.tuple_of(value) is not None:
+                    self.unpack_tuple(first, names, value)
+                    return
+                self.unpack_list(first, names, value)
+                return
             assert isinstance(value, (cst.Tuple, cst.List))
             if len(value.elements) != len(names):
                 fail(
@@ -63,6 +65,17 @@ class AssignmentLowering:
                 self.env[name.value] = var  # type: ignore[union-attr]
             return
         assert isinstance(first, cst.Name)
+        if len(targets) == 1 and isinstance(value, cst.Tuple):
+            # a tuple of numbers as a value: one name per element
+            atoms = [
+                self.bind_value(el.value, f"{first.value}_{k}")
+                for k, el in enumerate(value.elements)
+            ]
+            self.bind_tuple(first.value, atoms)
+            return
+        if len(targets) == 1 and self.tuple_of(value) is not None:
+            self.bind_tuple(first.value, self.tuple_of(value))  # type: ignore[arg-type]
+            return
         var = self.bind_value(value, first.value)
         self.env[first.value] = var
         for other in targets[1:]:
@@ -80,6 +93,108 @@ class AssignmentLowering:
             self.env[other.value] = self.emit(
                 "copy", (var,), self.new_var(other.value, "local")
             )
+
+    def tuple_of(self, value: cst.BaseExpression) -> list[Atom] | None:
+        """The elements of a name bound to a tuple of numbers (None otherwise)."""
+        if not isinstance(value, cst.Name):
+            return None
+        bound = self.env.get(value.value)
+        if not isinstance(bound, _Tuple):
+            return None
+        atoms = [self.env.get(element_key(value.value, k)) for k in range(bound.size)]
+        if any(isinstance(a, _Unbound) and a.silent for a in atoms):
+            raise _Reported
+        if any(not isinstance(a, (Var, Const)) for a in atoms):
+            fail(
+                f"'{value.value}' is not the same tuple on every path here",
+                self.index.locate(value),
+                "bind it to a tuple of the same length on every path",
+            )
+        return atoms  # type: ignore[return-value]
+
+    def tuple_element(self, node: cst.Subscript) -> Atom:
+        """``state[k]`` with a constant ``k`` (negative counts from the end)."""
+        atoms = self.tuple_of(node.value)
+        assert atoms is not None
+        index = node.slice[0].slice if len(node.slice) == 1 else None
+        key = getattr(index, "value", None)
+        sign = 1
+        if isinstance(key, cst.UnaryOperation) and isinstance(key.operator, cst.Minus):
+            key, sign = key.expression, -1
+        if not isinstance(key, cst.Integer):
+            fail(
+                "a tuple is indexed with a whole number written out here",
+                self.index.locate(node),
+                "unpack it instead: a, b = state",
+            )
+        assert isinstance(key, cst.Integer)
+        k = sign * int(key.value)
+        if not -len(atoms) <= k < len(atoms):
+            fail("tuple index out of range", self.index.locate(node))
+        return atoms[k]
+
+    def bind_tuple(self, name: str, atoms: list[Atom]) -> None:
+        self.env[name] = _Tuple(len(atoms))
+        for k, atom in enumerate(atoms):
+            self.env[element_key(name, k)] = atom
+
+    def unpack_tuple(
+        self,
+        first: cst.BaseExpression,
+        names: list[cst.BaseExpression],
+        value: cst.BaseExpression,
+    ) -> None:
+        atoms = self.tuple_of(value)
+        assert atoms is not None
+        if len(atoms) != len(names):
+            fail(
+                f"cannot unpack {len(atoms)} values into {len(names)} names",
+                self.index.locate(first),
+            )
+        for name, atom in zip(names, atoms, strict=True):
+            if not isinstance(name, cst.Name):
+                fail("unpack into plain names", self.index.locate(name))
+            assert isinstance(name, cst.Name)
+            self.env[name.value] = atom
+
+    def unpack_list(
+        self,
+        first: cst.BaseExpression,
+        names: list[cst.BaseExpression],
+        value: cst.BaseExpression,
+    ) -> None:
+        """``x, v = state`` where ``state`` holds a tuple (or list) of numbers
+        written out in the function: its elements by position."""
+        container = self.expr(value, "values", None)
+        size = self.literal_size(container)
+        if size is None:
+            fail(
+                "tuple unpacking needs a tuple of expressions, or a name bound to"
+                " one in this function",
+                self.index.locate(value),
+                "write `a, b = expr_a, expr_b`, or `state = (a, b)` first",
+            )
+        if size != len(names):
+            fail(
+                f"cannot unpack {size} values into {len(names)} names",
+                self.index.locate(first),
+            )
+        assert isinstance(container, Var)
+        for k, name in enumerate(names):
+            if not isinstance(name, cst.Name):
+                fail("unpack into plain names", self.index.locate(name))
+            assert isinstance(name, cst.Name)
+            self.env[name.value] = self.emit(
+                "getitem",
+                (container, Const(str(k), k)),
+                self.new_var(name.value, "local"),
+            )
+
+    def literal_size(self, atom: Atom) -> int | None:
+        """How many elements a local list made by a literal has (None otherwise)."""
+        if not (isinstance(atom, Var) and atom.shape == "list"):
+            return None
+        return self.literal_sizes.get(self.root_of(atom))
 
     def check_target(self, target: cst.BaseExpression) -> None:
         if isinstance(target, cst.Name):

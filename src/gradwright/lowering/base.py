@@ -27,6 +27,23 @@ class _Unbound:
     silent: bool = False
 
 
+@dataclass(frozen=True)
+class _Tuple:
+    """A name bound to a tuple of numbers: its elements are bound under
+    ``element_key(name, k)``, so branches and loops treat each as a name."""
+
+    size: int
+
+
+def element_key(name: str, k: int) -> str:
+    return f"{name}\0{k}"
+
+
+def display(key: str) -> str:
+    """A printable base name for an env key (``state\01`` -> ``state_1``)."""
+    return key.replace("\0", "_")
+
+
 class _Reported(Exception):
     """Unwinds a statement that reads a name of a statement already reported."""
 

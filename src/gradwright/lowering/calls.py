@@ -11,6 +11,7 @@ from gradwright.ir import (
     Const,
     Var,
 )
+from gradwright.lowering.base import _Reported, _Unbound
 from gradwright.lowering.frontend import (
     ModuleIndex,
     math_function_op,
@@ -48,6 +49,12 @@ class CallLowering:
 
     def call(self, node: cst.Call, base: str, target: Var | None) -> Atom:
         func = node.func
+        head = func
+        while isinstance(head, cst.Attribute):
+            head = head.value
+        bound = self.env.get(head.value) if isinstance(head, cst.Name) else None
+        if isinstance(bound, _Unbound) and bound.silent:
+            raise _Reported  # bound by a statement already reported
         if (
             isinstance(func, cst.Name)
             and func.value in ("len", "sum", "min", "max")

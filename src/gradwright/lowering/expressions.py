@@ -18,6 +18,7 @@ from gradwright.ir import (
 from gradwright.lowering.base import (
     _TRUTH_OPS,
     _Reported,
+    _Tuple,
     _Unbound,
 )
 from gradwright.lowering.frontend import (
@@ -94,6 +95,8 @@ class ExpressionLowering:
             return self.comprehension(node, base, target)  # type: ignore[arg-type]
         if isinstance(node, cst.IfExp):
             return self.conditional(node, base, target)
+        if isinstance(node, cst.Subscript) and self.tuple_of(node.value) is not None:
+            return self.tuple_element(node)
         if isinstance(node, cst.Subscript) and self.numpy:
             return self.numpy_subscript(node, base, target)
         if isinstance(node, cst.Subscript):
@@ -337,6 +340,12 @@ class ExpressionLowering:
                 if bound.silent:
                     raise _Reported
                 fail(bound.message, self.index.locate(node), bound.hint)
+            if isinstance(bound, _Tuple):
+                fail(
+                    f"'{name}' is a tuple of {bound.size} numbers, not a number",
+                    self.index.locate(node),
+                    f"unpack it (a, b = {name}) or take one element ({name}[0])",
+                )
             return bound  # type: ignore[return-value]
         if name in self.local_names and name in self.index.data_names:
             fail(

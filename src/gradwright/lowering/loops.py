@@ -15,9 +15,7 @@ from gradwright.ir import (
     Phi,
     Var,
 )
-from gradwright.lowering.base import (
-    _Unbound,
-)
+from gradwright.lowering.base import _Tuple, _Unbound, display
 from gradwright.lowering.syntax import (
     _assigned_names,
     _block_statements,
@@ -66,16 +64,19 @@ class LoopLowering:
         for name in names:
             assigned[name] = None
         before = dict(self.env)
+        # a tuple's elements are carried as names of their own
         carried = [
             n
             for n in before
-            if n in assigned and n not in names and not isinstance(before[n], _Unbound)
+            if n.split("\0")[0] in assigned
+            and n not in names
+            and not isinstance(before[n], (_Unbound, _Tuple))
         ]
         headers: dict[str, Var] = {}
         for n in carried:
             init = before[n]
             shape = init.shape if isinstance(init, Var) else "scalar"
-            headers[n] = self.new_var(n, "local", shape)
+            headers[n] = self.new_var(display(n), "local", shape)
             if shape == "list":
                 self.list_root[headers[n]] = self.root_of(init)  # type: ignore[arg-type]
             if self.is_fresh(init):  # type: ignore[arg-type]
@@ -104,12 +105,21 @@ class LoopLowering:
                     f"update the elements of {n} in place ({n}[i] = ...), with a"
                     " second list made before the loop for the new values",
                 )
-            exit_var = self.new_var(n, "local", headers[n].shape)
+            exit_var = self.new_var(display(n), "local", headers[n].shape)
             phis.append(Phi(headers[n], before[n], body_env[n], exit_var))  # type: ignore[arg-type]
             if exit_var.shape == "list":
                 self.list_root[exit_var] = self.root_of(headers[n])
             self.env[n] = exit_var
         for n in assigned:
+            if isinstance(before.get(n), _Tuple):
+                if body_env.get(n) != before[n]:
+                    fail(
+                        f"'{n}' is a tuple of another length at the end of the loop",
+                        self.index.locate(node),
+                        "keep the tuple's length the same in every iteration",
+                    )
+                self.env[n] = before[n]
+                continue
             if _silent(before.get(n)) or _silent(body_env.get(n)):
                 self.env[n] = _Unbound("", "", silent=True)  # reported already
             elif n not in carried:

@@ -98,6 +98,8 @@ class _Lowerer(
         self.truth_values: set[Var] = set()
         #: errors met so far (the lowering goes on to report them all)
         self.errors: list[GradwrightError] = []
+        #: how many elements each list made by a literal has
+        self.literal_sizes: dict[Var, int] = {}
         #: the list object each list value is a version of
         self.list_root: dict[Var, Var] = {}
         #: `y = x` copies, to find the parameter behind a name used as a list
@@ -116,6 +118,8 @@ class _Lowerer(
         self.blocks[-1].append(Let(target, op, args, self.origin))
         if op in _TRUTH_OPS:
             self.truth_values.add(target)
+        if op == "listlit":
+            self.literal_sizes[target] = len(args)
         if target.shape == "list":
             # every version of a list made by element writes is one list object
             self.list_root[target] = (
@@ -155,7 +159,7 @@ class _Lowerer(
         return target
 
     def shape_of_expression(self, node: cst.BaseExpression) -> str:
-        if isinstance(node, (cst.List, cst.ListComp)):
+        if isinstance(node, (cst.List, cst.ListComp, cst.Tuple)):
             return "list"
         if _is_list_call(node):
             return "list"

@@ -12,11 +12,7 @@ from gradwright.ir import (
     Phi,
     Var,
 )
-from gradwright.lowering.base import (
-    _RESULT,
-    _Reported,
-    _Unbound,
-)
+from gradwright.lowering.base import _RESULT, _Reported, _Tuple, _Unbound, display
 from gradwright.lowering.syntax import (
     _STATEMENT_REJECTIONS,
     _always_returns,
@@ -152,6 +148,9 @@ class StatementLowering:
             else [value]
         )
         arity = -len(elements) if isinstance(value, cst.Tuple) else 1
+        named = self.tuple_of(value)
+        if named is not None:  # `return state`, a name bound to a tuple
+            arity = -len(named)
         if self.result_arity is not None and arity != self.result_arity:
             fail(
                 "every return must give the same number of values",
@@ -160,9 +159,10 @@ class StatementLowering:
         self.result_arity = arity
         self.return_origins.append(self.origin)
         atoms = []
-        for element in elements:
+        for element in elements if named is None else []:
             target = self.new_var("value", "local")
             atoms.append(self.scalar(self.expr(element, "value", target), element))
+        atoms = atoms if named is None else list(named)
         for i, atom in enumerate(atoms):
             self.env[f"{_RESULT}{i}"] = atom
 
@@ -213,6 +213,9 @@ class StatementLowering:
             if (then_returned or else_returned) and not is_result:
                 continue  # only the result leaves a path that returned
             a, b = then_env.get(name), else_env.get(name)
+            if isinstance(a, _Tuple) and a == b:
+                self.env[name] = a  # its elements merge as names of their own
+                continue
             if a is b and a is not None:
                 self.env[name] = a
                 continue
@@ -239,7 +242,9 @@ class StatementLowering:
                     f" ({name}[i] = ...) in each branch",
                 )
                 continue
-            target = self.new_var("value" if is_result else name, "local", shape)
+            target = self.new_var(
+                "value" if is_result else display(name), "local", shape
+            )
             merges.append(Phi(target, a, b))
             if shape == "list":
                 self.list_root[target] = self.root_of(a)  # type: ignore[arg-type]
