@@ -494,10 +494,27 @@ def test_rules_math_calls_survive_a_local_named_math(source: str) -> None:
 def test_power_rule_reads_out_instead_of_recomputing() -> None:
     # rules._constant_power: no second pow for x**-2 and x**0.5 (issue 12)
     source = "def f(x, y):\n    return x**-2 + y**0.5\n"
+    code = _reverse_code(source)
+    assert not any("**" in line for line in code), code
+
+
+def _reverse_code(source: str) -> list[str]:
     text = gradwright.generate(source, ["f"])
-    reverse = text.split("# reverse sweep")[1].splitlines()
-    code = [line for line in reverse if not line.lstrip().startswith("#")]
-    assert not any("**" in line for line in code), reverse
+    lines = text.split("# reverse sweep")[1].splitlines()
+    return [line for line in lines if not line.lstrip().startswith("#")]
+
+
+def test_log_base_two_reads_the_constant() -> None:
+    # rules._log: log(x, 2.0) uses LN2, as log2 does, not math.log(2.0) per call
+    code = _reverse_code("import math\n\ndef f(x):\n    return math.log(x, 2.0)\n")
+    assert not any("log" in line for line in code), code
+    assert any(repr(rules.LN2) in line for line in code), code
+
+
+def test_tanh_rule_calls_cosh_once() -> None:
+    # rules.py: sech(x)**2 from one cosh (issue 12: no recomputation in rules)
+    code = _reverse_code("import math\n\ndef f(x):\n    return math.tanh(x)\n")
+    assert sum(line.count("cosh(") for line in code) == 1, code
 
 
 @pytest.mark.parametrize(
