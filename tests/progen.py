@@ -678,7 +678,8 @@ def statement(draw, sc: Scope, allow_return: bool, tuple_out: int) -> list:
             out = [Assign([name], [Ex(form, tuple(elems), tag="list")])]
         else:
             out = [Assign([name], [Ex(f"[0.0] * {n}", tag="list")])]
-            out.append(Assign([f"{name}[{n - 1}]"], [draw(num(sc, 1))]))
+            # every element written (a zero read back would be a constant)
+            out += [Assign([f"{name}[{j}]"], [draw(num(sc, 1))]) for j in range(n)]
         sc.lists[name] = n
         return out
     if kind == "listwrite":

@@ -388,6 +388,20 @@ def f(x, y):
 """,
         [[1.36, 0.5], [-1.36, -0.94]],
     ),
+    "early_return_then_helper_rebinds": (
+        """\
+def h0(a):
+    return a
+
+def f(a):
+    t2 = a
+    if t2 >= 0.1:
+        return a
+    t2 = h0(t2)
+    return t2
+""",
+        [[0.25], [0.05]],
+    ),
     "unread_list_parameter": (
         """\
 def f(x, xs):
