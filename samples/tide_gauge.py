@@ -6,17 +6,11 @@ are module-level data: the generated module copies them as written.
 """
 
 import math
-from dataclasses import dataclass
+from collections import namedtuple
 
-
-@dataclass(frozen=True)
-class Station:
-    datum: float  # metres above chart datum
-    period_m2: float  # hours: principal lunar semidiurnal
-    period_s2: float  # hours: principal solar semidiurnal
-
-
-HARBOUR = Station(datum=2.1, period_m2=12.42, period_s2=12.0)
+# datum: metres above chart datum; periods in hours (lunar and solar semidiurnal)
+Station = namedtuple("Station", ["datum", "period_m2", "period_s2"])
+HARBOUR = Station(2.1, 12.42, 12.0)
 
 # (hour, height in metres) read off the gauge
 READINGS = [

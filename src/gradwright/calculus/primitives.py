@@ -84,6 +84,9 @@ _SPECS = [
     OpSpec("ifexp", "ifexp", "", PREC_IFEXP, 3, 3),
     # lists: x[i], [a, b], [fill] * n, len(x), sum(x)
     OpSpec("getitem", "subscript", "", PREC_ATOM, 2, 2),
+    # an element of module-level data: no rule, so never active (piecewise
+    # constant in its index, and the data itself is constant)
+    OpSpec("dataitem", "subscript", "", PREC_ATOM, 2, 2),
     OpSpec("listlit", "list", "", PREC_ATOM, 0, None),
     OpSpec("newlist", "repeat", "*", PREC_MUL, 2, 2),
     OpSpec("len", "call", "len", PREC_ATOM, 1, 1),

@@ -272,9 +272,9 @@ class ExpressionLowering:
         """Module-level data is an inactive constant: no adjoint ever reaches it.
 
         Reads with constant keys stay constants (printed as written); an index
-        computed in the function makes a ``getitem`` whose index must be inert,
-        so that it can never become active (the reverse sweep has no adjoint for
-        the module's values)."""
+        computed in the function makes a ``dataitem``, a primitive with no rule,
+        so its value is never active (the reverse sweep has no adjoint for the
+        module's values)."""
         if isinstance(node, cst.Name):
             self.constants_read[node.value] = None
             return Const(node.value, None)
@@ -302,17 +302,13 @@ class ExpressionLowering:
             index: Atom = Const(key.value, None)
         else:
             index = self.scalar(self.expr(key, base, None), key)
-            if not self.is_inert(index):
-                fail(
-                    "this index may depend on a --wrt parameter: module-level data"
-                    " has no derivative to pass on",
-                    self.index.locate(key),
-                    "index it with a loop counter, a parameter left out of --wrt,"
-                    " or an integer made from them (int(...), round(...), //)",
-                )
         if isinstance(head, Const) and isinstance(index, Const):
             return Const(f"{head.text}[{index.text}]", None)
-        return self.emit("getitem", (head, index), self.new_var(base, "temp"))
+        # "dataitem" has no rule: never active, whatever the index depends on (an
+        # index is an integer, piecewise constant in any input)
+        item = self.emit("dataitem", (head, index), self.new_var(base, "temp"))
+        self.fresh.discard(item)  # a row of a module array is not the model's own
+        return item
 
     def is_inert(self, atom: Atom) -> bool:
         """Whether a value can never be active: a constant, a loop counter, a
