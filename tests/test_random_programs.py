@@ -64,6 +64,8 @@ PROFILE = os.environ.get("GRADWRIGHT_RANDOM_PROFILE", "ci")
 LONG = PROFILE == "long"
 LONG_EXAMPLES = int(os.environ.get("GRADWRIGHT_RANDOM_EXAMPLES", "3000"))
 FAILURE_LOG = os.environ.get("GRADWRIGHT_RANDOM_FAILURES", "")
+# CI profile: report the first failing example as drawn, without shrinking it
+NO_SHRINK = os.environ.get("GRADWRIGHT_RANDOM_NO_SHRINK") == "1"
 # long profile: shrink this many failures of each kind (each takes seconds)
 SHRINK_PER_SIGNATURE = int(os.environ.get("GRADWRIGHT_RANDOM_SHRINK", "5"))
 
@@ -224,7 +226,7 @@ def run_family(name: str) -> Stats:
         derandomize=not LONG,
         deadline=None,
         database=None,
-        phases=[Phase.generate] if LONG else list(Phase),
+        phases=[Phase.generate] if LONG or NO_SHRINK else list(Phase),
         suppress_health_check=[HealthCheck.too_slow, HealthCheck.data_too_large],
     )
     @given(numpy_programs(name) if knobs is None else programs(knobs, name))
