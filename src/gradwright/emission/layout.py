@@ -109,6 +109,10 @@ class Layout:
             if isinstance(node, Apply) and node.op == "partial"
         }
         self.tape_names: dict[tuple[Loop, Var], str] = {}
+        #: the names of pinned values named so far, kept up to date as names are
+        #: given (rebuilding it for each value made naming quadratic)
+        self.held: set[str] = set()
+        self.namer.names = _NoteHeld(self.namer.names, self.pinned, self.held)
         self._name_all()
         if share_names:
             self._name_carries(sweep.statements)
@@ -192,6 +196,8 @@ class Layout:
             container = let.args[0]
             if not (isinstance(container, Var) and container.kind == "param"):
                 return False
+        elif let.op == "dataitem":
+            pass  # module-level data: read again, as cheap as reading the save
         elif let.op not in _CHEAP:
             return False
         for arg in let.args:
@@ -491,8 +497,7 @@ class Layout:
                 return
             self.namer.names[var] = self.namer.fresh(var.base)
             return
-        held = {self.namer.names[v] for v in self.pinned if v in self.namer.names}
-        if var.kind in ("local", "index") and var.base not in held:
+        if var.kind in ("local", "index") and var.base not in self.held:
             # no live version holds the source's own name on this path: take it
             self.namer.names[var] = var.base
             self.namer.taken.add(var.base)
@@ -544,11 +549,7 @@ class Layout:
                 if index not in self.namer.names:
                     # loops one after another reuse the name; an enclosing loop's
                     # index, or a value the reverse sweep reads later, keeps it
-                    kept = {
-                        self.namer.names[v]
-                        for v in self.pinned
-                        if v in self.namer.names
-                    }
+                    kept = self.held
                     if index.base in indices or index.base in kept:
                         self.namer.names[index] = self.namer.fresh(index.base)
                     else:
@@ -683,7 +684,10 @@ class Layout:
         expression it reads (the bounds as the forward sweep has them)."""
         if _is_const(loop.start, 0) and _is_const(loop.step, 1):
             stop = self.atom_expr(loop.stop, folded)
-            return self.expr(Apply("mul", (Apply("listlit", (const(0.0),)), stop))), stop
+            return (
+                self.expr(Apply("mul", (Apply("listlit", (const(0.0),)), stop))),
+                stop,
+            )
         bounds = Apply(
             "listlit", tuple(self.atom_expr(b, folded) for b in _bounds(loop))
         )
@@ -726,6 +730,20 @@ def _writes_then_no_read(body: list[ReverseStmt], header: Var, carry: Var) -> bo
             if any(isinstance(n, Bar) and n.var == carry for n in walk(expr)):
                 return False
     return True
+
+
+class _NoteHeld(dict):
+    """The namer's names, noting into ``held`` each name a pinned value takes."""
+
+    def __init__(self, names: dict, pinned: set, held: set[str]) -> None:
+        super().__init__(names)
+        self.pinned, self.held = pinned, held
+        held.update(name for var, name in names.items() if var in pinned)
+
+    def __setitem__(self, var: Var, name: str) -> None:
+        super().__setitem__(var, name)
+        if var in self.pinned:
+            self.held.add(name)
 
 
 def _partials_var(call: Var) -> Var:

@@ -339,16 +339,16 @@ class _DataRow:
         low = self.lowering
         if isinstance(target, cst.Name):
             return lambda name: low.emit(  # type: ignore[attr-defined]
-                "getitem", (self.table, self.index), low.new_var(name, "local")  # type: ignore[attr-defined]
+                "dataitem", (self.table, self.index), low.new_var(name, "local")  # type: ignore[attr-defined]
             )
         row = low.emit(  # type: ignore[attr-defined]
-            "getitem", (self.table, self.index), low.new_var("row", "temp")  # type: ignore[attr-defined]
+            "dataitem", (self.table, self.index), low.new_var("row", "temp")  # type: ignore[attr-defined]
         )
         count = len(target.elements)  # type: ignore[attr-defined]
         return tuple(
             (
                 lambda name, j=j: low.emit(  # type: ignore[attr-defined]
-                    "getitem", (row, Const(str(j), j)), low.new_var(name, "local")  # type: ignore[attr-defined]
+                    "dataitem", (row, Const(str(j), j)), low.new_var(name, "local")  # type: ignore[attr-defined]
                 )
             )
             for j in range(count)
