@@ -2,7 +2,7 @@
 # source: samples/tide_gauge.py
 # source sha256: 41f2e6ad8faaef888ec4fb61d9e9a8b106c978f34cbbdb886a71de8b9d6e2f7b
 # command: gradwright gen samples/tide_gauge.py tide_misfit -o samples/tide_gauge_grad.py
-# output sha256: c7407efc4612ca8e372e65626c461224fe9431ca2f37542a72653014db0b4d33
+# output sha256: 6362b17313a9be9579d7c770aabe7007b186f6d633ed41f433a4525ce2b6573f
 
 import math
 from collections import namedtuple
@@ -48,8 +48,6 @@ def tide_misfit_grad(amp_m2, phase_m2, amp_s2, phase_s2):
     # total = 0.0
     total = 0.0
     # for hour, height in READINGS:
-    hour_saved = [0.0] * len(READINGS)
-    height_saved = [0.0] * len(READINGS)
     weight_saved = [0.0] * len(READINGS)
     m2_1_saved = [0.0] * len(READINGS)
     s2_1_saved = [0.0] * len(READINGS)
@@ -57,9 +55,7 @@ def tide_misfit_grad(amp_m2, phase_m2, amp_s2, phase_s2):
     for hour_index in range(len(READINGS)):
         row_1 = READINGS[hour_index]
         hour = row_1[0]
-        hour_saved[hour_index] = hour
         height = row_1[1]
-        height_saved[hour_index] = height
         # weight = WEIGHTS["night"] if hour >= 18.0 else WEIGHTS["day"]
         if hour >= 18.0:
             weight = WEIGHTS["night"]
@@ -93,12 +89,13 @@ def tide_misfit_grad(amp_m2, phase_m2, amp_s2, phase_s2):
     amp_s2_bar = 0.0
     phase_s2_bar = 0.0
     for hour_index in reversed(range(len(READINGS))):
-        hour = hour_saved[hour_index]
-        height = height_saved[hour_index]
         weight = weight_saved[hour_index]
         m2_1 = m2_1_saved[hour_index]
         s2_1 = s2_1_saved[hour_index]
         total_1 = total_1_saved[hour_index]
+        row_1 = READINGS[hour_index]
+        hour = row_1[0]
+        height = row_1[1]
         m2_2 = 2.0 * math.pi * hour / HARBOUR.period_m2 - phase_m2
         m2 = amp_m2 * m2_1
         s2_2 = 2.0 * math.pi * hour / HARBOUR.period_s2 - phase_s2

@@ -318,7 +318,7 @@ def _gen(args: argparse.Namespace) -> int:
         ranges=parse_ranges(args.range),
     )
     report = _Report(args.quiet)
-    if _current(job, args.diff):
+    if _current(job, args.diff or args.force):
         if args.check:
             for label, _ in expected_headers(job):
                 report.status("unchanged", [label])
@@ -408,7 +408,11 @@ def _build(args: argparse.Namespace) -> int:
     report = _Report(args.quiet)
     jobs = [job_for_target(project, target) for target in project.targets]
     outcomes: list[_Outcome | None] = [
-        _Outcome("unchanged", [job.output or ""]) if _current(job, args.diff) else None
+        (
+            _Outcome("unchanged", [job.output or ""])
+            if _current(job, args.diff or args.force)
+            else None
+        )
         for job in jobs
     ]
     pending = [k for k, outcome in enumerate(outcomes) if outcome is None]
