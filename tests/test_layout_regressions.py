@@ -162,6 +162,23 @@ def f(x, y):
         ["x", "y"],
         [(1.36, 0.5), (-1.36, -0.94)],
     ),
+    # naming a helper call's partials gave the call the re-bound name before the
+    # layout chose one, so the reverse test read the helper's value
+    "early-return-then-helper-rebinds": (
+        """
+def h0(a):
+    return a
+
+def f(a):
+    t2 = a
+    if t2 >= 0.1:
+        return a
+    t2 = h0(t2)
+    return t2 * a
+""",
+        ["a"],
+        [(0.25,), (0.05,)],
+    ),
     "three-nested-loops": (
         """
 def f(x):

@@ -67,6 +67,9 @@ class Layout:
         self.bases_used = {p.base for p in function.params}
         self.function = function
         self.sweep = sweep
+        #: partials values met before naming, and whether naming is done
+        self.pending_partials: dict[Var, Var] = {}
+        self.named = False
         self.namer = namer
         self.printer = printer
         self.reverse_printer = printer
@@ -116,6 +119,11 @@ class Layout:
         self._name_all()
         if share_names:
             self._name_carries(sweep.statements)
+        # a call's partials are named after the call (naming one first would
+        # give the call its base name before the layout chose one)
+        for pseudo, call in self.pending_partials.items():
+            self.namer.names[pseudo] = self.namer.partials_name(call)
+        self.named = True
 
     # -- analysis -----------------------------------------------------------------
 
@@ -160,7 +168,10 @@ class Layout:
         pseudo = _partials_var(call)
         if pseudo not in self.loop_of:
             self.loop_of[pseudo] = self.loop_of.get(call)
-            self.namer.names[pseudo] = self.namer.partials_name(call)
+            if self.named:
+                self.namer.names[pseudo] = self.namer.partials_name(call)
+            else:  # named with its call, once the call has its own name
+                self.pending_partials[pseudo] = call
         return pseudo
 
     def cheap(self, atom: Expr, everywhere: bool = False) -> Expr:
