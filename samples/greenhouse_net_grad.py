@@ -2,7 +2,7 @@
 # source: samples/greenhouse_net.py
 # source sha256: f94a505cbabce5a779320a9a523463a3af5a29e82a9d607fbc7c2942e6341334
 # command: gradwright gen samples/greenhouse_net.py humidity_loss --wrt W1,b1,w2,b2 -o samples/greenhouse_net_grad.py
-# output sha256: 5c394b596bf9fc6ef4f8dd76e32646758e2e3814385dae83994790fc0df8b730
+# output sha256: 9b4681060748fed0bd58951ebd02a84082dd51c2b677421f7e4a7db9ba874475
 
 import numpy as np
 
@@ -64,6 +64,8 @@ def _gw_matmul_right(g, a, b):
 def _gw_shaped(g, x):
     """An adjoint with the shape of its value (a zero becomes an array of zeros),
     in an array of its own that the caller may change."""
+    if isinstance(x, (int, float)) and np.ndim(g) == 0:
+        return float(g)  # a number gets a number (not a 0-d array)
     if np.shape(g) != np.shape(x):
         return np.zeros(np.shape(x)) + g
     return np.array(g) if isinstance(g, np.ndarray) else g

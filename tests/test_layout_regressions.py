@@ -419,3 +419,15 @@ def test_empty_wrt_is_a_usage_error():
         gradwright.generate("def f(x):\n    return x * 2.0\n", ["f"], wrt=[])
     assert "wrt names no parameter" in str(error.value)
     assert "differentiably on  (" not in str(error.value)
+
+
+def test_numpy_model_number_parameter_gets_a_float():
+    """A Python float parameter of an array model got a 0-d array entry."""
+    import numpy as np
+
+    source = "import numpy as np\ndef f(w, s):\n    return np.abs(s) + np.sum(w * s)\n"
+    module = build(source, "f")
+    _, (w_bar, s_bar) = module["f_grad"](np.array([-1.2, -0.3]), -0.75)
+    assert type(s_bar) is float
+    assert s_bar == -1.0 + (-1.2 - 0.3)  # sign(s) + sum(w): closed form
+    np.testing.assert_array_equal(w_bar, [-0.75, -0.75])

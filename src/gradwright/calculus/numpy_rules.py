@@ -157,6 +157,8 @@ HELPERS: dict[str, str] = {
     "_gw_shaped": '''def _gw_shaped(g, x):
     """An adjoint with the shape of its value (a zero becomes an array of zeros),
     in an array of its own that the caller may change."""
+    if isinstance(x, (int, float)) and np.ndim(g) == 0:
+        return float(g)  # a number gets a number (not a 0-d array)
     if np.shape(g) != np.shape(x):
         return np.zeros(np.shape(x)) + g
     return np.array(g) if isinstance(g, np.ndarray) else g
