@@ -1426,16 +1426,20 @@ def _still_fails(case: Case, args: list, signature: str) -> bool:
     return outcome.status == "fail" and outcome.signature == signature
 
 
-def shrink(case: Case, args: list, signature: str, budget: int = 1500):
+def shrink(
+    case: Case, args: list, signature: str, budget: int = 1500, seconds: float = 90.0
+):
     """Greedy reduction of a failing ``case`` (delta debugging over the tree):
     candidates in a fixed order, resuming after each success where it happened,
-    until a whole pass changes nothing or ``budget`` variants were tried."""
+    until a whole pass changes nothing, ``budget`` variants were tried or
+    ``seconds`` passed (a slow generator makes each try slow)."""
     tries, start, fresh_pass = 0, 0, True
-    while tries < budget:
+    deadline = time.perf_counter() + seconds
+    while tries < budget and time.perf_counter() < deadline:
         candidates = list(_candidates(case, args))
         for index in range(start, len(candidates)):
             tries += 1
-            if tries >= budget:
+            if tries >= budget or time.perf_counter() > deadline:
                 break
             if _still_fails(*candidates[index], signature):
                 case, args = candidates[index]

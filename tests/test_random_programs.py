@@ -247,7 +247,32 @@ def run_family(name: str) -> Stats:
     return stats
 
 
-@pytest.mark.parametrize("family", list(FAMILIES))
+# Bugs found by these tests and still open in gradwright (see the lead's tracker):
+# the tests that meet them are expected to fail until they are fixed
+UNREAD_LIST = (
+    "open bug: a list parameter the result does not read gets 0.0 as its gradient"
+    " entry instead of a list of zeros (def f(x, xs): return x)"
+)
+OPEN: dict[str, str] = {
+    "loops": UNREAD_LIST,
+    "lists": UNREAD_LIST,
+    "mixed": UNREAD_LIST,
+    "unread_list_parameter": UNREAD_LIST,
+}
+
+
+def _marked(names: list[str]) -> list:
+    return [
+        (
+            pytest.param(n, marks=pytest.mark.xfail(strict=False, reason=OPEN[n]))
+            if n in OPEN
+            else n
+        )
+        for n in names
+    ]
+
+
+@pytest.mark.parametrize("family", _marked(list(FAMILIES)))
 def test_family(family: str) -> None:
     run_family(family)
 
@@ -404,6 +429,19 @@ def f(a):
 """,
         [[0.25], [0.05]],
     ),
+    "selection_then_helper_rebinds": (
+        """\
+def h0(a, b=0.5):
+    return b
+
+def f(x, n, xs):
+    b1 = (0.25 * n)
+    t2 = (b1 if b1 >= xs[1] else x)
+    b1 = h0(a=b1, b=xs[-1])
+    return h0(a=b1, b=t2)
+""",
+        [[0.5, 4, [1.125, -0.3125]], [0.5, 0, [1.125, 0.25]]],
+    ),
     "unread_list_parameter": (
         """\
 def f(x, xs):
@@ -426,16 +464,17 @@ def f(x):
 }
 
 
-@pytest.mark.parametrize("name", list(REGRESSIONS))
+@pytest.mark.parametrize("name", _marked(list(REGRESSIONS)))
 def test_regression(name: str) -> None:
     source, points = REGRESSIONS[name]
     params = source.split("def f(")[1].split(")")[0].split(", ")
     for args in points:
         kinds = {
-            p: f"list:{len(a)}" if isinstance(a, list) else "float"
+            p: f"list:{len(a)}" if isinstance(a, list) else type(a).__name__
             for p, a in zip(params, args, strict=True)
         }
-        check_source(source, kinds, args)
+        wrt = [p for p, k in kinds.items() if k != "int"]
+        check_source(source, kinds, args, wrt if len(wrt) < len(kinds) else None)
 
 
 def test_regression_numpy_scalar_parameter_gets_a_float() -> None:
