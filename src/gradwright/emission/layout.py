@@ -69,6 +69,8 @@ class Layout:
         self.sweep = sweep
         #: partials values met before naming, and whether naming is done
         self.pending_partials: dict[Var, Var] = {}
+        #: each partials value's helper call
+        self.partials_call: dict[Var, Var] = {}
         self.named = False
         self.namer = namer
         self.printer = printer
@@ -168,6 +170,7 @@ class Layout:
         pseudo = _partials_var(call)
         if pseudo not in self.loop_of:
             self.loop_of[pseudo] = self.loop_of.get(call)
+            self.partials_call[pseudo] = call
             if self.named:
                 self.namer.names[pseudo] = self.namer.partials_name(call)
             else:  # named with its call, once the call has its own name

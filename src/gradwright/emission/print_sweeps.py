@@ -468,8 +468,8 @@ class _Emitter:
                 out.code(f"{name} = {saved}[{slot}]", depth + 1)
                 trace.read(saved, self.tape_key(loop, saved))
                 self.slot_reads(loop)
-                partials = var.base.endswith("_partials") and var.uid < 0
-                key = self._saved_key(var) if partials else self.key(var)
+                call = layout.partials_call.get(var)
+                key = ("partials", call) if call is not None else self.key(var)
                 trace.restore(name, saved, var, key)
             self.list_adjoints(_lists_made(loop.body), depth + 1, out)
             for child in layout.children.get(loop, []):
@@ -494,17 +494,6 @@ class _Emitter:
         trace.loop(head + body_events, _iteration_values(loop))
         out.lines.extend(body.lines)
         out.last_origin[depth] = None
-
-    def _saved_key(self, pseudo: Var) -> Key:
-        """The key of a helper call's partials, from their pseudo value."""
-        return (
-            "partials",
-            next(
-                v
-                for v in self.layout.partials_needed
-                if self.layout.partials_of(v) == pseudo
-            ),
-        )
 
 
 def _lists_made(statements: tuple[Stmt, ...]) -> list[Var]:
