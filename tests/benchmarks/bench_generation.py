@@ -29,7 +29,7 @@ sys.path.insert(0, str(HERE))
 from synthetic import straight_line_model  # noqa: E402
 
 from gradwright import api  # noqa: E402
-from gradwright.emission import formatting, module  # noqa: E402
+from gradwright.emission import formatting, module, print_sweeps  # noqa: E402
 from gradwright.lowering import frontend  # noqa: E402
 
 CLI_SIZES = (1000, 2000)
@@ -65,6 +65,7 @@ def measure(statements: int) -> dict[str, float]:
         _Clock(frontend, "_statement_spans") as quote,
         _Clock(formatting, "_black") as black_all,
         _Clock(formatting, "_black_block") as black_primal,
+        _Clock(print_sweeps, "check") as layout_check,
         api._collector_paused(),
     ):
         t0 = time.perf_counter()
@@ -81,7 +82,8 @@ def measure(statements: int) -> dict[str, float]:
         "parse": t1 - t0,
         "quote": quote.seconds,
         "passes": t2 - t1 - quote.seconds,
-        "render": t3 - t2 - black_all.seconds,
+        "render": t3 - t2 - black_all.seconds - layout_check.seconds,
+        "check": layout_check.seconds,
         "black primal": black_primal.seconds,
         "black stmts": black_statements,
         "total": t3 - t0,
@@ -104,7 +106,8 @@ def cli_seconds(statements: int) -> float:
 
 
 def main(sizes: list[int]) -> None:
-    columns = ("parse", "quote", "passes", "render", "black primal", "black stmts")
+    columns = ("parse", "quote", "passes", "render", "check", "black primal")
+    columns += ("black stmts",)
     print(
         f"{'stmts':>6} {'lines':>6} "
         + " ".join(f"{c:>12}" for c in columns)
