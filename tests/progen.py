@@ -381,6 +381,9 @@ class Knobs:
     max_depth: int = 2
 
 
+MAX_RETURNS = 2  # returns inside ifs per function
+
+
 @dataclass
 class Helper:
     name: str
@@ -400,6 +403,9 @@ class Scope:
     fresh: list[int]  # a shared counter for new names
     in_loop: bool = False
     depth: int = 0
+    # returns inside ifs so far (shared): each if that may return copies the code
+    # after it into its paths, so k of them make 2**k copies (finding F7)
+    returns: list[int] = field(default_factory=lambda: [0])
 
     def copy(self) -> Scope:
         return Scope(
@@ -411,7 +417,11 @@ class Scope:
             self.fresh,
             self.in_loop,
             self.depth,
+            self.returns,
         )
+
+    def may_return(self) -> bool:
+        return self.returns[0] < MAX_RETURNS
 
     def new_name(self, stem: str = "t") -> str:
         self.fresh[0] += 1
@@ -617,7 +627,7 @@ def statement(draw, sc: Scope, allow_return: bool, tuple_out: int) -> list:
         kinds += ["list", "listwrite"]
     if sc.helpers:
         kinds += ["deadcall"]
-    if allow_return and k.early_return and not sc.in_loop:
+    if allow_return and k.early_return and not sc.in_loop and sc.may_return():
         kinds += ["ifreturn", "ifreturn"]
     kind = draw(st.sampled_from(kinds))
     if kind == "new":
@@ -737,6 +747,7 @@ def if_statement(draw, sc: Scope, must_return: bool, tuple_out: int) -> If:
         body = draw(block(inner, 0, 2, not sc.in_loop, tuple_out))
         if must_return and a == 0 and not (body and isinstance(body[-1], Return)):
             body.append(Return(draw(returned(inner, tuple_out))))
+            sc.returns[0] += 1
         bodies.append(body)
         scopes.append(inner)
     falls = [not (b and isinstance(b[-1], Return)) for b in bodies]
@@ -787,8 +798,10 @@ def block(draw, sc: Scope, lo: int, hi: int, allow_return: bool, tuple_out: int)
     out: list = []
     for _ in range(draw(st.integers(lo, hi))):
         out += draw(statement(sc, allow_return, tuple_out))
-    if allow_return and sc.knobs.early_return and draw(st.integers(0, 4)) == 0:
+    ending = allow_return and sc.knobs.early_return and sc.may_return()
+    if ending and draw(st.integers(0, 4)) == 0:
         out.append(Return(draw(returned(sc, tuple_out))))
+        sc.returns[0] += 1
     return out
 
 
@@ -1082,6 +1095,8 @@ FLOOR = 1e-3
 # generate() on these programs (at most ~40 lines) takes 10-50 ms; one that takes
 # more than this is a complexity blow-up in the generator
 SLOW_SECONDS = float(os.environ.get("GRADWRIGHT_RANDOM_SLOW", "10"))
+# a file that always holds the program being generated (GRADWRIGHT_RANDOM_TRACE)
+TRACE = os.environ.get("GRADWRIGHT_RANDOM_TRACE", "")
 
 
 @dataclass
@@ -1207,6 +1222,9 @@ def _generate(case: Case, func: str, constant: Callable[[], bool]) -> dict | Out
     """The generated module's namespace, or the Outcome of a rejection: expected
     for and/or values (see :func:`expected_rejection`) and for a result that
     does not depend on the wrt names when ``constant()`` (the reference) agrees."""
+    if TRACE:  # the program about to be generated (to find a hang)
+        with open(TRACE, "w") as trace:
+            trace.write(f"# wrt={case.wrt!r}\n{case.program.source()}")
     start = time.perf_counter()
     try:
         text = gradwright.generate(case.program.source(), [func], wrt=case.wrt)
