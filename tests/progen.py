@@ -787,6 +787,8 @@ def returned(draw, sc: Scope, tuple_out: int) -> list[Ex]:
         for _ in range(draw(st.integers(0, 2))):
             other = draw(num(sc, 1, True))
             op = draw(st.sampled_from(BASIC_BINARY))
+            if op[0] == "({0} - {1})" and other.render() == e.render():
+                op = BASIC_BINARY[0]  # not u - u
             e = apply(op, e, other)
         values.append(e)
     return values
@@ -996,8 +998,8 @@ def clear_switches(program: Program, args: list) -> tuple[bool, set]:
     try:
         exec(compile(source, "<instrumented>", "exec"), ns)
         result = ns[program.target.name](*args)
-    except (ArithmeticError, ValueError):
-        return False, set()
+    except (ArithmeticError, ValueError):  # a division by a tie (u / (t - t2))
+        return False, {switches[i] for i, gap in rec.gaps if gap < MARGIN}
     outs = result if isinstance(result, tuple) else (result,)
     rec.mags.extend(abs(o) for o in outs)
     close = {switches[i] for i, gap in rec.gaps if gap < MARGIN}
