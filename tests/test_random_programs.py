@@ -256,7 +256,6 @@ UNREAD_LIST = (
 OPEN: dict[str, str] = {
     "loops": UNREAD_LIST,
     "lists": UNREAD_LIST,
-    "mixed": UNREAD_LIST,
     "unread_list_parameter": UNREAD_LIST,
 }
 
