@@ -253,11 +253,7 @@ UNREAD_LIST = (
     "open bug: a list parameter the result does not read gets 0.0 as its gradient"
     " entry instead of a list of zeros (def f(x, xs): return x)"
 )
-OPEN: dict[str, str] = {
-    "loops": UNREAD_LIST,
-    "lists": UNREAD_LIST,
-    "unread_list_parameter": UNREAD_LIST,
-}
+OPEN: dict[str, str] = {}
 
 
 def _marked(names: list[str]) -> list:

@@ -188,9 +188,29 @@ def _negate(expr: Expr) -> Expr:
     return _signed(not negative, magnitude)
 
 
+#: simplified trees by identity (the reverse sweep simplifies expressions that
+#: share deep subtrees; without it a long sum was quadratic); the tree is kept so
+#: its id is not reused while the entry lives
+_SIMPLIFIED: dict[int, tuple[Expr, Expr]] = {}
+
+
 def simplify(expr: Expr) -> Expr:
     if not isinstance(expr, Apply):
         return expr
+    known = _SIMPLIFIED.get(id(expr))
+    if known is not None and known[0] is expr:
+        return known[1]
+    if len(_SIMPLIFIED) > 200_000:
+        _SIMPLIFIED.clear()
+    result = _simplify(expr)
+    _SIMPLIFIED[id(expr)] = (expr, result)
+    # a simplified tree is simplified (merging adjoints re-simplifies the sum so
+    # far with each new term)
+    _SIMPLIFIED[id(result)] = (result, result)
+    return result
+
+
+def _simplify(expr: Apply) -> Expr:
     args = tuple(simplify(a) for a in expr.args)
     op = expr.op
     if op == "neg":

@@ -337,7 +337,14 @@ class _Emitter:
             if var.shape == "list":
                 continue
             origin = Origin(f"{var.base} does not affect the result", -1)
-            out.statement(origin, f"{self.namer.bar_name(var)} = 0.0", 1)
+            zero = "0.0"
+            if self.layout.uses.get(var, 0) == 0 and not layout.numpy:
+                # never read, so it may be a list: its entry has its shape
+                name = self.namer.name(var)
+                zero = (
+                    f"[0.0] * len({name}) if isinstance({name}, (list, tuple)) else 0.0"
+                )
+            out.statement(origin, f"{self.namer.bar_name(var)} = {zero}", 1)
             self.trace.write(self.namer.bar_name(var), self.bar_key(var))
         return out.lines
 
