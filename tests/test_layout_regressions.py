@@ -179,6 +179,21 @@ def f(a):
         ["a"],
         [(0.25,), (0.05,)],
     ),
+    # an adjoint written on one side of a branch in the innermost of three loops
+    # was lost in the loop summaries: a false internal error
+    "one-sided-adjoint-three-loops-deep": (
+        """
+def f(x, y, z):
+    for i2 in range(2):
+        for i3 in range(3):
+            for i4 in range(3):
+                y = z if i2 > 1 else x
+            z = x if x < 1.5 else z * 0.5
+    return y
+""",
+        ["x"],
+        [(0.6, 1.3, -0.8), (1.7, 1.3, -0.8)],
+    ),
     "three-nested-loops": (
         """
 def f(x):

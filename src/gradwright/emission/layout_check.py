@@ -163,10 +163,13 @@ def _meet(a: State, b: State) -> State:
         common = set()
         for key, guard in facts:
             for other_key, other_guard in other:
+                both = guard | other_guard
                 if key == other_key or other_key == _SAME:
-                    common.add((key, guard | other_guard))
+                    common.add((key, both))
                 elif key == _SAME:
-                    common.add((other_key, guard | other_guard))
+                    common.add((other_key, both))
+                elif _kept(other_key) == key or _kept(key) == other_key:
+                    common.add((key if _kept(other_key) == key else other_key, both))
         if common:
             out[name] = _resolve(frozenset(common))
     return out
@@ -182,13 +185,31 @@ def _resolve(facts: frozenset) -> frozenset:
         for key, guard in list(found):
             for branch, side in guard:
                 rest = guard - {(branch, side)}
-                if (key, rest | {(branch, 1 - side)}) in found and (
-                    key,
-                    rest,
-                ) not in found:
+                other = rest | {(branch, 1 - side)}
+                if (key, other) in found and (key, rest) not in found:
                     found.add((key, rest))
                     changed = True
+                # unchanged on one side, k on the other: k wherever it held k
+                if key == _SAME or _kept(key) is not None:
+                    held = _kept(key)
+                    for k2, g2 in list(found):
+                        if g2 == other and k2 not in (_SAME, key):
+                            value = k2 if held is None else held
+                            if _kept(k2) not in (None, value) or (
+                                held is not None and k2 != held
+                            ):
+                                continue
+                            fact = (("kept", _kept(k2) or k2), rest)
+                            if fact not in found:
+                                found.add(fact)
+                                changed = True
     return frozenset(found)
+
+
+def _kept(key: Key) -> Key | None:
+    """``k`` for the fact "the name still holds k if it held k when the loop
+    iteration began" (a name written on one side of a branch only)."""
+    return key[1] if key[0] == "kept" else None
 
 
 def _join_branch(branch: object, then: State, orelse: State) -> State:
