@@ -82,7 +82,7 @@ def test_line_fit_over_a_module_table() -> None:
 
 
 # NIST StRD Misra1a, values from memory: the certified residual sum of squares
-# 1.2455138894E-01 reproduced to 10 digits below confirms the transcription.
+# 1.2455138894E-01 reproduced to 10 digits below confirms the copied data.
 MISRA1A = """\
 import math
 
