@@ -32,12 +32,13 @@ from gradwright.lowering.base import (
     _Unbound,
 )
 from gradwright.lowering.calls import CallLowering
+from gradwright.lowering.comprehensions import ComprehensionLowering
 from gradwright.lowering.expressions import ExpressionLowering
 from gradwright.lowering.frontend import (
     CheckedFunction,
     ModuleIndex,
 )
-from gradwright.lowering.loops import ComprehensionLowering, LoopLowering
+from gradwright.lowering.loops import LoopLowering
 from gradwright.lowering.numpy_calls import NumpyLowering
 from gradwright.lowering.statements import StatementLowering
 from gradwright.lowering.syntax import (
