@@ -448,7 +448,7 @@ def test_numpy_model_number_parameter_gets_a_float():
     np.testing.assert_array_equal(w_bar, [-0.75, -0.75])
 
 
-OPEN_EARLY_RETURN = """
+EARLY_RETURN_THEN_LOOP = """
 import math
 
 def f(x, y, z):
@@ -479,15 +479,25 @@ def f(x, y, z):
 """
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="open: the layout check refuses this early-return program (found by the"
-    " long random run; 'b2_1 should hold b2#63'); refused, never a wrong module",
-)
-def test_open_early_return_case_generates():
-    module = build(OPEN_EARLY_RETURN, "f", ["x"])
+LOOP_EXIT_READ_LATE = """
+def f(x, y, z):
+    y = x
+    b2 = z
+    for i11 in range(1):
+        z = x if b2 else x
+        b2 = x
+    return y * b2
+"""
+
+
+@pytest.mark.parametrize("source", [EARLY_RETURN_THEN_LOOP, LOOP_EXIT_READ_LATE])
+def test_loop_exit_value_read_past_the_reverse_loop(source):
+    """The adjoint of `y` is the value of `b2` after the loop; substituted into the
+    reverse of `y = x`, past the reverse loop that restores `b2`, it read a restored
+    iteration value (the layout check refused both layouts). It stays a statement."""
+    module = build(source, "f", ["x"])
     point = (0.6, -0.3, 0.4)
     value, grads = module["f_grad"](*point)
-    assert value == run_source(OPEN_EARLY_RETURN)["f"](*point)
-    reference = mp_gradient(mp_function(OPEN_EARLY_RETURN, "f"), list(point), [0])
+    assert value == run_source(source)["f"](*point)
+    reference = mp_gradient(mp_function(source, "f"), list(point), [0])
     assert rel_err(grads[0], float(reference[0])) < 1e-12  # mpmath differences

@@ -111,6 +111,17 @@ def inline_adjoints(sweep: ReverseSweep) -> ReverseSweep:
     # statement: the carried adjoints are all updated at the end of the body, and one
     # read there after another was updated would be wrong (`s, w = w, s`)
     headers = set(carries.values())
+    # a loop's reverse restores its carried values into the names they share with
+    # the value after the loop, so an adjoint reading that value stays a statement
+    # where it is made: substituted into a use past the reverse loop, it would read
+    # whatever the last restore left in the name
+    restored = {
+        phi.exit
+        for s in flat
+        if isinstance(s, ReverseLoop)
+        for phi in s.loop.carried
+        if phi.exit is not None
+    }
     inlined: dict[Var, Expr] = {}
 
     def block(statements: tuple[ReverseStmt, ...]) -> tuple[ReverseStmt, ...]:
@@ -129,6 +140,7 @@ def inline_adjoints(sweep: ReverseSweep) -> ReverseSweep:
                     and writes[var] == 1
                     and not _reads_list_adjoint(expr)
                     and (atom or (var.kind == "temp" and reads[var] == 1))
+                    and not any(node in restored for node in walk(expr))
                 ):
                     inlined[var] = expr
                     continue
