@@ -119,6 +119,28 @@ def spread(q1, q2, q3):
         assert rel_err(g, math.cos(q) * q + math.sin(q)) < 1e-14  # product rule
 
 
+def test_loop_over_a_tuple_bound_to_a_name():
+    source = """
+def reduce_speed(r1, r2, rpm=3000.0):
+    stages = (r1, r2)
+    efficiency = 1.0
+    for r in stages:
+        rpm = rpm / r
+        efficiency *= 1.0 - 0.02 * r
+    return rpm * efficiency
+"""
+    module = build(source, "reduce_speed")
+    point = (3.0, 4.5, 2500.0)
+    value, (g1, g2, g_rpm) = module["reduce_speed_grad"](*point)
+    assert value == run_source(source)["reduce_speed"](*point)
+    r1, r2, rpm = point
+    # f = rpm (1 - 0.02 r1)(1 - 0.02 r2) / (r1 r2): logarithmic derivative by hand
+    f = rpm * (1 - 0.02 * r1) * (1 - 0.02 * r2) / (r1 * r2)
+    assert rel_err(g1, f * (-0.02 / (1 - 0.02 * r1) - 1 / r1)) < 1e-14
+    assert rel_err(g2, f * (-0.02 / (1 - 0.02 * r2) - 1 / r2)) < 1e-14
+    assert rel_err(g_rpm, f / rpm) < 1e-14
+
+
 @pytest.mark.parametrize("n", [0, 1, 4])
 def test_reversed_range_and_nested_targets(n):
     source = """

@@ -255,14 +255,19 @@ class LoopLowering:
                 return read(position)  # type: ignore[arg-type]
 
             return length, backwards, base
-        if isinstance(node, (cst.Tuple, cst.List)):
-            # a tuple of values written out: a local list of them
-            values = tuple(
-                self.scalar(self.expr(el.value, "values", None), el.value)
-                for el in node.elements
-            )
+        held = self.tuple_of(node)
+        if isinstance(node, (cst.Tuple, cst.List)) or held is not None:
+            # a tuple of values, written out or bound to a name: a local list of them
+            if held is not None:
+                values = tuple(held)
+            else:
+                values = tuple(
+                    self.scalar(self.expr(el.value, "values", None), el.value)
+                    for el in node.elements  # type: ignore[attr-defined]
+                )
             if not values or any(
-                isinstance(el, cst.StarredElement) for el in node.elements
+                isinstance(el, cst.StarredElement)
+                for el in getattr(node, "elements", ())
             ):
                 fail("loop over a tuple of plain values", self.index.locate(node))
             listed = self.emit(
