@@ -2,7 +2,7 @@
 # source: samples/kiln_cooling.py
 # source sha256: a06d7e41ceb820bdb9f7afefdfd582c36125c98be226eb56a6a555feac5b0ed6
 # command: gradwright gen samples/kiln_cooling.py kiln_loss --wrt k_conv,k_rad,start_temp -o samples/kiln_cooling_grad.py
-# output sha256: 55626162ae97cddfcba38980ca50a26fd7d69f84e5855d10fdadcf16025d2b27
+# output sha256: 2127527339f1d51f735ce5e4e1db233e38baaeb3e2823a7e4db5cb99b9ebed45
 
 AMBIENT = 293.15  # kelvin
 SAFE_POINT = 700.0  # kelvin: below this the heater comes on
@@ -64,7 +64,7 @@ def kiln_loss_grad(k_conv, k_rad, start_temp, readings, dt, steps_per_reading):
         # for _ in range(steps_per_reading):
         temp_1_partials_saved = [0.0] * steps_per_reading
         temp_1_partials_saved_by_reading_index[reading_index] = temp_1_partials_saved
-        for _ in range(steps_per_reading):
+        for step in range(steps_per_reading):
             # heating = HEATER if temp < SAFE_POINT else 0.0
             if temp < SAFE_POINT:
                 heating = HEATER
@@ -72,7 +72,7 @@ def kiln_loss_grad(k_conv, k_rad, start_temp, readings, dt, steps_per_reading):
                 heating = 0.0
             # temp = temp + dt * (heating - cooling_rate(temp, k_conv, k_rad))
             temp_1, temp_1_partials = cooling_rate_grad(temp, k_conv, k_rad)
-            temp_1_partials_saved[_] = temp_1_partials
+            temp_1_partials_saved[step] = temp_1_partials
             temp = temp + dt * (heating - temp_1)
         # err = temp - reading
         err = temp - reading
@@ -99,8 +99,8 @@ def kiln_loss_grad(k_conv, k_rad, start_temp, readings, dt, steps_per_reading):
         # err = temp - reading
         temp_bar += err_bar
         # for _ in range(steps_per_reading):
-        for _ in reversed(range(steps_per_reading)):
-            temp_1_partials = temp_1_partials_saved[_]
+        for step in reversed(range(steps_per_reading)):
+            temp_1_partials = temp_1_partials_saved[step]
             # temp = temp + dt * (heating - cooling_rate(temp, k_conv, k_rad))
             temp_1_bar = -temp_bar * dt
             temp_bar += temp_1_bar * temp_1_partials[0]

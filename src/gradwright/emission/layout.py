@@ -19,6 +19,7 @@ from __future__ import annotations
 from collections import Counter
 from collections.abc import Iterable, Iterator
 
+from gradwright.emission import indexing
 from gradwright.emission.naming import Namer
 from gradwright.emission.printer import Printer
 from gradwright.ir import (
@@ -564,7 +565,14 @@ class Layout:
                     # loops one after another reuse the name; an enclosing loop's
                     # index, or a value the reverse sweep reads later, keeps it
                     kept = self.held
-                    if index.base in indices or index.base in kept:
+                    if index.base == "_" and self._saves(stmt):
+                        # `_` says "not read", but the saved lists are indexed
+                        # by it: a real name
+                        free = [n for n in ("step", "k") if n not in self.namer.taken]
+                        self.namer.names[index] = self.namer.claim(
+                            free[0] if free else "step"
+                        )
+                    elif index.base in indices or index.base in kept:
                         self.namer.names[index] = self.namer.fresh(index.base)
                     else:
                         self.namer.names[index] = index.base
@@ -596,6 +604,12 @@ class Layout:
                     assert phi.exit is not None
                     self.namer.names[phi.exit] = self.namer.names[phi.target]
                     current[phi.exit.base] = phi.exit
+
+    def _saves(self, loop: Loop) -> bool:
+        """Whether ``loop`` saves values for its reverse, itself or inside."""
+        return bool(self.tapes.get(loop)) or any(
+            self._saves(child) for child in self.children.get(loop, [])
+        )
 
     def _outer_replayed(self, loop: Loop) -> set[str]:
         """Names the reverse bodies of enclosing loops restore or recompute: an
@@ -683,28 +697,19 @@ class Layout:
 
     def slot(self, loop: Loop) -> str:
         """The saved-list index of the current iteration."""
-        index = loop.index
         start = self.cheap(loop.start, everywhere=True)
         step = self.cheap(loop.step, everywhere=True)
-        position: Expr = index
-        if not _is_const(start, 0):
-            position = Apply("sub", (index, start))
-        if not _is_const(step, 1):
-            position = Apply("floordiv", (position, step))
-        return self.expr(position)
+        return self.expr(indexing.slot(loop.index, start, step))
 
     def trip_count(self, loop: Loop, folded: dict[Var, Expr]) -> tuple[str, Expr]:
         """A saved list's allocation before the forward ``loop``, and the
         expression it reads (the bounds as the forward sweep has them)."""
-        if _is_const(loop.start, 0) and _is_const(loop.step, 1):
-            stop = self.atom_expr(loop.stop, folded)
-            return (
-                self.expr(Apply("mul", (Apply("listlit", (const(0.0),)), stop))),
-                stop,
-            )
-        bounds = Apply(
-            "listlit", tuple(self.atom_expr(b, folded) for b in _bounds(loop))
-        )
+        start, stop, step = (self.atom_expr(b, folded) for b in _bounds(loop))
+        length = indexing.count(start, stop, step)
+        if length is not None:
+            zeros = Apply("listlit", (const(0.0),))
+            return self.expr(Apply("mul", (zeros, length))), length
+        bounds = Apply("listlit", (start, stop, step))
         return f"[0.0] * len(range({self.range_args(loop, folded)}))", bounds
 
 
