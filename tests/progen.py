@@ -378,6 +378,8 @@ class Knobs:
     kinks: bool = True
     int_param: bool = False
     list_param: bool = False
+    # loops over zip/enumerate/reversed/tuples, tuple values, comprehension sums
+    idioms: bool = False
     max_depth: int = 2
 
 
@@ -627,6 +629,10 @@ def statement(draw, sc: Scope, allow_return: bool, tuple_out: int) -> list:
         kinds += ["list", "listwrite"]
     if sc.helpers:
         kinds += ["deadcall"]
+    if k.idioms:
+        kinds += ["tuple", "comp"]
+        if sc.depth < k.max_depth:
+            kinds += ["idiomfor", "idiomfor"]
     if allow_return and k.early_return and not sc.in_loop and sc.may_return():
         kinds += ["ifreturn", "ifreturn"]
     kind = draw(st.sampled_from(kinds))
@@ -710,12 +716,96 @@ def statement(draw, sc: Scope, allow_return: bool, tuple_out: int) -> list:
         (inner.floats if is_float else inner.ints).append(var)
         body = draw(block(inner, 1, 3, False, tuple_out))
         return [For(var, iterable, body)]
+    if kind in ("tuple", "comp", "idiomfor"):
+        return draw(idiom_statement(sc, kind, tuple_out))
     if kind in ("if", "ifreturn"):
         stmt = draw(if_statement(sc, kind == "ifreturn", tuple_out))
         last = [s for _, arm in stmt.arms for s in arm[-1:] if isinstance(s, Assign)]
         name = last[0].targets[0] if last else ""
         return [stmt, *draw(follow_up(sc, name))]
     raise AssertionError(kind)  # pragma: no cover
+
+
+def _sequences(sc: Scope) -> list[str]:
+    """Float sequences a loop or comprehension may run over: list parameters,
+    tuples of names written out."""
+    seqs = [name for name in sc.lists if name.startswith("xs")]
+    if len(sc.floats) >= 2:
+        seqs.append(f"({sc.floats[0]}, {sc.floats[-1]})")
+    return seqs
+
+
+@st.composite
+def idiom_statement(draw, sc: Scope, kind: str, tuple_out: int) -> list:
+    """The idioms of natural models: tuples as values, sums of generator
+    expressions with filters, loops over zip/enumerate/reversed/tuples."""
+    if kind == "tuple":  # build a tuple, then unpack it or index it
+        name = sc.new_name("p")
+        elems = (draw(num(sc, 1)), draw(num(sc, 1)))
+        out = [Assign([name], [Ex("({0}, {1})", elems, tag="tuple_value")])]
+        if draw(st.booleans()):
+            a, b = sc.new_name(), sc.new_name()
+            out.append(Assign([f"{a}, {b}"], [leaf(name)]))
+            sc.floats += [a, b]
+        else:
+            c = sc.new_name()
+            k = draw(st.sampled_from(("0", "1", "-1")))
+            out.append(Assign([c], [Ex(f"{name}[{k}] * {{0}}", (draw(atom(sc)),))]))
+            sc.floats.append(c)
+        return out
+    seqs = _sequences(sc)
+    if kind == "comp":
+        if not seqs:
+            return [Assign([sc.new_name()], [draw(num(sc))])]
+        seq = draw(st.sampled_from(seqs))
+        inner = sc.copy()
+        var = inner.new_name("v")
+        inner.floats.append(var)
+        term = draw(num(inner, 2))
+        name = sc.new_name("s")
+        if draw(st.booleans()):
+            form = f"sum({{0}} for {var} in {seq})"
+            value = Ex(form, (term,), tag="comprehension")
+        else:
+            test = draw(cond(inner, 1))
+            form = f"sum({{0}} for {var} in {seq} if {{1}})"
+            value = Ex(form, (term, test), tag="comprehension")
+        sc.floats.append(name)
+        return [Assign([name], [value])]
+    # a loop over zip / enumerate / reversed / a tuple of names
+    inner = sc.copy()
+    inner.in_loop = True
+    inner.depth += 1
+    options = ["reversed(range(3))"]
+    if seqs:
+        options += ["seq", "enumerate", "reversed"]
+    if len(seqs) >= 2 or (seqs and len(sc.floats) >= 2):
+        options.append("zip")
+    choice = draw(st.sampled_from(options))
+    if choice == "reversed(range(3))":
+        var = inner.new_name("i")
+        inner.ints.append(var)
+        target, iterable = var, choice
+    elif choice == "zip":
+        a, b = inner.new_name("v"), inner.new_name("w")
+        first = draw(st.sampled_from(seqs))
+        second = draw(st.sampled_from(seqs))
+        inner.floats += [a, b]
+        target, iterable = f"{a}, {b}", f"zip({first}, {second})"
+    elif choice == "enumerate":
+        k, v = inner.new_name("i"), inner.new_name("v")
+        inner.ints.append(k)
+        inner.floats.append(v)
+        start = draw(st.sampled_from(("", ", 1")))
+        target = f"{k}, {v}"
+        iterable = f"enumerate({draw(st.sampled_from(seqs))}{start})"
+    else:
+        v = inner.new_name("v")
+        inner.floats.append(v)
+        seq = draw(st.sampled_from(seqs))
+        target, iterable = v, (f"reversed({seq})" if choice == "reversed" else seq)
+    body = draw(block(inner, 1, 3, False, tuple_out))
+    return [For(target, iterable, body)]
 
 
 @st.composite

@@ -501,3 +501,40 @@ def test_loop_exit_value_read_past_the_reverse_loop(source):
     assert value == run_source(source)["f"](*point)
     reference = mp_gradient(mp_function(source, "f"), list(point), [0])
     assert rel_err(grads[0], float(reference[0])) < 1e-12  # mpmath differences
+
+
+LIST_FILLED_BY_INNER_LOOP = """
+def f(x):
+    t = 1.0
+    for i in range(2):
+        b = [0.0] * 2
+        for j in range(2):
+            b[j] = x * t
+        t = b[0] * b[1]
+    return t
+"""
+
+COMPREHENSION_IN_A_LOOP = """
+def f(x, xs):
+    t = 0.0
+    for i in range(2):
+        t = t + sum(v * x for v in xs)
+    return t
+"""
+
+
+def test_list_made_in_a_loop_and_filled_by_an_inner_loop():
+    """The list after the inner loop got a name of its own that nothing assigned
+    (a comprehension in a loop body is this shape; the layout check refused it)."""
+    module = build(LIST_FILLED_BY_INNER_LOOP, "f")
+    value, (x_bar,) = module["f_grad"](0.9)
+    assert value == run_source(LIST_FILLED_BY_INNER_LOOP)["f"](0.9)
+    assert rel_err(x_bar, 6 * 0.9**5) < 1e-14  # t = x**6 by hand
+
+
+def test_comprehension_in_a_loop_body():
+    module = build(COMPREHENSION_IN_A_LOOP, "f", ["x"])
+    xs = [0.5, -1.25, 2.0]
+    value, (x_bar,) = module["f_grad"](0.7, xs)
+    assert value == run_source(COMPREHENSION_IN_A_LOOP)["f"](0.7, xs)
+    assert rel_err(x_bar, 2 * sum(xs)) < 1e-15  # t = 2 x sum(xs) by hand

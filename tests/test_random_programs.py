@@ -109,6 +109,17 @@ FAMILIES: dict[str, tuple[Knobs | None, int]] = {
         Knobs(statements=(1, 4), tuple_out=True, branches=True, early_return=True),
         40,
     ),
+    "idioms": (
+        Knobs(
+            statements=(2, 5),
+            idioms=True,
+            branches=True,
+            loops=True,
+            list_param=True,
+            max_depth=2,
+        ),
+        50,
+    ),
     "mixed": (
         Knobs(
             statements=(2, 5),

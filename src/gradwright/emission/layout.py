@@ -583,7 +583,10 @@ class Layout:
                     init_name = (
                         self.namer.names.get(init) if isinstance(init, Var) else None
                     )
-                    if (
+                    if phi.target.shape == "list":
+                        # one list changed in place: every version has its name
+                        self._version_name(phi.target, current)
+                    elif (
                         self.share_names
                         and init_name is not None
                         and init not in self.pinned
