@@ -7,7 +7,7 @@ from __future__ import annotations
 import math
 
 import pytest
-from support import build, mp_function, mp_gradient, rel_err, run_source
+from support import build, mp_function, mp_gradient, rel_err, run_source, same_bits
 
 import gradwright
 
@@ -196,6 +196,26 @@ def test_comprehensions_against_sympy():
     assert value == run_source(COMPREHENSIONS)["fit"](0.7, -0.3, xs, ys)
     assert rel_err(a_bar, float(sympy.diff(model, a).evalf(30, subs=point))) < 1e-13
     assert rel_err(b_bar, float(sympy.diff(model, b).evalf(30, subs=point))) < 1e-13
+
+
+def test_filtered_sum_of_nothing_is_the_int_zero_the_primal_gives():
+    source = "def f(a, xs):\n    return sum(a * x for x in xs if x > 0.0)\n"
+    module = build(source, "f")
+    primal = run_source(source)["f"]
+    for xs in ([-1.0, -2.0], [], [-1.0, 2.0, 3.0]):
+        value, (a_bar, _) = module["f_grad"](1.5, xs)
+        assert same_bits(value, primal(1.5, xs))  # int 0 when every term is dropped
+        assert a_bar == sum(x for x in xs if x > 0.0)  # d/da of a * sum: by hand
+
+
+def test_filtered_list_comprehension_as_a_list_is_a_located_error():
+    """Its length depends on the data: it was a list of the full length with
+    zeros for the dropped terms (a wrong value and gradient)."""
+    source = "def f(x, xs):\n    ys = [v * x for v in xs if v > 0]\n    return ys[0]\n"
+    with pytest.raises(gradwright.GradwrightError) as caught:
+        gradwright.generate(source, ["f"], ["x"])
+    text = str(caught.value)
+    assert "<string>:2:28" in text and "if` filter" in text and "sum it" in text
 
 
 def test_comprehension_with_two_for_clauses_is_a_located_error():

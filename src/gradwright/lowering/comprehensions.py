@@ -21,8 +21,20 @@ class ComprehensionLowering:
         node: cst.GeneratorExp | cst.ListComp,
         base: str,
         target: Var | None = None,
+        summed: bool = False,
     ) -> Var:
+        """The list of the terms; ``summed``: only its sum is used, so a term an
+        ``if`` filters out can be a zero (an int 0, as `sum` adds nothing then:
+        the sum of none is the int 0 the primal gives)."""
         clause = node.for_in
+        if clause.ifs and not summed:
+            fail(
+                "a list comprehension with an `if` filter is not supported as a list"
+                " (its length depends on the data)",
+                self.index.locate(clause.ifs[0]),
+                "sum it directly (`sum(e for x in xs if c)`), or keep every term:"
+                " `[e if c else 0.0 for x in xs]`",
+            )
         if clause.inner_for_in is not None or clause.asynchronous is not None:
             fail(
                 "a comprehension with several `for` clauses is not supported",
@@ -57,7 +69,8 @@ class ComprehensionLowering:
             span = self.emit("sub", (stop, start), self.new_var("n", "temp"))
             length = self.emit("max", (span, Const("0", 0)), self.new_var("n", "temp"))
         terms = target or self.new_var(f"{base}_terms", "local", "list")
-        self.emit("newlist", (Const("0.0", 0.0), length), terms)
+        zero = Const("0", 0) if clause.ifs else Const("0.0", 0.0)
+        self.emit("newlist", (zero, length), terms)
         list_name = self._free_name(terms.base, names)
         position_name = self._free_name(f"{names[0]}_index", names + [list_name])
         saved = {n: self.env.get(n) for n in [*names, list_name, position_name]}
@@ -113,7 +126,7 @@ class ComprehensionLowering:
             fail(f"{name}() takes a comprehension here", self.index.locate(node))
         if name == "list":
             return self.comprehension(first, base, target)
-        terms = self.comprehension(first, base)
+        terms = self.comprehension(first, base, summed=True)
         if len(node.args) == 2:
             start = node.args[1].value
             if not (
