@@ -381,6 +381,8 @@ class Knobs:
     # loops over zip/enumerate/reversed/tuples, tuple values, comprehension sums
     idioms: bool = False
     max_depth: int = 2
+    #: helpers returning tuples, taking lists, returning lists (vjp form)
+    helper_shapes: bool = False
 
 
 MAX_RETURNS = 2  # returns inside ifs per function
@@ -391,6 +393,9 @@ class Helper:
     name: str
     params: list[str]
     defaults: dict[str, str]
+    #: "num" (numbers in, one out), "tuple" (two out), "list_out" (a list and a
+    #: number in, a new list out), "list_in" (a list and a number in, one out)
+    kind: str = "num"
 
 
 @dataclass
@@ -408,6 +413,8 @@ class Scope:
     # returns inside ifs so far (shared): each if that may return copies the code
     # after it into its paths, so k of them make 2**k copies (finding F7)
     returns: list[int] = field(default_factory=lambda: [0])
+    #: helpers of other shapes (called by statements of their own)
+    shaped: list[Helper] = field(default_factory=list)
 
     def copy(self) -> Scope:
         return Scope(
@@ -420,6 +427,7 @@ class Scope:
             self.in_loop,
             self.depth,
             self.returns,
+            self.shaped,
         )
 
     def may_return(self) -> bool:
@@ -633,6 +641,8 @@ def statement(draw, sc: Scope, allow_return: bool, tuple_out: int) -> list:
         kinds += ["tuple", "comp"]
         if sc.depth < k.max_depth:
             kinds += ["idiomfor", "idiomfor"]
+    if sc.shaped:
+        kinds += ["shapedcall", "shapedcall"]
     if allow_return and k.early_return and not sc.in_loop and sc.may_return():
         kinds += ["ifreturn", "ifreturn"]
     kind = draw(st.sampled_from(kinds))
@@ -685,6 +695,8 @@ def statement(draw, sc: Scope, allow_return: bool, tuple_out: int) -> list:
             out.append(Assign([name], [draw(num(sc, 1))]))
             sc.floats.append(name)
         return out
+    if kind == "shapedcall":
+        return draw(shaped_call(sc))
     if kind == "list":
         name = sc.new_name("buf")
         n = draw(st.integers(1, 3))
@@ -806,6 +818,82 @@ def idiom_statement(draw, sc: Scope, kind: str, tuple_out: int) -> list:
         target, iterable = v, (f"reversed({seq})" if choice == "reversed" else seq)
     body = draw(block(inner, 1, 3, False, tuple_out))
     return [For(target, iterable, body)]
+
+
+@st.composite
+def shaped_call(draw, sc: Scope) -> list:
+    """``u, v = h(...)``, ``p = h(...)`` then ``p[k]``, ``ys = g(xs, a)`` or
+    ``t = s(xs, a)`` (a list argument: a list parameter or a local list)."""
+    lists = [name for name, n in sc.lists.items() if n]
+    usable = [h for h in sc.shaped if h.kind == "tuple" or lists]
+    if not usable:
+        return [Assign([sc.floats[0]], [draw(num(sc))])]
+    h = draw(st.sampled_from(usable))
+    if h.kind == "tuple":
+        args = [draw(num(sc, 1)) for _ in h.params]
+        form = f"{h.name}({', '.join(f'{{{k}}}' for k in range(len(args)))})"
+        value = Ex(form, tuple(args), tag="tuple_call")
+        if draw(st.booleans()):
+            names = [sc.new_name(), sc.new_name()]
+            sc.floats += names
+            return [Assign(names, [value])]
+        pair, name = sc.new_name("p"), sc.new_name()
+        k = draw(st.integers(0, 1))
+        other = draw(atom(sc))
+        sc.floats.append(name)
+        return [
+            Assign([pair], [value]),
+            Assign([name], [Ex(f"({pair}[{k}] * {{0}} + {pair}[{1 - k}])", (other,))]),
+        ]
+    given = draw(st.sampled_from(lists))
+    value = Ex(f"{h.name}({given}, {{0}})", (draw(num(sc, 1)),), tag=f"{h.kind}_call")
+    if h.kind == "list_out":
+        name = sc.new_name("buf")
+        sc.lists[name] = sc.lists[given]
+        return [Assign([name], [value])]
+    name = sc.new_name()
+    sc.floats.append(name)
+    return [Assign([name], [value])]
+
+
+@st.composite
+def shaped_helper(draw, name: str, kind: str, others: list[Helper], shaped, knobs):
+    """A helper of another shape: a tuple helper's body is drawn like any
+    helper's; a list helper loops over its list (``xs``) with a drawn body."""
+    hk = Knobs(
+        statements=(0, 3),
+        branches=knobs.branches,
+        early_return=kind == "tuple",
+        rules=knobs.rules,
+        kinks=knobs.kinks,
+        max_depth=1,
+    )
+    if kind == "tuple":
+        sc = Scope(["a", "b"], [], {}, others, hk, [0], shaped=list(shaped))
+        body = draw(block(sc, 0, 3, True, 2))
+        if not body or not isinstance(body[-1], Return):
+            body.append(Return(draw(returned(sc, 2))))
+        return Func(name, ["a", "b"], body)
+    sc = Scope(["a", "c", "acc"], [], {}, others, hk, [0])
+    if kind == "list_out":
+        inner = Scope(["a", "c"], [], {}, others, hk, [0])
+        body = [
+            Assign(["ys"], [Ex("[0.0] * len(xs)", tag="list")]),
+            For(
+                "i",
+                "range(len(xs))",
+                [Assign(["c"], [leaf("xs[i]")]), Assign(["ys[i]"], [draw(num(inner))])],
+            ),
+            Return([leaf("ys")]),
+        ]
+        return Func(name, ["xs", "a"], body)
+    after = Scope(["a", "acc"], [], {}, others, hk, [0])  # c: only in the loop
+    body = [
+        Assign(["acc"], [leaf("a")]),
+        For("c", "xs", [Assign(["acc"], [draw(num(sc))])]),
+        Return([Ex("(acc + {0})", (draw(num(after, 1)),))]),
+    ]
+    return Func(name, ["xs", "a"], body)
 
 
 @st.composite
@@ -979,12 +1067,20 @@ def programs(draw, knobs: Knobs, family: str) -> Case:
         lists["xs"] = n
     funcs: list[Func] = []
     helpers: list[Helper] = []
+    shaped: list[Helper] = []
     if knobs.helpers:
         for k in range(draw(st.integers(1, 2))):
             fn = draw(helper_func(f"h{k}", list(helpers), knobs))
             funcs.append(fn)
             helpers.append(Helper(fn.name, fn.params, fn.defaults))
-    sc = Scope(list(floats), ints, lists, helpers, knobs, [0])
+    if knobs.helper_shapes:
+        kinds = ("tuple", "list_out", "list_in")
+        for k in range(draw(st.integers(1, 3))):
+            kind = draw(st.sampled_from(kinds))
+            fn = draw(shaped_helper(f"g{k}", kind, list(helpers), list(shaped), knobs))
+            funcs.append(fn)
+            shaped.append(Helper(fn.name, fn.params, {}, kind))
+    sc = Scope(list(floats), ints, lists, helpers, knobs, [0], shaped=shaped)
     tuple_out = draw(st.sampled_from((0, 2))) if knobs.tuple_out else 0
     body = draw(block(sc, *knobs.statements, True, tuple_out))
     if not body or not isinstance(body[-1], Return):

@@ -369,10 +369,10 @@ CASES = [
         def f(x):
             return g(x) * 2.0
         """,
-        "'g' returns a tuple: helpers called by the model must return one number",
+        "'g' returns a tuple of 2 numbers, not a number",
         6,
-        "g",
-        "call a helper for each output, or differentiate it on its own",
+        "g(x)",
+        "unpack it: v0, v1 = ...",
     ),
     case(
         "helper-returns-tuple-also-listed",
@@ -384,10 +384,10 @@ CASES = [
         def f(x):
             return g(x) * 2.0
         """,
-        "'g' returns a tuple: helpers called by the model must return one number",
+        "'g' returns a tuple of 2 numbers, not a number",
         6,
-        "g",
-        "call a helper for each output, or differentiate it on its own",
+        "g(x)",
+        "unpack it: v0, v1 = ...",
         functions=("g", "f"),
     ),
     case(
@@ -454,34 +454,23 @@ CASES = [
     # result is added to itself or scaled (both forms were once accepted silently
     # by a test that returned early on the rejection)
     case(
-        "list-passed-to-helper",
+        "helper-returns-its-list",
         """
         def g(cs):
-            return cs[0] * cs[1]
+            if cs[0] > 0.0:
+                return cs
+            return cs
 
 
         def f(cs):
-            return g(cs) + g(cs)
+            ys = g(cs)
+            return ys[0] * ys[1]
         """,
-        "'g' takes a list ('cs'): passing lists to helper functions is not supported",
-        6,
-        "cs",
-        "index the list in the caller and pass the numbers",
-    ),
-    case(
-        "list-passed-to-helper-scaled",
-        """
-        def g(cs):
-            return cs[0] * cs[1]
-
-
-        def f(cs):
-            return 3.0 * g(cs)
-        """,
-        "'g' takes a list ('cs'): passing lists to helper functions is not supported",
-        6,
-        "cs",
-        "index the list in the caller and pass the numbers",
+        "'g' returns the list 'cs' it is passed: the caller's list would change"
+        " with it",
+        8,
+        "g(cs)",
+        "make a new list in 'g' (ys = [0.0] * len(xs)) and return it",
     ),
     case(
         "star-args",

@@ -375,26 +375,6 @@ def f(a, ns):
     assert rel_err(a_bar, power * 0.9 ** (power - 1)) < 1e-13
 
 
-@pytest.mark.parametrize(
-    ("helper", "call"),
-    [
-        ("def normalize(z):\n    return z / np.sum(z)", "normalize(z)"),
-        ("def dense(x, W, b):\n    return np.tanh(x @ W + b)", "dense(z, W, c)"),
-    ],
-)
-def test_array_helper_that_is_not_elementwise_is_a_located_error(helper, call):
-    """Its partials would have stood for its derivative: a silent wrong gradient
-    (normalize gave [0, 0, 0]) or a broadcasting error at run time."""
-    source = f"import numpy as np\n{helper}\ndef f(z, c, W):\n"
-    source += f"    return np.sum({call} * c)\n"
-    with pytest.raises(GradwrightError) as error:
-        gradwright.generate(source, ["f"], wrt=["z"])
-    text = str(error.value)
-    assert "does not work element by element" in text
-    assert "<string>:5:19:" in text
-    assert "hint: write the body of" in text
-
-
 def test_elementwise_array_helper_with_a_broadcast_operand():
     import numpy as np
 

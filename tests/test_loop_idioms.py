@@ -270,26 +270,6 @@ def pk_loss(volume, k_el):
     assert rel_err(k_bar, float(sympy.diff(model, k).evalf(30, subs=point))) < 1e-13
 
 
-def test_helper_that_loops_over_a_list_is_a_located_error():
-    """It generated a module that failed when called (the helper's partial for a
-    list is a list)."""
-    source = """
-def horner(coeffs, x):
-    acc = 0.0
-    for c in reversed(coeffs):
-        acc = acc * x + c
-    return acc
-
-
-def fit(coeffs, xs, ys):
-    return sum((horner(coeffs, x) - y) ** 2 for x, y in zip(xs, ys))
-"""
-    with pytest.raises(gradwright.GradwrightError) as error:
-        gradwright.generate(source, ["fit"], wrt=["coeffs"])
-    assert "<string>:10:17:" in str(error.value)
-    assert "'horner' takes a list ('coeffs')" in str(error.value)
-
-
 TUPLE_STATE = """
 import math
 

@@ -101,6 +101,18 @@ FAMILIES: dict[str, tuple[Knobs | None, int]] = {
         Knobs(statements=(1, 4), helpers=True, loops=True, branches=True),
         50,
     ),
+    "helper_shapes": (
+        Knobs(
+            statements=(2, 5),
+            helpers=True,
+            helper_shapes=True,
+            loops=True,
+            branches=True,
+            lists=True,
+            list_param=True,
+        ),
+        40,
+    ),
     "early_returns": (
         Knobs(statements=(1, 4), early_return=True, branches=True, loops=True),
         50,

@@ -5,14 +5,14 @@ from __future__ import annotations
 import gc
 import sys
 import threading
-from collections.abc import Callable, Iterator, Sequence
+from collections.abc import Callable, Iterator, Mapping, Sequence
 from contextlib import contextmanager
 
 import libcst as cst
 
 from gradwright.calculus.rules import ELEMENTWISE_OPS
 from gradwright.diagnostics import GradwrightError, fail, file_location
-from gradwright.emission.module import Compiled, render_module
+from gradwright.emission.module import Compiled, HelperRole, render_module
 from gradwright.emission.targets import DEFAULT_TARGET, get_target
 from gradwright.header import regeneration_command, stamp
 from gradwright.ir import Expr, SSAFunction, Var, const
@@ -27,6 +27,7 @@ from gradwright.sweeps.optimize import inline_adjoints, reuse_forward_values
 from gradwright.sweeps.reverse import (
     active_values,
     defined_in,
+    list_roots,
     reverse_sweep,
     walk_lets,
 )
@@ -38,19 +39,37 @@ def compile_function(
     wrt: tuple[str, ...] | None,
     call_stack: tuple[str, ...] = (),
 ) -> Compiled:
+    """One function differentiated on its own (no helpers of any shape)."""
     checked = check_function(index, name, wrt)
     ssa = lower(index, checked, call_stack)
+    return _differentiate(
+        index, checked, ssa, "target" if not call_stack else "partials"
+    )
+
+
+def _differentiate(
+    index: ModuleIndex,
+    checked: CheckedFunction,
+    ssa: SSAFunction,
+    role: HelperRole,
+    adjoint_helpers: Mapping[str, tuple[Var, ...]] | None = None,
+) -> Compiled:
+    """The reverse sweep of a lowered function: a target (seeded with 1, or one
+    seed per output), a helper in partials form (its partials, at the broadcast
+    shape of its result: each call site sums them back to its operands' shapes)
+    or a helper's adjoint function (seeded with its result's adjoint)."""
+    name = checked.name
     seeds: tuple[Expr, ...] = (const(1.0),)
+    first = 1 + max(_uids(ssa))
     if ssa.result.is_tuple:
-        first = 1 + max(_uids(ssa))
         seeds = tuple(
             Var(first + k, f"seed_{k}", "param") for k in range(len(ssa.result.values))
         )
-    # a helper's partials stay at the broadcast shape of its result: each call
-    # site sums them back to its own operands' shapes
-    broadcasting = bool(index.numpy_modules) and not call_stack
-    sweep = reverse_sweep(ssa, checked.wrt, seeds, numpy=broadcasting)
-    if len(sweep.unused_wrt) == len(sweep.wrt) and not call_stack:
+    elif role == "adjoint":
+        seeds = (Var(first, "seed", "param"),)
+    broadcasting = bool(index.numpy_modules) and role != "partials"
+    sweep = reverse_sweep(ssa, checked.wrt, seeds, broadcasting, adjoint_helpers)
+    if len(sweep.unused_wrt) == len(sweep.wrt) and role == "target":
         fail(
             f"the result of '{name}' does not depend differentiably on "
             + ", ".join(checked.wrt)
@@ -60,37 +79,53 @@ def compile_function(
         )
     active = frozenset(active_values(ssa, checked.wrt))
     sweep = reuse_forward_values(inline_adjoints(sweep), ssa)
-    return Compiled(checked, ssa, sweep, active)
+    return Compiled(checked, ssa, sweep, active, role)
 
 
 def compile_with_callees(
     index: ModuleIndex, names: Sequence[str], wrt: tuple[str, ...] | None
 ) -> list[Compiled]:
     """The targets, then every function they call (each once), differentiated in
-    all their parameters so any call site can use the partials it needs."""
-    compiled = [compile_function(index, name, wrt) for name in names]
-    done = set(names)
-    pending = [(c.ssa.name, callee) for c in compiled for callee in c.ssa.callees]
-    stacks = {c.ssa.name: (c.ssa.name,) for c in compiled}
+    all their parameters so any call site can use the adjoints it needs.
+
+    A helper of numbers returning one number that works element by element is
+    differentiated in partials form (``NAME_grad``: value and partials, the
+    caller multiplies); any other helper in adjoint form (``NAME_adjoint``: the
+    adjoints of its parameters from its result's adjoint)."""
+    lowered: dict[str, tuple[CheckedFunction, SSAFunction]] = {}
+    for name in names:
+        checked = check_function(index, name, wrt)
+        lowered[name] = (checked, lower(index, checked))
+    helpers: dict[str, tuple[CheckedFunction, SSAFunction]] = {}
+    pending = [(name, callee) for name in names for callee in lowered[name][1].callees]
+    stacks = {name: (name,) for name in names}
     while pending:
         caller, callee = pending.pop(0)
-        if callee in done:
+        if callee in helpers:
             continue
-        done.add(callee)
-        item = compile_function(index, callee, None, stacks[caller])
-        if item.ssa.result.is_tuple:
-            fail(
-                f"'{callee}' returns a tuple: helpers called by the model must return"
-                " one number",
-                file_location(index.path),
-            )
-        stacks[callee] = stacks[caller] + (callee,)
-        compiled.append(item)
-        pending += [(callee, c) for c in item.ssa.callees]
-    _reject_cycles(index, compiled)
-    _reject_list_helpers(index, compiled, set(names))
-    if index.numpy_modules:
-        _reject_array_helpers(index, compiled, set(names))
+        checked = check_function(index, callee, None)
+        helpers[callee] = (checked, lower(index, checked, stacks[caller]))
+        stacks.setdefault(callee, stacks[caller] + (callee,))
+        pending += [(callee, c) for c in helpers[callee][1].callees]
+    ssas = {name: ssa for name, (_, ssa) in {**helpers, **lowered}.items()}
+    _reject_cycles(index, ssas)
+    _reject_shared_lists(index, lowered, helpers)
+    forms = _helper_forms(index, helpers, set(names))
+    adjoint_helpers = {
+        name: helpers[name][1].params
+        for name, form in forms.items()
+        if form == "adjoint"
+    }
+    compiled = [
+        _differentiate(index, checked, ssa, "target", adjoint_helpers)
+        for checked, ssa in lowered.values()
+    ]
+    for name, (checked, ssa) in helpers.items():
+        if forms[name] == "partials" and name in lowered:
+            continue  # the target's own gradient serves its calls
+        compiled.append(
+            _differentiate(index, checked, ssa, forms[name], adjoint_helpers)
+        )
     return compiled
 
 
@@ -100,21 +135,22 @@ _ELEMENTWISE_EXTRA = frozenset(
 )
 
 
-def _reject_array_helpers(
-    index: ModuleIndex, compiled: list[Compiled], targets: set[str]
-) -> None:
-    """In an array model, a helper's partials are exact only when the helper works
-    element by element; a call to any other helper is a located error (its
-    reverse would need the helper's vector-Jacobian product, not partials). A
-    listed function's gradient sums over broadcasting, so it cannot serve as a
-    helper's partials either."""
-    by_name = {c.ssa.name: c for c in compiled}
+def _helper_forms(
+    index: ModuleIndex,
+    helpers: dict[str, tuple[CheckedFunction, SSAFunction]],
+    targets: set[str],
+) -> dict[str, HelperRole]:
+    """Partials form where it is exact and cheaper: numbers in, one number out,
+    and, in an array model, a helper that works element by element (its partials
+    then broadcast like ``+``) and is no target (a target's gradient sums over
+    broadcasting). Every other helper is reversed by its adjoint function."""
+    numpy = bool(index.numpy_modules)
     verdicts: dict[str, bool] = {}
 
     def elementwise(name: str) -> bool:
         if name not in verdicts:
             verdicts[name] = False  # no recursion reaches here (rejected before)
-            ops = {let.op for let in walk_lets(by_name[name].ssa.body)}
+            ops = {let.op for let in walk_lets(helpers[name][1].body)}
             verdicts[name] = all(
                 op in ELEMENTWISE_OPS
                 or op in _ELEMENTWISE_EXTRA
@@ -123,47 +159,46 @@ def _reject_array_helpers(
             )
         return verdicts[name]
 
-    for item in compiled:
-        for callee in item.ssa.callees:
-            if callee in targets:
-                fail(
-                    f"'{callee}' is both differentiated on its own and called by"
-                    f" '{item.ssa.name}': in an array model its gradient cannot also"
-                    " serve the call",
-                    index.locate(_first_call(item.checked, callee)),
-                    f"generate '{callee}' in a run of its own",
-                )
-            if not elementwise(callee):
-                fail(
-                    f"'{callee}' does not work element by element (it reduces,"
-                    " indexes or multiplies matrices), so its partial derivatives"
-                    " cannot stand for its derivative in an array model",
-                    index.locate(_first_call(item.checked, callee)),
-                    f"write the body of '{callee}' into '{item.ssa.name}' where it"
-                    " is called",
-                )
+    forms: dict[str, HelperRole] = {}
+    for name, (_, ssa) in helpers.items():
+        scalar = (
+            not ssa.result.is_tuple
+            and all(v.shape == "scalar" for v in ssa.result.values)
+            and all(p.shape == "scalar" for p in ssa.params)
+        )
+        if numpy:
+            scalar = scalar and name not in targets and elementwise(name)
+        forms[name] = "partials" if scalar else "adjoint"
+    return forms
 
 
-def _reject_list_helpers(
-    index: ModuleIndex, compiled: list[Compiled], targets: set[str]
+def _reject_shared_lists(
+    index: ModuleIndex,
+    targets: dict[str, tuple[CheckedFunction, SSAFunction]],
+    helpers: dict[str, tuple[CheckedFunction, SSAFunction]],
 ) -> None:
-    """A helper found to take a list (however it uses it) cannot be called: its
-    partials are numbers, one per parameter. (The call site's own check reads the
-    helper's syntax; this one reads what its lowering found.)"""
-    lists = {
-        c.ssa.name: [p.base for p in c.ssa.params if p.shape == "list"]
-        for c in compiled
-        if c.ssa.name not in targets
-    }
-    for item in compiled:
-        for callee in item.ssa.callees:
-            if lists.get(callee):
-                fail(
-                    f"'{callee}' takes a list ('{lists[callee][0]}'): passing lists"
-                    " to helper functions is not supported",
-                    index.locate(_first_call(item.checked, callee)),
-                    "write the helper's loop into the caller, or pass the numbers",
-                )
+    """A helper that returns a list it was passed would share it with its
+    caller, whose values (and their adjoints) do not follow that: a located
+    error at its first call. (Writing into a parameter is rejected where it is
+    written.)"""
+    callers = {**helpers, **targets}
+    for name, (_, ssa) in helpers.items():
+        roots = list_roots(ssa)
+        params = {p for p in ssa.params if p.shape == "list"}
+        returned = sorted(
+            roots[v].base
+            for v in ssa.result.values
+            if isinstance(v, Var) and roots.get(v) in params
+        )
+        if not returned:
+            continue
+        caller = next(c for c, (_, s) in callers.items() if name in s.callees)
+        fail(
+            f"'{name}' returns the list '{returned[0]}' it is passed: the caller's"
+            " list would change with it",
+            index.locate(_first_call(callers[caller][0], name)),
+            f"make a new list in '{name}' (ys = [0.0] * len(xs)) and return it",
+        )
 
 
 def _first_call(checked: CheckedFunction, callee: str) -> cst.CSTNode:
@@ -178,10 +213,10 @@ def _first_call(checked: CheckedFunction, callee: str) -> cst.CSTNode:
     return found[0] if found else checked.node.name
 
 
-def _reject_cycles(index: ModuleIndex, compiled: list[Compiled]) -> None:
+def _reject_cycles(index: ModuleIndex, ssas: dict[str, SSAFunction]) -> None:
     """Recursion through functions that are all targets: lowering one along the
     cycle's path raises the located error at its call site."""
-    calls = {c.ssa.name: c.ssa.callees for c in compiled}
+    calls = {name: ssa.callees for name, ssa in ssas.items()}
 
     def visit(name: str, path: tuple[str, ...]) -> None:
         for callee in calls.get(name, ()):

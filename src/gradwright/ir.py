@@ -140,6 +140,12 @@ class SSAFunction:
     callees: tuple[str, ...] = ()
 
 
+#: how a caller's reverse sweep treats a helper: "partials" (number parameters and
+#: result: the forward call returns the partials, the reverse multiplies) or
+#: "adjoint" (any shape: the reverse calls ``NAME_adjoint`` with the result's adjoint)
+HelperForm = Literal["partials", "adjoint"]
+
+
 @dataclass(frozen=True)
 class AdjointAssign:
     """``x_bar = expr`` or, when ``accumulate``, ``x_bar += expr``."""
@@ -163,10 +169,28 @@ class ElementAdjoint:
 
 @dataclass(frozen=True)
 class SpreadAdjoint:
-    """``root_bar[k] += expr`` for every element (the adjoint of ``sum``)."""
+    """``root_bar[k] += expr`` for every element (the adjoint of ``sum``); with
+    ``each``, ``expr`` is a list of the same length and ``root_bar[k] += expr[k]``."""
 
     root: Var
     expr: Expr
+    origin: Origin
+    each: bool = False
+
+
+@dataclass(frozen=True)
+class CallAdjoint:
+    """A helper's reverse, vjp form: ``a_1_bar, b_1_bar = NAME_adjoint(a, b, seed)``.
+
+    ``args`` are the call's arguments (forward values), ``seed`` the adjoint of its
+    result (a number, or the adjoint list of a list or tuple result); ``parts[k]``
+    is a fresh value whose adjoint receives parameter k's (the statements after
+    this one add it into the argument's adjoint)."""
+
+    callee: str
+    args: tuple[Expr, ...]
+    seed: Expr
+    parts: tuple[Var, ...]
     origin: Origin
 
 
@@ -190,7 +214,12 @@ class ReverseLoop:
 
 
 ReverseStmt = (
-    AdjointAssign | ElementAdjoint | SpreadAdjoint | ReverseBranch | ReverseLoop
+    AdjointAssign
+    | ElementAdjoint
+    | SpreadAdjoint
+    | CallAdjoint
+    | ReverseBranch
+    | ReverseLoop
 )
 
 

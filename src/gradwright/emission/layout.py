@@ -28,6 +28,7 @@ from gradwright.ir import (
     Atom,
     Bar,
     Branch,
+    CallAdjoint,
     Const,
     ElementAdjoint,
     Expr,
@@ -277,6 +278,10 @@ class Layout:
                     collect(stmt.expr, loop)
                 elif isinstance(stmt, SpreadAdjoint):
                     collect(stmt.expr, loop)
+                elif isinstance(stmt, CallAdjoint):
+                    for arg in stmt.args:
+                        collect(arg, loop)
+                    collect(stmt.seed, loop)
                 elif isinstance(stmt, ReverseBranch):
                     collect(stmt.condition, loop, everywhere=True)
                     visit(stmt.then, loop)
@@ -722,6 +727,8 @@ def _first_write_of(statements: list[ReverseStmt], var: Atom) -> AdjointAssign |
     for stmt in statements:
         if isinstance(stmt, AdjointAssign) and stmt.var == var:
             return None if stmt.accumulate else stmt
+        if isinstance(stmt, CallAdjoint) and var in stmt.parts:
+            return None
         if isinstance(stmt, (ReverseBranch, ReverseLoop)) and _writes(stmt, var, var):  # type: ignore[arg-type]
             return None
     return None
@@ -732,6 +739,8 @@ def _writes(stmt: ReverseStmt, var: Var, carry: Var) -> bool:
     adjoint changes nothing)."""
     if isinstance(stmt, AdjointAssign):
         return stmt.var == var and not (stmt.expr == Bar(carry) and not stmt.accumulate)
+    if isinstance(stmt, CallAdjoint):
+        return var in stmt.parts
     if isinstance(stmt, ReverseBranch):
         return any(_writes(s, var, carry) for s in (*stmt.then, *stmt.orelse))
     if isinstance(stmt, ReverseLoop):
@@ -803,6 +812,9 @@ def _reverse_exprs(statements: Iterable[ReverseStmt]) -> Iterator[Expr]:
             yield stmt.expr
         elif isinstance(stmt, SpreadAdjoint):
             yield stmt.expr
+        elif isinstance(stmt, CallAdjoint):
+            yield from stmt.args
+            yield stmt.seed
         elif isinstance(stmt, ReverseBranch):
             yield stmt.condition
             yield from _reverse_exprs(stmt.then)

@@ -7,11 +7,13 @@ inside the wheel as ``gradwright/templates``).
 
 from __future__ import annotations
 
+import dataclasses
 import hashlib
 from dataclasses import dataclass
 from functools import lru_cache
 from importlib import resources
 from pathlib import Path
+from typing import Literal
 
 import jinja2
 import libcst as cst
@@ -43,7 +45,8 @@ class RenderedGradient:
     """One target function's generated code, ready for the templates."""
 
     name: str
-    #: "grad" (scalar result) or "vjp" (tuple result, with a Jacobian too)
+    #: "grad" (scalar result), "vjp" (tuple result, with a Jacobian too) or
+    #: "adjoint" (a helper's reverse: its parameters' adjoints from its result's)
     kind: str
     derived_name: str
     signature: str
@@ -64,14 +67,21 @@ class RenderedGradient:
     numpy_helpers: frozenset[str] = frozenset()
 
 
+#: what a generated function is for: a listed function's gradient (or vjp), a
+#: helper's partials (``NAME_grad``) or a helper's adjoint function
+#: (``NAME_adjoint``, see ``ir.HelperForm``)
+HelperRole = Literal["target", "partials", "adjoint"]
+
+
 @dataclass(frozen=True)
 class Compiled:
-    """Everything the emitter needs about one target function."""
+    """Everything the emitter needs about one generated function."""
 
     checked: CheckedFunction
     ssa: SSAFunction
     reverse: ReverseSweep
     active: frozenset[Var]
+    role: HelperRole = "target"
 
 
 def _template_dir() -> Path:
@@ -140,6 +150,7 @@ def render_function(
         | {"math", "abs", "min", "max", "len", "sum", "range", "reversed"}
     )
     is_vector = ssa.result.is_tuple
+    is_adjoint = compiled.role == "adjoint"
     # a model that binds its own `math` gets the module under another name
     math_alias = "_gw_math" if "math" in set(checked.params) | ssa.local_names else None
     numpy = bool(index.numpy_modules)
@@ -150,7 +161,9 @@ def render_function(
             namer.name(param)
         for param in sweep.wrt:
             namer.bar_name(param)  # the documented x_bar names come first
-        seed_name = namer.claim("seed") if is_vector else ""
+        seed_name = namer.claim("seed") if is_vector or is_adjoint else ""
+        if is_adjoint and not is_vector:
+            namer.names[sweep.seeds[0]] = seed_name  # the result's adjoint itself
         printer = Printer(
             namer.name,
             namer.bar_name,
@@ -171,7 +184,15 @@ def render_function(
             else None
         )
         laid_out = lay_out(
-            ssa,
+            # an adjoint function returns no value: its result is computed only
+            # where the reverse sweep reads it
+            (
+                dataclasses.replace(
+                    ssa, result=dataclasses.replace(ssa.result, values=())
+                )
+                if is_adjoint
+                else ssa
+            ),
             sweep,
             namer,
             printer,
@@ -206,7 +227,7 @@ def render_function(
         seed_unpack = (
             f"{', '.join(names)}{',' if len(names) == 1 else ''} = {seed_name}"
         )
-    values = [printer(e) for e in result_exprs]
+    values = [printer(e) for e in result_exprs] or [""]
     value = (
         f"({', '.join(values)}{',' if len(values) == 1 else ''})"
         if is_vector
@@ -224,13 +245,15 @@ def render_function(
         )
         numpy_helpers.add("_gw_shaped")
     result = f"{value}, ({', '.join(returned)}{',' if len(bars) == 1 else ''})"
+    if is_adjoint:
+        result = f"({returned[0]},)" if len(bars) == 1 else ", ".join(returned)
 
     helpers |= helpers_for_ops(target, printer.replaced_ops)
     check_helper_names(target, index, checked, ssa.local_names, helpers)
     signature = index.module.code_for_node(node.params)
     primal = format_function(node, index.module, index.code)
     jacobian_rows: tuple[str, ...] = ()
-    if is_vector:
+    if is_vector and not is_adjoint:
         outputs = len(ssa.result.values)
         arguments = _call_arguments(node)
         rows = []
@@ -241,11 +264,16 @@ def render_function(
             target_text = f"value, row_{i}" if i == 0 else f"_, row_{i}"
             rows.append(format_statement(f"{target_text} = {call}", 1))
         jacobian_rows = tuple(rows)
+    kind = "adjoint" if is_adjoint else "vjp" if is_vector else "grad"
     rendered = RenderedGradient(
         name=checked.name,
-        kind="vjp" if is_vector else "grad",
-        derived_name=f"{checked.name}_{'vjp' if is_vector else 'grad'}",
-        signature=_with_seed(node, signature, seed_name) if is_vector else signature,
+        kind=kind,
+        derived_name=f"{checked.name}_{kind}",
+        signature=(
+            _with_seed(node, signature, seed_name)
+            if is_vector or is_adjoint
+            else signature
+        ),
         wrt=checked.wrt,
         bars=bars,
         forward=tuple(forward),
@@ -279,9 +307,14 @@ def render_module(
     modules: set[str] = set()
     helpers: frozenset[str] = frozenset()
     order = {name: k for k, name in enumerate(index.functions)}
+    roles = {"target": 0, "partials": 1, "adjoint": 2}
     # in the source's order, so a helper comes before the model that calls it
-    for item in sorted(compiled, key=lambda c: order[c.checked.name]):
+    ordered = sorted(compiled, key=lambda c: (order[c.checked.name], roles[c.role]))
+    for k, item in enumerate(ordered):
         rendered, used = render_function(index, item, target)
+        if k and ordered[k - 1].checked.name == item.checked.name:
+            # a listed function also called as a helper: its copy once
+            rendered = dataclasses.replace(rendered, primal="")
         functions.append(rendered)
         modules |= used
         helpers |= rendered.helpers

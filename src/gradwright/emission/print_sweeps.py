@@ -21,6 +21,7 @@ from gradwright.ir import (
     Atom,
     Bar,
     Branch,
+    CallAdjoint,
     Const,
     ElementAdjoint,
     Expr,
@@ -401,7 +402,12 @@ class _Emitter:
                 value_expr = self.layout.cheap(stmt.expr)
                 self.reads(value_expr)
                 trace.read(bar, self.bar_key(stmt.root))
-                out.code(f"{bar}[{index}] += {self.rprint(value_expr)}", depth + 1)
+                value = self.rprint(value_expr)
+                if stmt.each:
+                    value = f"{value}[{index}]"
+                out.code(f"{bar}[{index}] += {value}", depth + 1)
+            elif isinstance(stmt, CallAdjoint):
+                self.call_adjoint(stmt, depth, out)
             elif isinstance(stmt, ReverseBranch):
                 sides = []
                 events = []
@@ -440,6 +446,23 @@ class _Emitter:
                 out.last_origin[depth] = None
             else:
                 self.reverse_loop(stmt, depth, out)
+
+    def call_adjoint(self, stmt: CallAdjoint, depth: int, out: _Lines) -> None:
+        """``a_1_bar, b_1_bar = NAME_adjoint(a, b, seed)``."""
+        args = [self.layout.cheap(a) for a in stmt.args]
+        seed = self.layout.cheap(stmt.seed)
+        for expr in (*args, seed):
+            self.reads(expr)
+        texts = [self.rprint(a) for a in args] + [self.rprint(seed)]
+        call = f"{stmt.callee}_adjoint({', '.join(texts)})"
+        names = [self.namer.bar_name(part) for part in stmt.parts]
+        for name, part in zip(names, stmt.parts, strict=True):
+            self.trace.write(name, self.bar_key(part))
+        if len(names) == 1:
+            text = f"{names[0]} = {call}[0]"
+        else:
+            text = f"{', '.join(names)} = {call}"
+        out.statement(stmt.origin, text, depth)
 
     def reverse_loop(self, stmt: ReverseLoop, depth: int, out: _Lines) -> None:
         layout = self.layout
@@ -508,7 +531,11 @@ def _lists_made(statements: tuple[Stmt, ...]) -> list[Var]:
     return [
         s.target
         for s in statements
-        if isinstance(s, Let) and s.op in ("newlist", "listlit")
+        if isinstance(s, Let)
+        and (
+            s.op in ("newlist", "listlit")
+            or (s.op.startswith("call:") and s.target.shape == "list")
+        )
     ]
 
 

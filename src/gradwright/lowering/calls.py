@@ -9,16 +9,14 @@ from gradwright.diagnostics import fail
 from gradwright.ir import (
     Atom,
     Const,
+    SSAFunction,
     Var,
 )
 from gradwright.lowering.base import _Reported, _Unbound
 from gradwright.lowering.frontend import (
     ModuleIndex,
+    check_function,
     math_function_op,
-)
-from gradwright.lowering.syntax import (
-    _callee_list_uses,
-    _returns_tuple,
 )
 
 #: builtins lowered to primitives: name -> op (pow is the ** operator: Python's
@@ -252,19 +250,13 @@ class CallLowering:
                 "rewrite the recursion as a loop",
             )
         callee = self.index.functions[name]
-        if _returns_tuple(callee):
-            fail(
-                f"'{name}' returns a tuple: helpers called by the model must return"
-                " one number",
-                self.index.locate(node.func),
-                "call a helper for each output, or differentiate it on its own",
-            )
         params = callee.params
         if (
             params.star_arg not in (None, cst.MaybeSentinel.DEFAULT)
             or params.star_kwarg
         ):
             fail(f"'{name}' takes *args or **kwargs", self.index.locate(node.func))
+        lowered = self.callee_ssa(name)
         declared = [*params.posonly_params, *params.params, *params.kwonly_params]
         positional_limit = len(params.posonly_params) + len(params.params)
         slots: dict[str, cst.BaseExpression] = {}
@@ -289,7 +281,7 @@ class CallLowering:
                         f"parameters: {', '.join(p.name.value for p in declared)}",
                     )
                 slots[key] = arg.value
-        list_params = _callee_list_uses(callee)
+        shapes = {p.base: p.shape for p in lowered.params}
         args: list[Atom] = []
         for param in declared:
             given = slots.get(param.name.value)
@@ -301,18 +293,60 @@ class CallLowering:
                     self.index.locate(node),
                 )
             assert given is not None
-            if param.name.value in list_params:
-                fail(
-                    f"'{name}' takes a list ('{param.name.value}'): passing lists to"
-                    " helper functions is not supported",
-                    self.index.locate(given),
-                    "index the list in the caller and pass the numbers",
-                )
-            args.append(self.scalar(self.expr(given, base, None), given))
+            if shapes.get(param.name.value) == "list":
+                args.append(self.list_argument(given, name, param.name.value))
+            else:
+                args.append(self.scalar(self.expr(given, base, None), given))
         self.callees[name] = None
+        result = lowered.result
+        if result.is_tuple or result.values[0].shape == "list":
+            # a tuple or a list comes back as one list value: unpacking and
+            # indexing it read its elements, and its adjoint is a list too
+            if target is None or target.shape != "list":
+                target = self.new_var(name, "temp", "list")
+            made = self.emit(f"call:{name}", tuple(args), target)
+            self.helper_results.add(made)
+            if result.is_tuple:
+                self.literal_sizes[made] = len(result.values)
+            return made
         return self.emit(
             f"call:{name}", tuple(args), target or self.new_var(base, "temp")
         )
+
+    def callee_ssa(self, name: str) -> SSAFunction:
+        """The helper lowered on its own (its parameters' and result's shapes)."""
+        from gradwright.lowering.ssa import lower  # ssa imports this module
+
+        known = self.callee_ssas.get(name)
+        if known is None:
+            checked = check_function(self.index, name, None)
+            known = lower(self.index, checked, self.call_stack)
+            self.callee_ssas[name] = known
+        return known
+
+    def returns_list(self, node: cst.BaseExpression) -> bool:
+        """Whether ``node`` calls a helper of the file that returns a list or a
+        tuple (bound as one list value)."""
+        if not (
+            isinstance(node, cst.Call)
+            and isinstance(node.func, cst.Name)
+            and node.func.value in self.index.functions
+            and node.func.value not in self.call_stack
+        ):
+            return False
+        result = self.callee_ssa(node.func.value).result
+        return result.is_tuple or result.values[0].shape == "list"
+
+    def list_argument(self, given: cst.BaseExpression, name: str, param: str) -> Atom:
+        argument = self.expr(given, param, None)
+        self.as_list(argument)
+        if not (isinstance(argument, Var) and argument.shape == "list"):
+            fail(
+                f"'{name}' takes a list ('{param}') here",
+                self.index.locate(given),
+                "pass a list parameter or a local list",
+            )
+        return argument
 
     def reject_call(self, func: cst.BaseExpression) -> None:
         loc = self.index.locate(func)

@@ -89,6 +89,10 @@ class _Lowerer(
         self.local_names: frozenset[str] = frozenset()
         self.constants_read: dict[str, None] = {}
         self.callees: dict[str, None] = {}
+        #: helpers lowered on their own, for their shapes (see CallLowering)
+        self.callee_ssas: dict[str, SSAFunction] = {}
+        #: the tuples and lists helper calls return
+        self.helper_results: set[Var] = set()
         self.origin = Origin("", 0)
         self.statement_count = itertools.count()
         self.loop_depth = 0
@@ -162,7 +166,7 @@ class _Lowerer(
     def shape_of_expression(self, node: cst.BaseExpression) -> str:
         if isinstance(node, (cst.List, cst.ListComp, cst.Tuple)):
             return "list"
-        if _is_list_call(node):
+        if _is_list_call(node) or self.returns_list(node):
             return "list"
         if isinstance(node, cst.BinaryOperation) and isinstance(
             node.operator, cst.Multiply
@@ -180,6 +184,18 @@ class _Lowerer(
                 raise _ListParameter(atom.base)
 
     def scalar(self, atom: Atom, node: cst.CSTNode) -> Atom:
+        if isinstance(atom, Var) and atom in self.helper_results:
+            size = self.literal_sizes.get(atom)
+            what = f"a tuple of {size} numbers" if size else "a list"
+            fail(
+                f"'{atom.base}' returns {what}, not a number",
+                self.index.locate(node),
+                (
+                    f"unpack it: {', '.join(f'v{k}' for k in range(size))} = ..."
+                    if size
+                    else "bind it to a name and index it"
+                ),
+            )
         if isinstance(atom, Var) and atom.shape == "list":
             fail(
                 f"'{atom.base}' is a list, not a number",

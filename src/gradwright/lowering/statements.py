@@ -161,10 +161,23 @@ class StatementLowering:
         atoms = []
         for element in elements if named is None else []:
             target = self.new_var("value", "local")
-            atoms.append(self.scalar(self.expr(element, "value", target), element))
+            atom = self.expr(element, "value", target)
+            if not self.returns_list_result(atom, arity):
+                atom = self.scalar(atom, element)
+            atoms.append(atom)
         atoms = atoms if named is None else list(named)
         for i, atom in enumerate(atoms):
             self.env[f"{_RESULT}{i}"] = atom
+
+    def returns_list_result(self, atom: Atom, arity: int) -> bool:
+        """A helper (a function called by another) may return one list; what
+        the model itself returns are numbers."""
+        return (
+            arity == 1
+            and len(self.call_stack) > 1
+            and isinstance(atom, Var)
+            and atom.shape == "list"
+        )
 
     # -- branches -----------------------------------------------------------------
 

@@ -16,6 +16,7 @@ from gradwright.ir import (
     AdjointAssign,
     Apply,
     Bar,
+    CallAdjoint,
     Const,
     ElementAdjoint,
     Expr,
@@ -56,6 +57,8 @@ def _exprs(stmt: ReverseStmt) -> tuple[Expr, ...]:
         return (stmt.index, stmt.expr)
     if isinstance(stmt, SpreadAdjoint):
         return (stmt.expr,)
+    if isinstance(stmt, CallAdjoint):
+        return (*stmt.args, stmt.seed)
     if isinstance(stmt, ReverseBranch):
         return (stmt.condition,)
     return ()
@@ -156,9 +159,13 @@ def inline_adjoints(sweep: ReverseSweep) -> ReverseSweep:
                     )
                 )
             elif isinstance(stmt, SpreadAdjoint):
+                out.append(replace(stmt, expr=simplify(substitute(stmt.expr, inlined))))
+            elif isinstance(stmt, CallAdjoint):
                 out.append(
-                    SpreadAdjoint(
-                        stmt.root, simplify(substitute(stmt.expr, inlined)), stmt.origin
+                    replace(
+                        stmt,
+                        args=tuple(substitute(a, inlined) for a in stmt.args),
+                        seed=simplify(substitute(stmt.seed, inlined)),
                     )
                 )
             elif isinstance(stmt, ReverseBranch):
@@ -171,7 +178,69 @@ def inline_adjoints(sweep: ReverseSweep) -> ReverseSweep:
                     out.append(ReverseLoop(stmt.loop, body, stmt.origin))
         return tuple(out)
 
-    return replace(sweep, statements=_merge_adjacent(block(sweep.statements)))
+    statements = _merge_adjacent(block(sweep.statements))
+    return replace(sweep, statements=_into_arguments(statements, keep))
+
+
+def _into_arguments(
+    statements: tuple[ReverseStmt, ...], keep: set[Var]
+) -> tuple[ReverseStmt, ...]:
+    """``x_1_bar, ... = h_adjoint(...)`` then ``x_bar = x_1_bar``: the call
+    writes ``x_bar`` itself (the part was read only by that copy)."""
+    flat = list(_flatten(statements))
+    reads = Counter(
+        node.var
+        for s in flat
+        for e in _exprs(s)
+        for node in walk(e)
+        if isinstance(node, Bar)
+    )
+    writes = Counter(s.var for s in flat if isinstance(s, AdjointAssign))
+    for s in flat:
+        if isinstance(s, CallAdjoint):
+            writes.update(s.parts)
+    out: list[ReverseStmt] = []
+    call: int | None = None  # where in ``out`` the last call adjoint is
+    for stmt in statements:
+        if isinstance(stmt, ReverseBranch):
+            stmt = replace(
+                stmt,
+                then=_into_arguments(stmt.then, keep),
+                orelse=_into_arguments(stmt.orelse, keep),
+            )
+        elif isinstance(stmt, ReverseLoop):
+            stmt = replace(stmt, body=_into_arguments(stmt.body, keep))
+        if isinstance(stmt, CallAdjoint):
+            call = len(out)
+            out.append(stmt)
+            continue
+        if (
+            call is not None
+            and isinstance(stmt, AdjointAssign)
+            and not stmt.accumulate
+            and isinstance(stmt.expr, Bar)
+            and stmt.origin == out[call].origin
+        ):
+            found: CallAdjoint = out[call]  # type: ignore[assignment]
+            part = stmt.expr.var
+            if (
+                part in found.parts
+                and reads[part] == 1
+                and writes[stmt.var] == 1
+                and stmt.var not in found.parts
+                and stmt.var.shape == part.shape
+            ):
+                parts = tuple(stmt.var if p == part else p for p in found.parts)
+                out[call] = replace(found, parts=parts)
+                continue
+        if not (
+            isinstance(stmt, AdjointAssign)
+            and stmt.origin
+            == getattr(out[call] if call is not None else None, "origin", None)
+        ):
+            call = None
+        out.append(stmt)
+    return tuple(out)
 
 
 def _map_exprs(
@@ -194,7 +263,9 @@ def _map_exprs(
                 )
             )
         elif isinstance(stmt, SpreadAdjoint):
-            out.append(SpreadAdjoint(stmt.root, change(stmt.expr), stmt.origin))
+            out.append(replace(stmt, expr=change(stmt.expr)))
+        elif isinstance(stmt, CallAdjoint):
+            out.append(replace(stmt, seed=change(stmt.seed)))
         elif isinstance(stmt, ReverseBranch):
             out.append(
                 replace(

@@ -17,7 +17,7 @@ list of zeros when the reverse sweep starts.
 
 from __future__ import annotations
 
-from collections.abc import Iterable
+from collections.abc import Iterable, Mapping
 
 from gradwright.calculus.algebra import E, is_zero, simplify
 from gradwright.calculus.numpy_rules import BROADCASTING
@@ -28,6 +28,7 @@ from gradwright.ir import (
     Atom,
     Bar,
     Branch,
+    CallAdjoint,
     Const,
     ElementAdjoint,
     Expr,
@@ -181,10 +182,16 @@ def active_values(function: SSAFunction, wrt: tuple[str, ...]) -> set[Var]:
 
 class _Reverse:
     def __init__(
-        self, function: SSAFunction, active: set[Var], numpy: bool = False
+        self,
+        function: SSAFunction,
+        active: set[Var],
+        numpy: bool = False,
+        adjoint_helpers: Mapping[str, tuple[Var, ...]] | None = None,
     ) -> None:
         self.active = active
         self.numpy = numpy
+        #: helpers reversed by their adjoint function, with their parameters
+        self.adjoint_helpers = adjoint_helpers or {}
         self.has: set[Var] = set()
         self.root: dict[Var, Var] = {}
         self.carries: dict[Var, Var] = {}
@@ -275,6 +282,9 @@ class _Reverse:
         if op == "sum":
             out.append(SpreadAdjoint(self.root[args[0]], g, origin))  # type: ignore[index]
             return
+        if op.startswith("call:") and op[5:] in self.adjoint_helpers:
+            self.call_adjoint(let, g, out)
+            return
         if op.startswith("call:"):
             for k, arg in enumerate(args):
                 partial = Apply("partial", (target, const(k)))
@@ -305,9 +315,34 @@ class _Reverse:
                 total = Apply("_gw_unbroadcast", (total, var))
             self.contribute(var, total, origin, out)
 
+    def call_adjoint(self, let: Let, seed: Expr, out: list[ReverseStmt]) -> None:
+        """``NAME_adjoint(args, seed)`` gives every parameter's adjoint; each
+        active argument's adjoint then takes its part (a list's element by
+        element). The helper's forward work runs again inside it (joint
+        reversal): the caller keeps only the arguments."""
+        callee = let.op.removeprefix("call:")
+        params = self.adjoint_helpers[callee]
+        parts = []
+        for param in params:
+            parts.append(Var(self.next_uid, param.base, "temp", param.shape))
+            self.next_uid += 1
+        out.append(CallAdjoint(callee, let.args, seed, tuple(parts), let.origin))
+        for arg, part in zip(let.args, parts, strict=True):
+            if not (isinstance(arg, Var) and arg in self.active):
+                continue
+            if arg.shape == "list":
+                out.append(SpreadAdjoint(self.root[arg], Bar(part), let.origin, True))
+            else:
+                # (a part is no value of the forward sweep: never zeroed on
+                # a branch's other side or before a loop)
+                self.contribute(arg, Bar(part), let.origin, out)
+
     def list_let(self, let: Let, out: list[ReverseStmt]) -> None:
         root = self.root[let.target]
         buffer = Bar(root)
+        if let.op.startswith("call:"):
+            self.call_adjoint(let, buffer, out)
+            return
         if let.op == "setitem":
             _, index, value = let.args
             self.contribute(value, Apply("getitem", (buffer, index)), let.origin, out)
@@ -443,21 +478,34 @@ class _Reverse:
         self.has -= set(carries.values())
 
 
+def list_roots(function: SSAFunction) -> dict[Var, Var]:
+    """The list object (a parameter or a list the function makes) each list
+    value of ``function`` is a version of."""
+    return dict(_Reverse(function, set()).root)
+
+
 def reverse_sweep(
     function: SSAFunction,
     wrt: tuple[str, ...],
     seeds: tuple[Expr, ...],
     numpy: bool = False,
+    adjoint_helpers: Mapping[str, tuple[Var, ...]] | None = None,
 ) -> ReverseSweep:
     """Adjoint statements for ``sum(seed_i * d result_i)``, in reverse order.
 
     ``numpy``: the model works on arrays, so broadcasting operands get their
-    adjoints summed back to their own shapes."""
+    adjoints summed back to their own shapes. ``adjoint_helpers``: the helpers
+    whose calls are reversed by their adjoint function (the rest by partials).
+    A list result's seed is a list, added into the result's adjoint list."""
     active = active_values(function, wrt)
-    reverse = _Reverse(function, active, numpy)
+    reverse = _Reverse(function, active, numpy, adjoint_helpers)
     out: list[ReverseStmt] = []
     result = function.result
     for atom, seed in zip(result.values, seeds, strict=True):
+        if isinstance(atom, Var) and atom.shape == "list":
+            if atom in active:
+                out.append(SpreadAdjoint(reverse.root[atom], seed, result.origin, True))
+            continue
         reverse.contribute(atom, seed, result.origin, out)
     out += reverse.block(function.body)
     wrt_vars = tuple(p for name in wrt for p in function.params if p.base == name)
