@@ -145,17 +145,18 @@ CASES = [
         "leave it out of --wrt",
     ),
     case(
-        "while-loop",
+        "while-else",
         """
         def f(x):
             while x > 1.0:
                 x = x / 2.0
+            else:
+                x = 0.0
             return x
         """,
-        "while-loops are not supported",
-        2,
-        "x > 1.0",
-        "for _ in range",
+        "while-else is not supported",
+        4,
+        "else:",
     ),
     case(
         "try-statement",
@@ -396,16 +397,17 @@ CASES = [
         def g(x):
             while x > 1.0:
                 x = x / 2.0
+            else:
+                x = 0.0
             return x
 
 
         def f(x):
             return g(x) * 2.0
         """,
-        "while-loops are not supported",
-        2,
-        "x > 1.0",
-        "for _ in range",
+        "while-else is not supported",
+        4,
+        "else:",
     ),
     case(
         "helper-unknown-keyword",
@@ -922,51 +924,52 @@ CASES = [
         "move the return to the end",
     ),
     case(
-        "break-in-loop",
+        "code-after-break",
         """
         def f(x):
             for _ in range(3):
                 if x > 1.0:
                     break
+                    x = 0.0
                 x = x * 2.0
             return x
         """,
-        "break is not supported (the reverse sweep needs every loop to run its full"
-        " trip count)",
-        4,
-        "break",
-        "guard the rest of the body with an if instead",
+        "code after the break statement is never run",
+        5,
+        "x = 0.0",
+        "move the break to the end",
     ),
     case(
-        "continue-in-loop",
+        "code-after-continue",
         """
         def f(x):
-            for k in range(3):
-                if k == 1:
-                    continue
+            k = 0
+            while k < 3:
+                k += 1
+                continue
                 x = x * 2.0
             return x
         """,
-        "continue is not supported",
-        4,
-        "continue",
-        "guard the rest of the body with an if instead",
+        "code after the continue statement is never run",
+        6,
+        "x = x * 2.0",
+        "move the continue to the end",
     ),
     case(
-        "return-in-loop",
+        "return-tuple-name-in-loop",
         """
         def f(x):
+            state = (x, 2.0 * x)
             for _ in range(3):
                 if x > 1.0:
-                    return x
+                    return state
                 x = x * 2.0
-            return x
+            return x, x
         """,
-        "return inside a loop is not supported (the loop must run its full trip"
-        " count)",
-        4,
-        "return x",
-        "keep the result in a variable and return it after the loop",
+        "inside a loop, return the values themselves",
+        5,
+        "state",
+        "write `return a, b`",
     ),
     case(
         "for-else",
@@ -1172,12 +1175,13 @@ CASES = [
         def bad(x):
             while x > 1.0:
                 x = x / 2.0
+            else:
+                x = 0.0
             return x
         """,
-        "while-loops are not supported",
-        6,
-        "x > 1.0",
-        "for _ in range",
+        "while-else is not supported",
+        8,
+        "else:",
         functions=("good", "bad"),
     ),
 ]
@@ -1186,7 +1190,7 @@ CASES = [
 SUBPROCESS_CASES = {
     "wrt-not-a-parameter",
     "integer-only-result",
-    "while-loop",
+    "while-else",
     "lambda",
     "recursion",
     "mutual-recursion",
@@ -1194,7 +1198,7 @@ SUBPROCESS_CASES = {
     "name-used-before-assignment",
     "decorator",
     "assigned-in-one-branch",
-    "break-in-loop",
+    "code-after-break",
     "assign-element-of-list-parameter",
 }
 

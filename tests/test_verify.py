@@ -273,7 +273,9 @@ def test_bad_options_exit_two(args: list[str], message: str) -> None:
 
 def test_a_model_that_cannot_be_generated_exits_two(tmp_path: Path) -> None:
     model = _model(
-        tmp_path, "bad", "def f(x):\n    while x:\n        x = 0\n    return x\n"
+        tmp_path,
+        "bad",
+        "def f(x):\n    with x:\n        x = 0\n    return x\n",
     )
     result = cli("verify", str(model), "f", cwd=tmp_path)
     assert result.code == 2

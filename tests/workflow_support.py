@@ -106,7 +106,7 @@ HEDGE = target(
     "models/fuel_hedge_grad.py",
     wrt=["spot", "vol"],
 )
-BROKEN_MODEL = "def halve(x):\n    while x > 1.0:\n        x = x / 2.0\n    return x\n"
+BROKEN_MODEL = "def halve(x):\n    with x:\n        x = x / 2.0\n    return x\n"
 BROKEN = target("models/broken.py", ["halve"], "models/broken_grad.py")
 
 

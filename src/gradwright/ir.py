@@ -104,7 +104,17 @@ class Branch:
 
 @dataclass(frozen=True)
 class Loop:
-    """``for index in range(start, stop, step)``; bounds are fixed at loop start."""
+    """``for index in range(start, stop, step)``; bounds are fixed at loop start.
+
+    A loop whose trip count is known only when it ends (a ``while``, a ``break``,
+    a ``return`` inside it) records it in ``trips``, the number of iterations run;
+    the reverse sweep runs that many. A ``while`` loop's ``test`` is computed by
+    the first ``test_size`` statements of ``body`` (run once more at the check
+    that ends the loop; its index counts from 0). ``exit_flag`` is true at the end
+    of an iteration that leaves the loop (a break). Tests and flags are piecewise
+    constant: no adjoint flows through them. The carried values' ``exit`` is the
+    value at the head of the next iteration, whichever way the loop ends.
+    """
 
     index: Var
     start: Atom
@@ -113,6 +123,15 @@ class Loop:
     carried: tuple[Phi, ...]
     body: tuple[Stmt, ...]
     origin: Origin
+    test: Atom | None = None
+    test_size: int = 0
+    exit_flag: Atom | None = None
+    trips: Var | None = None
+
+    @property
+    def bounds(self) -> tuple[Atom, ...]:
+        """The range bounds the forward loop reads before it starts."""
+        return () if self.test is not None else (self.start, self.stop, self.step)
 
 
 Stmt = Let | Branch | Loop

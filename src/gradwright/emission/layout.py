@@ -155,6 +155,8 @@ class Layout:
                     self.loop_of[phi.target] = stmt
                     assert phi.exit is not None
                     self.loop_of[phi.exit] = loop
+                if stmt.trips is not None:
+                    self.loop_of[stmt.trips] = loop
                 self._index_defs(stmt.body, stmt)
 
     def _reverse_defined(self, statements: Iterable[ReverseStmt]) -> set[Var]:
@@ -287,7 +289,7 @@ class Layout:
                     visit(stmt.then, loop)
                     visit(stmt.orelse, loop)
                 else:
-                    for bound in (stmt.loop.start, stmt.loop.stop, stmt.loop.step):
+                    for bound in reverse_bounds(stmt.loop):
                         collect(bound, loop, everywhere=True)
                     visit(stmt.body, stmt.loop)
 
@@ -311,6 +313,30 @@ class Layout:
         for child in self.children.get(loop, []):
             names += [self.by_name(loop, inner) for inner in self.saved_lists(child)]
         return names
+
+    def growing(self, loop: Loop) -> tuple[set[str], list[str]]:
+        """A while loop's saved lists grow by one slot per iteration: (those a
+        save at the body's top level appends to, those given a slot first and
+        filled inside a branch)."""
+        top: set[Var] = {phi.target for phi in loop.carried}
+        inner_loops: list[Loop] = []
+        for stmt in loop.body:
+            if isinstance(stmt, Let):
+                top |= {stmt.target, _partials_var(stmt.target)}
+            elif isinstance(stmt, Branch):
+                top |= {phi.target for phi in stmt.merges}
+            else:
+                inner_loops.append(stmt)
+                top |= {phi.exit for phi in stmt.carried if phi.exit is not None}
+                if stmt.trips is not None:
+                    top.add(stmt.trips)
+        appended = {
+            self.tape_name(loop, v) for v in self.tapes.get(loop, []) if v in top
+        }
+        for child in inner_loops:
+            appended |= {self.by_name(loop, inner) for inner in self.saved_lists(child)}
+        slotted = [name for name in self.saved_lists(loop) if name not in appended]
+        return appended, slotted
 
     def tapes_of(self, loop: Loop, saved: str) -> list[Var]:
         """The values the saved list named ``saved`` (of ``loop`` or a loop inside
@@ -350,8 +376,11 @@ class Layout:
                         add(phi.first)
                         add(phi.second)
                 else:
-                    for bound in (stmt.start, stmt.stop, stmt.step):
+                    for bound in stmt.bounds:
                         add(bound)
+                    for flag in (stmt.test, stmt.exit_flag):
+                        if flag is not None:
+                            add(flag)
                     for phi in stmt.carried:
                         add(phi.first)
                         add(phi.second)
@@ -421,7 +450,7 @@ class Layout:
                     needed = True
                     live |= {
                         a
-                        for a in (stmt.start, stmt.stop, stmt.step)
+                        for a in (*stmt.bounds, stmt.test, stmt.exit_flag)
                         if isinstance(a, Var)
                     }
         return needed
@@ -453,13 +482,16 @@ class Layout:
                     for phi in stmt.merges:
                         current[phi.target.base] = phi.target
                 else:
-                    for bound in (stmt.start, stmt.stop, stmt.step):
+                    for bound in stmt.bounds:
                         read(bound, current)
                     for phi in stmt.carried:
                         read(phi.first, current)
                         current[phi.target.base] = phi.target
                     inner = dict(current)
                     visit(stmt.body, inner)
+                    for flag in (stmt.test, stmt.exit_flag):
+                        if flag is not None:
+                            read(flag, inner)
                     for phi in stmt.carried:
                         read(phi.second, inner)
                         assert phi.exit is not None
@@ -612,6 +644,8 @@ class Layout:
                     assert phi.exit is not None
                     self.namer.names[phi.exit] = self.namer.names[phi.target]
                     current[phi.exit.base] = phi.exit
+                if stmt.trips is not None:
+                    self.namer.names[stmt.trips] = self.namer.claim("iterations")
 
     def _saves(self, loop: Loop) -> bool:
         """Whether ``loop`` saves values for its reverse, itself or inside."""
@@ -691,27 +725,41 @@ class Layout:
         return atom
 
     def range_args(self, loop: Loop, folded: dict[Var, Expr] | None = None) -> str:
-        def show(atom: Atom) -> str:
+        """The forward loop's range (``folded``: as the forward sweep has its
+        bounds), or, without ``folded``, the reverse loop's: the iterations run."""
+
+        def show(atom: Expr) -> str:
             if folded is not None:
-                return self.expr(self.atom_expr(atom, folded))
+                return self.expr(self.atom_expr(atom, folded))  # type: ignore[arg-type]
             return self.expr(self.cheap(atom, everywhere=True))
 
         start, stop, step = loop.start, loop.stop, loop.step
+        if folded is None and loop.trips is not None:
+            stop = loop.trips
+            if not (_is_const(start, 0) and _is_const(step, 1)):
+                stop = Apply("add", (start, Apply("mul", (loop.trips, step))))  # type: ignore[assignment]
         if _is_const(step, 1):
             if _is_const(start, 0):
                 return show(stop)
             return f"{show(start)}, {show(stop)}"
         return f"{show(start)}, {show(stop)}, {show(step)}"
 
-    def slot(self, loop: Loop) -> str:
-        """The saved-list index of the current iteration."""
+    def slot(self, loop: Loop, forward: bool = False) -> str:
+        """The saved-list index of the current iteration (a while loop's
+        forward sweep counts its iterations in its trip count)."""
+        if forward and loop.test is not None:
+            assert loop.trips is not None
+            return self.namer.name(loop.trips)
         start = self.cheap(loop.start, everywhere=True)
         step = self.cheap(loop.step, everywhere=True)
         return self.expr(indexing.slot(loop.index, start, step))
 
     def trip_count(self, loop: Loop, folded: dict[Var, Expr]) -> tuple[str, Expr]:
         """A saved list's allocation before the forward ``loop``, and the
-        expression it reads (the bounds as the forward sweep has them)."""
+        expression it reads (the bounds as the forward sweep has them); a while
+        loop's lists grow by one slot per iteration."""
+        if loop.test is not None:
+            return "[]", Const("[]")
         start, stop, step = (self.atom_expr(b, folded) for b in _bounds(loop))
         length = indexing.count(start, stop, step)
         if length is not None:
@@ -794,6 +842,13 @@ def _walk_values(expr: Expr) -> Iterator[Expr]:
 
 
 def _bounds(loop: Loop) -> tuple[Atom, Atom, Atom]:
+    return (loop.start, loop.stop, loop.step)
+
+
+def reverse_bounds(loop: Loop) -> tuple[Atom, ...]:
+    """What the reverse loop's range reads: the iterations the forward ran."""
+    if loop.trips is not None:
+        return (loop.start, loop.trips, loop.step)
     return (loop.start, loop.stop, loop.step)
 
 

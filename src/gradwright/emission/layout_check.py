@@ -38,6 +38,10 @@ class _Loop:
     exits: tuple[tuple[Var, Var], ...] = ()
     #: the branches inside the body (their sides differ from one iteration to the next)
     branches: frozenset = frozenset()
+    #: a while loop's test, run at the head of every iteration and at the exit
+    test: list = field(default_factory=list)
+    #: whether an iteration may also leave the loop at its end (a break)
+    breaks: bool = False
 
 
 @dataclass
@@ -126,8 +130,12 @@ class Trace:
         body: list,
         local: Iterable[Var],
         exits: tuple[tuple[Var, Var], ...] = (),
+        test: list | None = None,
+        breaks: bool = False,
     ) -> None:
-        self._add(_Loop(body, frozenset(local), exits, frozenset(_branches(body))))
+        test = test or []
+        branches = frozenset(_branches(test + body))
+        self._add(_Loop(body, frozenset(local), exits, branches, test, breaks))
 
     def extend(self, events: list) -> None:
         for event in events:
@@ -299,11 +307,13 @@ class _Checker:
         """The state after ``loop`` without analysing it again: a name it writes
         holds what it held before (no trip) and what every iteration leaves in it,
         worked out once for any start (``_SAME``: what the name held before)."""
-        written = set(_written(loop.body))
+        written = set(_written(loop.test + loop.body))
         ends = self.summaries.get(id(loop))
         if ends is None:
             start = {name: frozenset({(_SAME, frozenset())}) for name in written}
-            ends = self.run(loop.body, start, frozenset(), False)
+            ends = self.run(loop.test + loop.body, dict(start), frozenset(), False)
+            if loop.test:  # it may also end after its test
+                ends = _meet(ends, self.run(loop.test, start, frozenset(), False))
             self.summaries[id(loop)] = ends
         state = {n: f for n, f in entry.items() if n not in written}
         state |= _meet({n: f for n, f in entry.items() if n in written}, ends)
@@ -311,8 +321,9 @@ class _Checker:
 
     def loop(self, loop: _Loop, entry: State, taken: frozenset) -> State:
         head = dict(entry)
+        iteration = loop.test + loop.body
         for _ in range(64):  # facts only shrink: this settles in a few rounds
-            after = self.run(loop.body, dict(head), taken, False)
+            after = self.run(iteration, dict(head), taken, False)
             after = _forget(after, frozenset(), loop.branches)
             new_head = _meet(entry, after)
             if new_head == head:
@@ -320,8 +331,14 @@ class _Checker:
             head = new_head
         else:
             head = {}  # assume nothing (never seen; safe)
-        end = self.run(loop.body, dict(head), taken, True)
-        state = _with_fills(dict(head), end)
+        # the loop ends at its head (after a while loop's test) or, with a break,
+        # at the end of an iteration
+        at_test = self.run(loop.test, dict(head), taken, True)
+        end = self.run(loop.body, dict(at_test), taken, True)
+        state = dict(at_test)
+        if loop.breaks:
+            state = _meet(state, _forget(dict(end), frozenset(), loop.branches))
+        state = _with_fills(state, end)
         for target, exit_value in loop.exits:
             for name, facts in list(state.items()):
                 extra = {

@@ -11,7 +11,7 @@ from __future__ import annotations
 from collections.abc import Iterator
 
 from gradwright.emission.formatting import format_statement
-from gradwright.emission.layout import Layout
+from gradwright.emission.layout import Layout, reverse_bounds
 from gradwright.emission.layout_check import Key, Trace, Violation, check
 from gradwright.emission.naming import Namer
 from gradwright.emission.printer import Printer
@@ -83,6 +83,8 @@ class _Emitter:
         self.restored: set[str] = set()
         #: what each printed statement reads and writes, for the layout check
         self.trace = Trace()
+        #: the saved lists a while loop's top-level saves append to
+        self.appending: dict[Loop, set[str]] = {}
 
     # -- the record the layout check reads ----------------------------------------
 
@@ -119,10 +121,25 @@ class _Emitter:
         scope = enclosing.index if enclosing is not None else None
         return ("list", scope, name)
 
-    def slot_reads(self, loop: Loop) -> None:
+    def slot_reads(self, loop: Loop, forward: bool = False) -> None:
+        if forward and loop.test is not None:  # a while loop counts its iterations
+            assert loop.trips is not None
+            self.trace.read(self.namer.name(loop.trips), self.key(loop.trips))
+            return
         self.trace.read(self.namer.name(loop.index), self.key(loop.index))
         for bound in (loop.start, loop.step):
             self.reads(self.layout.cheap(bound, everywhere=True))
+
+    def fill(self, loop: Loop, saved: str, text: str, depth: int, out: _Lines) -> None:
+        """``saved[slot] = text`` in the forward ``loop``, or ``saved.append(text)``
+        where a while loop's list grows by this statement."""
+        if saved in self.appending.get(loop, ()):
+            out.code(f"{saved}.append({text})", depth)
+            self.trace.read(saved, self.tape_key(loop, saved))
+            return
+        out.code(f"{saved}[{self.layout.slot(loop, forward=True)}] = {text}", depth)
+        self.trace.read(saved, self.tape_key(loop, saved))
+        self.slot_reads(loop, forward=True)
 
     # -- forward --------------------------------------------------------------------
 
@@ -189,24 +206,18 @@ class _Emitter:
         if target in layout.partials_needed and loop is not None:
             partials = layout.partials_of(target)
             if partials in layout.tapes.get(loop, []):
-                slot = layout.slot(loop)
                 saved = layout.tape_name(loop, partials)
                 partials_name = self.namer.name(partials)
-                out.code(f"{saved}[{slot}] = {partials_name}", depth)
                 trace.read(partials_name, ("partials", target))
-                trace.read(saved, self.tape_key(loop, saved))
-                self.slot_reads(loop)
+                self.fill(loop, saved, partials_name, depth, out)
                 trace.fill(saved, partials)
 
     def save(self, loop: Loop, var: Var, depth: int, out: _Lines) -> None:
         """``var_saved[slot] = var``: this iteration's value, for the reverse."""
-        layout = self.layout
         name = self.namer.name(var)
-        saved = layout.tape_name(loop, var)
-        out.code(f"{saved}[{layout.slot(loop)}] = {name}", depth)
+        saved = self.layout.tape_name(loop, var)
         self.trace.read(name, self.key(var))
-        self.trace.read(saved, self.tape_key(loop, saved))
-        self.slot_reads(loop)
+        self.fill(loop, saved, name, depth, out)
         self.trace.fill(saved, var)
 
     def _list_live(self, var: Var) -> bool:
@@ -254,6 +265,9 @@ class _Emitter:
         if not then_lines and not else_lines:
             # nothing printed, but copies left out still hold on both paths
             self.trace.branch(id(branch), *events)
+            for phi in live_merges:
+                if loop is not None and phi.target in layout.tapes.get(loop, []):
+                    self.save(loop, phi.target, depth, out)
             return
         self.trace.at(branch.origin.text)
         self.reads(self.value(branch.condition))
@@ -280,39 +294,81 @@ class _Emitter:
         for phi in loop.carried:
             if phi.target in layout.live:
                 self.copy(phi.target, phi.first, depth, out)
-        bounds = (loop.start, loop.stop, loop.step)
-        for bound in bounds:
+        for bound in loop.bounds:
             self.reads(layout.atom_expr(bound, self.folded))
         for saved in layout.saved_lists(loop):
             trip, read = layout.trip_count(loop, self.folded)
             out.code(f"{saved} = {trip}", depth)
-            self.reads(read)
+            if loop.test is None:
+                self.reads(read)
             trace.write(saved, self.tape_key(loop, saved))
             if enclosing is not None:
-                slot = layout.slot(enclosing)
                 by = layout.by_name(enclosing, saved)
-                out.code(f"{by}[{slot}] = {saved}", depth)
-                trace.read(by, self.tape_key(enclosing, by))
-                self.slot_reads(enclosing)
-        out.code(
-            f"for {self.namer.name(loop.index)} in range({self.range_text(loop)}):",
-            depth,
-        )
+                self.fill(enclosing, by, saved, depth, out)
+        trips = self.namer.name(loop.trips) if loop.trips is not None else None
+        if trips is not None:
+            # the iterations run, for the reverse sweep to run as many
+            out.code(f"{trips} = 0", depth)
+            trace.write(trips, self.key(loop.trips))  # type: ignore[arg-type]
+        slotted: list[str] = []
+        if loop.test is not None:
+            appended, slotted = layout.growing(loop)
+            self.appending[loop] = appended
+        with trace.capture() as test:
+            test_lines = _Lines()
+            test_lines.header = dict(out.header)
+            test_lines.open_block(depth, loop.origin)
+            self.forward_block(loop.body[: loop.test_size], depth + 1, test_lines, loop)
+            if loop.test is not None:
+                condition = self.value(loop.test)
+                self.reads(condition)
+        if loop.test is None:
+            header = (
+                f"for {self.namer.name(loop.index)} in range({self.range_text(loop)}):"
+            )
+        elif test_lines.lines:  # the test needs statements: they run first
+            header = "while True:"
+        else:
+            header = f"while {self.print(condition)}:"
+        out.code(header, depth)
         out.open_block(depth, loop.origin)
+        if test_lines.lines:
+            out.lines.extend(test_lines.lines)
+            out.code(f"if {self.print(Apply('not', (condition,)))}:", depth + 1)
+            out.code("break", depth + 2)
         with trace.capture() as body:
-            trace.write(self.namer.name(loop.index), self.key(loop.index))
+            if loop.test is None:
+                trace.write(self.namer.name(loop.index), self.key(loop.index))
+            for saved in slotted:  # a slot for this iteration, filled in a branch
+                out.code(f"{saved}.append(0.0)", depth + 1)
+                trace.read(saved, self.tape_key(loop, saved))
             for phi in loop.carried:
                 if phi.target in layout.tapes.get(loop, []):
                     self.save(loop, phi.target, depth + 1, out)
             size = len(out.lines)
-            self.forward_block(loop.body, depth + 1, out, loop)
+            self.forward_block(loop.body[loop.test_size :], depth + 1, out, loop)
             for phi in loop.carried:
                 if phi.target in layout.live:
                     self.copy(phi.target, phi.second, depth + 1, out)
+            if trips is not None:
+                out.code(f"{trips} += 1", depth + 1)
+                trace.read(trips, self.key(loop.trips))  # type: ignore[arg-type]
+                trace.write(trips, self.key(loop.trips))  # type: ignore[arg-type]
+            if loop.exit_flag is not None:
+                flag = self.value(loop.exit_flag)
+                self.reads(flag)
+                out.code(f"if {self.print(flag)}:", depth + 1)
+                out.code("break", depth + 2)
         exits = tuple(
             (phi.target, phi.exit) for phi in loop.carried if phi.exit is not None
         )
-        trace.loop(body, _iteration_values(loop), exits)
+        trace.loop(
+            body,
+            _iteration_values(loop),
+            exits,
+            test=test,
+            breaks=loop.exit_flag is not None,
+        )
         if len(out.lines) == size and not layout.tapes.get(loop):
             out.code("pass", depth + 1)
         out.last_origin[depth] = None
@@ -321,6 +377,8 @@ class _Emitter:
             for phi in loop.carried:
                 if phi.exit in layout.tapes.get(enclosing, []):
                     self.save(enclosing, phi.exit, depth, out)
+            if loop.trips in layout.tapes.get(enclosing, []):
+                self.save(enclosing, loop.trips, depth, out)  # type: ignore[arg-type]
 
     def range_text(self, loop: Loop) -> str:
         return self.layout.range_args(loop, self.folded)
@@ -482,7 +540,7 @@ class _Emitter:
         out.comment(stmt.origin, depth)
         index = self.namer.name(loop.index)
         trace.at(stmt.origin.text)
-        for bound in (loop.start, loop.stop, loop.step):
+        for bound in reverse_bounds(loop):
             self.reads(layout.cheap(bound, everywhere=True))
         out.code(
             f"for {index} in reversed(range({layout.range_args(loop)})):",

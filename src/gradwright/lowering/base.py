@@ -4,8 +4,15 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
+from gradwright.ir import Const
+
 #: env key under which the function's result values are kept (not an identifier)
 _RESULT = "\0result"
+
+#: env key of the flag "a return inside the loops ran" (carried through them)
+_RETURNED = "\0returned"
+#: env key of the flag "this iteration leaves its loop" (a break, a return)
+_STOP = "\0stop"
 
 #: primitives whose result may share memory with an operand (NumPy views)
 _VIEWS = frozenset({"copy", "npindex", "T", "reshape", "np.transpose"})
@@ -15,6 +22,12 @@ _TRUTH_OPS = frozenset({"lt", "le", "gt", "ge", "eq", "ne", "and", "or", "not"})
 
 #: primitives that take or make lists; every other primitive takes numbers
 LIST_OPS = frozenset({"getitem", "setitem", "newlist", "listlit", "len", "sum"})
+
+
+#: the loop flags' constants: one object each, so that an unchanged flag is
+#: recognised by identity (``a is b``) where paths merge
+TRUE = Const("True", True)
+FALSE = Const("False", False)
 
 
 @dataclass(frozen=True)
@@ -42,6 +55,16 @@ def element_key(name: str, k: int) -> str:
 def display(key: str) -> str:
     """A printable base name for an env key (``state\01`` -> ``state_1``)."""
     return key.replace("\0", "_")
+
+
+def flow_base(key: str) -> str:
+    """The base name of a value merged for an env key: the result slots are
+    ``value``, the loop flags ``returned`` and ``stop``."""
+    if key.startswith(_RESULT):
+        return "value"
+    if key in (_RETURNED, _STOP):
+        return key[1:]
+    return display(key)
 
 
 class _Reported(Exception):

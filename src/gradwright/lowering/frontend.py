@@ -169,6 +169,9 @@ def _statement_spans(module: cst.Module, source: str) -> dict[int, str]:
             elif isinstance(node, cst.For) and isinstance(twin, ast.For):
                 expression(node.iter, twin.iter)
                 block(node.body.body, twin.body)
+            elif isinstance(node, cst.While) and isinstance(twin, ast.While):
+                expression(node.test, twin.test)
+                block(node.body.body, twin.body)
             elif isinstance(node, (cst.FunctionDef, cst.ClassDef)) and isinstance(
                 twin, (ast.FunctionDef, ast.AsyncFunctionDef, ast.ClassDef)
             ):

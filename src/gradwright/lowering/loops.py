@@ -1,4 +1,6 @@
-"""Lowering for-loops: the loop, its carried values (one Phi each) and its bounds."""
+"""Lowering for and while loops: the loop, its carried values (one Phi each), its
+bounds or test, and how it may end early (break, return: flags merged like any
+value, see ``statements.py``)."""
 
 from __future__ import annotations
 
@@ -9,16 +11,28 @@ import libcst as cst
 from gradwright.diagnostics import fail
 from gradwright.ir import (
     Atom,
+    Branch,
     Const,
     Loop,
     Origin,
     Phi,
     Var,
 )
-from gradwright.lowering.base import _Tuple, _Unbound, display
+from gradwright.lowering.base import (
+    _RESULT,
+    _RETURNED,
+    _STOP,
+    FALSE,
+    TRUE,
+    _Tuple,
+    _Unbound,
+    flow_base,
+)
 from gradwright.lowering.syntax import (
     _assigned_names,
     _block_statements,
+    _contains_return,
+    _return_arity,
     _statement_text,
 )
 
@@ -27,6 +41,40 @@ class LoopLowering:
     """Part of the lowering (see ``ssa._Lowerer``); state lives on the lowerer."""
 
     # -- loops --------------------------------------------------------------------
+
+    def loop_statement(
+        self, node: cst.For | cst.While, rest: tuple[list[cst.CSTNode], ...]
+    ) -> bool:
+        """A for or while statement, then ``rest`` (what runs next, see
+        ``sequence``) on the paths where no return inside the loop ran; True
+        when every path returned."""
+        if isinstance(node, cst.For):
+            self.for_statement(node)
+        else:
+            self.while_statement(node)
+        returned = self.env.get(_RETURNED)
+        if returned is None or returned is FALSE or isinstance(returned, _Unbound):
+            return self.sequence(rest[0], rest[1:]) if rest else False
+        # the code after the loop selects: the result the loop returned, or the
+        # rest of the function
+        origin = self.origin
+        before = dict(self.env)
+        self.blocks.append([])
+        if self.loop_depth:  # inside an enclosing loop: it stops too
+            self.env[_STOP] = TRUE
+        returned_then = not self.loop_depth
+        then_block, then_env = self.blocks.pop(), self.env
+        self.env = dict(before)
+        self.blocks.append([])
+        returned_else = self.sequence(rest[0], rest[1:]) if rest else False
+        else_block, else_env = self.blocks.pop(), self.env
+        self.env = dict(before)
+        merges = self.merge(before, then_env, else_env, returned_then, returned_else)
+        self.origin = origin
+        self.blocks[-1].append(
+            Branch(returned, tuple(then_block), tuple(else_block), merges, origin)  # type: ignore[arg-type]
+        )
+        return returned_then and returned_else
 
     def for_statement(self, node: cst.For) -> None:
         if node.orelse is not None:
@@ -49,6 +97,19 @@ class LoopLowering:
         plan = self.iteration(node.iter, node.target)
         self.run_loop(plan, names, _block_statements(node.body), node, origin)
 
+    def while_statement(self, node: cst.While) -> None:
+        if node.orelse is not None:
+            fail("while-else is not supported", self.index.locate(node.orelse))
+        self.set_origin(f"while {_statement_text(self.index, node.test)}:")
+        origin = self.origin
+        # the index counts the iterations run, from 0 (the saved lists' slot)
+        plan = (Const("0", 0), Const("0", 0), Const("1", 1), "k", lambda _: None)
+        statements = _block_statements(node.body)
+        test = node.test
+        if isinstance(test, cst.Name) and test.value == "True":
+            test = None  # `while True:` ends at a break or a return
+        self.run_loop(plan, [], statements, node, origin, test, forever=test is None)
+
     def run_loop(
         self,
         plan: tuple[Atom, Atom, Atom, str, Callable[[Var], None]],
@@ -56,19 +117,29 @@ class LoopLowering:
         statements: list[cst.CSTNode],
         node: cst.CSTNode,
         origin: Origin,
+        test: cst.BaseExpression | None = None,
+        forever: bool = False,
     ) -> None:
         """A loop over ``plan`` (see ``iteration``) binding ``names`` each
-        iteration, with ``statements`` as its body."""
+        iteration, with ``statements`` as its body; a while loop while ``test``
+        holds."""
         start, stop, step, index_base, bind = plan
         assigned = _assigned_names(statements)
         for name in names:
             assigned[name] = None
+        flow: set[str] = set()
+        if _contains_return(statements):
+            # a return inside: the result and the flag saying so are carried
+            self.env.setdefault(_RETURNED, FALSE)
+            for k in range(_return_arity(statements)):
+                self.env.setdefault(f"{_RESULT}{k}", Const("0.0", 0.0))
+            flow = {n for n in self.env if n == _RETURNED or n.startswith(_RESULT)}
         before = dict(self.env)
         # a tuple's elements are carried as names of their own
         carried = [
             n
             for n in before
-            if n.split("\0")[0] in assigned
+            if (n in flow or n.split("\0")[0] in assigned)
             and n not in names
             and not isinstance(before[n], (_Unbound, _Tuple))
         ]
@@ -76,7 +147,7 @@ class LoopLowering:
         for n in carried:
             init = before[n]
             shape = init.shape if isinstance(init, Var) else "scalar"
-            headers[n] = self.new_var(display(n), "local", shape)
+            headers[n] = self.new_var(flow_base(n), "local", shape)
             if shape == "list":
                 self.list_root[headers[n]] = self.root_of(init)  # type: ignore[arg-type]
             if self.is_fresh(init):  # type: ignore[arg-type]
@@ -85,7 +156,12 @@ class LoopLowering:
         index_var = self.new_var(index_base, "index")
         self.blocks.append([])
         self.loop_depth += 1
+        self.env[_STOP] = FALSE  # no break yet in this iteration
         bind(index_var)
+        condition: Atom | None = TRUE if forever else None
+        if test is not None:  # computed at the head of every iteration
+            condition = self.condition(test)
+        test_size = len(self.blocks[-1]) if test is not None else 0
         self.sequence(statements)
         self.loop_depth -= 1
         body = self.blocks.pop()
@@ -105,7 +181,7 @@ class LoopLowering:
                     f"update the elements of {n} in place ({n}[i] = ...), with a"
                     " second list made before the loop for the new values",
                 )
-            exit_var = self.new_var(display(n), "local", headers[n].shape)
+            exit_var = self.new_var(flow_base(n), "local", headers[n].shape)
             phis.append(Phi(headers[n], before[n], body_env[n], exit_var))  # type: ignore[arg-type]
             if exit_var.shape == "list":
                 self.list_root[exit_var] = self.root_of(headers[n])
@@ -128,9 +204,29 @@ class LoopLowering:
                     " times)",
                     "assign it before the loop",
                 )
+        flag = body_env.get(_STOP)
+        exit_flag = (
+            None if flag is FALSE or not isinstance(flag, (Var, Const)) else flag
+        )
+        trips = None
+        if condition is not None or exit_flag is not None:
+            # the trip count is known when the loop ends: recorded for the reverse
+            trips = self.new_var("iterations", "temp")
         self.origin = origin
         self.blocks[-1].append(
-            Loop(index_var, start, stop, step, tuple(phis), tuple(body), origin)
+            Loop(
+                index_var,
+                start,
+                stop,
+                step,
+                tuple(phis),
+                tuple(body),
+                origin,
+                condition,
+                test_size,
+                exit_flag,
+                trips,
+            )
         )
 
     # -- what a loop runs over ------------------------------------------------------

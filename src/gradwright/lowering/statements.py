@@ -12,14 +12,23 @@ from gradwright.ir import (
     Phi,
     Var,
 )
-from gradwright.lowering.base import _RESULT, _Reported, _Tuple, _Unbound, display
+from gradwright.lowering.base import (
+    _RESULT,
+    _RETURNED,
+    _STOP,
+    TRUE,
+    _Reported,
+    _Tuple,
+    _Unbound,
+    flow_base,
+)
 from gradwright.lowering.syntax import (
     _STATEMENT_REJECTIONS,
-    _always_returns,
+    _always_leaves,
     _block_statements,
     _else_statements,
     _keyword_span,
-    _may_return,
+    _may_leave,
     _statement_text,
 )
 
@@ -42,24 +51,37 @@ class StatementLowering:
         it runs only on the paths that did not return.
         """
         for position, stmt in enumerate(statements):
-            if isinstance(stmt, cst.If) and _may_return([stmt]):
-                if _always_returns([stmt]) and position + 1 < len(statements):
-                    self.recovering(self.unreachable, statements[position + 1])
+            is_loop = isinstance(stmt, (cst.For, cst.While))
+            if (isinstance(stmt, cst.If) or is_loop) and _may_leave([stmt]):
+                if (
+                    not is_loop
+                    and _always_leaves([stmt])
+                    and position + 1 < len(statements)
+                ):
+                    word = _jump_word(stmt)
+                    self.recovering(self.unreachable, statements[position + 1], word)
                 local = list(statements[position + 1 :])
                 rest = ((local,) if local else ()) + after
-                returned = self.recovering(self.if_statement, stmt, rest, "if")
+                if is_loop:  # a loop with a return in it: the rest runs if it did not
+                    returned = self.recovering(self.loop_statement, stmt, rest)
+                else:
+                    returned = self.recovering(self.if_statement, stmt, rest, "if")
                 return bool(returned) or returned is None
             if isinstance(stmt, cst.If):
                 self.recovering(self.if_statement, stmt, (), "if")
                 continue
-            if isinstance(stmt, cst.For):
-                self.recovering(self.for_statement, stmt)
+            if is_loop:
+                self.recovering(self.loop_statement, stmt, ())
                 continue
             self.set_origin(_statement_text(self.index, stmt))
-            if self.recovering(self.statement, stmt):
+            ended = self.recovering(self.statement, stmt)
+            if ended:
                 if position + 1 < len(statements):
-                    self.recovering(self.unreachable, statements[position + 1])
-                return True
+                    word = _jump_word(stmt)
+                    self.recovering(self.unreachable, statements[position + 1], word)
+                # a jump (break, continue, return in a loop) ends this iteration's
+                # path: what follows in the body does not run on it
+                return ended is True
         return self.sequence(after[0], after[1:]) if after else False
 
     def recovering(self, lower, stmt: cst.CSTNode, *args):  # noqa: ANN001, ANN201
@@ -81,19 +103,26 @@ class StatementLowering:
                 self.env[name] = silent
             return None
 
-    def unreachable(self, stmt: cst.CSTNode) -> None:
+    def unreachable(self, stmt: cst.CSTNode, word: str) -> None:
         fail(
-            "code after the return statement is never run",
+            f"code after the {word} statement is never run",
             self.index.locate(stmt),
-            "remove it, or move the return to the end",
+            f"remove it, or move the {word} to the end",
         )
 
-    def statement(self, stmt: cst.CSTNode) -> bool:
-        """Lower one simple statement; True for a return."""
+    def statement(self, stmt: cst.CSTNode) -> bool | str:
+        """Lower one simple statement; True for a return from the function,
+        ``"jump"`` for one that ends the loop iteration's path (break,
+        continue, return inside a loop)."""
         if isinstance(stmt, cst.Pass):
             return False
         if isinstance(stmt, cst.Return):
             self.return_statement(stmt)
+            if self.loop_depth:
+                # the loop stops and says so; the code after it picks the result
+                self.env[_STOP] = TRUE
+                self.env[_RETURNED] = TRUE
+                return "jump"
             return True
         if isinstance(stmt, cst.Assign):
             self.bind_targets([t.target for t in stmt.targets], stmt.value)
@@ -117,13 +146,9 @@ class StatementLowering:
                 "assign the value to a name, or remove the statement",
             )
         if isinstance(stmt, (cst.Break, cst.Continue)) and self.loop_depth:
-            word = "break" if isinstance(stmt, cst.Break) else "continue"
-            fail(
-                f"{word} is not supported (the reverse sweep needs every loop to run"
-                " its full trip count)",
-                self.index.locate(stmt),
-                "guard the rest of the body with an if instead",
-            )
+            if isinstance(stmt, cst.Break):
+                self.env[_STOP] = TRUE  # the loop ends after this iteration
+            return "jump"
         message, hint = _STATEMENT_REJECTIONS.get(
             type(stmt), (f"{type(stmt).__name__} statements are not supported", None)
         )
@@ -135,13 +160,6 @@ class StatementLowering:
         if value is None:
             fail("return without a value: there is no result", self.index.locate(stmt))
         assert value is not None
-        if self.loop_depth:
-            fail(
-                "return inside a loop is not supported (the loop must run its full"
-                " trip count)",
-                self.index.locate(stmt),
-                "keep the result in a variable and return it after the loop",
-            )
         elements = (
             [el.value for el in value.elements]
             if isinstance(value, cst.Tuple)
@@ -151,6 +169,12 @@ class StatementLowering:
         named = self.tuple_of(value)
         if named is not None:  # `return state`, a name bound to a tuple
             arity = -len(named)
+            if self.loop_depth:
+                fail(
+                    "inside a loop, return the values themselves",
+                    self.index.locate(value),
+                    "write `return a, b` with the tuple's elements",
+                )
         if self.result_arity is not None and arity != self.result_arity:
             fail(
                 "every return must give the same number of values",
@@ -255,9 +279,7 @@ class StatementLowering:
                     f" ({name}[i] = ...) in each branch",
                 )
                 continue
-            target = self.new_var(
-                "value" if is_result else display(name), "local", shape
-            )
+            target = self.new_var(flow_base(name), "local", shape)
             merges.append(Phi(target, a, b))
             if shape == "list":
                 self.list_root[target] = self.root_of(a)  # type: ignore[arg-type]
@@ -265,6 +287,16 @@ class StatementLowering:
                 self.fresh.add(target)
             self.env[name] = target
         return tuple(merges)
+
+
+def _jump_word(stmt: cst.CSTNode) -> str:
+    """``return``, ``break`` or ``continue``: the statement ``stmt`` is."""
+    while isinstance(stmt, cst.If):
+        stmt = _block_statements(stmt.body)[-1]
+    if isinstance(stmt, cst.SimpleStatementLine) and stmt.body:
+        stmt = stmt.body[-1]
+    names = {cst.Return: "return", cst.Break: "break", cst.Continue: "continue"}
+    return names.get(type(stmt), "return")
 
 
 def _bound_anywhere(stmt: cst.CSTNode) -> set[str]:

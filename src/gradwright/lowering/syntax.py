@@ -37,12 +37,6 @@ _AUGMENTED_SYMBOLS: dict[type, str] = {
 
 # Statement kinds we reject, with the message and the hint a user needs.
 _STATEMENT_REJECTIONS: dict[type, tuple[str, str | None]] = {
-    cst.While: (
-        "while-loops are not supported (the trip count must be known when the loop"
-        " starts)",
-        "use `for _ in range(max_iter):` and guard the update with"
-        " `if not_converged:` so the values stop changing once converged",
-    ),
     cst.Try: (
         "try statements are not supported",
         "check inputs before calling the model; the gradient code cannot follow"
@@ -155,30 +149,63 @@ def _else_statements(node: cst.If) -> list[cst.CSTNode]:
     return _block_statements(orelse.body)
 
 
-def _always_returns(statements: list[cst.CSTNode]) -> bool:
+def _always_leaves(statements: list[cst.CSTNode]) -> bool:
+    """Whether every path through the statements returns, breaks or continues."""
     if not statements:
         return False
     last = statements[-1]
-    if isinstance(last, cst.Return):
+    if isinstance(last, (cst.Return, cst.Break, cst.Continue)):
         return True
     if isinstance(last, cst.If):
-        return _always_returns(_block_statements(last.body)) and _always_returns(
+        return _always_leaves(_block_statements(last.body)) and _always_leaves(
             _else_statements(last)
         )
     return False
 
 
-def _may_return(statements: list[cst.CSTNode]) -> bool:
-    """Whether some path through the statements returns (loops cannot)."""
+def _may_leave(statements: list[cst.CSTNode]) -> bool:
+    """Whether some path through the statements returns, or breaks or continues
+    the loop they are in (not one nested in them)."""
+    return _finds(statements, (cst.Return, cst.Break, cst.Continue))
+
+
+def _contains_return(statements: list[cst.CSTNode]) -> bool:
+    """Whether a return appears anywhere in the statements, loops included."""
+    return _finds(statements, (cst.Return,))
+
+
+def _finds(statements: list[cst.CSTNode], jumps: tuple[type, ...]) -> bool:
+    """Whether one of ``jumps`` is in the statements or their ifs; in loops
+    nested in them, only a return (a break there is the inner loop's)."""
     for stmt in statements:
-        if isinstance(stmt, cst.Return):
+        if isinstance(stmt, jumps):
             return True
         if isinstance(stmt, cst.If) and (
-            _may_return(_block_statements(stmt.body))
-            or _may_return(_else_statements(stmt))
+            _finds(_block_statements(stmt.body), jumps)
+            or _finds(_else_statements(stmt), jumps)
+        ):
+            return True
+        if isinstance(stmt, (cst.For, cst.While)) and _finds(
+            _block_statements(stmt.body), (cst.Return,)
         ):
             return True
     return False
+
+
+def _return_arity(statements: list[cst.CSTNode]) -> int:
+    """How many values the first return in the statements gives (loops included)."""
+    for stmt in statements:
+        if isinstance(stmt, cst.Return):
+            value = stmt.value
+            return len(value.elements) if isinstance(value, cst.Tuple) else 1
+        inner: list[cst.CSTNode] = []
+        if isinstance(stmt, cst.If):
+            inner = _block_statements(stmt.body) + _else_statements(stmt)
+        elif isinstance(stmt, (cst.For, cst.While)):
+            inner = _block_statements(stmt.body)
+        if _contains_return(inner):
+            return _return_arity(inner)
+    return 1
 
 
 def _assigned_names(statements: list[cst.CSTNode]) -> dict[str, None]:
@@ -199,6 +226,8 @@ def _assigned_names(statements: list[cst.CSTNode]) -> dict[str, None]:
             names.update(_assigned_names(_else_statements(stmt)))
         elif isinstance(stmt, cst.For):
             targets = [stmt.target]
+            names.update(_assigned_names(_block_statements(stmt.body)))
+        elif isinstance(stmt, cst.While):
             names.update(_assigned_names(_block_statements(stmt.body)))
         for target in targets:
             if isinstance(target, cst.Subscript) and isinstance(target.value, cst.Name):

@@ -83,6 +83,8 @@ def defined_in(statements: Iterable[Stmt]) -> set[Var]:
                 found.add(phi.target)
                 if phi.exit is not None:
                     found.add(phi.exit)
+            if stmt.trips is not None:
+                found.add(stmt.trips)
     return found
 
 

@@ -1,0 +1,242 @@
+"""Loops whose trip count is known only when they end: ``while``, ``break``,
+``continue`` and ``return`` inside ``for`` and ``while`` loops.
+
+What is differentiated is the iterations as run (the stopping tests are piecewise
+constant). For a converged solver that approximates the derivative of the
+solution: each solver below is checked against the solution's own derivative (a
+textbook closed form, or the implicit-function theorem), to a tolerance stated and
+argued beside the check. Early exits are checked against mpmath central
+differences of the model's own text at 50 digits (the exit taken does not change
+within the step). Values are bit-identical to the primal's.
+"""
+
+from __future__ import annotations
+
+import math
+from pathlib import Path
+
+import pytest
+from support import build, mp_function, mp_gradient, rel_err, run_source, same_bits
+
+import gradwright
+
+MODELS = Path(__file__).resolve().parent / "models"
+SOLVERS = (MODELS / "dynamic_loops.py").read_text(encoding="utf-8")
+
+
+def _solver(name: str) -> tuple:
+    return build(SOLVERS, name)[f"{name}_grad"], run_source(SOLVERS)[name]
+
+
+# -- solvers against the derivative of their solution ------------------------------
+#
+# Differentiating the iterations as run gives the derivative of the last iterate,
+# which depends on the iterate before the last step; its distance from the solution
+# (up to about sqrt(tol) for Newton, tol / (1 - contraction) for a fixed point)
+# bounds the error. Measured over the grids below: Kepler 2e-11, square root 2e-11,
+# fixed point 1.2e-13 relative; the checks hold 1e-10, 1e-10 and 1e-12.
+
+
+def test_kepler_newton_against_closed_form():
+    grad, primal = _solver("kepler")
+    for k in range(1, 60):
+        mean = 0.1 * k
+        for ecc in (0.05, 0.3, 0.6, 0.9):
+            E, (mean_bar, ecc_bar, tol_bar) = grad(mean, ecc, 1e-13)
+            assert same_bits(E, primal(mean, ecc, 1e-13))
+            assert abs(E - ecc * math.sin(E) - mean) < 1e-13
+            # closed form (implicit differentiation of E - e sin E = M):
+            # dE/dM = 1 / (1 - e cos E), dE/de = sin E / (1 - e cos E)
+            slope = 1.0 - ecc * math.cos(E)
+            assert rel_err(mean_bar, 1.0 / slope) < 1e-10
+            assert abs(ecc_bar - math.sin(E) / slope) < 1e-10 * abs(1.0 / slope)
+            assert tol_bar == 0.0  # the stopping test is piecewise constant
+
+
+def test_newton_square_root_against_closed_form():
+    grad, primal = _solver("newton_sqrt")
+    for k in range(40):
+        a = 0.01 * 1.3**k
+        x, (a_bar, tol_bar) = grad(a, 1e-12 * a)
+        assert same_bits(x, primal(a, 1e-12 * a))
+        # d sqrt(a) / da = 1 / (2 sqrt(a)) (closed form)
+        assert rel_err(a_bar, 1.0 / (2.0 * math.sqrt(a))) < 1e-10
+        assert tol_bar == 0.0
+
+
+def test_fixed_point_against_implicit_function_theorem():
+    grad, primal = _solver("fixed_point")
+    for k in range(60):
+        p = -1.0 + 0.05 * k
+        x, (p_bar, _) = grad(p, 1e-14)
+        assert same_bits(x, primal(p, 1e-14))
+        # implicit-function theorem for x = g(x, p), g = 0.5 cos x + p:
+        # dx/dp = (dg/dp) / (1 - dg/dx) = 1 / (1 + 0.5 sin x)
+        assert rel_err(p_bar, 1.0 / (1.0 + 0.5 * math.sin(x))) < 1e-12
+
+
+BISECTION = """
+def cube_root(p):
+    lo = 0.0
+    hi = 4.0
+    while hi - lo > 1e-13:
+        mid = 0.5 * (lo + hi)
+        if mid * mid * mid > p:
+            hi = mid
+        else:
+            lo = mid
+    return 0.5 * (lo + hi)
+
+
+def cube_root_polished(p):
+    lo = 0.0
+    hi = 4.0
+    while hi - lo > 1e-13:
+        mid = 0.5 * (lo + hi)
+        if mid * mid * mid > p:
+            hi = mid
+        else:
+            lo = mid
+    x = 0.5 * (lo + hi)
+    return x - (x * x * x - p) / (3.0 * x * x)
+"""
+
+
+def test_bisection_iterates_do_not_depend_on_the_parameter():
+    # README: with a fixed bracket, bisection's iterates are built from constants
+    # and comparisons only, so the derivative of the iterations as run is exactly
+    # 0: the generator says so (an error, not a module returning zeros); one
+    # Newton step at the end gives the root's derivative back
+    with pytest.raises(gradwright.GradwrightError, match="does not depend"):
+        gradwright.generate(BISECTION, ["cube_root"])
+    polished = build(BISECTION, "cube_root_polished")["cube_root_polished_grad"]
+    for p in (0.3, 1.0, 5.0):
+        # d p^(1/3) / dp = 1 / (3 p^(2/3)) (closed form); the bracket is 1e-13
+        # wide, the Newton step's derivative is off by about that much
+        _, (p_bar,) = polished(p)
+        assert rel_err(p_bar, 1.0 / (3.0 * p ** (2.0 / 3.0))) < 1e-11
+
+
+# -- early exits against mpmath central differences --------------------------------
+
+
+def _against_mpmath(source: str, func: str, args: tuple, active: list[int]) -> None:
+    value, grads = build(source, func)[f"{func}_grad"](*args)
+    assert same_bits(value, run_source(source)[func](*args))
+    # reference: mpmath central differences of the model's own text, 50 digits
+    exact = mp_gradient(mp_function(source, func), args, active)
+    for k, reference in zip(active, exact, strict=True):
+        if isinstance(reference, list):
+            for got, ref in zip(grads[k], reference, strict=True):
+                assert rel_err(got, ref) < 1e-13, (func, args, k)
+        else:
+            assert rel_err(grads[k], reference) < 1e-13, (func, args, k)
+
+
+@pytest.mark.parametrize("usage", [5.0, 10.5, 37.5, 79.0, 95.0])
+def test_tariff_break_at_matching_tier(usage):
+    _against_mpmath(SOLVERS, "tariff", (usage, 0.2, 0.1), [0, 1, 2])
+
+
+@pytest.mark.parametrize("a", [0.3, 0.7, 2.0])
+def test_search_with_continue(a):
+    _against_mpmath(SOLVERS, "search", (a, [0.1, 1.0, 2.0, 0.3, 1.5]), [0, 1])
+
+
+@pytest.mark.parametrize("a", [0.1, 0.7])
+def test_return_inside_for(a):
+    _against_mpmath(SOLVERS, "first_over", (a, [0.1, 1.0, 4.0, 0.3]), [0, 1])
+
+
+@pytest.mark.parametrize("a", [0.01, 0.1, 0.5])
+def test_return_inside_while(a):
+    _against_mpmath(SOLVERS, "grow_until", (a, 3.0), [0, 1])
+
+
+NESTED = """
+def nested_return(a, n):
+    s = 0.0
+    for i in range(n):
+        j = 0
+        while j < i:
+            s = s + a * j
+            if s > 5.0:
+                return s * a
+            j = j + 1
+    return s
+
+
+def inner_break(a, xs):
+    total = 0.0
+    for x in xs:
+        y = x
+        while True:
+            y = y * a
+            if y < 0.1:
+                break
+            total = total + y
+    return total
+
+
+def both_jumps(a, b):
+    s = 0.0
+    k = 0
+    while k < 20:
+        k = k + 1
+        if k % 3 == 0:
+            continue
+        s = s + a * s + b
+        if s > 40.0:
+            break
+        for m in range(3):
+            if m == k % 2:
+                continue
+            s = s * (1.0 + 0.01 * a)
+    return s
+
+
+def tuple_result(a):
+    x = a
+    for k in range(10):
+        x = x * 1.5
+        if x > 4.0:
+            return x, x * a
+    return a, x
+"""
+
+
+@pytest.mark.parametrize(
+    "func, args, active",
+    [
+        ("nested_return", (0.7, 6), [0]),
+        ("nested_return", (0.1, 6), [0]),
+        ("inner_break", (0.5, [1.0, 2.0, 0.05]), [0, 1]),
+        ("both_jumps", (0.3, 1.2), [0, 1]),
+        ("both_jumps", (0.05, 0.5), [0, 1]),
+    ],
+)
+def test_nested_loops_with_jumps(func, args, active):
+    _against_mpmath(NESTED, func, args, active)
+
+
+def test_return_of_a_tuple_inside_a_loop():
+    ns = build(NESTED, "tuple_result")
+    f_mp = mp_function(NESTED, "tuple_result")
+    for a in (0.5, 1.0):
+        primal = ns["tuple_result"](a)
+        jacobian = ns["tuple_result_jacobian"](a)
+        for i in range(2):
+            # reference: mpmath central differences of each output, 50 digits
+            (exact,) = mp_gradient(lambda x, i=i, f=f_mp: f(x)[i], (a,), [0])
+            assert rel_err(jacobian[1][i][0], exact) < 1e-13
+        assert jacobian[0] == primal
+
+
+def test_loops_stay_loops():
+    text = gradwright.generate(SOLVERS, ["newton_sqrt", "tariff"])
+    # the forward sweep runs the source's loop and counts its iterations; the
+    # reverse sweep runs that many, as a loop
+    assert "    while abs(x * x - a) > tol:\n" in text
+    assert "        x_saved.append(x)\n" in text
+    assert "for k in reversed(range(iterations)):" in text
+    assert "for tier in reversed(range(iterations" in text
