@@ -774,6 +774,12 @@ def idiom_statement(draw, sc: Scope, kind: str, tuple_out: int) -> list:
         var = inner.new_name("v")
         inner.floats.append(var)
         term = draw(num(inner, 2))
+        if draw(st.integers(0, 2)) == 0:  # a list of the terms, read later
+            name = sc.new_name("xsc")
+            length = sc.lists[seq] if seq in sc.lists else 2
+            form = f"[{{0}} for {var} in {seq}]"
+            sc.lists[name] = length
+            return [Assign([name], [Ex(form, (term,), tag="list_comprehension")])]
         name = sc.new_name("s")
         if draw(st.booleans()):
             form = f"sum({{0}} for {var} in {seq})"
