@@ -422,3 +422,50 @@ def test_module_tables_under_micropython() -> None:
     expected = run_source(text)["line_loss_grad"](slope, intercept)
     assert rel_err(value, expected[0]) < 1e-15
     assert abs(g_slope) < 1e-12 and abs(g_intercept) < 1e-12
+
+
+UNPACKED = """
+import math
+
+LINKS = (0.35, 0.25)
+SAMPLES = [(0.0, 1.0), (0.5, 0.8), (1.5, 0.45)]
+
+
+def arm_cost(q1, q2):
+    l1, l2 = LINKS
+    x = l1 * math.cos(q1) + l2 * math.cos(q1 + q2)
+    y = l1 * math.sin(q1) + l2 * math.sin(q1 + q2)
+    return (x - 0.4) ** 2 + (y - 0.2) ** 2
+
+
+def decay_loss(k):
+    loss = 0.0
+    for i in range(len(SAMPLES)):
+        t, c = SAMPLES[i]
+        loss += (math.exp(-k * t) - c) ** 2
+    return loss
+"""
+
+
+def test_unpacking_module_tuples_and_rows() -> None:
+    module = {**build(UNPACKED, "arm_cost"), **build(UNPACKED, "decay_loss")}
+    primal = run_source(UNPACKED)
+    q1, q2 = 0.6, -0.4
+    value, (g1, g2) = module["arm_cost_grad"](q1, q2)
+    assert value == primal["arm_cost"](q1, q2)
+    # two-link planar arm: the textbook Jacobian of (x, y) in (q1, q2)
+    l1, l2 = 0.35, 0.25
+    x = l1 * math.cos(q1) + l2 * math.cos(q1 + q2)
+    y = l1 * math.sin(q1) + l2 * math.sin(q1 + q2)
+    jx = (-l1 * math.sin(q1) - l2 * math.sin(q1 + q2), -l2 * math.sin(q1 + q2))
+    jy = (l1 * math.cos(q1) + l2 * math.cos(q1 + q2), l2 * math.cos(q1 + q2))
+    for g, k in ((g1, 0), (g2, 1)):
+        assert rel_err(g, 2 * (x - 0.4) * jx[k] + 2 * (y - 0.2) * jy[k]) < 1e-14
+    value, (k_bar,) = module["decay_loss_grad"](0.7)
+    assert value == primal["decay_loss"](0.7)
+    samples = [(0.0, 1.0), (0.5, 0.8), (1.5, 0.45)]
+    # d/dk sum (exp(-k t) - c)^2 = sum -2 t exp(-k t) (exp(-k t) - c), by hand
+    want = sum(
+        -2 * t * math.exp(-0.7 * t) * (math.exp(-0.7 * t) - c) for t, c in samples
+    )
+    assert rel_err(k_bar, want) < 1e-14

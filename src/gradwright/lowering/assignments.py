@@ -42,6 +42,9 @@ class AssignmentLowering:
                 if len(targets) == 1 and self.tuple_of(value) is not None:
                     self.unpack_tuple(first, names, value)
                     return
+                if len(targets) == 1 and self.data_root(value) is not None:
+                    self.unpack_data(names, value)
+                    return
                 self.unpack_list(first, names, value)
                 return
             assert isinstance(value, (cst.Tuple, cst.List))
@@ -156,6 +159,28 @@ class AssignmentLowering:
                 fail("unpack into plain names", self.index.locate(name))
             assert isinstance(name, cst.Name)
             self.env[name.value] = atom
+
+    def unpack_data(
+        self, names: list[cst.BaseExpression], value: cst.BaseExpression
+    ) -> None:
+        """``l1, l2 = LINKS``, ``t, c = SAMPLES[i]``: module-level data, element by
+        element (inactive constants; a length that does not match fails at run time
+        as it does in the model)."""
+        head = self.data(value, "row")
+        for k, name in enumerate(names):
+            if not isinstance(name, cst.Name):
+                fail("unpack into plain names", self.index.locate(name))
+            assert isinstance(name, cst.Name)
+            if isinstance(head, Const):
+                self.env[name.value] = Const(f"{head.text}[{k}]", None)
+            else:
+                item = self.emit(
+                    "dataitem",
+                    (head, Const(str(k), k)),
+                    self.new_var(name.value, "temp"),
+                )
+                self.fresh.discard(item)
+                self.env[name.value] = item
 
     def unpack_list(
         self,
