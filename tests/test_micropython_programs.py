@@ -59,6 +59,13 @@ CALLS = {
         ("grow_until_grad", (0.1, 3.0)),
         ("grow_until_grad", (0.01, 3.0)),
     ],
+    "idioms.py": [
+        ("decay_fit_grad", (0.9, 1.05)),
+        ("weighted_grad", (0.7, [0.3, -1.2, 2.0])),
+        ("filtered_grad", (0.8, [0.5, -1.0, 2.5])),
+        ("filtered_grad", (0.8, [-0.5, -1.0])),
+        ("state_step_grad", (0.4, -0.2, 0.1)),
+    ],
     "programs_b.py": [
         ("lj_grad", ([0.0, 1.1, 0.3], [0.0, 0.2, 1.2])),
         ("smooth_grad", ([1.0, 2.0, 4.0], 0.3)),
