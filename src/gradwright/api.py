@@ -14,7 +14,7 @@ from gradwright.calculus.rules import ELEMENTWISE_OPS
 from gradwright.diagnostics import GradwrightError, fail, file_location
 from gradwright.emission.module import Compiled, HelperRole, render_module
 from gradwright.emission.targets import DEFAULT_TARGET, get_target
-from gradwright.header import regeneration_command, stamp
+from gradwright.header import regeneration_command, shape_words, stamp
 from gradwright.ir import Expr, SSAFunction, Var, const
 from gradwright.lowering.frontend import (
     CheckedFunction,
@@ -23,6 +23,8 @@ from gradwright.lowering.frontend import (
     parse_module,
 )
 from gradwright.lowering.ssa import lower
+from gradwright.sweeps.broadcasting import Fitter
+from gradwright.sweeps.inplace import plan_in_place
 from gradwright.sweeps.optimize import inline_adjoints, reuse_forward_values
 from gradwright.sweeps.reverse import (
     active_values,
@@ -31,6 +33,7 @@ from gradwright.sweeps.reverse import (
     reverse_sweep,
     walk_lets,
 )
+from gradwright.sweeps.shapes import Dim, ShapeTable, with_sizes
 
 
 def compile_function(
@@ -53,12 +56,18 @@ def _differentiate(
     ssa: SSAFunction,
     role: HelperRole,
     adjoint_helpers: Mapping[str, tuple[Var, ...]] | None = None,
+    shapes: Mapping[str, tuple[Dim, ...]] | None = None,
 ) -> Compiled:
     """The reverse sweep of a lowered function: a target (seeded with 1, or one
     seed per output), a helper in partials form (its partials, at the broadcast
     shape of its result: each call site sums them back to its operands' shapes)
-    or a helper's adjoint function (seeded with its result's adjoint)."""
+    or a helper's adjoint function (seeded with its result's adjoint). ``shapes``:
+    a target's declared array shapes."""
     name = checked.name
+    declared = {p: dims for p, dims in (shapes or {}).items() if p in checked.params}
+    ssa, sizes = with_sizes(
+        ssa, declared, set(checked.params) | ssa.local_names | index.module_names
+    )
     seeds: tuple[Expr, ...] = (const(1.0),)
     first = 1 + max(_uids(ssa))
     if ssa.result.is_tuple:
@@ -68,7 +77,13 @@ def _differentiate(
     elif role == "adjoint":
         seeds = (Var(first, "seed", "param"),)
     broadcasting = bool(index.numpy_modules) and role != "partials"
-    sweep = reverse_sweep(ssa, checked.wrt, seeds, broadcasting, adjoint_helpers)
+    fitter = None
+    if broadcasting:
+        table = ShapeTable(ssa.params, ssa.body, declared, index.constants)
+        fitter = Fitter(table, sizes)
+    sweep = reverse_sweep(
+        ssa, checked.wrt, seeds, broadcasting, adjoint_helpers, fitter
+    )
     if len(sweep.unused_wrt) == len(sweep.wrt) and role == "target":
         fail(
             f"the result of '{name}' does not depend differentiably on "
@@ -79,11 +94,16 @@ def _differentiate(
         )
     active = frozenset(active_values(ssa, checked.wrt))
     sweep = reuse_forward_values(inline_adjoints(sweep), ssa)
-    return Compiled(checked, ssa, sweep, active, role)
+    if fitter is not None:
+        sweep = plan_in_place(sweep, fitter)
+    return Compiled(checked, ssa, sweep, active, role, declared)
 
 
 def compile_with_callees(
-    index: ModuleIndex, names: Sequence[str], wrt: tuple[str, ...] | None
+    index: ModuleIndex,
+    names: Sequence[str],
+    wrt: tuple[str, ...] | None,
+    shapes: Mapping[str, tuple[Dim, ...]] | None = None,
 ) -> list[Compiled]:
     """The targets, then every function they call (each once), differentiated in
     all their parameters so any call site can use the adjoints it needs.
@@ -117,7 +137,7 @@ def compile_with_callees(
         if form == "adjoint"
     }
     compiled = [
-        _differentiate(index, checked, ssa, "target", adjoint_helpers)
+        _differentiate(index, checked, ssa, "target", adjoint_helpers, shapes)
         for checked, ssa in lowered.values()
     ]
     for name, (checked, ssa) in helpers.items():
@@ -251,6 +271,7 @@ def generate(
     path: str = "<string>",
     output: str | None = None,
     target: str = DEFAULT_TARGET,
+    shapes: Mapping[str, Sequence[int | str]] | None = None,
 ) -> str:
     """Generate the gradient module for ``functions`` of the model ``source``.
 
@@ -258,7 +279,10 @@ def generate(
     each function's parameters). ``path`` and ``output`` only label the header.
     ``target`` is the interpreter the module must run on: ``"cpython"`` (default)
     or ``"micropython"`` (stand-ins for the ``math`` functions MicroPython lacks);
-    another name raises ValueError.
+    another name raises ValueError. ``shapes`` declares array parameters' shapes
+    (``{"X": ("n", 5), "b": ()}``: a name stands for a size that must agree
+    wherever it appears); the gradient is written for them and checks them when
+    called.
     Raises :class:`gradwright.GradwrightError` for input it cannot differentiate.
     The source is parsed, never executed.
     """
@@ -285,8 +309,11 @@ def generate(
                 "write the model over lists for the board, or generate for cpython",
             )
         wanted = tuple(wrt) if wrt is not None else None
-        compiled = compile_with_callees(index, functions, wanted)
-        command = regeneration_command(path, functions, wrt, output, target)
+        declared = _declared_shapes(index, functions, shapes)
+        compiled = compile_with_callees(index, functions, wanted, declared)
+        command = regeneration_command(
+            path, functions, wrt, output, target, shape_words(declared)
+        )
         # the digest line lets --check see an untouched output without generating
         return stamp(render_module(index, compiled, command, runtime))
 
@@ -299,6 +326,43 @@ def generate(
                 "split the long expression into several statements (CPython itself"
                 " stops compiling near 3,000 terms in one sum)",
             ) from None
+
+
+def _declared_shapes(
+    index: ModuleIndex,
+    functions: Sequence[str],
+    shapes: Mapping[str, Sequence[int | str]] | None,
+) -> dict[str, tuple[Dim, ...]]:
+    if not shapes:
+        return {}
+    if not index.numpy_modules:
+        raise GradwrightError.usage(
+            "shapes are declared for array parameters, and this model does not"
+            " import numpy"
+        )
+    params = {
+        p.name.value
+        for name in functions
+        if name in index.functions
+        for p in index.functions[name].params.params
+    }
+    declared: dict[str, tuple[Dim, ...]] = {}
+    for name, dims in shapes.items():
+        if name not in params:
+            raise GradwrightError.usage(
+                f"a shape is declared for '{name}', which is no parameter of "
+                + ", ".join(functions)
+            )
+        for d in dims:
+            valid = (isinstance(d, int) and d >= 0) or (
+                isinstance(d, str) and d.isidentifier()
+            )
+            if not valid or isinstance(d, bool):
+                raise GradwrightError.usage(
+                    f"the shape of '{name}': {d!r} is neither a size nor a name"
+                )
+        declared[name] = tuple(dims)
+    return dict(sorted(declared.items()))
 
 
 #: generation recurses over expression trees as deep as the source's; a one-line

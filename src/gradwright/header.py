@@ -12,7 +12,7 @@ from __future__ import annotations
 import hashlib
 import re
 import shlex
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 
 #: line 1 of every file gradwright writes
@@ -29,16 +29,27 @@ def regeneration_command(
     wrt: Sequence[str] | None,
     output: str | None,
     target: str = "cpython",
+    shapes: Sequence[str] = (),
 ) -> str:
     """The canonical command line that regenerates a module (for its header)."""
     words = ["gradwright", "gen", path, *functions]
     if wrt is not None:
         words += ["--wrt", ",".join(wrt)]
+    for shape in shapes:
+        words += ["--shape", shape]
     if output is not None:
         words += ["-o", output]
     if target != "cpython":
         words += ["--target", target]
     return shlex.join(words)
+
+
+def shape_words(shapes: Mapping[str, Sequence[int | str]]) -> list[str]:
+    """Declared shapes as ``gen --shape`` writes them: ``X=n,5``, ``b=()``."""
+    return [
+        f"{name}={','.join(map(str, dims)) if dims else '()'}"
+        for name, dims in shapes.items()
+    ]
 
 
 def sha256_text(text: str) -> str:

@@ -256,6 +256,10 @@ class ReverseSweep:
     seeds: tuple[Var, ...] = ()
     #: (carried adjoint, loop value at iteration start) for each loop-carried value
     carries: tuple[tuple[Var, Var], ...] = ()
+    #: array adjoints no other name shares: accumulated in place (``+=``)
+    in_place: frozenset[Var] = frozenset()
+    #: wrt adjoints returned as they are (a new array of the parameter's shape)
+    bare: frozenset[Var] = frozenset()
 
 
 def walk(expr: Expr) -> Iterator[Expr]:

@@ -61,6 +61,27 @@ BROADCASTING = frozenset(
 )
 
 HELPERS: dict[str, str] = {
+    "_gw_check_shapes": '''def _gw_check_shapes(declared, *values):
+    """Refuse arguments of other shapes than those the gradient was written for
+    (gen --shape NAME=DIMS, one per word); a name stands for one size wherever it
+    appears."""
+    sizes = {}
+    for word, value in zip(declared.split(), values, strict=True):
+        name, _, text = word.partition("=")
+        dims = [int(d) if d.isdigit() else d for d in text.strip("()").split(",") if d]
+        shape = np.shape(value)
+        fits = len(shape) == len(dims) and all(
+            sizes.setdefault(d, s) == s if isinstance(d, str) else d == s
+            for d, s in zip(dims, shape, strict=True)
+        )
+        if not fits:
+            wanted = tuple(sizes.get(d, d) for d in dims)
+            raise ValueError(
+                f"{name} has shape {shape}, but this gradient was generated for"
+                f" shape {wanted} (gen --shape {name}=...): generate it again"
+                " for these shapes"
+            )
+''',
     "_gw_unbroadcast": '''def _gw_unbroadcast(g, x):
     """g summed over the axes along which x was broadcast to g's shape."""
     shape = np.shape(x)

@@ -25,6 +25,7 @@ Syntax = Literal[
     "index",
     "scatter",
     "listcall",
+    "tuple",
 ]
 
 # Python's binding strengths, loosest first; only their order matters.
@@ -165,9 +166,11 @@ _SPECS += [
             "_gw_unbroadcast _gw_unreduce _gw_unmean _gw_unextreme _gw_unprod"
             " _gw_matmul_left"
             " _gw_matmul_right _gw_part _gw_shaped np.reshape np.shape np.take"
-            " np.zeros_like"
+            " np.zeros_like np.broadcast_to np.expand_dims"
         ).split()
     ),
+    # a shape written out, (n, 5), for np.broadcast_to in the reverse sweep
+    OpSpec("shape_tuple", "tuple", "", PREC_ATOM, 0, None),
 ]
 
 OPS: dict[str, OpSpec] = {spec.name: spec for spec in _SPECS}

@@ -9,7 +9,8 @@ from __future__ import annotations
 
 import dataclasses
 import hashlib
-from dataclasses import dataclass
+from collections.abc import Mapping
+from dataclasses import dataclass, field
 from functools import lru_cache
 from importlib import resources
 from pathlib import Path
@@ -36,8 +37,10 @@ from gradwright.emission.targets import (
     importable,
     prepare_primal,
 )
+from gradwright.header import shape_words
 from gradwright.ir import ReverseSweep, SSAFunction, Var
 from gradwright.lowering.frontend import CheckedFunction, ModuleIndex
+from gradwright.sweeps.shapes import SHAPES_DECLARED
 
 
 @dataclass(frozen=True)
@@ -82,6 +85,8 @@ class Compiled:
     reverse: ReverseSweep
     active: frozenset[Var]
     role: HelperRole = "target"
+    #: array parameters' shapes declared with ``--shape`` (checked when called)
+    declared: Mapping[str, tuple[int | str, ...]] = field(default_factory=dict)
 
 
 def _template_dir() -> Path:
@@ -221,6 +226,10 @@ def render_function(
         )
     namer, seed_name, printer, reverse_printer, laid_out = attempt
     forward, reverse, result_exprs = laid_out
+    if compiled.declared:
+        check = _shape_check(ssa, compiled.declared)
+        # first of all, before any size is read
+        forward = [f"    # {SHAPES_DECLARED}", check, *forward]
     seed_unpack = ""
     if is_vector:
         names = [namer.name(seed) for seed in sweep.seeds]
@@ -236,14 +245,17 @@ def render_function(
     bars = tuple(namer.bar_name(v) for v in sweep.wrt)
     returned = bars
     numpy_helpers = set(printer.helpers_used)
+    if compiled.declared:
+        numpy_helpers.add("_gw_check_shapes")
     if reverse_printer is not None:
         numpy_helpers |= reverse_printer.helpers_used
         # an adjoint that stayed a plain zero still comes back with its value's shape
         returned = tuple(
-            f"_gw_shaped({bar}, {namer.name(v)})"
+            bar if v in sweep.bare else f"_gw_shaped({bar}, {namer.name(v)})"
             for bar, v in zip(bars, sweep.wrt, strict=True)
         )
-        numpy_helpers.add("_gw_shaped")
+        if any(v not in sweep.bare for v in sweep.wrt):
+            numpy_helpers.add("_gw_shaped")
     result = f"{value}, ({', '.join(returned)}{',' if len(bars) == 1 else ''})"
     if is_adjoint:
         result = f"({returned[0]},)" if len(bars) == 1 else ", ".join(returned)
@@ -294,6 +306,15 @@ def render_function(
         numpy_helpers=frozenset(numpy_helpers),
     )
     return rendered, printer.modules_used
+
+
+def _shape_check(
+    ssa: SSAFunction, declared: Mapping[str, tuple[int | str, ...]]
+) -> str:
+    """The call that refuses arguments of other shapes than the declared ones."""
+    names = [p.base for p in ssa.params if p.base in declared]
+    spec = " ".join(shape_words({name: declared[name] for name in names}))
+    return format_statement(f'_gw_check_shapes("{spec}", {", ".join(names)})', 1)
 
 
 def render_module(

@@ -428,7 +428,11 @@ class _Emitter:
                 operator = "+=" if stmt.accumulate else "="
                 bar = self.namer.bar_name(stmt.var)
                 expr = self.layout.cheap(stmt.expr)
-                if stmt.accumulate and self.layout.numpy:
+                if (
+                    stmt.accumulate
+                    and self.layout.numpy
+                    and stmt.var not in self.layout.sweep.in_place
+                ):
                     # arrays: a new sum, never an in-place add into a shared array
                     operator, expr = "=", Apply("add", (Bar(stmt.var), expr))
                 value = self.rprint(expr)

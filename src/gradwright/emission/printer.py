@@ -99,6 +99,9 @@ class Printer:
             return f"{self._print(container)}[{self._print(index)}]"
         if spec.syntax == "list":
             return f"[{', '.join(self._print(a) for a in args)}]"
+        if spec.syntax == "tuple":
+            items = ", ".join(self._print(a) for a in args)
+            return f"({items}{',' if len(args) == 1 else ''})"
         if spec.syntax == "repeat":
             fill, count = args
             parens = self.precedence(count) <= spec.precedence

@@ -22,6 +22,7 @@ from collections.abc import Iterable, Mapping
 from gradwright.calculus.algebra import E, is_zero, simplify
 from gradwright.calculus.numpy_rules import BROADCASTING
 from gradwright.calculus.rules import RULES
+from gradwright.sweeps.broadcasting import SMALL_OK, Fitter
 from gradwright.ir import (
     AdjointAssign,
     Apply,
@@ -189,9 +190,12 @@ class _Reverse:
         active: set[Var],
         numpy: bool = False,
         adjoint_helpers: Mapping[str, tuple[Var, ...]] | None = None,
+        fitter: Fitter | None = None,
     ) -> None:
         self.active = active
         self.numpy = numpy
+        #: shapes known at generation time (NumPy models): explicit sums, no helper
+        self.fitter = fitter
         #: helpers reversed by their adjoint function, with their parameters
         self.adjoint_helpers = adjoint_helpers or {}
         self.has: set[Var] = set()
@@ -253,6 +257,8 @@ class _Reverse:
         expr = simplify(expr)
         if is_zero(expr):
             return
+        if self.fitter is not None:
+            self.fitter.record(var, expr, var in self.has)
         out.append(AdjointAssign(var, expr, var in self.has, origin))
         self.has.add(var)
 
@@ -285,7 +291,9 @@ class _Reverse:
             out.append(SpreadAdjoint(self.root[args[0]], g, origin))  # type: ignore[index]
             return
         if op.startswith("call:") and op[5:] in self.adjoint_helpers:
-            self.call_adjoint(let, g, out)
+            # the helper's reverse reads its seed as a whole array
+            full = self.fitter.full(g, target) if self.fitter is not None else g
+            self.call_adjoint(let, full, out)
             return
         if op.startswith("call:"):
             for k, arg in enumerate(args):
@@ -293,29 +301,46 @@ class _Reverse:
                 total: Expr = Apply("mul", (g, partial))
                 if self.numpy and any(isinstance(a, Var) for a in args if a != arg):
                     # an elementwise helper broadcasts its operands like `+`
-                    total = Apply("_gw_unbroadcast", (total, arg))
+                    total = self.unbroadcast(total, arg, target)
                 self.contribute(arg, total, origin, out)
             return
-        parts = RULES[op](E(g), E(target), *(E(a) for a in args))
+        parts = self.parts(op, g, target, args)
         grouped: dict[Var, Expr] = {}
         for arg, part in zip(args, parts, strict=False):
             if part is None or not (isinstance(arg, Var) and arg in self.active):
                 continue
             previous = grouped.get(arg)
-            grouped[arg] = (
-                part.node if previous is None else Apply("add", (previous, part.node))
-            )
+            grouped[arg] = part if previous is None else Apply("add", (previous, part))
         for var, total in grouped.items():
             others = [a for a in args if a != var]
             if (
                 self.numpy
                 and op in BROADCASTING
-                and any(isinstance(a, Var) for a in others)
+                and (self.fitter is not None or any(isinstance(a, Var) for a in others))
             ):
                 # an operand broadcast against a larger one gets its adjoint summed
                 # (against constants only, it has the result's shape already)
-                total = Apply("_gw_unbroadcast", (total, var))
+                total = self.unbroadcast(total, var, target)
             self.contribute(var, total, origin, out)
+
+    def parts(
+        self, op: str, g: Expr, target: Var, args: tuple[Atom, ...]
+    ) -> tuple[Expr | None, ...]:
+        """One contribution per argument: from shapes known at generation time
+        where that writes it out, else from the rule table."""
+        if self.fitter is not None:
+            known = self.fitter.rule(op, g, args)
+            if known is not None:
+                return known
+            if op not in SMALL_OK:
+                g = self.fitter.full(g, target)
+        parts = RULES[op](E(g), E(target), *(E(a) for a in args))
+        return tuple(None if p is None else p.node for p in parts)
+
+    def unbroadcast(self, total: Expr, var: Atom, result: Var) -> Expr:
+        if self.fitter is not None and isinstance(var, Var):
+            return self.fitter.fit(total, var, result)
+        return Apply("_gw_unbroadcast", (total, var))
 
     def call_adjoint(self, let: Let, seed: Expr, out: list[ReverseStmt]) -> None:
         """``NAME_adjoint(args, seed)`` gives every parameter's adjoint; each
@@ -371,9 +396,14 @@ class _Reverse:
 
     def branch(self, branch: Branch, out: list[ReverseStmt]) -> None:
         before = set(self.has)
+        fitter = self.fitter
+        state = fitter.snapshot() if fitter is not None else {}
+        states = []
         sides: list[tuple[list[ReverseStmt], set[Var]]] = []
         for side, block in ((0, branch.then), (1, branch.orelse)):
             self.has = set(before)
+            if fitter is not None:
+                fitter.restore(state)
             side_out: list[ReverseStmt] = []
             for phi in branch.merges:
                 if phi.target in before and phi.target.shape == "scalar":
@@ -381,17 +411,21 @@ class _Reverse:
                     self.contribute(source, Bar(phi.target), branch.origin, side_out)
             side_out += self.block(block)
             sides.append((side_out, self.has))
+            states.append(fitter.snapshot() if fitter is not None else {})
         (then_out, then_has), (else_out, else_has) = sides
         # values from before the branch that gained adjoint on one side only get a
         # zero on the other; values made inside a side are done with there
         inside = defined_in(branch.then) | defined_in(branch.orelse)
         gained = sorted((then_has | else_has) - before - inside)
         for var in gained:
-            for side_out, side_has in sides:
+            for (side_out, side_has), side_state in zip(sides, states, strict=True):
                 if var not in side_has:
                     side_out.append(
                         AdjointAssign(var, const(0.0), False, branch.origin)
                     )
+                    side_state[var] = ()
+        if fitter is not None:
+            fitter.merge(*states)
         self.has = before | set(gained)
         if then_out or else_out:
             out.append(
@@ -443,11 +477,14 @@ class _Reverse:
             if phi.target.shape == "scalar" and phi.target in self.active
         ]
         carries = {phi: self.new_carry(phi) for phi in scalar_phis}
+        fitter = self.fitter
         for phi, carry in carries.items():
             assert phi.exit is not None
             value: Expr = Bar(phi.exit) if phi.exit in self.has else const(0.0)
             out.append(AdjointAssign(carry, value, False, loop.origin))
             self.has.add(carry)
+            if fitter is not None:  # it changes from one iteration to the next
+                fitter.forget(carry)
         inside = defined_in(loop.body) | {phi.target for phi in loop.carried}
         if self.dry:  # only which values gain adjoint matters here
             self.loop_body(loop, carries)
@@ -460,9 +497,12 @@ class _Reverse:
         # inside it run once in it, so the cost stays quadratic in the nesting)
         before = set(self.has)
         saved_uid = self.next_uid
+        state = fitter.snapshot() if fitter is not None else {}
         self.dry = True
         self.loop_body(loop, carries)
         self.dry = False
+        if fitter is not None:
+            fitter.restore(state)
         outer = sorted(
             v for v in self.has - before if v not in inside and v not in self.carries
         )
@@ -471,6 +511,9 @@ class _Reverse:
             out.append(AdjointAssign(var, const(0.0), False, loop.origin))
             self.has.add(var)
         body_out = self.loop_body(loop, carries)
+        if fitter is not None:  # what a loop adds depends on its trip count
+            for var in [*outer, *carries.values()]:
+                fitter.forget(var)
         self.has = {v for v in self.has if v not in inside}
         out.append(ReverseLoop(loop, tuple(body_out), loop.origin))
         for phi, carry in carries.items():
@@ -492,15 +535,19 @@ def reverse_sweep(
     seeds: tuple[Expr, ...],
     numpy: bool = False,
     adjoint_helpers: Mapping[str, tuple[Var, ...]] | None = None,
+    fitter: Fitter | None = None,
 ) -> ReverseSweep:
     """Adjoint statements for ``sum(seed_i * d result_i)``, in reverse order.
 
     ``numpy``: the model works on arrays, so broadcasting operands get their
     adjoints summed back to their own shapes. ``adjoint_helpers``: the helpers
     whose calls are reversed by their adjoint function (the rest by partials).
-    A list result's seed is a list, added into the result's adjoint list."""
+    A list result's seed is a list, added into the result's adjoint list.
+    ``fitter``: the shapes known at generation time, for a NumPy model."""
     active = active_values(function, wrt)
-    reverse = _Reverse(function, active, numpy, adjoint_helpers)
+    reverse = _Reverse(
+        function, active, numpy, adjoint_helpers, fitter if numpy else None
+    )
     out: list[ReverseStmt] = []
     result = function.result
     for atom, seed in zip(result.values, seeds, strict=True):

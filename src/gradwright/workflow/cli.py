@@ -42,6 +42,7 @@ from gradwright.workflow.points import (
     choose_points,
     describe_kinds,
     parse_at,
+    parse_declared_shapes,
     parse_lengths,
     parse_ranges,
     parse_scales,
@@ -160,6 +161,16 @@ def _parser() -> argparse.ArgumentParser:
         default=[],
         help="with --emit-test: where test points are drawn for a parameter"
         " (default 0.5:1.5); repeat or separate with commas",
+    )
+    gen.add_argument(
+        "--shape",
+        metavar="NAME=DIMS",
+        action="append",
+        default=[],
+        help="an array parameter's shape, e.g. X=n,5 (a name stands for one size"
+        " wherever it appears; () for a number): the gradient is written for these"
+        " shapes (no run-time broadcasting helpers) and refuses others when called;"
+        " one parameter per --shape",
     )
     _add_write_options(gen)
 
@@ -316,6 +327,7 @@ def _gen(args: argparse.Namespace) -> int:
         target=args.target,
         emit_test=args.emit_test,
         ranges=parse_ranges(args.range),
+        shapes=parse_declared_shapes(args.shape),
     )
     report = _Report(args.quiet)
     if _current(job, args.diff or args.force):

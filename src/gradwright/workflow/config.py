@@ -9,6 +9,7 @@ wrt = ["a", "b", "c"]                  # optional (default: every parameter)
 target = "cpython"                     # optional: "cpython" or "micropython"
 emit-test = "tests/test_thermistor_grad.py"   # optional
 ranges = { a = [0.5, 2.0] }            # optional: where emitted tests sample
+shapes = { X = "n,5", y = "n" }        # optional: declared array shapes (gen --shape)
 ```
 
 The keys are the ``gen`` options by their long names. Paths are relative to the
@@ -26,11 +27,11 @@ import math
 import os
 import re
 from collections.abc import Mapping
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path, PurePosixPath
 
 from gradwright.diagnostics import GradwrightError, Location, fail, file_location
-from gradwright.workflow.points import Range
+from gradwright.workflow.points import Range, parse_dims
 
 TYPE_CHECKING = False  # typing is not imported at run time: start-up cost
 if TYPE_CHECKING:
@@ -45,7 +46,16 @@ except ModuleNotFoundError:  # Python 3.10
         tomllib = None  # type: ignore[assignment]
 
 PLATFORMS = ("cpython", "micropython")
-TARGET_KEYS = ("source", "functions", "output", "wrt", "target", "emit-test", "ranges")
+TARGET_KEYS = (
+    "source",
+    "functions",
+    "output",
+    "wrt",
+    "target",
+    "emit-test",
+    "ranges",
+    "shapes",
+)
 TABLE_KEYS = ("targets",)
 _EXAMPLE = (
     '[[tool.gradwright.targets]] with source = "model.py", functions = ["loss"],'
@@ -66,6 +76,8 @@ class Target:
     emit_test: str | None
     ranges: Mapping[str, Range]
     ranges_location: Location
+    #: declared array shapes: name -> sizes (numbers, or names for one size)
+    shapes: Mapping[str, tuple[int | str, ...]] = field(default_factory=dict)
 
 
 @dataclass(frozen=True)
@@ -234,6 +246,7 @@ class _Reader:
                 f"must be one of {', '.join(map(repr, PLATFORMS))}, not {platform!r}",
             )
         ranges = self.ranges(index, entry.get("ranges", {}))
+        shapes = self.shapes(index, entry.get("shapes", {}))
         return Target(
             key=where,
             source=source,
@@ -244,6 +257,7 @@ class _Reader:
             emit_test=emit_test,
             ranges=ranges,
             ranges_location=self.finder.locate(index, "ranges"),
+            shapes=shapes,
         )
 
     def path(self, index: int, key: str, value: Any) -> str:
@@ -286,6 +300,24 @@ class _Reader:
         if len(set(value)) != len(value):
             self.error(index, key, "lists a name twice")
         return tuple(value)
+
+    def shapes(self, index: int, value: Any) -> dict[str, tuple[int | str, ...]]:
+        """``shapes = { X = "n,5", w = [5], b = [] }``: as ``gen --shape``."""
+        if not isinstance(value, dict):
+            self.error(index, "shapes", 'must be a table of NAME = "n,5" or [n, 5]')
+        shapes: dict[str, tuple[int | str, ...]] = {}
+        for name, dims in value.items():
+            if not name.isidentifier():
+                self.error(index, "shapes", f"{name!r} is not a parameter name")
+            if isinstance(dims, list):
+                dims = ",".join(str(d) for d in dims) if dims else "()"
+            if not isinstance(dims, str):
+                self.error(index, "shapes", f'{name}: must be "n,5" or [n, 5]')
+            try:
+                shapes[name] = parse_dims(dims.replace(" ", ""), f"shapes.{name}")
+            except GradwrightError as error:
+                self.error(index, "shapes", error.diagnostic.message)
+        return shapes
 
     def ranges(self, index: int, value: Any) -> dict[str, Range]:
         if not isinstance(value, dict):

@@ -18,6 +18,7 @@ numbers, an integer trip count or index, or a NumPy array.
 from __future__ import annotations
 
 import math
+import re
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 
@@ -148,6 +149,45 @@ def parse_shapes(texts: Sequence[str]) -> dict[str, tuple[int, ...]]:
             raise GradwrightError.usage(f"--shape {name}: sizes must be positive")
         shapes[name] = dims
     return shapes
+
+
+#: a declared shape's sizes: numbers, or names standing for one size wherever used
+Declared = dict[str, tuple[int | str, ...]]
+
+
+def parse_declared_shapes(texts: Sequence[str], option: str = "--shape") -> Declared:
+    """``X=n,5`` (or ``X=4x6``, as verify writes it; ``b=()`` for a number) ->
+    ``{"X": ("n", 5)}``. One NAME=DIMS per option; a comma continues the sizes."""
+    shapes: Declared = {}
+    for text in texts:
+        name, sep, value = text.partition("=")
+        name, value = name.strip(), value.strip().replace(" ", "")
+        if not sep or not name.isidentifier():
+            raise GradwrightError.usage(
+                f"{option}: expected NAME=DIMS like X=n,5, got {text!r}"
+            )
+        if name in shapes:
+            raise GradwrightError.usage(f"{option}: '{name}' is given twice")
+        shapes[name] = parse_dims(value, f"{option} {name}")
+    return shapes
+
+
+def parse_dims(value: str, label: str) -> tuple[int | str, ...]:
+    if value == "()":
+        return ()
+    parts = value.split("x") if re.fullmatch(r"\d+(x\d+)+", value) else value.split(",")
+    dims: list[int | str] = []
+    for part in parts:
+        if part.isdigit():
+            dims.append(int(part))
+        elif part.isidentifier():
+            dims.append(part)
+        else:
+            raise GradwrightError.usage(
+                f"{label}: expected sizes and names like n,5 (or () for a number),"
+                f" got {value!r}"
+            )
+    return tuple(dims)
 
 
 def parse_ranges(texts: Sequence[str]) -> dict[str, Range]:

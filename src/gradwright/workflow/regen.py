@@ -18,7 +18,12 @@ from pathlib import Path
 
 from gradwright import __version__
 from gradwright.diagnostics import GradwrightError, Location
-from gradwright.header import read_header, regeneration_command, sha256_text
+from gradwright.header import (
+    read_header,
+    regeneration_command,
+    sha256_text,
+    shape_words,
+)
 from gradwright.workflow.config import Project, Target
 from gradwright.workflow.output import Artifact, read_existing
 from gradwright.workflow.points import Range
@@ -36,6 +41,8 @@ class Job:
     emit_test: str | None = None
     ranges: Mapping[str, Range] = field(default_factory=dict)
     ranges_location: Location | None = None
+    #: declared array shapes (gen --shape, a target's shapes): name -> sizes
+    shapes: Mapping[str, tuple[int | str, ...]] = field(default_factory=dict)
 
     def path(self, label: str) -> Path:
         return self.base / label
@@ -52,6 +59,7 @@ def job_for_target(project: Project, target: Target) -> Job:
         emit_test=target.emit_test,
         ranges=target.ranges,
         ranges_location=target.ranges_location,
+        shapes=target.shapes,
     )
 
 
@@ -67,7 +75,12 @@ def read_source(path: Path, label: str) -> str:
 def module_command(job: Job) -> str:
     """The command in the module's header (the one that regenerates it)."""
     return regeneration_command(
-        job.source, job.functions, job.wrt, job.output, job.target
+        job.source,
+        job.functions,
+        job.wrt,
+        job.output,
+        job.target,
+        shape_words(dict(sorted(job.shapes.items()))),
     )
 
 
@@ -89,6 +102,7 @@ def generate_module(job: Job, source: str) -> str:
         path=job.source,
         output=job.output,
         target=job.target,
+        shapes=job.shapes or None,
     )
 
 

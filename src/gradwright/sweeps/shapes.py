@@ -1,0 +1,324 @@
+"""Array shapes worked out at generation time, for a NumPy model's reverse sweep.
+
+Each SSA value gets a shape: a tuple of sizes (an int, or a name such as ``n`` from
+a declared shape, ``gen --shape X=n,5``), or :class:`Like`, a shape known only to
+equal another value's (an undeclared parameter's, or one the rules below cannot
+work out). Shapes come from declared shapes, literals and numeric constants (no
+shape), elementwise broadcasting, reductions, ``@``, ``.T`` and ``.reshape`` with
+literal sizes; nothing is executed. Two names stand for the same size wherever they
+appear: the generated gradient checks the declared shapes when it is called
+(``_gw_check_shapes``), so a call with other shapes is an error, never a wrong
+gradient.
+
+The reverse sweep uses them to drop ``_gw_unbroadcast`` where an operand provably
+has its result's shape, to write the sum a known broadcast needs
+(``np.sum(g, axis=0)``), and to let an adjoint be *smaller* than its value: the
+adjoint of ``np.mean(x)`` is the number ``g / n``, which stands for that number
+everywhere in ``x``. The invariant: an adjoint's own shape broadcasts to its
+value's, and stands for its broadcast. Rules that need the full array (matrix
+products, the generic helpers) get ``np.broadcast_to(g, shape)`` first.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterable, Mapping
+from dataclasses import dataclass, replace
+
+from gradwright.calculus.numpy_rules import BROADCASTING
+from gradwright.calculus.primitives import OPS
+from gradwright.calculus.rules import ELEMENTWISE_OPS, SCALAR_OPS
+from gradwright.ir import (
+    Apply,
+    Atom,
+    Branch,
+    Const,
+    Expr,
+    Let,
+    Loop,
+    Origin,
+    SSAFunction,
+    Var,
+    const,
+)
+
+Dim = int | str
+
+
+@dataclass(frozen=True)
+class Like:
+    """A shape known only to equal the shape of the value ``key`` names."""
+
+    key: object
+
+
+Shape = tuple[Dim, ...] | Like
+
+#: one-argument primitives whose result has the argument's shape (NumPy's
+#: elementwise functions; the scalar rules' functions print as NumPy's)
+_SAME = frozenset(
+    {"neg", "pos", "not", "copy", "abs"}
+    | {op for op in ELEMENTWISE_OPS - SCALAR_OPS if OPS[op].max_args == 1}
+)
+#: primitives whose operands broadcast against each other
+_BROADCAST = BROADCASTING | {"lt", "le", "gt", "ge", "eq", "ne", "and", "or"}
+#: primitives with a number as result
+_NUMBER = frozenset(
+    {"shape_at", "len", "int", "float", "np.linalg.norm", "max", "min"}
+    | {op for op, spec in OPS.items() if spec.symbol.startswith("math.")}
+)
+_REDUCTIONS = frozenset(
+    {"np.sum", "np.mean", "np.prod", "np.max", "np.min", "np.amax", "np.amin"}
+)
+_MATMUL = frozenset({"matmul", "np.matmul", "np.dot"})
+
+
+def is_static(shape: Shape | None) -> bool:
+    return isinstance(shape, tuple)
+
+
+def broadcast(a: Shape, b: Shape) -> Shape | None:
+    """The shape of ``a + b``, or None where it is not known."""
+    if a == () or a == b:
+        return b
+    if b == ():
+        return a
+    if not (isinstance(a, tuple) and isinstance(b, tuple)):
+        return None
+    out: list[Dim] = []
+    for k in range(1, max(len(a), len(b)) + 1):
+        x = a[-k] if k <= len(a) else 1
+        y = b[-k] if k <= len(b) else 1
+        if x == y or y == 1:
+            out.append(x)
+        elif x == 1:
+            out.append(y)
+        else:  # two names, or a name and a size: which one broadcasts is not known
+            return None
+    return tuple(reversed(out))
+
+
+def keyword(args: Iterable[Atom], key: str) -> str | None:
+    for arg in args:
+        if isinstance(arg, Const) and arg.value is None and "=" in arg.text:
+            name, _, value = arg.text.partition("=")
+            if name == key:
+                return value
+    return None
+
+
+def reduced_axes(axis: str | None, rank: int) -> tuple[int, ...] | None:
+    """``axis=`` text as sorted non-negative axes (None: all of them)."""
+    if axis is None or axis == "None":
+        return tuple(range(rank))
+    text = axis.strip("()")
+    try:
+        axes = [int(a) for a in text.split(",") if a.strip()]
+    except ValueError:
+        return None
+    if any(not -rank <= a < rank for a in axes):
+        return None
+    return tuple(sorted({a % rank for a in axes}))
+
+
+def reduce_shape(shape: Shape, args: tuple[Atom, ...]) -> Shape | None:
+    keepdims = keyword(args, "keepdims") == "True"
+    axis = keyword(args, "axis")
+    if not isinstance(shape, tuple):
+        return () if axis in (None, "None") and not keepdims else None
+    axes = reduced_axes(axis, len(shape))
+    if axes is None:
+        return None
+    if keepdims:
+        return tuple(1 if k in axes else d for k, d in enumerate(shape))
+    return tuple(d for k, d in enumerate(shape) if k not in axes)
+
+
+def matmul_shape(a: Shape, b: Shape) -> Shape | None:
+    if not (isinstance(a, tuple) and isinstance(b, tuple)):
+        return None
+    if not (1 <= len(a) <= 2 and 1 <= len(b) <= 2) or a[-1] != b[0]:
+        return None
+    return a[:-1] + b[1:]
+
+
+class ShapeTable:
+    """The shape of every value of one function, from its SSA and the declared
+    shapes of its parameters."""
+
+    def __init__(
+        self,
+        params: tuple[Var, ...],
+        body: tuple,
+        declared: Mapping[str, tuple[Dim, ...]],
+        numbers: Iterable[str] = (),
+        data: Mapping[str, tuple[Dim, ...]] | None = None,
+    ) -> None:
+        self.numbers = frozenset(numbers)
+        self.data = dict(data or {})
+        self.of: dict[Var, Shape] = {}
+        for p in params:
+            self.of[p] = declared[p.base] if p.base in declared else Like(p.uid)
+        self._block(body)
+
+    def atom(self, atom: Atom | Expr) -> Shape:
+        if isinstance(atom, Var):
+            return self.of.get(atom, Like(atom.uid))
+        if isinstance(atom, Const):
+            if atom.value is not None or atom.text in self.numbers:
+                return ()
+            if atom.text in self.data:
+                return self.data[atom.text]
+            return Like(atom.text)
+        return Like(id(atom))
+
+    def _block(self, statements: tuple) -> None:
+        for stmt in statements:
+            if isinstance(stmt, Let):
+                found = self._let(stmt)
+                self.of[stmt.target] = (
+                    found if found is not None else Like(stmt.target.uid)
+                )
+            elif isinstance(stmt, Branch):
+                self._block(stmt.then)
+                self._block(stmt.orelse)
+                for phi in stmt.merges:
+                    first, second = self.atom(phi.first), self.atom(phi.second)
+                    self.of[phi.target] = (
+                        first if first == second else Like(phi.target.uid)
+                    )
+            else:
+                self._loop(stmt)
+
+    def _loop(self, loop: Loop) -> None:
+        self.of[loop.index] = ()
+        for phi in loop.carried:
+            self.of[phi.target] = self.atom(phi.first)
+        for _ in range(3):
+            self._block(loop.body)
+            changed = False
+            for phi in loop.carried:
+                if self.atom(phi.second) != self.of[phi.target]:
+                    self.of[phi.target] = Like(phi.target.uid)
+                    changed = True
+            if not changed:
+                break
+        else:  # not settled: nothing about the carried values is known
+            for phi in loop.carried:
+                self.of[phi.target] = Like(phi.target.uid)
+            self._block(loop.body)
+        for phi in loop.carried:
+            if phi.exit is not None:
+                self.of[phi.exit] = self.of[phi.target]
+
+    def _let(self, let: Let) -> Shape | None:
+        op, args = let.op, let.args
+        shapes = [self.atom(a) for a in args if not _is_keyword(a)]
+        if op in _NUMBER:
+            return ()
+        if op in _SAME:
+            return shapes[0]
+        if op in _BROADCAST or op.startswith("call:") or op == "ifexp":
+            if op == "ifexp":  # in array code only np.where's, elementwise
+                shapes = [shapes[0], shapes[2]]
+            result: Shape | None = shapes[0] if shapes else ()
+            for shape in shapes[1:]:
+                result = broadcast(result, shape) if result is not None else None
+            return result
+        if op in _REDUCTIONS:
+            return reduce_shape(shapes[0], args)
+        if op in _MATMUL:
+            return matmul_shape(shapes[0], shapes[1])
+        if op == "np.outer":
+            a, b = shapes
+            if isinstance(a, tuple) and isinstance(b, tuple) and len(a) == len(b) == 1:
+                return a + b
+            return None
+        if op in ("T", "np.transpose"):
+            return tuple(reversed(shapes[0])) if isinstance(shapes[0], tuple) else None
+        if op == "reshape":
+            dims = [a.value for a in args[1:] if isinstance(a, Const)]
+            if len(dims) == len(args) - 1 and all(
+                isinstance(d, int) and d > 0 for d in dims
+            ):
+                return tuple(dims)  # type: ignore[arg-type]
+            return None
+        return None
+
+
+def _is_keyword(atom: Atom) -> bool:
+    return isinstance(atom, Const) and atom.value is None and "=" in atom.text
+
+
+def size_of(dims: Iterable[Dim], sizes: Mapping[str, Var]) -> Expr | None:
+    """The product of ``dims`` as an expression (names read their size values)."""
+    number = 1
+    named: list[Expr] = []
+    for d in dims:
+        if isinstance(d, int):
+            number *= d
+        elif d in sizes:
+            named.append(sizes[d])
+        else:
+            return None
+    expr: Expr | None = const(number) if number != 1 or not named else None
+    for item in named:
+        expr = item if expr is None else Apply("mul", (expr, item))
+    return expr
+
+
+def shape_expr(shape: tuple[Dim, ...], sizes: Mapping[str, Var]) -> Expr | None:
+    items: list[Expr] = []
+    for d in shape:
+        if isinstance(d, int):
+            items.append(const(d))
+        elif d in sizes:
+            items.append(sizes[d])
+        else:
+            return None
+    return Apply("shape_tuple", tuple(items))
+
+
+def axis_text(axes: tuple[int, ...]) -> Const:
+    inside = str(axes[0]) if len(axes) == 1 else "(" + ", ".join(map(str, axes)) + ")"
+    return Const(f"axis={inside}", None)
+
+
+#: the comment above the check of the declared shapes
+SHAPES_DECLARED = "the shapes declared with gen --shape; any others are refused"
+
+
+def with_sizes(
+    function: SSAFunction, declared: Mapping[str, tuple[Dim, ...]], taken: set[str]
+) -> tuple[SSAFunction, dict[str, Var]]:
+    """The function with a value per size name of its declared shapes (``n =
+    X.shape[0]`` at the start, read by the reverse sweep where it divides by n or
+    writes a shape), and those values by name."""
+    first = 1 + max([p.uid for p in function.params] + [_last_uid(function.body)])
+    origin = Origin("the sizes those shapes name", -1)
+    lets: list[Let] = []
+    sizes: dict[str, Var] = {}
+    for param in function.params:
+        for axis, dim in enumerate(declared.get(param.base, ())):
+            if isinstance(dim, str) and dim not in sizes:
+                kind = "temp" if dim in taken else "local"
+                var = Var(first + len(lets), dim, kind)  # type: ignore[arg-type]
+                lets.append(Let(var, "shape_at", (param, const(axis)), origin))
+                sizes[dim] = var
+    if not lets:
+        return function, sizes
+    return replace(function, body=(*lets, *function.body)), sizes
+
+
+def _last_uid(statements: tuple) -> int:
+    last = 0
+    for stmt in statements:
+        if isinstance(stmt, Let):
+            last = max(last, stmt.target.uid)
+        elif isinstance(stmt, Branch):
+            merged = [phi.target.uid for phi in stmt.merges]
+            last = max(last, _last_uid(stmt.then), _last_uid(stmt.orelse), *merged)
+        else:
+            carried = [p.target.uid for p in stmt.carried]
+            carried += [p.exit.uid for p in stmt.carried if p.exit is not None]
+            last = max(last, stmt.index.uid, _last_uid(stmt.body), *carried)
+    return last
