@@ -444,7 +444,7 @@ def sample_command(golden: Path) -> tuple[list[str], list[str] | None]:
     wrt: list[str] | None = None
     rest = iter(words[3:])
     for word in rest:
-        if word in ("--wrt", "-o", "--target"):
+        if word in ("--wrt", "-o", "--target", "--shape"):
             value = next(rest)
             if word == "--wrt":
                 wrt = value.split(",")
