@@ -22,7 +22,6 @@ from collections.abc import Iterable, Mapping
 from gradwright.calculus.algebra import E, is_zero, simplify
 from gradwright.calculus.numpy_rules import BROADCASTING
 from gradwright.calculus.rules import RULES
-from gradwright.sweeps.broadcasting import SMALL_OK, Fitter
 from gradwright.ir import (
     AdjointAssign,
     Apply,
@@ -47,6 +46,7 @@ from gradwright.ir import (
     Var,
     const,
 )
+from gradwright.sweeps.broadcasting import SMALL_OK, Fitter
 
 #: primitives on lists that adjoints flow through
 _LIST_FLOW = frozenset({"getitem", "setitem", "newlist", "listlit", "sum"})
