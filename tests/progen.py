@@ -837,7 +837,12 @@ def shaped_call(draw, sc: Scope) -> list:
     h = draw(st.sampled_from(usable))
     if h.kind == "tuple":
         args = [draw(num(sc, 1)) for _ in h.params]
-        form = f"{h.name}({', '.join(f'{{{k}}}' for k in range(len(args)))})"
+        slots = [f"{{{k}}}" for k in range(len(args))]
+        if h.defaults and draw(st.booleans()):
+            args, slots = args[:1], slots[:1]  # leaving the default
+        elif h.defaults and draw(st.booleans()):
+            slots[1] = "b={1}"
+        form = f"{h.name}({', '.join(slots)})"
         value = Ex(form, tuple(args), tag="tuple_call")
         if draw(st.booleans()):
             names = [sc.new_name(), sc.new_name()]
@@ -879,7 +884,8 @@ def shaped_helper(draw, name: str, kind: str, others: list[Helper], shaped, knob
         body = draw(block(sc, 0, 3, True, 2))
         if not body or not isinstance(body[-1], Return):
             body.append(Return(draw(returned(sc, 2))))
-        return Func(name, ["a", "b"], body)
+        defaults = {"b": "0.5"} if draw(st.booleans()) else {}
+        return Func(name, ["a", "b"], body, defaults)
     sc = Scope(["a", "c", "acc"], [], {}, others, hk, [0])
     if kind == "list_out":
         inner = Scope(["a", "c"], [], {}, others, hk, [0])
@@ -1085,7 +1091,7 @@ def programs(draw, knobs: Knobs, family: str) -> Case:
             kind = draw(st.sampled_from(kinds))
             fn = draw(shaped_helper(f"g{k}", kind, list(helpers), list(shaped), knobs))
             funcs.append(fn)
-            shaped.append(Helper(fn.name, fn.params, {}, kind))
+            shaped.append(Helper(fn.name, fn.params, fn.defaults, kind))
     sc = Scope(list(floats), ints, lists, helpers, knobs, [0], shaped=shaped)
     tuple_out = draw(st.sampled_from((0, 2))) if knobs.tuple_out else 0
     body = draw(block(sc, *knobs.statements, True, tuple_out))

@@ -343,3 +343,26 @@ def test_helper_shapes_on_micropython(case):
         assert len(got) == len(expected)
         for a, b in zip(got, expected, strict=True):
             assert abs(a - b) <= 1e-12 * max(1.0, abs(b)), (name, a, b)
+
+
+DEFAULTS = """
+def scaled(a, b=0.5):
+    return a * b, a + b
+
+
+def f(x, y):
+    u, v = scaled(x, b=y)
+    p, q = scaled(x)
+    return u * v + p * q
+"""
+
+
+def test_tuple_helper_with_a_default_parameter():
+    """The seed goes by keyword: after a default it is keyword-only (a module that
+    raised TypeError before)."""
+    module = generate(DEFAULTS, ["f"])
+    x, y = 0.3, 0.7
+    _, (x_bar, y_bar) = module["f_grad"](x, y)
+    # closed form: f = x y (x + y) + 0.5 x (x + 0.5)
+    assert rel_err(x_bar, 2 * x * y + y * y + x + 0.25) < 1e-15
+    assert rel_err(y_bar, x * x + 2 * x * y) < 1e-15

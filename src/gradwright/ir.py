@@ -157,6 +157,8 @@ class SSAFunction:
     constants: tuple[str, ...] = ()
     #: other functions of the file it calls, in first-call order
     callees: tuple[str, ...] = ()
+    #: the tuples helper calls return, with their sizes (known when generating)
+    tuple_sizes: tuple[tuple[Var, int], ...] = ()
 
 
 #: how a caller's reverse sweep treats a helper: "partials" (number parameters and

@@ -294,8 +294,10 @@ class Layout:
                     visit(stmt.body, stmt.loop)
 
         visit(self.sweep.statements, None)
+        sized = dict(self.function.tuple_sizes)
         for root in self.sweep.list_roots:
-            reads.add(root)  # len(root) sizes its adjoint
+            if root not in sized:
+                reads.add(root)  # len(root) sizes its adjoint
         for lets in self.recompute.values():
             lets.sort(key=lambda let: self.position[let.target])
         return reads

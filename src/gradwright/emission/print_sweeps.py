@@ -157,8 +157,17 @@ class _Emitter:
         self, statements: tuple[Stmt, ...], depth: int, out: _Lines, loop: Loop | None
     ) -> None:
         layout = self.layout
-        for stmt in statements:
+        skip = 0
+        for position, stmt in enumerate(statements):
+            if skip:
+                skip -= 1
+                continue
             if isinstance(stmt, Let):
+                items = self.unpacked(statements, position)
+                if items:
+                    self.forward_unpack(stmt, items, depth, out, loop)
+                    skip = len(items)
+                    continue
                 self.forward_let(stmt, depth, out, loop)
             elif isinstance(stmt, Branch):
                 self.forward_branch(stmt, depth, out, loop)
@@ -211,6 +220,47 @@ class _Emitter:
                 trace.read(partials_name, ("partials", target))
                 self.fill(loop, saved, partials_name, depth, out)
                 trace.fill(saved, partials)
+
+    def unpacked(self, statements: tuple[Stmt, ...], position: int) -> list[Let]:
+        """``x, y = h(...)``: the element reads right after a helper call that
+        returns a tuple, when they are its only use and each is stored (the
+        tuple then needs no name of its own)."""
+        layout = self.layout
+        call = statements[position]
+        assert isinstance(call, Let)
+        size = dict(layout.function.tuple_sizes).get(call.target)
+        if size is None or layout.uses.get(call.target, 0) != size:
+            return []
+        if call.target in layout.reverse_reads:
+            return []
+        items = list(statements[position + 1 : position + 1 + size])
+        for k, item in enumerate(items):
+            if not (
+                isinstance(item, Let)
+                and item.op == "getitem"
+                and item.args == (call.target, Const(str(k), k))
+                and item.origin == call.origin
+                and item.target in layout.stored
+            ):
+                return []
+        return items  # type: ignore[return-value]
+
+    def forward_unpack(
+        self, call: Let, items: list[Let], depth: int, out: _Lines, loop: Loop | None
+    ) -> None:
+        trace = self.trace
+        trace.at(call.origin.text)
+        args = tuple(self.value(a) for a in call.args)
+        for arg in args:
+            self.reads(arg)
+        names = [self.namer.name(item.target) for item in items]
+        for name, item in zip(names, items, strict=True):
+            trace.write(name, self.key(item.target))
+        text = f"{', '.join(names)} = {self.print(Apply(call.op, args))}"
+        out.statement(call.origin, text, depth)
+        for item in items:
+            if loop is not None and item.target in self.layout.tapes.get(loop, []):
+                self.save(loop, item.target, depth, out)
 
     def save(self, loop: Loop, var: Var, depth: int, out: _Lines) -> None:
         """``var_saved[slot] = var``: this iteration's value, for the reverse."""
@@ -414,8 +464,12 @@ class _Emitter:
             if root not in self.layout.sweep.list_roots:
                 continue
             bar, name = self.namer.bar_name(root), self.namer.name(root)
-            out.code(f"{bar} = [0.0] * len({name})", depth)
-            self.trace.read(name, self.key(root))
+            size = dict(self.layout.function.tuple_sizes).get(root)
+            if size is not None:  # a helper's tuple: its size is known
+                out.code(f"{bar} = [0.0] * {size}", depth)
+            else:
+                out.code(f"{bar} = [0.0] * len({name})", depth)
+                self.trace.read(name, self.key(root))
             self.trace.write(bar, self.bar_key(root))
 
     def reverse_block(
@@ -515,7 +569,8 @@ class _Emitter:
         seed = self.layout.cheap(stmt.seed)
         for expr in (*args, seed):
             self.reads(expr)
-        texts = [self.rprint(a) for a in args] + [self.rprint(seed)]
+        # by keyword: after parameters with defaults the seed is keyword-only
+        texts = [self.rprint(a) for a in args] + [f"seed={self.rprint(seed)}"]
         call = f"{stmt.callee}_adjoint({', '.join(texts)})"
         names = [self.namer.bar_name(part) for part in stmt.parts]
         for name, part in zip(names, stmt.parts, strict=True):

@@ -254,6 +254,13 @@ class _Lowerer(
             frozenset(self.local_names),
             tuple(self.constants_read),
             tuple(self.callees),
+            tuple(
+                sorted(
+                    (v, self.literal_sizes[v])
+                    for v in self.helper_results
+                    if v in self.literal_sizes
+                )
+            ),
         )
 
 
