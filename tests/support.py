@@ -126,6 +126,8 @@ MP_MATH = types.SimpleNamespace(
     pow=mpmath.power,
     copysign=_mp_copysign,
     hypot=_mp_hypot,
+    fsum=mpmath.fsum,
+    prod=lambda xs, start=1: start * mpmath.fprod(xs),
     radians=lambda x: x * mpmath.pi / 180,
     degrees=lambda x: x * 180 / mpmath.pi,
     floor=lambda x: int(mpmath.floor(x)),

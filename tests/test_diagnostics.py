@@ -198,16 +198,34 @@ CASES = [
         "define a module-level function",
     ),
     case(
-        "comprehension-with-two-for-clauses",
+        "list-method-other-than-append",
         """
         def f(x):
-            ys = [x * k * j for k in range(3) for j in range(2)]
-            return x
+            ys = [x, 2.0 * x]
+            ys.pop()
+            return ys[0]
         """,
-        "a comprehension with several `for` clauses is not supported",
-        2,
-        "range(2)",
-        "write the outer loop as a for statement around it",
+        "list.pop() is not supported",
+        3,
+        "pop",
+        "a model's lists grow with append() and extend(); build a new list for"
+        " other changes",
+    ),
+    case(
+        "list-changed-through-a-second-name",
+        """
+        def f(x):
+            ys = [x, 2.0 * x]
+            zs = ys
+            ys.append(x)
+            return zs[0]
+        """,
+        "'ys' and 'zs' name the same list here: changing it through 'ys' would"
+        " change 'zs' too",
+        4,
+        "ys.append(x)",
+        "make 'zs' a list of its own (zs = list(ys)) if it should keep its values,"
+        " or use one name for the list",
     ),
     case(
         "set-comprehension",
@@ -1097,18 +1115,6 @@ CASES = [
         3,
         "y[0:1]",
         "write y[i]",
-    ),
-    case(
-        "second-name-for-a-list",
-        """
-        def f(x):
-            y = x
-            return y[0] + x[1]
-        """,
-        "a second name for a list is not supported (both would change together)",
-        2,
-        "x",
-        "index the original list",
     ),
     case(
         "list-used-as-number",

@@ -77,6 +77,12 @@ CALLS = {
         ("loop_helper_grad", (0.5, 3)),
         ("minmax_grad", (1.0, 2.0, 0.5)),
     ],
+    "programs_lists.py": [
+        ("ledger_grad", (0.3, 2.0, [0.0, 1.0, 2.5])),
+        ("band_grad", (0.8, 0.3, [0.5, -1.5, 2.0, 1.0])),
+        ("compound_grad", (0.2, [0.5, 1.0, 0.0, 2.0])),
+        ("pairs_grad", (0.7, [0.5, -1.0, 2.0])),
+    ],
 }
 
 

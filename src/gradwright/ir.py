@@ -216,6 +216,18 @@ class CallAdjoint:
 
 
 @dataclass(frozen=True)
+class PopAdjoint:
+    """``var_bar (+)= root_bar.pop()`` (a bare ``root_bar.pop()`` without ``var``):
+    the reverse of an append, so a list's adjoint always has the length the list
+    had at that point of the forward sweep."""
+
+    root: Var
+    var: Var | None
+    accumulate: bool
+    origin: Origin
+
+
+@dataclass(frozen=True)
 class ReverseBranch:
     condition: Expr
     then: tuple[ReverseStmt, ...]
@@ -239,6 +251,7 @@ ReverseStmt = (
     | ElementAdjoint
     | SpreadAdjoint
     | CallAdjoint
+    | PopAdjoint
     | ReverseBranch
     | ReverseLoop
 )

@@ -91,7 +91,9 @@ _SPECS = [
     OpSpec("listlit", "list", "", PREC_ATOM, 0, None),
     OpSpec("newlist", "repeat", "*", PREC_MUL, 2, 2),
     OpSpec("len", "call", "len", PREC_ATOM, 1, 1),
-    OpSpec("sum", "call", "sum", PREC_ATOM, 1, 1),
+    OpSpec("sum", "call", "sum", PREC_ATOM, 1, 2),
+    # a list grown in place (a new version of the same list)
+    OpSpec("append", "method", "append", PREC_ATOM, 2, 2),
     # the k-th partial derivative returned with a helper call's value
     OpSpec("partial", "partial", "", PREC_ATOM, 2, 2),
     OpSpec("abs", "call", "abs", PREC_ATOM, 1, 1),
@@ -110,6 +112,8 @@ _SPECS = [
     _math("copysign", 2, 2),
     _math("hypot", 1, None),
     _math("radians"),
+    # the exactly rounded sum of a list (its derivative is the sum's)
+    _math("fsum"),
     _math("degrees"),
     # float(x) is the identity on numbers (kept in the output: int -> float)
     OpSpec("float", "call", "float", PREC_ATOM, 1, 1),

@@ -34,6 +34,7 @@ from gradwright.ir import (
     Expr,
     Let,
     Loop,
+    PopAdjoint,
     ReverseBranch,
     ReverseLoop,
     ReverseStmt,
@@ -284,6 +285,8 @@ class Layout:
                     for arg in stmt.args:
                         collect(arg, loop)
                     collect(stmt.seed, loop)
+                elif isinstance(stmt, PopAdjoint):
+                    pass  # reads only adjoints
                 elif isinstance(stmt, ReverseBranch):
                     collect(stmt.condition, loop, everywhere=True)
                     visit(stmt.then, loop)
@@ -422,7 +425,7 @@ class Layout:
                 is_live = target in live or (
                     target.shape == "list" and self.roots.get(target, target) in live
                 )
-                if target.shape == "list" and stmt.op == "setitem":
+                if target.shape == "list" and stmt.op in ("setitem", "append"):
                     # an element write is needed when any later version is
                     root = self.roots.get(target, target)
                     is_live = is_live or any(v in live for v in self.versions[root])
@@ -872,6 +875,8 @@ def _reverse_exprs(statements: Iterable[ReverseStmt]) -> Iterator[Expr]:
         elif isinstance(stmt, CallAdjoint):
             yield from stmt.args
             yield stmt.seed
+        elif isinstance(stmt, PopAdjoint):
+            pass
         elif isinstance(stmt, ReverseBranch):
             yield stmt.condition
             yield from _reverse_exprs(stmt.then)

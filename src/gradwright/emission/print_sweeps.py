@@ -28,6 +28,7 @@ from gradwright.ir import (
     Let,
     Loop,
     Origin,
+    PopAdjoint,
     ReverseBranch,
     ReverseLoop,
     ReverseStmt,
@@ -196,6 +197,9 @@ class _Emitter:
             self.reads(arg)
         if let.op == "setitem":
             text = f"{name}[{self.print(args[1])}] = {self.print(args[2])}"
+            trace.read(name, self.key(target))
+        elif let.op == "append":
+            text = f"{name}.append({self.print(args[1])})"
             trace.read(name, self.key(target))
         elif let.op.startswith("call:") and target in layout.partials_needed:
             callee = let.op.removeprefix("call:")
@@ -524,6 +528,18 @@ class _Emitter:
                 out.code(f"{bar}[{index}] += {value}", depth + 1)
             elif isinstance(stmt, CallAdjoint):
                 self.call_adjoint(stmt, depth, out)
+            elif isinstance(stmt, PopAdjoint):
+                bar = self.namer.bar_name(stmt.root)
+                trace.read(bar, self.bar_key(stmt.root))
+                text = f"{bar}.pop()"
+                if stmt.var is not None:
+                    var_bar = self.namer.bar_name(stmt.var)
+                    if stmt.accumulate:
+                        trace.read(var_bar, self.bar_key(stmt.var))
+                    trace.write(var_bar, self.bar_key(stmt.var))
+                    operator = "+=" if stmt.accumulate else "="
+                    text = f"{var_bar} {operator} {text}"
+                out.statement(stmt.origin, text, depth)
             elif isinstance(stmt, ReverseBranch):
                 sides = []
                 events = []

@@ -14,6 +14,7 @@ from gradwright.ir import (
 from gradwright.lowering.base import _Reported, _Tuple, _Unbound, element_key
 from gradwright.lowering.syntax import (
     _AUGMENTED_SYMBOLS,
+    LIST_METHODS,
 )
 
 
@@ -78,6 +79,18 @@ class AssignmentLowering:
             return
         if len(targets) == 1 and self.tuple_of(value) is not None:
             self.bind_tuple(first.value, self.tuple_of(value))  # type: ignore[arg-type]
+            return
+        if (
+            len(targets) == 1
+            and isinstance(value, cst.BinaryOperation)
+            and isinstance(value.operator, cst.Add)
+            and isinstance(value.left, cst.Name)
+            and value.left.value == first.value
+            and self.names_list(first)
+        ):
+            # `ys = ys + [v]`: the old list has no other name (checked), so
+            # growing it in place is the same
+            self.extend_list(first, value.right, value)
             return
         var = self.bind_value(value, first.value)
         self.env[first.value] = var
@@ -247,8 +260,15 @@ class AssignmentLowering:
                 self.index.locate(target),
             )
         assert isinstance(target.value, cst.Name)
-        name = target.value.value
-        current = self.read_name(target.value)
+        current = self.list_to_change(target.value, target)
+        index = self.subscript_index(target)
+        return current, index, target.value.value
+
+    def list_to_change(self, node: cst.Name, where: cst.CSTNode) -> Var:
+        """The local list ``node`` names, about to be changed in place at
+        ``where``: never a parameter's or an array, never one with a second name."""
+        name = node.value
+        current = self.read_name(node)
         self.as_list(current)
         if self.numpy:
             what = (
@@ -257,20 +277,41 @@ class AssignmentLowering:
             fail(
                 f"'{name}' is {what}: changing an array in place is not supported (the"
                 " reverse sweep needs the values it had)",
-                self.index.locate(target),
+                self.index.locate(where),
                 "build a new array instead, with np.where or np.concatenate",
             )
         if not (isinstance(current, Var) and current.shape == "list"):
-            fail(f"'{name}' is not a list", self.index.locate(target.value))
+            fail(f"'{name}' is not a list", self.index.locate(node))
         assert isinstance(current, Var)
         if current.kind == "param":
             fail(
                 f"'{name}' is a parameter: changing it in place is not supported",
-                self.index.locate(target),
+                self.index.locate(where),
                 f"build a local list first: `{name}_local = [0.0] * len({name})`",
             )
-        index = self.subscript_index(target)
-        return current, index, name
+        self.check_one_name(name, current, where)
+        return current
+
+    def check_one_name(self, name: str, current: Var, where: cst.CSTNode) -> None:
+        """Lists are changed in place, so a list with two names (``w = u``) cannot
+        be changed through either while the other may still be read: the reverse
+        sweep would give the change to one of them only."""
+        root = self.root_of(current)
+        for other, bound in self.env.items():
+            if (
+                other != name
+                and "\0" not in other
+                and isinstance(bound, Var)
+                and bound.shape == "list"
+                and self.root_of(bound) == root
+            ):
+                fail(
+                    f"'{name}' and '{other}' name the same list here: changing it"
+                    f" through '{name}' would change '{other}' too",
+                    self.index.locate(where),
+                    f"make '{other}' a list of its own ({other} = list({name})) if it"
+                    " should keep its values, or use one name for the list",
+                )
 
     def set_element(self, target: cst.Subscript, value) -> None:  # noqa: ANN001
         current, index, name = self.element_target(target)
@@ -314,6 +355,9 @@ class AssignmentLowering:
         if not isinstance(target, cst.Name):
             fail("unsupported assignment target", self.index.locate(target))
         assert isinstance(target, cst.Name)
+        if symbol == "+" and self.names_list(target):
+            self.extend_list(target, stmt.value, stmt)  # `ys += [v]`: in place
+            return
         current = self.scalar(self.read_name(target), target)
         if self.numpy and not self.is_fresh(current):
             what = (
@@ -333,3 +377,77 @@ class AssignmentLowering:
         var = self.new_var(target.value, "local")
         self.emit(op, (current, operand), var)
         self.env[target.value] = var
+
+    # -- lists that grow ------------------------------------------------------------
+
+    def names_list(self, node: cst.Name) -> bool:
+        """Whether ``node`` names a list made in this function."""
+        bound = self.env.get(node.value)
+        return (
+            isinstance(bound, Var) and bound.shape == "list" and bound.kind != "param"
+        )
+
+    def expression_statement(self, stmt: cst.Expr) -> None:
+        """``ys.append(v)`` and ``ys.extend(values)``; any other expression
+        statement changes nothing the result depends on."""
+        call = stmt.value
+        if not (
+            isinstance(call, cst.Call)
+            and isinstance(call.func, cst.Attribute)
+            and isinstance(call.func.value, cst.Name)
+            and not self.numpy
+            and isinstance(self.env.get(call.func.value.value), Var)
+            and self.env[call.func.value.value].shape == "list"  # type: ignore[union-attr]
+        ):
+            fail(
+                "an expression statement has no effect on the result",
+                self.index.locate(stmt),
+                "assign the value to a name, or remove the statement",
+            )
+        assert isinstance(call, cst.Call) and isinstance(call.func, cst.Attribute)
+        name_node = call.func.value
+        assert isinstance(name_node, cst.Name)
+        method = call.func.attr.value
+        if method not in LIST_METHODS:
+            fail(
+                f"list.{method}() is not supported",
+                self.index.locate(call.func.attr),
+                "a model's lists grow with append() and extend(); build a new list"
+                " for other changes",
+            )
+        if len(call.args) != 1 or call.args[0].keyword or call.args[0].star:
+            fail(f"{method}() takes one argument here", self.index.locate(call))
+        argument = call.args[0].value
+        if method == "append":
+            current = self.list_to_change(name_node, call)
+            element = self.scalar(self.expr(argument, name_node.value, None), argument)
+            self.grow(name_node.value, current, element)
+        else:
+            self.extend_list(name_node, argument, call)
+
+    def grow(self, name: str, current: Var, element: Atom) -> None:
+        new = self.new_var(name, "local", "list")
+        self.emit("append", (current, element), new)
+        self.env[name] = new
+
+    def extend_list(
+        self, node: cst.Name, values: cst.BaseExpression, where: cst.CSTNode
+    ) -> None:
+        """``ys.extend(values)``, ``ys += values``: one append per element, the
+        elements of a literal all evaluated first (as Python builds it first)."""
+        name = node.value
+        self.list_to_change(node, where)
+        if isinstance(values, (cst.List, cst.Tuple)):
+            if any(isinstance(el, cst.StarredElement) for el in values.elements):
+                fail("starred elements are not supported", self.index.locate(values))
+            elements = [
+                self.scalar(self.expr(el.value, name, None), el.value)
+                for el in values.elements
+            ]
+            for element in elements:
+                self.grow(name, self.env[name], element)  # type: ignore[arg-type]
+            return
+        if isinstance(values, (cst.GeneratorExp, cst.ListComp)):
+            self.fill(values, name)
+            return
+        self.append_each(name, values)

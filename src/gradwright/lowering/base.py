@@ -21,7 +21,11 @@ _VIEWS = frozenset({"copy", "npindex", "T", "reshape", "np.transpose"})
 _TRUTH_OPS = frozenset({"lt", "le", "gt", "ge", "eq", "ne", "and", "or", "not"})
 
 #: primitives that take or make lists; every other primitive takes numbers
-LIST_OPS = frozenset({"getitem", "setitem", "newlist", "listlit", "len", "sum"})
+LIST_OPS = frozenset(
+    {"getitem", "setitem", "append", "newlist", "listlit", "len", "sum"}
+)
+#: primitives that change a list in place: their result is a new version of it
+IN_PLACE = frozenset({"setitem", "append"})
 
 
 #: the loop flags' constants: one object each, so that an unchanged flag is

@@ -94,6 +94,12 @@ class CallLowering:
                 return self.list_builtin(node, func.value, base, target)
         if isinstance(func, cst.Name) and func.value in self.index.functions:
             return self.user_call(node, func.value, base, target)
+        if _math_name(self.index, func) in ("fsum", "prod"):
+            reduced = self.comprehension_call(
+                node, _math_name(self.index, func), base, target  # type: ignore[arg-type]
+            )
+            if reduced is not None:
+                return reduced
         if _math_name(self.index, func) == "dist":
             return self.distance(node, base, target)
         op = math_function_op(self.index, func)

@@ -1,5 +1,13 @@
-"""Lowering comprehensions and generator expressions: the terms go into a local
-list filled by a loop (see ``LoopLowering.run_loop``)."""
+"""Lowering comprehensions, generator expressions and the reductions over them.
+
+A comprehension is the loop a person would write: an empty local list, one ``for``
+statement per clause, an ``if`` per filter, and an append (see
+``AssignmentLowering.extend_list``), so any number of clauses and filters give the
+primal's terms in the primal's order and ``sum(terms)`` is the primal's sum to the
+bit. ``min``/``max`` of a sequence fold the two-argument rule over it (the first
+extreme element gets the adjoint); ``math.prod`` folds ``*`` from 1, as CPython
+multiplies; ``math.fsum`` keeps its exactly rounded value with the derivative of
+the sum."""
 
 from __future__ import annotations
 
@@ -12,96 +20,93 @@ from gradwright.lowering.syntax import _statement_text
 
 
 class ComprehensionLowering:
-    """``[e for x in xs if c]``, ``sum(e for x, y in zip(xs, ys))``: the terms go
-    into a local list, filled by a loop (the reverse sweep is a loop too), so
-    ``sum(terms)`` gives the primal's value to the bit in every Python version."""
+    """Part of the lowering (see ``ssa._Lowerer``); state lives on the lowerer."""
 
     def comprehension(
         self,
         node: cst.GeneratorExp | cst.ListComp,
         base: str,
         target: Var | None = None,
-        summed: bool = False,
     ) -> Var:
-        """The list of the terms; ``summed``: only its sum is used, so a term an
-        ``if`` filters out can be a zero (an int 0, as `sum` adds nothing then:
-        the sum of none is the int 0 the primal gives)."""
-        clause = node.for_in
-        if clause.ifs and not summed:
-            fail(
-                "a list comprehension with an `if` filter is not supported as a list"
-                " (its length depends on the data)",
-                self.index.locate(clause.ifs[0]),
-                "sum it directly (`sum(e for x in xs if c)`), or keep every term:"
-                " `[e if c else 0.0 for x in xs]`",
-            )
-        if clause.inner_for_in is not None or clause.asynchronous is not None:
-            fail(
-                "a comprehension with several `for` clauses is not supported",
-                self.index.locate(
-                    clause.inner_for_in.iter if clause.inner_for_in else clause
-                ),
-                "write the outer loop as a for statement around it",
-            )
-        names = _target_names(clause.target)
-        if names is None:
-            fail(
-                "the comprehension's target must be a name or a tuple of names",
-                self.index.locate(clause.target),
-            )
-        assert names is not None
-        outer_origin = self.origin
-        self.set_origin(
-            f"for {_statement_text(self.index, clause.target)} in"
-            f" {_statement_text(self.index, clause.iter)}:"
-        )
-        origin = self.origin
-        plan = self.iteration(clause.iter, clause.target)
-        start, stop, step, index_base, bind = plan
-        if not (isinstance(step, Const) and step.value == 1):
-            fail(
-                "a comprehension over a range with a step is not supported",
-                self.index.locate(clause.iter),
-                "write it as a for statement",
-            )
-        length = stop
-        if not (isinstance(start, Const) and start.value == 0):
-            span = self.emit("sub", (stop, start), self.new_var("n", "temp"))
-            length = self.emit("max", (span, Const("0", 0)), self.new_var("n", "temp"))
+        """A new local list of the comprehension's terms."""
+        if target is not None and target.shape != "list":
+            target = None
         terms = target or self.new_var(f"{base}_terms", "local", "list")
-        zero = Const("0", 0) if clause.ifs else Const("0.0", 0.0)
-        self.emit("newlist", (zero, length), terms)
-        list_name = self._free_name(terms.base, names)
-        position_name = self._free_name(f"{names[0]}_index", names + [list_name])
-        saved = {n: self.env.get(n) for n in [*names, list_name, position_name]}
-        self.env[list_name] = terms
+        name = terms.base if target is not None else self._free_name(terms.base, [])
+        self.emit("listlit", (), terms)
+        saved = {name: self.env.get(name)}
+        self.env[name] = terms
+        self.fill(node, name)
+        result = self.env[name]
+        self._restore(saved)
+        return result  # type: ignore[return-value]
 
-        def bind_with_position(index: Var) -> None:
-            bind(index)
-            position: Atom = index
-            if not (isinstance(start, Const) and start.value == 0):
-                position = self.emit("sub", (index, start), self.new_var("k", "temp"))
-            self.env[position_name] = position
-
-        # the body, as the for statement a person would write
-        element = cst.Subscript(
-            cst.Name(list_name),
-            [cst.SubscriptElement(cst.Index(cst.Name(position_name)))],
+    def fill(self, node: cst.GeneratorExp | cst.ListComp, name: str) -> None:
+        """Append the comprehension's terms to the local list ``name``."""
+        clauses: list[cst.CompFor] = []
+        clause: cst.CompFor | None = node.for_in
+        while clause is not None:
+            if clause.asynchronous is not None:
+                fail("async comprehensions are not supported", self.index.locate(node))
+            if _target_names(clause.target) is None:
+                fail(
+                    "the comprehension's target must be a name or a tuple of names",
+                    self.index.locate(clause.target),
+                )
+            clauses.append(clause)
+            clause = clause.inner_for_in
+        own = [n for c in clauses for n in _target_names(c.target) or []]
+        saved = {n: self.env.get(n) for n in own}
+        append = cst.Call(
+            cst.Attribute(cst.Name(name), cst.Name("append")), [cst.Arg(node.elt)]
         )
-        body: cst.CSTNode = cst.Assign([cst.AssignTarget(element)], node.elt)
-        for test in reversed(clause.ifs):
-            line = body if isinstance(body, cst.If) else cst.SimpleStatementLine([body])
-            body = cst.If(test.test, cst.IndentedBlock([line]))
-        plan = (start, stop, step, index_base, bind_with_position)
-        self.run_loop(plan, names + [position_name], [body], node, origin)
-        result = self.env[list_name]
-        for name, value in saved.items():  # the comprehension's names are its own
+        body: cst.CSTNode = cst.Expr(append)
+        shown = display_name(self.env[name])
+        self.index.quote(
+            body, f"{shown}.append({_statement_text(self.index, node.elt)})"
+        )
+        for position in reversed(range(len(clauses))):
+            clause = clauses[position]
+            for test in reversed(clause.ifs):
+                body = cst.If(test.test, cst.IndentedBlock([_line(body)]))
+            if position > 0:
+                block = cst.IndentedBlock([_line(body)])
+                body = cst.For(clause.target, clause.iter, block)
+        outer_origin = self.origin
+        first = clauses[0]
+        self.set_origin(
+            f"for {_statement_text(self.index, first.target)} in"
+            f" {_statement_text(self.index, first.iter)}:"
+        )
+        plan = self.iteration(first.iter, first.target)
+        names = _target_names(first.target) or []
+        self.run_loop(plan, names, [body], node, self.origin)
+        self._restore(saved)  # the comprehension's names are its own
+        self.origin = outer_origin
+
+    def _restore(self, saved: dict[str, object]) -> None:
+        for name, value in saved.items():
             if value is None:
                 self.env.pop(name, None)
             else:
-                self.env[name] = value
+                self.env[name] = value  # type: ignore[assignment]
+
+    def append_each(self, name: str, values: cst.BaseExpression) -> None:
+        """``name.extend(values)`` for a list value: a loop of appends."""
+        item = self._free_name("item", [name])
+        saved = {item: self.env.get(item)}
+        target = cst.Name(item)
+        append = cst.Call(
+            cst.Attribute(cst.Name(name), cst.Name("append")), [cst.Arg(target)]
+        )
+        outer_origin = self.origin
+        self.set_origin(f"for {item} in {_statement_text(self.index, values)}:")
+        plan = self.iteration(values, target)
+        body = cst.Expr(append)
+        self.index.quote(body, f"{name}.append({item})")
+        self.run_loop(plan, [item], [body], values, self.origin)
+        self._restore(saved)
         self.origin = outer_origin
-        return result  # type: ignore[return-value]
 
     def _free_name(self, wanted: str, taken: list[str]) -> str:
         """A name no binding of the function (nor ``taken``) uses."""
@@ -110,34 +115,133 @@ class ComprehensionLowering:
             name, k = f"{wanted}_{k}", k + 1
         return name
 
+    # -- reductions -------------------------------------------------------------------
+
+    def sequence_value(self, node: cst.BaseExpression, base: str) -> Var:
+        """A list to reduce: a comprehension's new list, or a list value."""
+        if isinstance(node, (cst.GeneratorExp, cst.ListComp)):
+            return self.comprehension(node, base)
+        literal = isinstance(node, (cst.List, cst.Tuple))
+        made = self.new_var(f"{base}_values", "local", "list") if literal else None
+        value = self.expr(node, base, made)
+        self.as_list(value)
+        if not (isinstance(value, Var) and value.shape == "list"):
+            fail(
+                "this needs a sequence: a list, a comprehension or a generator",
+                self.index.locate(node),
+                "pass a list, or write a generator: (f(x) for x in xs)",
+            )
+        return value  # type: ignore[return-value]
+
     def comprehension_call(
         self, node: cst.Call, name: str, base: str, target: Var | None
     ) -> Atom | None:
-        """``sum(<comprehension>[, start])`` and ``list(<comprehension>)``; None
-        for any other call."""
-        if name not in ("sum", "list") or not node.args:
+        """``sum``, ``min``, ``max``, ``fsum``, ``prod`` of a sequence (``name``
+        without ``math.``); ``list``/``tuple`` of a comprehension; None for any
+        other call."""
+        if any(a.star for a in node.args):
             return None
-        first = node.args[0].value
-        if not isinstance(first, (cst.GeneratorExp, cst.ListComp)):
+        args = [a.value for a in node.args if a.keyword is None]
+        keywords = [a for a in node.args if a.keyword is not None]
+        if keywords:
+            # `start=` as sum and math.prod take it
+            if len(keywords) > 1 or keywords[0].keyword.value != "start":  # type: ignore[union-attr]
+                return None
+            if name not in ("sum", "prod") or len(args) != 1:
+                return None
+            args.append(keywords[0].value)
+        if not args:
             return None
-        if any(a.keyword or a.star for a in node.args) or len(node.args) > (
-            2 if name == "sum" else 1
-        ):
-            fail(f"{name}() takes a comprehension here", self.index.locate(node))
-        if name == "list":
-            return self.comprehension(first, base, target)
-        terms = self.comprehension(first, base, summed=True)
-        if len(node.args) == 2:
-            start = node.args[1].value
-            if not (
-                isinstance(start, (cst.Integer, cst.Float))
-                and float(start.value) == 0.0
-            ):
-                fail(
-                    "sum(<comprehension>, start) with a start other than 0 is not"
-                    " supported",
-                    self.index.locate(start),
-                    "add the start after the sum: `start + sum(...)` (the last bits"
-                    " may differ from the original order)",
-                )
-        return self.emit("sum", (terms,), target or self.new_var(base, "temp"))
+        first = args[0]
+        is_comprehension = isinstance(first, (cst.GeneratorExp, cst.ListComp))
+        if self.data_root(first) is not None:
+            return None  # module-level data is inactive (see calls.py)
+        if name in ("list", "tuple") and is_comprehension and len(args) == 1:
+            return self.comprehension(first, base, target)  # type: ignore[arg-type]
+        if name in ("min", "max") and len(args) == 1:
+            return self.extreme(name, first, base, target)
+        if name == "prod" and len(args) <= 2:
+            return self.product(args, base, target)
+        if name == "fsum" and len(args) == 1:
+            terms = self.sequence_value(first, base)
+            return self.emit("fsum", (terms,), target or self.new_var(base, "temp"))
+        if name == "sum" and (is_comprehension or len(args) == 2):
+            if len(args) > 2:
+                fail("sum() takes a sequence and a start", self.index.locate(node))
+            operands: tuple[Atom, ...] = (self.sequence_value(first, base),)
+            if len(args) == 2:
+                start = args[1]
+                operands += (self.scalar(self.expr(start, base, None), start),)
+            return self.emit("sum", operands, target or self.new_var(base, "temp"))
+        return None
+
+    def extreme(
+        self, op: str, node: cst.BaseExpression, base: str, target: Var | None
+    ) -> Atom:
+        """``min(xs)``: ``m = xs[0]``, then ``m = min(m, x)`` for the rest, which
+        picks the element Python's ``min`` picks (the first extreme one)."""
+        values = self.sequence_value(node, base)
+        zero = Const("0", 0)
+        first = self.emit("getitem", (values, zero), self.new_var(base, "local"))
+        count = self.emit("len", (values,), self.new_var("n", "temp"))
+        return self.fold(op, values, first, Const("1", 1), count, base, target)
+
+    def product(
+        self, args: list[cst.BaseExpression], base: str, target: Var | None
+    ) -> Atom:
+        """``math.prod(xs, start=1)``: ``p = start``, then ``p = p * x``."""
+        values = self.sequence_value(args[0], base)
+        start: Atom = Const("1", 1)
+        if len(args) == 2:
+            start = self.scalar(self.expr(args[1], base, None), args[1])
+        count = self.emit("len", (values,), self.new_var("n", "temp"))
+        return self.fold("mul", values, start, Const("0", 0), count, base, target)
+
+    def fold(
+        self,
+        op: str,
+        values: Var,
+        initial: Atom,
+        start: Atom,
+        stop: Atom,
+        base: str,
+        target: Var | None,
+    ) -> Atom:
+        """``acc = op(acc, values[k])`` for k in range(start, stop): a loop."""
+        # the accumulator takes the name the result is bound to
+        acc = target.base if target is not None else self._free_name(base, [])
+        index = self._free_name(f"{acc}_index", [acc])
+        seq = self._free_name(f"{base}_values", [acc, index])
+        saved = {n: self.env.get(n) for n in (acc, index, seq)}
+        self.env[acc], self.env[seq] = initial, values
+        element = cst.Subscript(
+            cst.Name(seq), [cst.SubscriptElement(cst.Index(cst.Name(index)))]
+        )
+        value: cst.BaseExpression = (
+            cst.BinaryOperation(cst.Name(acc), cst.Multiply(), element)
+            if op == "mul"
+            else cst.Call(cst.Name(op), [cst.Arg(cst.Name(acc)), cst.Arg(element)])
+        )
+        body = cst.Assign([cst.AssignTarget(cst.Name(acc))], value)
+        self.index.quote(body, self.origin.text)
+
+        def bind(i: Var) -> None:
+            self.bind_name(index, i)
+
+        plan = (start, stop, Const("1", 1), index, bind)
+        self.run_loop(plan, [index], [body], None, self.origin)  # type: ignore[arg-type]
+        result = self.env[acc]
+        self._restore(saved)
+        return result  # type: ignore[return-value]
+
+
+def display_name(value: object) -> str:
+    """The name a list value prints under (its base)."""
+    return value.base if isinstance(value, Var) else "terms"
+
+
+def _line(node: cst.CSTNode) -> cst.CSTNode:
+    """A compound statement as it is, a small one in its statement line."""
+    if isinstance(node, (cst.If, cst.For)):
+        return node
+    return cst.SimpleStatementLine([node])  # type: ignore[list-item]

@@ -32,7 +32,9 @@ from gradwright.lowering.syntax import (
 )
 
 #: list primitives adjoints flow through (as sweeps.reverse._LIST_FLOW)
-_LIST_FLOW = frozenset({"getitem", "setitem", "newlist", "listlit", "sum"})
+_LIST_FLOW = frozenset(
+    {"getitem", "setitem", "append", "newlist", "listlit", "sum", "fsum"}
+)
 
 
 class ExpressionLowering:
@@ -86,6 +88,8 @@ class ExpressionLowering:
         if isinstance(node, cst.BooleanOperation):
             return self.boolean(node, base, target)
         if isinstance(node, (cst.ListComp, cst.GeneratorExp)):
+            if isinstance(node, cst.ListComp):
+                return self.comprehension(node, base, target)  # a new list
             if target is None or target.shape != "list":
                 fail(
                     "a comprehension is a list here: assign it to a name, or sum it",

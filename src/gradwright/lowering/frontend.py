@@ -89,6 +89,10 @@ class ModuleIndex:
     def _quoted(self) -> dict[int, str]:
         return _statement_spans(self.module, self.source)
 
+    def quote(self, node: cst.CSTNode, text: str) -> None:
+        """Quote ``node``, a statement the lowering made, as ``text``."""
+        self._quoted[id(node)] = text
+
     def code(self, node: cst.CSTNode) -> str:
         """The node's text as written: sliced from the source for statements, ``if``
         tests and ``for`` iterables (what the comments quote), else re-printed

@@ -28,6 +28,7 @@ from gradwright.lowering.base import (
     _RESULT,
     _TRUTH_OPS,
     _VIEWS,
+    IN_PLACE,
     _ListParameter,
     _Unbound,
 )
@@ -53,7 +54,7 @@ def _is_list_call(node: cst.BaseExpression) -> bool:
     return (
         isinstance(node, cst.Call)
         and isinstance(node.func, cst.Name)
-        and node.func.value == "list"
+        and node.func.value in ("list", "tuple")
         and len(node.args) == 1
         and isinstance(node.args[0].value, (cst.GeneratorExp, cst.ListComp))
     )
@@ -128,7 +129,7 @@ class _Lowerer(
         if target.shape == "list":
             # every version of a list made by element writes is one list object
             self.list_root[target] = (
-                self.root_of(args[0]) if op == "setitem" else target  # type: ignore[arg-type]
+                self.root_of(args[0]) if op in IN_PLACE else target  # type: ignore[arg-type]
             )
         if op not in _VIEWS:
             self.fresh.add(target)
@@ -152,14 +153,20 @@ class _Lowerer(
         if isinstance(atom, Var) and atom.shape == "list" and target.shape == "list":
             if self.root_of(atom) == target:
                 return atom  # the list itself, after the writes that filled it
+        if (
+            isinstance(atom, Var)
+            and atom.shape == "scalar"
+            and atom.kind == "local"
+            and atom.base == target.base
+            and atom.uid > target.uid
+        ):
+            return atom  # made while evaluating ``node``, under this name already
         if atom is not target:
             if isinstance(atom, Var) and atom.shape == "list":
-                fail(
-                    "a second name for a list is not supported (both would change"
-                    " together)",
-                    self.index.locate(node),
-                    "index the original list",
-                )
+                # a second name for the same list (`w = u`, `u, v = v, u`): changing
+                # it through one name while the other is read is refused there
+                # (AssignmentLowering.check_one_name)
+                return atom
             self.emit("copy", (atom,), target)
         return target
 

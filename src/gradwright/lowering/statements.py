@@ -140,11 +140,8 @@ class StatementLowering:
             self.augmented(stmt)
             return False
         if isinstance(stmt, cst.Expr):
-            fail(
-                "an expression statement has no effect on the result",
-                self.index.locate(stmt),
-                "assign the value to a name, or remove the statement",
-            )
+            self.expression_statement(stmt)  # `ys.append(v)` (assignments.py)
+            return False
         if isinstance(stmt, (cst.Break, cst.Continue)) and self.loop_depth:
             if isinstance(stmt, cst.Break):
                 self.env[_STOP] = TRUE  # the loop ends after this iteration

@@ -229,12 +229,30 @@ def _assigned_names(statements: list[cst.CSTNode]) -> dict[str, None]:
             names.update(_assigned_names(_block_statements(stmt.body)))
         elif isinstance(stmt, cst.While):
             names.update(_assigned_names(_block_statements(stmt.body)))
+        elif isinstance(stmt, cst.Expr) and _grown_list(stmt.value) is not None:
+            names[_grown_list(stmt.value)] = None  # type: ignore[index]
         for target in targets:
             if isinstance(target, cst.Subscript) and isinstance(target.value, cst.Name):
                 names[target.value.value] = None
             for name in _target_names(target):
                 names[name] = None
     return names
+
+
+#: the list methods a model may call (as statements): they grow the list in place
+LIST_METHODS = ("append", "extend")
+
+
+def _grown_list(node: cst.BaseExpression) -> str | None:
+    """``NAME`` when ``node`` is ``NAME.append(...)`` or ``NAME.extend(...)``."""
+    if (
+        isinstance(node, cst.Call)
+        and isinstance(node.func, cst.Attribute)
+        and isinstance(node.func.value, cst.Name)
+        and node.func.attr.value in LIST_METHODS
+    ):
+        return node.func.value.value
+    return None
 
 
 def _list_uses(node: cst.CSTNode) -> set[str]:

@@ -21,6 +21,7 @@ from gradwright.ir import (
     ElementAdjoint,
     Expr,
     Let,
+    PopAdjoint,
     ReverseBranch,
     ReverseLoop,
     ReverseStmt,
@@ -109,6 +110,8 @@ def inline_adjoints(sweep: ReverseSweep) -> ReverseSweep:
         if isinstance(node, Bar)
     )
     keep = set(sweep.wrt)
+    # an adjoint a pop writes is a statement of its own, never substituted
+    keep |= {s.var for s in flat if isinstance(s, PopAdjoint) and s.var is not None}
     carries = dict(sweep.carries)
     # a loop value's start-of-iteration adjoint copied from a carried adjoint stays a
     # statement: the carried adjoints are all updated at the end of the body, and one
@@ -168,6 +171,8 @@ def inline_adjoints(sweep: ReverseSweep) -> ReverseSweep:
                         seed=simplify(substitute(stmt.seed, inlined)),
                     )
                 )
+            elif isinstance(stmt, PopAdjoint):
+                out.append(stmt)
             elif isinstance(stmt, ReverseBranch):
                 then, orelse = block(stmt.then), block(stmt.orelse)
                 if then or orelse:
@@ -266,6 +271,8 @@ def _map_exprs(
             out.append(replace(stmt, expr=change(stmt.expr)))
         elif isinstance(stmt, CallAdjoint):
             out.append(replace(stmt, seed=change(stmt.seed)))
+        elif isinstance(stmt, PopAdjoint):
+            out.append(stmt)
         elif isinstance(stmt, ReverseBranch):
             out.append(
                 replace(

@@ -36,6 +36,7 @@ from gradwright.ir import (
     Loop,
     Origin,
     Phi,
+    PopAdjoint,
     ReverseBranch,
     ReverseLoop,
     ReverseStmt,
@@ -49,7 +50,11 @@ from gradwright.ir import (
 from gradwright.sweeps.broadcasting import SMALL_OK, Fitter
 
 #: primitives on lists that adjoints flow through
-_LIST_FLOW = frozenset({"getitem", "setitem", "newlist", "listlit", "sum"})
+_LIST_FLOW = frozenset(
+    {"getitem", "setitem", "append", "newlist", "listlit", "sum", "fsum"}
+)
+#: primitives whose result is a new version of their first (list) operand
+_IN_PLACE = frozenset({"setitem", "append"})
 #: primitives whose value is a condition, rebuilt in the reverse sweep
 _LOGIC = frozenset({"lt", "le", "gt", "ge", "eq", "ne", "and", "or", "not"})
 
@@ -224,7 +229,7 @@ class _Reverse:
             if isinstance(stmt, Let):
                 if stmt.target.shape != "list":
                     continue
-                if stmt.op == "setitem":
+                if stmt.op in _IN_PLACE:
                     self.root[stmt.target] = self.root[stmt.args[0]]  # type: ignore[index]
                 else:
                     self.root[stmt.target] = stmt.target
@@ -287,8 +292,11 @@ class _Reverse:
             root = self.root[args[0]]  # type: ignore[index]
             out.append(ElementAdjoint(root, args[1], g, True, origin))
             return
-        if op == "sum":
-            out.append(SpreadAdjoint(self.root[args[0]], g, origin))  # type: ignore[index]
+        if op in ("sum", "fsum"):
+            if args[0] in self.active:
+                out.append(SpreadAdjoint(self.root[args[0]], g, origin))  # type: ignore[index]
+            if len(args) == 2:  # sum(xs, start)
+                self.contribute(args[1], g, origin, out)
             return
         if op.startswith("call:") and op[5:] in self.adjoint_helpers:
             # the helper's reverse reads its seed as a whole array
@@ -374,6 +382,13 @@ class _Reverse:
             _, index, value = let.args
             self.contribute(value, Apply("getitem", (buffer, index)), let.origin, out)
             out.append(ElementAdjoint(root, index, const(0.0), False, let.origin))
+        elif let.op == "append":
+            value = let.args[1]
+            if isinstance(value, Var) and value in self.active:
+                out.append(PopAdjoint(root, value, value in self.has, let.origin))
+                self.has.add(value)
+            else:
+                out.append(PopAdjoint(root, None, False, let.origin))
         elif let.op == "newlist":
             self.contribute(let.args[0], Apply("sum", (buffer,)), let.origin, out)
         elif let.op == "listlit":

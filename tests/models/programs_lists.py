@@ -1,0 +1,28 @@
+"""Invented models whose lists grow and are reduced, shared by the MicroPython
+tests: appends, extends, filtered and nested comprehensions, min/max over
+generators, math.prod and math.fsum."""
+
+import math
+
+
+def ledger(rate, base, days):
+    costs = []
+    for d in days:
+        costs.append(base * math.exp(rate * d))
+    costs.extend([base, rate * base])
+    costs += [rate * rate]
+    return sum(costs) + costs[-1] * costs[0]
+
+
+def band(a, b, xs):
+    hi = max((a * x - b) ** 2 for x in xs)
+    lo = min([a * x for x in xs if x > 0.0])
+    return hi - lo + len([x for x in xs if x > 0.0])
+
+
+def compound(r, ts):
+    return math.prod(1.0 + r * t for t in ts) + math.fsum(r * t for t in ts)
+
+
+def pairs(a, xs):
+    return sum((a * u * v for u in xs for v in xs if u < v), a * a)
