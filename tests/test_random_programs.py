@@ -236,7 +236,9 @@ def check_case(case: Case, stats: Stats) -> None:
                     "original": case.program.source(),
                     "original_args": args,
                 }
-                log.write(json.dumps(record) + "\n")
+                # NumPy programs' arguments are arrays: logged as nested lists
+                text = json.dumps(record, default=lambda a: a.tolist())
+                log.write(text + "\n")
 
 
 def run_family(name: str) -> Stats:
