@@ -237,6 +237,7 @@ CASES = [
         "set comprehensions are not supported",
         2,
         "{x * k for k in range(3)}",
+        "is copied as written, but this one reads 'x'",
     ),
     case(
         "dict-comprehension",
@@ -248,6 +249,7 @@ CASES = [
         "dict comprehensions are not supported",
         2,
         "{k: x * k for k in range(3)}",
+        "is copied as written, but this one reads 'x'",
     ),
     case(
         "generator-expression",
@@ -303,12 +305,13 @@ CASES = [
         "string-literal",
         """
         def f(x):
-            label = "speed"
+            label = "speed" + str(x)
             return x
         """,
         "string",
         2,
         '"speed"',
+        "is copied as written, but this one reads 'x'",
     ),
     case(
         "string-operation",
@@ -330,6 +333,7 @@ CASES = [
         "f-strings are not supported",
         2,
         'f"x={x}"',
+        "is copied as written, but this one reads 'x'",
     ),
     case(
         "recursion",
@@ -798,16 +802,16 @@ CASES = [
         "y",
     ),
     case(
-        "assert-statement",
+        "assert-with-assignment-expression",
         """
         def f(x):
-            assert x > 0.0
+            assert (y := x) > 0.0
             return x
         """,
-        "assert statements are not supported",
+        "an assignment expression (:=) is not supported",
         2,
-        "x > 0.0",
-        "check inputs before calling the model",
+        "y := x",
+        "assign the value in a statement of its own first",
     ),
     case(
         "raise-statement",
@@ -1002,6 +1006,7 @@ CASES = [
         "for-else is not supported",
         4,
         "else:",
+        "is copied as written, but this one reads 'x'",
     ),
     case(
         "assigned-only-in-loop",
@@ -1033,12 +1038,13 @@ CASES = [
         "range-outside-for",
         """
         def f(x):
-            steps = range(3)
+            steps = range(3 + x)
             return x
         """,
         "range() is supported only as the iterable of a for-loop",
         2,
         "range",
+        "is copied as written, but this one reads 'x'",
     ),
     case(
         "loop-over-a-number",

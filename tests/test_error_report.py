@@ -12,7 +12,7 @@ MODEL = """import math
 
 
 def model(a, b, xs):
-    n = lambda t: t * 2.0
+    n = lambda t: t * a
     total = 0.0
     for x in xs:
         total += a * x
@@ -42,7 +42,7 @@ def test_every_error_in_one_run():
 
 
 def test_at_most_twenty_are_shown():
-    lines = [f"    v{k} = lambda t: t" for k in range(25)]
+    lines = [f"    v{k} = lambda t: t * x" for k in range(25)]
     source = "def f(x):\n" + "\n".join(lines) + "\n    return x\n"
     with pytest.raises(gradwright.GradwrightError) as error:
         gradwright.generate(source, ["f"], wrt=["x"])
@@ -76,7 +76,7 @@ def rod(alpha, u0, c):
     return u[0]
 """
     with pytest.raises(gradwright.GradwrightError) as error:
-        gradwright.generate(source, ["rod"], wrt=["alpha"])
+        gradwright.generate(source, ["rod"], wrt=["alpha", "u0"])
     text = str(error.value)
     assert text.count(": error: ") == 1  # only `list(u0)`; the rest reads u
     assert "<string>:3:9:" in text

@@ -83,6 +83,12 @@ CALLS = {
         ("compound_grad", (0.2, [0.5, 1.0, 0.0, 2.0])),
         ("pairs_grad", (0.7, [0.5, -1.0, 2.0])),
     ],
+    "programs_inactive.py": [
+        ("guarded_grad", (0.7, 1.3)),
+        ("guarded_grad", (2.5, -0.4)),
+        ("doubling_grad", (0.9, 6)),
+        ("rebound_grad", (1.7,)),
+    ],
 }
 
 

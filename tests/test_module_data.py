@@ -369,7 +369,6 @@ def test_measures_of_module_data() -> None:
             "t[i]",
         ),
         ("    return sum(TABLE, x)", "may depend on a --wrt parameter", "+ sum(TABLE)"),
-        ("    t = TABLE\n    return x * t[0]", "'TABLE' is a list", "TABLE[i]"),
         ("    return x * TABLE[0, 1]", "one index at a time", "TABLE[i][j]"),
     ],
 )

@@ -70,11 +70,34 @@ class Origin:
 
 
 @dataclass(frozen=True)
+class Copied:
+    """A source statement copied into the forward sweep as text, never analysed
+    for derivatives or run by the generator (``lowering/inactive.py``).
+
+    Its :class:`Let` (op ``copied``) takes as arguments the values of the function's
+    names it reads, ``reads`` naming each; every name it binds gets a value of its
+    own, defined by a ``written`` Let that follows it. The emitter renames the
+    names in the text to the output's (``emission/copied.py``).
+    """
+
+    text: str
+    #: the source name of each argument of its Let, in order
+    reads: tuple[str, ...]
+    #: each name it binds, and the value that holds it afterwards
+    writes: tuple[tuple[str, Var], ...]
+    #: an ``assert`` or an ``if ...: raise`` guard: the names bound on the path
+    #: that raises are its own (not renamed, not values of the function)
+    guard: bool = False
+
+
+@dataclass(frozen=True)
 class Let:
     target: Var
     op: str
     args: tuple[Atom, ...]
     origin: Origin
+    #: for op ``copied``: the statement copied as text
+    copied: Copied | None = None
 
 
 @dataclass(frozen=True)

@@ -88,6 +88,10 @@ _SPECS = [
     # an element of module-level data: no rule, so never active (piecewise
     # constant in its index, and the data itself is constant)
     OpSpec("dataitem", "subscript", "", PREC_ATOM, 2, 2),
+    # a statement copied as text, and each name it binds (emission/copied.py
+    # prints them; no expression ever holds them)
+    OpSpec("copied", "copy", "", PREC_ATOM, 0, None),
+    OpSpec("written", "copy", "", PREC_ATOM, 1, 1),
     OpSpec("listlit", "list", "", PREC_ATOM, 0, None),
     OpSpec("newlist", "repeat", "*", PREC_MUL, 2, 2),
     OpSpec("len", "call", "len", PREC_ATOM, 1, 1),

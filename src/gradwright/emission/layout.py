@@ -53,6 +53,9 @@ _CHEAP = frozenset(
     | {"lt", "le", "gt", "ge", "eq", "ne", "and", "or", "not"}
 )
 
+#: the statements copied as written and the values they bind (always printed)
+_COPIED = frozenset({"copied", "written"})
+
 
 class Layout:
     def __init__(
@@ -222,6 +225,8 @@ class Layout:
         for arg in let.args:
             if not isinstance(arg, Var) or arg.kind == "index":
                 continue
+            if arg in self.defs and self.defs[arg].op == "written":
+                return False  # a copied statement's value may change in place
             where = self.loop_of.get(arg)
             if where is loop:
                 if arg not in self.top_level[loop] and not any(
@@ -410,6 +415,8 @@ class Layout:
         for lets in self.recompute.values():
             for let in lets:
                 live |= {a for a in let.args if isinstance(a, Var)}
+        # a statement copied as written runs whatever reads it (a guard raises)
+        live |= {v for v, let in self.defs.items() if let.op in _COPIED}
         while True:
             size = len(live)
             self._live_block(self.function.body, live)
@@ -518,7 +525,7 @@ class Layout:
                 and not let.op.startswith("call:")
                 and var.shape == "scalar"
             )
-            if not folded:
+            if not folded and let.op != "copied":  # the statement names nothing
                 stored.add(var)
         return stored
 

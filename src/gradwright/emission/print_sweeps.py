@@ -10,6 +10,7 @@ from __future__ import annotations
 
 from collections.abc import Iterator
 
+from gradwright.emission.copied import copied_lines
 from gradwright.emission.formatting import format_statement
 from gradwright.emission.layout import Layout, reverse_bounds
 from gradwright.emission.layout_check import Key, Trace, Violation, check
@@ -182,6 +183,9 @@ class _Emitter:
     def forward_let(self, let: Let, depth: int, out: _Lines, loop: Loop | None) -> None:
         layout = self.layout
         target = let.target
+        if let.op in ("copied", "written"):
+            self.forward_copied(let, depth, out, loop)
+            return
         if target not in layout.live and not (
             target.shape == "list" and self._list_live(target)
         ):
@@ -265,6 +269,36 @@ class _Emitter:
         for item in items:
             if loop is not None and item.target in self.layout.tapes.get(loop, []):
                 self.save(loop, item.target, depth, out)
+
+    def forward_copied(
+        self, let: Let, depth: int, out: _Lines, loop: Loop | None
+    ) -> None:
+        """A statement copied as written, renamed to the output's names; each value
+        it binds is saved for the reverse like any other (``written``)."""
+        copied = let.copied
+        if copied is None:  # `written`: the statement before it bound the name
+            if loop is not None and let.target in self.layout.tapes.get(loop, []):
+                self.save(loop, let.target, depth, out)
+            return
+        trace = self.trace
+        trace.at(let.origin.text)
+        copies, text = copied_lines(
+            copied,
+            let.args,
+            lambda atom: self.print(self.value(atom)),
+            self.namer.name,
+            self.namer.claim,
+        )
+        for name, old, var in copies:
+            self.reads(self.value(old))
+            trace.write(name, self.key(var))
+            out.code(f"{name} = {self.print(self.value(old))}", depth)
+        for arg in let.args:
+            self.reads(self.value(arg))
+        for _, var in copied.writes:
+            trace.write(self.namer.name(var), self.key(var))
+        out.last_origin[depth] = let.origin  # the statement quotes itself
+        out.code(text, depth)
 
     def save(self, loop: Loop, var: Var, depth: int, out: _Lines) -> None:
         """``var_saved[slot] = var``: this iteration's value, for the reverse."""
@@ -683,7 +717,11 @@ def _loop_values(loop: Loop) -> Iterator[Var]:
         yield phi.target
         if phi.exit is not None:
             yield phi.exit
-    for stmt in loop.body:
+    yield from _block_values(loop.body)
+
+
+def _block_values(statements: tuple[Stmt, ...]) -> Iterator[Var]:
+    for stmt in statements:
         if isinstance(stmt, Let):
             yield stmt.target
         elif isinstance(stmt, Loop):
@@ -691,10 +729,9 @@ def _loop_values(loop: Loop) -> Iterator[Var]:
         else:
             for phi in stmt.merges:
                 yield phi.target
-            for inner in (stmt.then, stmt.orelse):
-                for s in inner:
-                    if isinstance(s, Let):
-                        yield s.target
+            # a guard deep in branches is live though no value leaves them
+            yield from _block_values(stmt.then)
+            yield from _block_values(stmt.orelse)
 
 
 def lay_out(

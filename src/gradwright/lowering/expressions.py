@@ -101,6 +101,9 @@ class ExpressionLowering:
             return self.conditional(node, base, target)
         if isinstance(node, cst.Subscript) and self.tuple_of(node.value) is not None:
             return self.tuple_element(node)
+        item = self.opaque_item(node, base) if isinstance(node, cst.Subscript) else None
+        if item is not None:  # a lookup in a value a copied statement bound
+            return item
         if isinstance(node, cst.Subscript) and self.numpy:
             return self.numpy_subscript(node, base, target)
         if isinstance(node, cst.Subscript):

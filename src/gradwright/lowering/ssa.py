@@ -39,6 +39,7 @@ from gradwright.lowering.frontend import (
     CheckedFunction,
     ModuleIndex,
 )
+from gradwright.lowering.inactive import InactiveLowering
 from gradwright.lowering.loops import LoopLowering
 from gradwright.lowering.numpy_calls import NumpyLowering
 from gradwright.lowering.statements import StatementLowering
@@ -68,6 +69,7 @@ class _Lowerer(
     ExpressionLowering,
     CallLowering,
     NumpyLowering,
+    InactiveLowering,
 ):
     """The lowering of one function; each kind of construct is lowered by one of
     the mixins it is made of, over the state held here."""
@@ -114,6 +116,8 @@ class _Lowerer(
         self.return_origins: list[Origin] = []
         #: values that can never be active (see ExpressionLowering.is_inert)
         self.inert_values: set[Var] = set()
+        #: values bound by statements copied as written (see lowering/inactive.py)
+        self.opaque: set[Var] = set()
 
     # -- values -------------------------------------------------------------------
 

@@ -22,6 +22,7 @@ from gradwright.lowering.base import (
     _Unbound,
     flow_base,
 )
+from gradwright.lowering.inactive import is_guard
 from gradwright.lowering.syntax import (
     _STATEMENT_REJECTIONS,
     _always_leaves,
@@ -51,6 +52,9 @@ class StatementLowering:
         it runs only on the paths that did not return.
         """
         for position, stmt in enumerate(statements):
+            if is_guard(stmt):  # copied as written (lowering/inactive.py)
+                self.recovering(self.copy_statement, stmt, True)
+                continue
             is_loop = isinstance(stmt, (cst.For, cst.While))
             if (isinstance(stmt, cst.If) or is_loop) and _may_leave([stmt]):
                 if (
@@ -68,13 +72,15 @@ class StatementLowering:
                     returned = self.recovering(self.if_statement, stmt, rest, "if")
                 return bool(returned) or returned is None
             if isinstance(stmt, cst.If):
-                self.recovering(self.if_statement, stmt, (), "if")
+                self.recovering(
+                    self.lowered_or_copied, stmt, self.if_statement, (), "if"
+                )
                 continue
             if is_loop:
-                self.recovering(self.loop_statement, stmt, ())
+                self.recovering(self.lowered_or_copied, stmt, self.loop_statement, ())
                 continue
             self.set_origin(_statement_text(self.index, stmt))
-            ended = self.recovering(self.statement, stmt)
+            ended = self.recovering(self.lowered_or_copied, stmt, self.statement)
             if ended:
                 if position + 1 < len(statements):
                     word = _jump_word(stmt)

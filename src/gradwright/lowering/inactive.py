@@ -1,0 +1,433 @@
+"""Statements that read no active value, copied into the forward sweep as text.
+
+Only the active data flow (what depends on the --wrt parameters) has to be
+differentiable. A statement the lowering cannot turn into primitives but that reads
+no active name (string formatting, a lookup in a local dict, a ``while`` loop
+computing a constant) is copied as written: one ``copied`` Let whose arguments are
+the values of the function's names it reads, then one ``written`` Let per name it
+binds, so the SSA knows what it binds and the reverse sweep can read (or save, in a
+loop) what it needs. A guard (``assert``, ``if bad: raise ...``) is copied even when
+it reads active values: it only reads, so it has no derivative.
+
+Activity is decided from the names read, conservatively: a statement reading any
+value that may be active is not copied. Nothing here is run; the names come from
+libcst's scope analysis of the statement, and the emitter renames them in the text
+by the same analysis (``emission/copied.py``), never by matching text.
+"""
+
+from __future__ import annotations
+
+import builtins
+from collections.abc import Callable
+from dataclasses import dataclass
+
+import libcst as cst
+from libcst.metadata import GlobalScope, Scope, ScopeProvider
+
+from gradwright.diagnostics import GradwrightError, fail
+from gradwright.ir import Atom, Const, Copied, Let, Var
+from gradwright.lowering.base import _Tuple, _Unbound
+
+#: methods that only read the object they are called on (strings, dicts, lists)
+_READING_METHODS = frozenset(
+    {
+        "get",
+        "keys",
+        "values",
+        "items",
+        "index",
+        "count",
+        "copy",
+        "format",
+        "upper",
+        "lower",
+        "strip",
+        "split",
+        "join",
+        "startswith",
+        "endswith",
+        "replace",
+    }
+)
+
+#: statements copied when the lowering rejects them and they read no active value
+_COPYABLE = (cst.Assign, cst.AnnAssign, cst.AugAssign, cst.While, cst.For, cst.If)
+
+_BUILTINS = frozenset(dir(builtins))
+
+
+@dataclass(frozen=True)
+class StatementNames:
+    """The function-scope names a statement reads and binds, as Name nodes in
+    source order (names local to a comprehension or lambda in it excluded)."""
+
+    reads: tuple[cst.Name, ...]
+    writes: tuple[cst.Name, ...]
+
+
+def as_module(stmt: cst.CSTNode) -> cst.Module:
+    """A module holding just ``stmt`` (the node itself, not a copy)."""
+    if isinstance(stmt, cst.BaseSmallStatement):
+        stmt = cst.SimpleStatementLine(
+            body=[stmt.with_changes(semicolon=cst.MaybeSentinel.DEFAULT)]
+        )
+    return cst.Module(body=[stmt.with_changes(leading_lines=())])  # type: ignore[list-item, union-attr]
+
+
+def statement_text(stmt: cst.CSTNode) -> str:
+    """The statement as written (its own lines, comments inside it kept)."""
+    return as_module(stmt).code.rstrip()
+
+
+def statement_names(module: cst.Module) -> StatementNames:
+    """The names of ``module``'s top scope, read and bound (by libcst's scope
+    analysis, so ``k`` in ``[k * n for k in KEYS]`` is neither)."""
+    wrapper = cst.MetadataWrapper(module, unsafe_skip_copy=True)
+    scopes = wrapper.resolve(ScopeProvider)
+    read_ids: set[int] = set()
+    write_ids: set[int] = set()
+    for scope in {s for s in scopes.values() if s is not None}:
+        for access in scope.accesses:
+            node = access.node
+            if isinstance(node, cst.Name) and not _bound_inside(scope, node.value):
+                read_ids.add(id(node))
+        if isinstance(scope, GlobalScope):
+            for assignment in scope.assignments:
+                node = getattr(assignment, "node", None)
+                if isinstance(node, cst.Name):
+                    write_ids.add(id(node))
+    reads: list[cst.Name] = []
+    writes: list[cst.Name] = []
+
+    class Collect(cst.CSTVisitor):
+        def visit_Name(self, node: cst.Name) -> None:
+            if id(node) in read_ids:
+                reads.append(node)
+            if id(node) in write_ids:
+                writes.append(node)
+
+    module.visit(Collect())
+    return StatementNames(tuple(reads), tuple(writes))
+
+
+def _bound_inside(scope: Scope, name: str) -> bool:
+    """Whether ``name`` is bound by a comprehension or lambda around the access."""
+    while not isinstance(scope, GlobalScope):
+        if scope.assignments[name]:
+            return True
+        scope = scope.parent
+    return False
+
+
+def _problem(module: cst.Module) -> tuple[cst.CSTNode, str, str] | None:
+    """A construct a copied statement cannot hold: (node, message, hint)."""
+    found: list[tuple[cst.CSTNode, str, str]] = []
+    loops = [0]
+
+    class Check(cst.CSTVisitor):
+        def visit_For(self, node: cst.For) -> None:
+            loops[0] += 1
+
+        def leave_For(self, node: cst.For) -> None:
+            loops[0] -= 1
+
+        def visit_While(self, node: cst.While) -> None:
+            loops[0] += 1
+
+        def leave_While(self, node: cst.While) -> None:
+            loops[0] -= 1
+
+        def visit_Return(self, node: cst.Return) -> None:
+            found.append(
+                (
+                    node,
+                    "a return inside a statement copied as written",
+                    "keep the result in a variable and return it after the statement",
+                )
+            )
+
+        def visit_Break(self, node: cst.Break) -> None:
+            self._jump(node, "break")
+
+        def visit_Continue(self, node: cst.Continue) -> None:
+            self._jump(node, "continue")
+
+        def _jump(self, node: cst.CSTNode, word: str) -> None:
+            if not loops[0]:
+                found.append(
+                    (
+                        node,
+                        f"a {word} in a statement copied as written leaves a loop"
+                        " the generator differentiates",
+                        "guard the rest of the loop body with an if instead",
+                    )
+                )
+
+        def visit_NamedExpr(self, node: cst.NamedExpr) -> None:
+            found.append(
+                (
+                    node,
+                    "an assignment expression (:=) is not supported",
+                    "assign the value in a statement of its own first",
+                )
+            )
+
+        def visit_Yield(self, node: cst.Yield) -> None:
+            found.append((node, "yield is not supported in a model", ""))
+
+        def visit_Await(self, node: cst.Await) -> None:
+            found.append((node, "await is not supported in a model", ""))
+
+        def visit_FunctionDef(self, node: cst.FunctionDef) -> None:
+            found.append((node, "nested function definitions are not supported", ""))
+
+        def visit_ClassDef(self, node: cst.ClassDef) -> None:
+            found.append((node, "class definitions are not supported here", ""))
+
+        def visit_Import(self, node: cst.Import) -> None:
+            found.append((node, "imports inside the model are not supported", ""))
+
+        def visit_ImportFrom(self, node: cst.ImportFrom) -> None:
+            found.append((node, "imports inside the model are not supported", ""))
+
+        def visit_Global(self, node: cst.Global) -> None:
+            found.append((node, "global statements are not supported", ""))
+
+        def visit_Nonlocal(self, node: cst.Nonlocal) -> None:
+            found.append((node, "nonlocal statements are not supported", ""))
+
+        def visit_Del(self, node: cst.Del) -> None:
+            found.append((node, "del statements are not supported", ""))
+
+    module.visit(Check())
+    return found[0] if found else None
+
+
+def _changed_in_place(module: cst.Module, names: set[str]) -> cst.CSTNode | None:
+    """An element or attribute assignment to one of ``names``, or a call of one
+    of their methods that may change it (``xs.append(...)``)."""
+    found: list[cst.CSTNode] = []
+
+    def root(node: cst.BaseExpression) -> str | None:
+        while isinstance(node, (cst.Subscript, cst.Attribute)):
+            node = node.value
+        return node.value if isinstance(node, cst.Name) else None
+
+    def target(node: cst.BaseExpression) -> None:
+        if isinstance(node, (cst.Subscript, cst.Attribute)) and root(node) in names:
+            found.append(node)
+        elif isinstance(node, (cst.Tuple, cst.List)):
+            for element in node.elements:
+                target(element.value)
+
+    class Check(cst.CSTVisitor):
+        def visit_AssignTarget(self, node: cst.AssignTarget) -> None:
+            target(node.target)
+
+        def visit_AugAssign(self, node: cst.AugAssign) -> None:
+            target(node.target)
+
+        def visit_AnnAssign(self, node: cst.AnnAssign) -> None:
+            target(node.target)
+
+        def visit_Call(self, node: cst.Call) -> None:
+            func = node.func
+            if (
+                isinstance(func, cst.Attribute)
+                and root(func.value) in names
+                and func.attr.value not in _READING_METHODS
+            ):
+                found.append(node)
+
+    module.visit(Check())
+    return found[0] if found else None
+
+
+def _augmented_names(module: cst.Module) -> list[cst.Name]:
+    found: list[cst.Name] = []
+
+    class Check(cst.CSTVisitor):
+        def visit_AugAssign(self, node: cst.AugAssign) -> None:
+            if isinstance(node.target, cst.Name):
+                found.append(node.target)
+
+    module.visit(Check())
+    return found
+
+
+def is_guard(stmt: cst.CSTNode) -> bool:
+    """``assert ...``, or an ``if`` without else whose body ends in a raise."""
+    if isinstance(stmt, cst.Assert):
+        return True
+    if not isinstance(stmt, cst.If) or stmt.orelse is not None:
+        return False
+    body = stmt.body
+    last = body.body[-1] if body.body else None
+    if isinstance(last, cst.SimpleStatementLine):
+        last = last.body[-1]
+    return isinstance(last, cst.Raise)
+
+
+class InactiveLowering:
+    """Part of the lowering (see ``ssa._Lowerer``); state lives on the lowerer."""
+
+    def lowered_or_copied(
+        self, stmt: cst.CSTNode, lower: Callable[..., object], *args: object
+    ) -> object:
+        """``lower(stmt, *args)``; if the lowering rejects a statement that reads
+        no active value, the statement is copied as written instead."""
+        env, blocks = dict(self.env), [list(b) for b in self.blocks]
+        depth, origin, errors = self.loop_depth, self.origin, len(self.errors)
+        try:
+            return lower(stmt, *args)
+        except GradwrightError as error:
+            if not isinstance(stmt, _COPYABLE):
+                raise
+            self.env = env
+            self.blocks[:] = blocks
+            self.loop_depth, self.origin = depth, origin
+            del self.errors[errors:]
+            try:
+                active = self.copy_statement(stmt, guard=False, quiet=True)
+            except GradwrightError:
+                if isinstance(stmt, cst.AugAssign):
+                    raise error from None  # the lowering's own words on x += ...
+                raise  # it reads no active value: why it cannot be copied
+            if active is None:
+                return False
+            # say why it was not copied either, and keep what the lowering said
+            why = (
+                "a statement that reads no value depending on the --wrt parameters"
+                f" is copied as written, but this one reads '{active.value}'"
+            )
+            hint = error.diagnostic.hint
+            fail(
+                error.diagnostic.message,
+                error.diagnostic.location,
+                f"{hint} ({why})" if hint else why,
+            )
+
+    def copy_statement(
+        self, stmt: cst.CSTNode, guard: bool, quiet: bool = False
+    ) -> cst.Name | None:
+        """Copy ``stmt`` as text. With ``quiet``, a statement that reads an active
+        value is not copied: the name read is returned (None when copied)."""
+        self.set_origin(" ".join(statement_text(stmt).split()))
+        module = as_module(stmt)
+        names = statement_names(module)
+        bound_before = {n.value for n in names.reads if n.value in self.env}
+        written_here = {n.value for n in names.writes}
+        local_here = written_here - bound_before if guard else set()
+        reads: dict[str, Atom] = {}
+        for node in names.reads:
+            name = node.value
+            if name in reads or name in local_here:
+                continue
+            if name in self.env:
+                bound = self.env[name]
+                if isinstance(bound, _Unbound):
+                    self.read_name(node)  # raises, located
+                if isinstance(bound, _Tuple):
+                    fail(
+                        f"'{name}' is a tuple of {bound.size} numbers: a statement"
+                        " copied as written cannot read it whole",
+                        self.index.locate(node),
+                        f"unpack it first (a, b = {name}) and read the elements",
+                    )
+                atom = bound
+                assert isinstance(atom, (Var, Const))
+                if not guard and not self.is_inert(atom):
+                    if quiet:
+                        return node
+                    fail(
+                        f"this statement is copied as written, but it reads '{name}',"
+                        " which depends on the --wrt parameters",
+                        self.index.locate(node),
+                        "only statements that read no active value are copied;"
+                        " compute the active part with numbers, lists and math",
+                    )
+                reads[name] = atom
+            elif name in written_here:
+                continue  # bound by the statement itself before it reads it
+            elif name in self.local_names:
+                self.read_name(node)  # used before it is assigned: raises
+            elif name in self.index.module_names:
+                self.constants_read[name] = None  # the module slice copies it
+            elif name not in _BUILTINS:
+                fail(
+                    f"name '{name}' is not defined",
+                    self.index.locate(node),
+                    "a model reads its parameters, its own variables and"
+                    " module-level names",
+                )
+        problem = _problem(module)
+        if problem is not None:
+            node, message, hint = problem
+            fail(message, self.index.locate(node), hint or None)
+        changed = _changed_in_place(module, set(self.env) | set(self.index.data_names))
+        if changed is not None:
+            fail(
+                "a statement copied as written must not change a value in place"
+                " (the reverse sweep reads the values as they were)",
+                self.index.locate(changed),
+                "build a new value and bind it to a name instead",
+            )
+        for node in _augmented_names(module):
+            bound = self.env.get(node.value)
+            if (
+                isinstance(bound, Var)
+                and bound not in self.opaque
+                and (self.numpy or bound.shape == "list")
+            ):
+                fail(
+                    f"`{node.value} op= ...` in a statement copied as written may"
+                    " change an array or list in place (the reverse sweep reads the"
+                    " value it had)",
+                    self.index.locate(node),
+                    f"write `{node.value} = {node.value} op ...` to make a new one",
+                )
+        writes: list[tuple[str, Var]] = []
+        for name in dict.fromkeys(n.value for n in names.writes):
+            if name in local_here:
+                continue
+            if name in self.env and name not in reads:
+                # its value before: the copy starts from it on paths that do not
+                # bind it (a while loop that does not run)
+                bound = self.env[name]
+                if isinstance(bound, (Var, Const)):
+                    reads[name] = bound
+            writes.append((name, self.new_var(name, "local")))
+        copied = Copied(statement_text(stmt), tuple(reads), tuple(writes), guard)
+        statement = self.new_var("copied", "temp")
+        self.blocks[-1].append(
+            Let(statement, "copied", tuple(reads.values()), self.origin, copied)
+        )
+        self.inert_values.add(statement)
+        for name, var in writes:
+            self.emit("written", (statement,), var)
+            self.opaque.add(var)
+            self.fresh.discard(var)  # it may name an array it did not make
+            self.env[name] = var
+        return None
+
+    def opaque_item(self, node: cst.Subscript, base: str) -> Atom | None:
+        """``table[key]`` on a value a copied statement bound (a local dict of
+        constants, say): a ``dataitem``, never active (None for anything else)."""
+        head = node.value
+        bound = self.env.get(head.value) if isinstance(head, cst.Name) else None
+        if not (isinstance(bound, Var) and bound in self.opaque):
+            return None
+        if len(node.slice) != 1 or not isinstance(node.slice[0].slice, cst.Index):
+            fail(
+                "only single-key lookups are supported here",
+                self.index.locate(node),
+                f"write {head.value}[key]",  # type: ignore[union-attr]
+            )
+        key = node.slice[0].slice.value  # type: ignore[union-attr]
+        if isinstance(key, cst.SimpleString):
+            index: Atom = Const(key.value, None)
+        else:
+            index = self.scalar(self.expr(key, base, None), key)
+        item = self.emit("dataitem", (bound, index), self.new_var(base, "temp"))
+        self.fresh.discard(item)
+        return item

@@ -1,0 +1,179 @@
+"""Statements that read no active value are copied as written (lowering/inactive.py):
+guards, string formatting, local constant dicts, while loops computing constants.
+
+Gradients are checked against SymPy's ``diff`` of the closed form the model
+computes (the copied statements fix its constants); tests/models/programs_inactive.py
+holds more, run on MicroPython and checked against mpmath central differences.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import pytest
+import sympy
+from support import build, rel_err, run_source, same_bits
+
+import gradwright
+
+MODEL = (Path(__file__).parent / "models" / "programs_inactive.py").read_text()
+
+
+def _closed_guarded():
+    """guarded() written out: the while loop leaves k = 5; p = 1.5, q = -0.25."""
+    x, y = sympy.symbols("x y", positive=True)
+    z = x * y * 5 * sympy.Rational(3, 2) + 2 * sympy.log(x)
+    q = sympy.Rational(-1, 4)
+    for i in range(3):
+        z = z * q + sympy.sin(y * i)
+    return (x, y), z
+
+
+@pytest.mark.parametrize("point", [(0.7, 1.3), (2.5, -0.4)])
+def test_guarded_matches_sympy(point):
+    ns = build(MODEL, "guarded")
+    value, grad = ns["guarded_grad"](*point)
+    assert same_bits(value, run_source(MODEL)["guarded"](*point))
+    symbols, z = _closed_guarded()
+    subs = dict(zip(symbols, point, strict=True))
+    for got, symbol in zip(grad, symbols, strict=True):
+        exact = sympy.diff(z, symbol).subs(subs)  # reference: SymPy diff
+        assert rel_err(got, float(exact)) < 1e-14
+
+
+def test_guards_raise_as_the_source_does():
+    ns = build(MODEL, "guarded")
+    plain = run_source(MODEL)["guarded"]
+    for point, error in [((-1.0, 1.0), AssertionError), ((1.0, -20.0), ValueError)]:
+        with pytest.raises(error) as primal:
+            plain(*point)
+        with pytest.raises(error) as generated:
+            ns["guarded_grad"](*point)
+        assert str(generated.value) == str(primal.value)
+
+
+def test_copied_statements_are_the_source_text():
+    text = gradwright.generate(MODEL, ["guarded"])
+    body = text.split("def guarded_grad")[1].split("# reverse sweep")[0]
+    for line in [
+        '    assert x > 0.0, f"x must be positive, got {x}"',
+        "    if y < -10.0:",
+        '        raise ValueError(f"y={y} is out of range")',
+        "    while k * k < 20:",
+        "        k += 1",
+        '    gains = {"p": 1.5, "q": -0.25}',
+        '        note = label + ", step " + str(i)',
+    ]:
+        assert line + "\n" in body
+    assert "    # while" not in body  # a copied statement quotes itself
+
+
+def test_renamed_by_the_syntax_tree_not_the_text():
+    # c is read by the reverse sweep (y = c * x) and rebound by the while loop:
+    # the loop works on a copy named c_1; a string holding "c" is left alone
+    source = (
+        "def f(x):\n"
+        "    c = 3.0\n"
+        "    y = c * x\n"
+        "    while c < 10.0:\n"
+        "        c += 4.0\n"
+        '    label = f"c={c}" + "c"\n'
+        "    return y * c\n"
+    )
+    text = gradwright.generate(source, ["f"])
+    assert "    c_1 = c\n    while c_1 < 10.0:\n        c_1 += 4.0\n" in text
+    assert '    label = f"c={c_1}" + "c"\n' in text
+    ns = build(source, "f")
+    _, (x_bar,) = ns["f_grad"](1.7)
+    x = sympy.Symbol("x")
+    assert x_bar == float(sympy.diff(3 * x * 11, x))  # reference: SymPy diff (33)
+
+
+def test_names_a_guard_binds_are_its_own():
+    source = (
+        "def f(x):\n"
+        "    msg = 2.0 * x\n"
+        "    if x < 0.0:\n"
+        '        note = "negative: " + str(x)\n'
+        "        raise ValueError(note)\n"
+        "    return msg * x\n"
+    )
+    ns = build(source, "f")
+    _, (x_bar,) = ns["f_grad"](1.5)
+    assert x_bar == 6.0  # d(2 x^2)/dx = 4 x, a textbook closed form
+    with pytest.raises(ValueError, match="negative: -1.0"):
+        ns["f_grad"](-1.0)
+
+
+def test_local_dict_lookup_with_a_key_from_a_copied_statement():
+    source = (
+        "def f(x, n):\n"
+        '    weights = {"a": 2.0, "b": 5.0}\n'
+        "    total = 0.0\n"
+        "    for i in range(n):\n"
+        '        key = "a" if i % 2 == 0 else "b"\n'
+        "        total = total + weights[key] * x * x\n"
+        "    return total\n"
+    )
+    ns = build(source, "f")
+    _, (x_bar, n_bar) = ns["f_grad"](0.5, 3)
+    # weights a, b, a: total = 9 x^2, derivative 18 x (SymPy diff)
+    x = sympy.Symbol("x")
+    assert x_bar == float(sympy.diff(9 * x**2, x).subs(x, 0.5))
+    assert n_bar == 0.0
+
+
+def _error(source: str, wrt: list[str] | None = None) -> str:
+    with pytest.raises(gradwright.GradwrightError) as error:
+        gradwright.generate(source, ["f"], wrt=wrt)
+    return str(error.value)
+
+
+def test_a_while_loop_reading_an_active_value_is_refused_with_the_name():
+    text = _error(
+        "def f(x):\n    k = 0\n    while k < x:\n        k += 1\n    return x * k\n"
+    )
+    assert "while-loops are not supported" in text
+    assert "this one reads 'x'" in text
+    assert "for _ in range(max_iter)" in text
+
+
+def test_a_statement_reading_an_active_value_is_not_copied():
+    text = _error('def f(x):\n    label = f"{x:.3f}"\n    return x\n')
+    assert "<string>:2:13: error: f-strings are not supported" in text
+    assert "this one reads 'x'" in text
+    # the same statement copies when x is left out of --wrt
+    source = 'def f(x, y):\n    label = f"{x:.3f}"\n    return x * y\n'
+    assert 'label = f"{x:.3f}"' in gradwright.generate(source, ["f"], wrt=["y"])
+
+
+def test_a_copied_statement_must_not_change_a_value_in_place():
+    source = (
+        "def f(x):\n"
+        "    n = 2\n"
+        '    table = {"a": n}\n'
+        '    table["a"] = 3\n'
+        '    return x * table["a"]\n'
+    )
+    text = _error(source)
+    assert "<string>:4:5: error: a statement copied as written must not change" in (
+        text
+    )
+    assert "build a new value" in text
+
+
+def test_a_guard_reading_an_active_value_inside_a_loop():
+    source = (
+        "import math\n\n\n"
+        "def f(x):\n"
+        "    s = 0.0\n"
+        "    for i in range(4):\n"
+        "        s = s + math.sin(x * i)\n"
+        '        assert s < 100.0, f"diverged at {i}: {s}"\n'
+        "    return s\n"
+    )
+    ns = build(source, "f")
+    _, (x_bar,) = ns["f_grad"](0.3)
+    x = sympy.Symbol("x")
+    exact = sympy.diff(sum(sympy.sin(x * i) for i in range(4)), x).subs(x, 0.3)
+    assert rel_err(x_bar, float(exact)) < 1e-15  # reference: SymPy diff
