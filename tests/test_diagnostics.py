@@ -157,6 +157,7 @@ CASES = [
         "while-else is not supported",
         4,
         "else:",
+        "is copied as written, but this one reads 'x'",
     ),
     case(
         "try-statement",
@@ -430,6 +431,7 @@ CASES = [
         "while-else is not supported",
         4,
         "else:",
+        "is copied as written, but this one reads 'x'",
     ),
     case(
         "helper-unknown-keyword",
@@ -1194,6 +1196,7 @@ CASES = [
         "while-else is not supported",
         8,
         "else:",
+        "is copied as written, but this one reads 'x'",
         functions=("good", "bad"),
     ),
 ]

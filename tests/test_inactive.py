@@ -129,15 +129,6 @@ def _error(source: str, wrt: list[str] | None = None) -> str:
     return str(error.value)
 
 
-def test_a_while_loop_reading_an_active_value_is_refused_with_the_name():
-    text = _error(
-        "def f(x):\n    k = 0\n    while k < x:\n        k += 1\n    return x * k\n"
-    )
-    assert "while-loops are not supported" in text
-    assert "this one reads 'x'" in text
-    assert "for _ in range(max_iter)" in text
-
-
 def test_a_statement_reading_an_active_value_is_not_copied():
     text = _error('def f(x):\n    label = f"{x:.3f}"\n    return x\n')
     assert "<string>:2:13: error: f-strings are not supported" in text

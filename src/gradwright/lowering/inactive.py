@@ -24,8 +24,9 @@ from dataclasses import dataclass
 import libcst as cst
 from libcst.metadata import GlobalScope, Scope, ScopeProvider
 
+from gradwright.calculus.rules import RULES
 from gradwright.diagnostics import GradwrightError, fail
-from gradwright.ir import Atom, Const, Copied, Let, Var
+from gradwright.ir import Atom, Branch, Const, Copied, Let, Var
 from gradwright.lowering.base import _Tuple, _Unbound
 
 #: methods that only read the object they are called on (strings, dicts, lists)
@@ -54,6 +55,14 @@ _READING_METHODS = frozenset(
 _COPYABLE = (cst.Assign, cst.AnnAssign, cst.AugAssign, cst.While, cst.For, cst.If)
 
 _BUILTINS = frozenset(dir(builtins))
+
+#: primitives on lists that adjoints flow through (as sweeps.reverse._LIST_FLOW)
+_LIST_FLOW = frozenset({"getitem", "setitem", "newlist", "listlit", "sum"})
+
+
+def _differentiable(op: str) -> bool:
+    # mirrors sweeps.reverse.differentiable (the lowering does not import it)
+    return op in RULES or op in _LIST_FLOW or op.startswith("call:")
 
 
 @dataclass(frozen=True)
@@ -278,6 +287,16 @@ class InactiveLowering:
         no active value, the statement is copied as written instead."""
         env, blocks = dict(self.env), [list(b) for b in self.blocks]
         depth, origin, errors = self.loop_depth, self.origin, len(self.errors)
+        if isinstance(stmt, cst.While):
+            # a while loop reading no active value is copied, not lowered: its
+            # trip count need not be recorded, and it reads as the source does
+            try:
+                if self.copy_statement(stmt, guard=False, quiet=True) is None:
+                    return False
+            except GradwrightError:
+                pass
+            self.env, self.blocks[:], self.origin = env, blocks, origin
+            blocks = [list(b) for b in self.blocks]
         try:
             return lower(stmt, *args)
         except GradwrightError as error:
@@ -319,6 +338,7 @@ class InactiveLowering:
         written_here = {n.value for n in names.writes}
         local_here = written_here - bound_before if guard else set()
         reads: dict[str, Atom] = {}
+        module_names: list[str] = []
         for node in names.reads:
             name = node.value
             if name in reads or name in local_here:
@@ -336,7 +356,7 @@ class InactiveLowering:
                     )
                 atom = bound
                 assert isinstance(atom, (Var, Const))
-                if not guard and not self.is_inert(atom):
+                if not guard and not self.never_active(atom):
                     if quiet:
                         return node
                     fail(
@@ -352,7 +372,7 @@ class InactiveLowering:
             elif name in self.local_names:
                 self.read_name(node)  # used before it is assigned: raises
             elif name in self.index.module_names:
-                self.constants_read[name] = None  # the module slice copies it
+                module_names.append(name)  # the module slice copies it
             elif name not in _BUILTINS:
                 fail(
                     f"name '{name}' is not defined",
@@ -397,6 +417,7 @@ class InactiveLowering:
                 if isinstance(bound, (Var, Const)):
                     reads[name] = bound
             writes.append((name, self.new_var(name, "local")))
+        self.constants_read.update(dict.fromkeys(module_names))
         copied = Copied(statement_text(stmt), tuple(reads), tuple(writes), guard)
         statement = self.new_var("copied", "temp")
         self.blocks[-1].append(
@@ -409,6 +430,56 @@ class InactiveLowering:
             self.fresh.discard(var)  # it may name an array it did not make
             self.env[name] = var
         return None
+
+    def never_active(self, atom: Atom) -> bool:
+        """``is_inert``, or else no path of the statements lowered so far leads
+        from a --wrt parameter to ``atom`` through a differentiable primitive
+        (a forward fixed point over branches and loops, so a while loop's
+        counter is inactive). A value of a loop still being lowered (a carried
+        value whose update is not known yet) counts as active."""
+        if self.is_inert(atom):
+            return True
+        assert isinstance(atom, Var)
+        defined: set[Var] = set()
+        active: set[Var] = set()
+
+        def is_active(arg: object) -> bool:
+            if isinstance(arg, Var) and arg.kind == "param":
+                return arg.base in self.function.wrt
+            return arg in active
+
+        def visit(statements: list | tuple) -> bool:
+            changed = False
+            for stmt in statements:
+                if isinstance(stmt, Let):
+                    defined.add(stmt.target)
+                    if (
+                        stmt.target not in active
+                        and _differentiable(stmt.op)
+                        and any(is_active(a) for a in stmt.args)
+                    ):
+                        active.add(stmt.target)
+                        changed = True
+                    continue
+                phis = stmt.merges if isinstance(stmt, Branch) else stmt.carried
+                if isinstance(stmt, Branch):
+                    changed = visit(stmt.then) | visit(stmt.orelse) | changed
+                else:
+                    defined.add(stmt.index)
+                    changed = visit(stmt.body) | changed
+                for phi in phis:
+                    outs = {phi.target} | ({phi.exit} if phi.exit else set())
+                    defined.update(outs)
+                    if not outs <= active and (
+                        is_active(phi.first) or is_active(phi.second)
+                    ):
+                        active.update(outs)
+                        changed = True
+            return changed
+
+        while any([visit(block) for block in self.blocks]):
+            pass
+        return atom in defined and atom not in active
 
     def opaque_item(self, node: cst.Subscript, base: str) -> Atom | None:
         """``table[key]`` on a value a copied statement bound (a local dict of
