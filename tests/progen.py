@@ -1799,8 +1799,30 @@ def numpy_programs(draw, family: str = "numpy") -> Case:
     params = sorted(chosen, key=list(NP_SHAPES).index)
     names = {p: NP_SHAPES[p] for p in params}
     body: list = []
+    funcs: list[Func] = []
+    calls: list[tuple[Ex, tuple]] = []
+    if family == "numpy_helpers":
+        # helpers over arrays (reductions, matrix products, broadcasting), each
+        # drawn for the shapes of its arguments and called once or twice
+        for h in range(draw(st.integers(1, 2))):
+            given = draw(st.lists(st.sampled_from(params), min_size=1, max_size=2))
+            own = {f"a{j}": names[p] for j, p in enumerate(given)}
+            inner, shape = draw(np_expr(own, 2))
+            hbody: list = []
+            if draw(st.booleans()):
+                hbody.append(Assign(["t"], [inner]))
+                own = {**own, "t": shape}
+                inner, shape = draw(np_expr(own, 1))
+            hbody.append(Return([inner]))
+            funcs.append(Func(f"g{h}", list(own)[: len(given)], hbody))
+            form = f"g{h}({', '.join(given)})"
+            calls.append((Ex(form.replace("{", "{{"), tag="array_helper"), shape))
     for k in range(draw(st.integers(1, 4))):
         e, shape = draw(np_expr(names, 2))
+        if calls and draw(st.integers(0, 2)):
+            e, shape = draw(st.sampled_from(calls))
+            if shape and draw(st.booleans()):
+                e = apply(draw(st.sampled_from(NP_UNARY)), e)
         target = draw(st.sampled_from([f"u{k}", f"u{k}", *sorted(names)]))
         if target in NP_SHAPES and NP_SHAPES.get(target) != shape:
             target = f"u{k}"
@@ -1821,7 +1843,7 @@ def numpy_programs(draw, family: str = "numpy") -> Case:
     if draw(st.integers(0, 3)) == 0:
         wrt = [p for p in params if draw(st.booleans())] or params[:1]
     return Case(
-        Program([Func("f", params, body)], numpy=True),
+        Program([*funcs, Func("f", params, body)], numpy=True),
         kinds,
         wrt,
         draw(st.integers(0, 2**32 - 1)),

@@ -366,3 +366,35 @@ def test_tuple_helper_with_a_default_parameter():
     # closed form: f = x y (x + y) + 0.5 x (x + 0.5)
     assert rel_err(x_bar, 2 * x * y + y * y + x + 0.25) < 1e-15
     assert rel_err(y_bar, x * x + 2 * x * y) < 1e-15
+
+
+ARRAY_CORNERS = """
+import numpy as np
+
+
+def first(a, b):
+    return a
+
+
+def total(a):
+    t = a
+    return np.sum(t)
+
+
+def f(w, A):
+    u = first(w, A)
+    return np.sum(A + total(A)) + np.sum(u * u)
+"""
+
+
+def test_array_helpers_with_an_unused_operand_and_a_reduced_result():
+    """Found by the numpy_helpers random family: partials of an unused matrix
+    operand raised a broadcasting error, and a helper's scalar result added to a
+    matrix lost its adjoint's sum (2 instead of 7)."""
+    module = generate(ARRAY_CORNERS, ["f"])
+    w = np.array([0.5, -1.5])
+    A = np.arange(6.0).reshape(2, 3) / 7.0
+    _, (w_bar, A_bar) = module["f_grad"](w, A)
+    # closed form: f = sum(A) + 6 sum(A) + |w|^2
+    np.testing.assert_array_equal(w_bar, 2 * w)
+    np.testing.assert_allclose(A_bar, np.full((2, 3), 7.0), rtol=1e-15)

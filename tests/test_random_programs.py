@@ -151,6 +151,7 @@ FAMILIES: dict[str, tuple[Knobs | None, int]] = {
         60,
     ),
     "numpy": (None, 40),
+    "numpy_helpers": (None, 40),
 }
 
 # Budgets per family (the long runs: ~0.05% rejected, ~90% compared, 75-90% of

@@ -10,7 +10,6 @@ from contextlib import contextmanager
 
 import libcst as cst
 
-from gradwright.calculus.rules import ELEMENTWISE_OPS
 from gradwright.diagnostics import GradwrightError, fail, file_location
 from gradwright.emission.module import Compiled, HelperRole, render_module
 from gradwright.emission.targets import DEFAULT_TARGET, get_target
@@ -31,7 +30,6 @@ from gradwright.sweeps.reverse import (
     defined_in,
     list_roots,
     reverse_sweep,
-    walk_lets,
 )
 from gradwright.sweeps.shapes import Dim, ShapeTable, with_sizes
 
@@ -149,45 +147,24 @@ def compile_with_callees(
     return compiled
 
 
-#: primitives on truth values and copies, elementwise on arrays too
-_ELEMENTWISE_EXTRA = frozenset(
-    {"lt", "le", "gt", "ge", "eq", "ne", "and", "or", "not", "copy"}
-)
-
-
 def _helper_forms(
     index: ModuleIndex,
     helpers: dict[str, tuple[CheckedFunction, SSAFunction]],
     targets: set[str],
 ) -> dict[str, HelperRole]:
-    """Partials form where it is exact and cheaper: numbers in, one number out,
-    and, in an array model, a helper that works element by element (its partials
-    then broadcast like ``+``) and is no target (a target's gradient sums over
-    broadcasting). Every other helper is reversed by its adjoint function."""
-    numpy = bool(index.numpy_modules)
-    verdicts: dict[str, bool] = {}
-
-    def elementwise(name: str) -> bool:
-        if name not in verdicts:
-            verdicts[name] = False  # no recursion reaches here (rejected before)
-            ops = {let.op for let in walk_lets(helpers[name][1].body)}
-            verdicts[name] = all(
-                op in ELEMENTWISE_OPS
-                or op in _ELEMENTWISE_EXTRA
-                or (op.startswith("call:") and elementwise(op.removeprefix("call:")))
-                for op in ops
-            )
-        return verdicts[name]
-
+    """Partials form where it is exact and cheaper: numbers in, one number out.
+    Every other helper, and every helper of an array model, is reversed by its
+    adjoint function: partials of array operands are exact only if every operand
+    broadcasts to the result's shape, which an unused or reduced operand does not
+    (``def g(a, b): return a`` with ``b`` a matrix raised a broadcasting error)."""
     forms: dict[str, HelperRole] = {}
     for name, (_, ssa) in helpers.items():
         scalar = (
             not ssa.result.is_tuple
             and all(v.shape == "scalar" for v in ssa.result.values)
             and all(p.shape == "scalar" for p in ssa.params)
+            and not index.numpy_modules
         )
-        if numpy:
-            scalar = scalar and name not in targets and elementwise(name)
         forms[name] = "partials" if scalar else "adjoint"
     return forms
 

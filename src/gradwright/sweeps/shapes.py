@@ -217,7 +217,9 @@ class ShapeTable:
             return ()
         if op in _SAME:
             return shapes[0]
-        if op in _BROADCAST or op.startswith("call:") or op == "ifexp":
+        if op.startswith("call:"):
+            return None  # a helper of an array model may reduce or multiply
+        if op in _BROADCAST or op == "ifexp":
             if op == "ifexp":  # in array code only np.where's, elementwise
                 shapes = [shapes[0], shapes[2]]
             result: Shape | None = shapes[0] if shapes else ()
