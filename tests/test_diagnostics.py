@@ -1102,27 +1102,27 @@ CASES = [
         "build a local list first: `x_local = [0.0] * len(x)`",
     ),
     case(
-        "list-slice",
+        "list-slice-with-a-step",
         """
         def f(x):
-            return sum(x[1:])
+            return sum(x[::2])
         """,
-        "only single-number indexing is supported on lists",
+        "a slice here takes whole numbers written out, without a step",
         2,
-        "x[1:]",
-        "write x[i]",
+        "x[::2]",
+        "write xs[1:], xs[:-1] or xs[2:5], or index xs[i] in a loop",
     ),
     case(
-        "local-list-slice",
+        "local-list-slice-with-a-computed-bound",
         """
-        def f(x):
+        def f(x, k):
             y = [x, 2.0 * x]
-            return y[0:1]
+            return sum(y[k:])
         """,
-        "only single-number indexing is supported on lists",
+        "a slice here takes whole numbers written out, without a step",
         3,
-        "y[0:1]",
-        "write y[i]",
+        "y[k:]",
+        "write xs[1:], xs[:-1] or xs[2:5], or index xs[i] in a loop",
     ),
     case(
         "list-used-as-number",

@@ -159,3 +159,110 @@ def test_list_method_hints():
         gradwright.generate(source, ["f"], wrt=["x"])
     assert "list.insert() is not supported" in str(error.value)
     assert "append() and extend()" in str(error.value)
+
+
+SLICES = """
+import math
+
+KNOTS = [0.0, 0.5, 1.5, 3.0]
+
+
+def trapezoid(k, ts):
+    vals = [math.exp(-k * t) for t in ts]
+    area = 0.0
+    for t0, t1, v0, v1 in zip(ts, ts[1:], vals, vals[1:]):
+        area += 0.5 * (t1 - t0) * (v0 + v1)
+    for t0, t1 in zip(KNOTS, KNOTS[1:]):
+        area += k * (t1 - t0) ** 2
+    return area
+
+
+def path(a, xs, ys):
+    length = 0.0
+    for x0, x1, y0, y1 in zip(xs[:-1], xs[1:], ys, ys[1:]):
+        length += math.hypot(a * (x1 - x0), y1 - y0)
+    return length
+"""
+
+
+def test_trapezoid_rule_over_slices_against_closed_form():
+    ts = [0.0, 0.4, 1.1, 2.0]
+    k = 0.7
+    module = build(SLICES, "trapezoid", ["k", "ts"])
+    value, (k_bar, ts_bar) = module["trapezoid_grad"](k, ts)
+    assert same_bits(value, run_source(SLICES)["trapezoid"](k, ts))
+    pairs = list(zip(ts, ts[1:], strict=False))
+    knots = [0.0, 0.5, 1.5, 3.0]
+    # closed form: d/dk of sum 0.5 h (e^{-k t0} + e^{-k t1}) + k sum h_K^2
+    expected = math.fsum(
+        0.5 * (t1 - t0) * (-t0 * math.exp(-k * t0) - t1 * math.exp(-k * t1))
+        for t0, t1 in pairs
+    ) + math.fsum((b - a) ** 2 for a, b in zip(knots, knots[1:], strict=False))
+    assert rel_err(k_bar, expected) < 1e-14
+    # d/dt_i: each interval [t0, t1] gives 0.5 (f0 + f1) (d(t1 - t0)) + 0.5 h f'
+    f = [math.exp(-k * t) for t in ts]
+    for i in range(len(ts)):
+        parts = []
+        if i > 0:  # t_i is the right end of interval i - 1
+            h = ts[i] - ts[i - 1]
+            parts += [0.5 * (f[i - 1] + f[i]), 0.5 * h * -k * f[i]]
+        if i + 1 < len(ts):  # and the left end of interval i
+            h = ts[i + 1] - ts[i]
+            parts += [-0.5 * (f[i] + f[i + 1]), 0.5 * h * -k * f[i]]
+        # the parts cancel: the error is measured against their size
+        scale = math.fsum(abs(p) for p in parts)
+        assert abs(ts_bar[i] - math.fsum(parts)) < 1e-15 * scale
+
+
+def test_path_length_over_slices_against_closed_form():
+    xs, ys = [0.0, 1.0, 2.5, 2.0], [0.0, 1.0, 0.5, -1.0]
+    a = 1.3
+    module = build(SLICES, "path", ["a", "xs", "ys"])
+    value, (a_bar, xs_bar, ys_bar) = module["path_grad"](a, xs, ys)
+    assert same_bits(value, run_source(SLICES)["path"](a, xs, ys))
+    # closed form: L = sum sqrt((a dx)^2 + dy^2), dL/da = sum a dx^2 / segment
+    segments = [
+        (x1 - x0, y1 - y0, math.hypot(a * (x1 - x0), y1 - y0))
+        for x0, x1, y0, y1 in zip(xs, xs[1:], ys, ys[1:], strict=False)
+    ]
+    assert rel_err(a_bar, math.fsum(a * dx * dx / s for dx, _, s in segments)) < 1e-14
+    for i in range(len(xs)):
+        # dL/dx_i = a^2 (dx_{i-1} / s_{i-1} - dx_i / s_i), likewise y without a^2
+        gx = (a * a * segments[i - 1][0] / segments[i - 1][2] if i > 0 else 0.0) - (
+            a * a * segments[i][0] / segments[i][2] if i < len(segments) else 0.0
+        )
+        gy = (segments[i - 1][1] / segments[i - 1][2] if i > 0 else 0.0) - (
+            segments[i][1] / segments[i][2] if i < len(segments) else 0.0
+        )
+        assert rel_err(xs_bar[i], gx) < 1e-14
+        assert rel_err(ys_bar[i], gy) < 1e-14
+
+
+COPIES = """
+def copies(a, xs):
+    v = [a * x for x in xs]
+    c = list(v)
+    d = v.copy()
+    e = v[:]
+    t = tuple(v)
+    c.append(a)
+    d[0] = d[0] * a
+    return sum(c) + d[0] + e[-1] * t[1] + sum(v[-2:]) + sum(xs[1:], a)
+"""
+
+
+def test_copies_are_lists_of_their_own_against_sympy():
+    import sympy
+
+    xs = [0.5, -1.0, 2.0]
+    module = build(COPIES, "copies", ["a", "xs"])
+    value, (a_bar, xs_bar) = module["copies_grad"](0.7, xs)
+    assert same_bits(value, run_source(COPIES)["copies"](0.7, xs))
+    a = sympy.symbols("a")
+    x = sympy.symbols("x0:3")
+    v = [a * xi for xi in x]
+    model = sum(v) + a + v[0] * a + v[-1] * v[1] + v[1] + v[2] + x[1] + x[2] + a
+    point = {a: 0.7, **{xi: val for xi, val in zip(x, xs, strict=True)}}
+    assert rel_err(a_bar, float(sympy.diff(model, a).evalf(30, subs=point))) < 1e-15
+    for xi, got in zip(x, xs_bar, strict=True):
+        assert rel_err(got, float(sympy.diff(model, xi).evalf(30, subs=point))) < 1e-15

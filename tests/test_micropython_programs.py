@@ -82,6 +82,7 @@ CALLS = {
         ("band_grad", (0.8, 0.3, [0.5, -1.5, 2.0, 1.0])),
         ("compound_grad", (0.2, [0.5, 1.0, 0.0, 2.0])),
         ("pairs_grad", (0.7, [0.5, -1.0, 2.0])),
+        ("trapezoid_grad", (0.7, [0.0, 0.4, 1.1, 2.0])),
     ],
     "programs_inactive.py": [
         ("guarded_grad", (0.7, 1.3)),

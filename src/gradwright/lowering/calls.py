@@ -94,6 +94,15 @@ class CallLowering:
                 return self.list_builtin(node, func.value, base, target)
         if isinstance(func, cst.Name) and func.value in self.index.functions:
             return self.user_call(node, func.value, base, target)
+        if (
+            isinstance(func, cst.Attribute)
+            and func.attr.value == "copy"
+            and not node.args
+            and not self.numpy
+            and isinstance(func.value, cst.Name)
+            and isinstance(self.env.get(func.value.value), Var)
+        ):
+            return self.copied(func.value, base, target)  # v.copy(): a new list
         if _math_name(self.index, func) in ("fsum", "prod"):
             reduced = self.comprehension_call(
                 node, _math_name(self.index, func), base, target  # type: ignore[arg-type]

@@ -11,11 +11,13 @@ the sum."""
 
 from __future__ import annotations
 
+from collections.abc import Callable
+
 import libcst as cst
 
 from gradwright.diagnostics import fail
 from gradwright.ir import Atom, Const, Var
-from gradwright.lowering.loops import _target_names
+from gradwright.lowering.loops import _DataRow, _target_names
 from gradwright.lowering.syntax import _statement_text
 
 
@@ -29,14 +31,23 @@ class ComprehensionLowering:
         target: Var | None = None,
     ) -> Var:
         """A new local list of the comprehension's terms."""
+        return self.new_list(
+            f"{base}_terms", target, lambda name: self.fill(node, name)
+        )
+
+    def new_list(
+        self, base: str, target: Var | None, fill: Callable[[str], None]
+    ) -> Var:
+        """An empty local list (``target`` when it is a list), filled by
+        ``fill(name)`` under a name bound to it meanwhile."""
         if target is not None and target.shape != "list":
             target = None
-        terms = target or self.new_var(f"{base}_terms", "local", "list")
-        name = terms.base if target is not None else self._free_name(terms.base, [])
-        self.emit("listlit", (), terms)
+        made = target or self.new_var(base, "local", "list")
+        name = made.base if target is not None else self._free_name(made.base, [])
+        self.emit("listlit", (), made)
         saved = {name: self.env.get(name)}
-        self.env[name] = terms
-        self.fill(node, name)
+        self.env[name] = made
+        fill(name)
         result = self.env[name]
         self._restore(saved)
         return result  # type: ignore[return-value]
@@ -115,7 +126,79 @@ class ComprehensionLowering:
             name, k = f"{wanted}_{k}", k + 1
         return name
 
-    # -- reductions -------------------------------------------------------------------
+    # -- copies and slices ------------------------------------------------------------
+
+    def copied(self, values: cst.BaseExpression, base: str, target: Var | None) -> Var:
+        """A new local list of the elements of ``values`` (``list(v)``,
+        ``v.copy()``, ``v[:]``, ``xs[1:]``): an empty list and a loop of appends."""
+        return self.new_list(
+            f"{base}_copy", target, lambda name: self.append_each(name, values)
+        )
+
+    def slice_reader(
+        self, node: cst.BaseExpression
+    ) -> tuple[Atom, Callable[[Var], object], str] | None:
+        """Reading ``xs[a:b]`` (a list or module-level data, bounds whole numbers
+        written out or left out) in place: its length, and element i as
+        ``xs[i + start]``; None when ``node`` is no slice."""
+        if not (
+            isinstance(node, cst.Subscript)
+            and len(node.slice) == 1
+            and isinstance(node.slice[0].slice, cst.Slice)
+        ):
+            return None
+        part = node.slice[0].slice
+        bounds = [_whole_number(b) for b in (part.lower, part.upper)]
+        if part.step is not None or any(
+            b is None and e is not None
+            for b, e in zip(bounds, (part.lower, part.upper), strict=True)
+        ):
+            fail(
+                "a slice here takes whole numbers written out, without a step",
+                self.index.locate(node),
+                "write xs[1:], xs[:-1] or xs[2:5], or index xs[i] in a loop",
+            )
+        if self.data_root(node.value) is not None:
+            table: Atom = self.data(node.value, "table")
+            is_data = True
+        else:
+            table = self.sequence_value(node.value, "xs")
+            is_data = False
+        count = self.emit("len", (table,), self.new_var("n", "temp"))
+        lower, upper = bounds
+        start = self._slice_end(lower, count, Const("0", 0))
+        stop = self._slice_end(upper, count, count)
+        length = stop
+        if not (isinstance(start, Const) and start.value == 0):
+            span = self.emit("sub", (stop, start), self.new_var("n", "temp"))
+            length = self.emit("max", (span, Const("0", 0)), self.new_var("n", "temp"))
+
+        def read(index: Var) -> object:
+            position: Atom = index
+            if not (isinstance(start, Const) and start.value == 0):
+                position = self.emit("add", (index, start), self.new_var("k", "temp"))
+            if is_data:
+                return _DataRow(self, table, position)  # type: ignore[arg-type]
+            return self.element(table, position)  # type: ignore[arg-type]
+
+        base = "row_index" if is_data else f"{getattr(table, 'base', 'xs')}_index"
+        return length, read, base
+
+    def _slice_end(self, bound: int | None, count: Atom, missing: Atom) -> Atom:
+        """One end of a slice as Python clamps it to ``[0, count]``."""
+        if bound is None:
+            return missing
+        if bound >= 0:
+            if missing is count:  # the stop: min(bound, count)
+                value = Const(str(bound), bound)
+                return self.emit("min", (value, count), self.new_var("n", "temp"))
+            return Const(str(bound), bound)  # a start past the end gives length 0
+        shifted = self.emit(
+            "sub", (count, Const(str(-bound), -bound)), self.new_var("n", "temp")
+        )
+        return self.emit("max", (shifted, Const("0", 0)), self.new_var("n", "temp"))
+
+    # -- reductions -----------------------------------------------------------------
 
     def sequence_value(self, node: cst.BaseExpression, base: str) -> Var:
         """A list to reduce: a comprehension's new list, or a list value."""
@@ -158,6 +241,8 @@ class ComprehensionLowering:
             return None  # module-level data is inactive (see calls.py)
         if name in ("list", "tuple") and is_comprehension and len(args) == 1:
             return self.comprehension(first, base, target)  # type: ignore[arg-type]
+        if name in ("list", "tuple") and len(args) == 1 and not self.numpy:
+            return self.copied(first, base, target)
         if name in ("min", "max") and len(args) == 1:
             return self.extreme(name, first, base, target)
         if name == "prod" and len(args) <= 2:
@@ -233,6 +318,16 @@ class ComprehensionLowering:
         result = self.env[acc]
         self._restore(saved)
         return result  # type: ignore[return-value]
+
+
+def _whole_number(node: cst.BaseExpression | None) -> int | None:
+    """The value of ``3`` or ``-1`` written out (None otherwise)."""
+    sign = 1
+    if isinstance(node, cst.UnaryOperation) and isinstance(node.operator, cst.Minus):
+        node, sign = node.expression, -1
+    if isinstance(node, cst.Integer):
+        return sign * int(node.value, 0)
+    return None
 
 
 def display_name(value: object) -> str:

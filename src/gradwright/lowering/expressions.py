@@ -106,6 +106,10 @@ class ExpressionLowering:
             return item
         if isinstance(node, cst.Subscript) and self.numpy:
             return self.numpy_subscript(node, base, target)
+        if isinstance(node, cst.Subscript) and isinstance(
+            node.slice[0].slice, cst.Slice
+        ):
+            return self.copied(node, base, target)  # xs[1:], v[:]: a new list
         if isinstance(node, cst.Subscript):
             container = self.expr(node.value, base, None)
             self.as_list(container)

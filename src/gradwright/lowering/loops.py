@@ -371,6 +371,9 @@ class LoopLowering:
             )
             count = Const(str(len(values)), len(values))
             return count, lambda i: self.element(listed, i), "k"
+        sliced = self.slice_reader(node)  # xs[1:], TABLE[:-1] (comprehensions.py)
+        if sliced is not None:
+            return sliced
         if self.data_root(node) is not None:
             # module-level data: its elements (or rows) are inactive constants
             table = self.data(node, "table")

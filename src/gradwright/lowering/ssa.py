@@ -51,13 +51,12 @@ from gradwright.lowering.syntax import (
 
 
 def _is_list_call(node: cst.BaseExpression) -> bool:
-    """``list(<generator>)``."""
+    """``list(...)``, ``tuple(...)``: a new list."""
     return (
         isinstance(node, cst.Call)
         and isinstance(node.func, cst.Name)
         and node.func.value in ("list", "tuple")
         and len(node.args) == 1
-        and isinstance(node.args[0].value, (cst.GeneratorExp, cst.ListComp))
     )
 
 
@@ -179,6 +178,19 @@ class _Lowerer(
             return "list"
         if _is_list_call(node) or self.returns_list(node):
             return "list"
+        if (
+            isinstance(node, cst.Subscript)
+            and not self.numpy
+            and isinstance(node.slice[0].slice, cst.Slice)
+        ):
+            return "list"  # xs[1:]: a new list
+        if (
+            isinstance(node, cst.Call)
+            and not self.numpy
+            and isinstance(node.func, cst.Attribute)
+            and node.func.attr.value == "copy"
+        ):
+            return "list"  # v.copy()
         if isinstance(node, cst.BinaryOperation) and isinstance(
             node.operator, cst.Multiply
         ):
