@@ -2,7 +2,7 @@
 # source: samples/greenhouse_net.py
 # source sha256: f94a505cbabce5a779320a9a523463a3af5a29e82a9d607fbc7c2942e6341334
 # command: gradwright gen samples/greenhouse_net.py humidity_loss --wrt W1,b1,w2,b2 --shape W1=4,h --shape b1=h --shape 'b2=()' --shape features=n,4 --shape humidity=n --shape w2=h -o samples/greenhouse_net_grad.py
-# output sha256: 176f2c5b2c8bbd9aa9bf2dbd3a47fffe99ef1f8adf96256fd4fe67d3dc4f544a
+# output sha256: c01274da8430b53c8c85b3fcfd31f24b0f155d5370553e9bcb749ee06404cfea
 
 import numpy as np
 
@@ -78,7 +78,7 @@ def humidity_loss_grad(W1, b1, w2, b2, features, humidity):
     hidden_bar = np.outer(err_bar, w2)
     w2_bar += hidden.T @ err_bar
     # hidden = np.tanh(features @ W1 + b1)
-    hidden_1_bar = hidden_bar * (1.0 - hidden * hidden)
-    b1_bar = np.sum(hidden_1_bar, axis=0)
-    W1_bar += features.T @ hidden_1_bar
+    hidden_bar_1 = hidden_bar * (1.0 - hidden * hidden)
+    b1_bar = np.sum(hidden_bar_1, axis=0)
+    W1_bar += features.T @ hidden_bar_1
     return value, (W1_bar, b1_bar, w2_bar, b2_bar)

@@ -383,6 +383,9 @@ class Knobs:
     max_depth: int = 2
     #: helpers returning tuples, taking lists, returning lists (vjp form)
     helper_shapes: bool = False
+    #: the same sub-expression drawn again, in one expression or a later statement
+    #: (the reverse sweep's shared values: one call, one saved read)
+    repeats: bool = False
 
 
 MAX_RETURNS = 2  # returns inside ifs per function
@@ -415,6 +418,8 @@ class Scope:
     returns: list[int] = field(default_factory=lambda: [0])
     #: helpers of other shapes (called by statements of their own)
     shaped: list[Helper] = field(default_factory=list)
+    # expressions drawn so far where every name they read is still bound (repeats)
+    recent: list[Ex] = field(default_factory=list)
 
     def copy(self) -> Scope:
         return Scope(
@@ -428,6 +433,7 @@ class Scope:
             self.depth,
             self.returns,
             self.shaped,
+            list(self.recent),
         )
 
     def may_return(self) -> bool:
@@ -472,6 +478,16 @@ def num(draw, sc: Scope, depth: int = 2, const: bool = False) -> Ex:
     ``const`` (so a gradient can flow through it)."""
     if depth <= 0 or draw(st.integers(0, 3)) == 0:
         return draw(atom(sc, const))
+    k = sc.knobs
+    if k.repeats and sc.recent and draw(st.integers(0, 2)) == 0:
+        return copy.deepcopy(draw(st.sampled_from(sc.recent)))
+    drawn = _drawn(draw, sc, depth, const)
+    if k.repeats and drawn.kids and not const:
+        sc.recent.append(drawn)
+    return drawn
+
+
+def _drawn(draw, sc: Scope, depth: int, const: bool) -> Ex:
     k = sc.knobs
     kinds = ["unary", "binary", "binary"]
     if k.rules:

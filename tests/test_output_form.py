@@ -6,6 +6,10 @@ against the primal, bit for bit."""
 
 from __future__ import annotations
 
+import re
+import sys
+from pathlib import Path
+
 import pytest
 from support import build, mp_function, mp_gradient, rel_err, run_source
 
@@ -113,3 +117,176 @@ def scale(a, n):
 """
     text = gradwright.generate(source, ["scale"], wrt=["a"])
     assert "for _ in range(n):" in text.split("def scale_grad")[1]
+
+
+# ---------------------------------------------------------------------------------
+# each value the reverse sweep reads computed once
+
+ROOT = Path(__file__).resolve().parents[1]
+sys.path.insert(0, str(ROOT / "tests" / "benchmarks"))
+import scalar_models  # noqa: E402
+
+
+def _sweeps(text: str, func: str) -> tuple[str, str]:
+    """The forward and the reverse sweep of ``func``'s gradient, comments dropped."""
+    body = text.split(f"def {func}_grad(")[1].split("\ndef ")[0]
+    forward, reverse = body.split("# reverse sweep")
+    strip = lambda part: "\n".join(  # noqa: E731
+        line for line in part.splitlines() if not line.lstrip().startswith("#")
+    )
+    return strip(forward), strip(reverse)
+
+
+def _check_against_mpmath(source, func, args, active, tolerance=1e-11):
+    names = [p for p in _params(source, func)]
+    module = build(source, func, [names[k] for k in active])
+    value, grads = module[f"{func}_grad"](*args)
+    assert value == run_source(source)[func](*args)  # bit-identical to the primal
+    # outside reference: mpmath high-precision central differences
+    reference = mp_gradient(mp_function(source, func), args, active)
+    for got, want in zip(grads, reference, strict=True):
+        assert rel_err(got, want) < tolerance, (got, want)
+
+
+def _params(source: str, func: str) -> list[str]:
+    header = source.split(f"def {func}(")[1].split(")")[0]
+    return [p.strip() for p in header.split(",")]
+
+
+def test_atan2_shares_one_hypot_and_trig_values_are_read_not_recomputed():
+    text = gradwright.generate(scalar_models.ARM_REACH, ["reach_cost"])
+    forward, reverse = _sweeps(text, "reach_cost")
+    # atan2(ty, tx)'s rule divides by hypot(tx, ty) twice in each contribution
+    assert (forward + reverse).count("math.hypot(tx, ty)") == 1
+    # sin(q1 + q2) and cos(q1 + q2) are forward values: the rules read them
+    assert "math.sin" not in reverse and "math.cos" not in reverse
+    args = (1.0, 0.7, 0.4, 0.9, 0.8, 1.1)
+    _check_against_mpmath(scalar_models.ARM_REACH, "reach_cost", args, range(6))
+
+
+def test_binomial_tree_powers_are_saved_not_recomputed():
+    text = gradwright.generate(scalar_models.BINOMIAL_TREE, ["tree_price"])
+    _, reverse = _sweeps(text, "tree_price")
+    assert "u**j" not in reverse and "d ** (i - j)" not in reverse
+    assert "d ** (steps - j)" not in reverse
+    args = (100.0, 95.0, 0.25, 0.03, 1.0, 6)
+    _check_against_mpmath(
+        scalar_models.BINOMIAL_TREE, "tree_price", args, range(5), 1e-9
+    )
+
+
+def test_heat_scheme_reads_each_cell_once():
+    text = gradwright.generate(
+        scalar_models.HEAT_SCHEME, ["heat_loss"], wrt=["conductivity", "left"]
+    )
+    forward, _ = _sweeps(text, "heat_loss")
+    # total += u[i] * u[i]: one value, saved once per cell
+    assert forward.count("total_1_saved[i] =") == 1 and "total_2" not in forward
+    # v[i] = u[i] + r * (u[i - 1] - 2.0 * u[i] + u[i + 1]): u[i] saved once
+    assert forward.count("_saved[i - 1] =") == 3  # u[i - 1], u[i], u[i + 1]
+    args = (0.8, 0.5, 1.0, 0.0, 6, 5, 0.01)
+    _check_against_mpmath(scalar_models.HEAT_SCHEME, "heat_loss", args, [0, 1, 2, 3])
+
+
+def test_power_law_fit():
+    args = (2.0, 0.7, 0.3, 1.5, 2.9, 2.5, 4.1, 4.0, 5.3)
+    _check_against_mpmath(scalar_models.POWER_LAW, "power_fit", args, range(9))
+
+
+# ---------------------------------------------------------------------------------
+# noise
+
+CLIP = """
+def clip(v, lo, hi):
+    return min(max(v, lo), hi)
+
+
+def damped(x, rate, tol, count):
+    y = x
+    for _ in range(count):
+        y = y - rate * (y - tol * x)
+    return y
+
+
+def model(a, b):
+    return clip(a * b, 0.0, 1.0) + clip(a - b, -0.5, 0.5) ** 2 + damped(b, 0.3, 1e-3, 4)
+"""
+
+
+def test_helpers_return_only_the_partials_a_call_site_reads():
+    text = gradwright.generate(CLIP, ["model"])
+    assert "Returns (value, (v_bar,))." in text.split("def clip_grad")[1]
+    assert "Returns (value, (x_bar,))." in text.split("def damped_grad")[1]
+    assert "lo_bar" not in text and "hi_bar" not in text and "tol_bar" not in text
+    _check_against_mpmath(CLIP, "model", (0.8, 0.6), [0, 1])
+
+
+def test_helper_partials_follow_a_narrowed_caller():
+    source = """
+def inner(p, q, k):
+    return p * q * k
+
+
+def middle(s, t, k):
+    return inner(s, 2.0, k) + inner(t, s, 3.0)
+
+
+def model(a, b):
+    return middle(a * b, b, 5.0)
+"""
+    text = gradwright.generate(source, ["model"])
+    assert "Returns (value, (s_bar, t_bar))." in text
+    assert "Returns (value, (p_bar, q_bar))." in text
+    _check_against_mpmath(source, "model", (0.8, 0.6), [0, 1])
+
+
+def _folded_temporaries_with_a_bar(text: str) -> list[str]:
+    assigned = set(re.findall(r"^\s*(\w+)(?:, \w+)? =", text, re.MULTILINE))
+    assigned |= set(re.findall(r"^\s*for (\w+) in", text, re.MULTILINE))
+    bars = set(re.findall(r"\b(\w+_\d+)_bar\b", text))
+    return sorted(b for b in bars if b not in assigned)
+
+
+@pytest.mark.parametrize(
+    ("source", "func"),
+    [
+        (scalar_models.BINOMIAL_TREE, "tree_price"),
+        (scalar_models.HEAT_SCHEME, "heat_loss"),
+        (scalar_models.ARM_REACH, "reach_cost"),
+        (scalar_models.POWER_LAW, "power_fit"),
+        ((ROOT / "samples" / "fuel_hedge.py").read_text(), "call_value"),
+        ((ROOT / "samples" / "kiln_cooling.py").read_text(), "kiln_loss"),
+    ],
+)
+def test_no_adjoint_named_after_a_value_the_forward_sweep_never_names(source, func):
+    text = gradwright.generate(source, [func])
+    assert _folded_temporaries_with_a_bar(text) == []
+
+
+def test_empty_sum_gives_a_float_gradient_entry():
+    source = "def f(x, y):\n    zs = []\n    x *= sum(zs)\n    return x + y * y\n"
+    module = build(source, "f")
+    value, (x_bar, y_bar) = module["f_grad"](1.5, 2.0)
+    # closed form: d/dx (x * 0 + y * y) = 0, d/dy = 2 y
+    assert x_bar == 0.0 and type(x_bar) is float
+    assert y_bar == 4.0
+
+
+LOOP_ATAN2 = """
+import math
+
+
+def f(x, y, n):
+    for i in range(n):
+        x = math.atan2(x, y) + x * 0.5
+    return x * y
+"""
+
+
+def test_shared_call_in_a_loop_is_saved_once_per_iteration():
+    text = gradwright.generate(LOOP_ATAN2, ["f"], wrt=["x", "y"])
+    forward, reverse = _sweeps(text, "f")
+    assert forward.count("math.hypot(y, x)") == 1 and "hypot" not in reverse
+    # made before the statement re-binds x: x keeps its one name
+    assert "x = math.atan2(x, y) + x * 0.5" in forward
+    _check_against_mpmath(LOOP_ATAN2, "f", (0.3, 1.2, 5), [0, 1])

@@ -150,6 +150,18 @@ FAMILIES: dict[str, tuple[Knobs | None, int]] = {
         ),
         60,
     ),
+    # sub-expressions drawn again (shared calls, element reads read twice)
+    "shared": (
+        Knobs(
+            statements=(2, 5),
+            repeats=True,
+            branches=True,
+            loops=True,
+            helpers=True,
+            list_param=True,
+        ),
+        40,
+    ),
     "numpy": (None, 40),
     "numpy_helpers": (None, 40),
 }

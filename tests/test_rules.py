@@ -511,6 +511,14 @@ def test_log_base_two_reads_the_constant() -> None:
     assert any(repr(rules.LN2) in line for line in code), code
 
 
+def test_log_base_ten_reads_the_constant() -> None:
+    # rules._log: log(x, 10.0) uses LN10, as log10 does (checked against mpmath in
+    # test_rule_constants_are_correctly_rounded)
+    code = _reverse_code("import math\n\ndef f(x):\n    return math.log(x, 10.0)\n")
+    assert not any("log" in line for line in code), code
+    assert any(repr(rules.LN10) in line for line in code), code
+
+
 def test_tanh_rule_calls_cosh_once() -> None:
     # rules.py: sech(x)**2 from one cosh (issue 12: no recomputation in rules)
     code = _reverse_code("import math\n\ndef f(x):\n    return math.tanh(x)\n")

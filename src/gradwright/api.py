@@ -7,6 +7,7 @@ import sys
 import threading
 from collections.abc import Callable, Iterator, Mapping, Sequence
 from contextlib import contextmanager
+from dataclasses import replace
 
 import libcst as cst
 
@@ -14,7 +15,7 @@ from gradwright.diagnostics import GradwrightError, fail, file_location
 from gradwright.emission.module import Compiled, HelperRole, render_module
 from gradwright.emission.targets import DEFAULT_TARGET, get_target
 from gradwright.header import regeneration_command, shape_words, stamp
-from gradwright.ir import Expr, SSAFunction, Var, const
+from gradwright.ir import Apply, Const, Expr, SSAFunction, Var, const, walk
 from gradwright.lowering.frontend import (
     CheckedFunction,
     ModuleIndex,
@@ -23,8 +24,9 @@ from gradwright.lowering.frontend import (
 )
 from gradwright.lowering.ssa import lower
 from gradwright.sweeps.broadcasting import Fitter
+from gradwright.sweeps.common import reuse_values
 from gradwright.sweeps.inplace import plan_in_place
-from gradwright.sweeps.optimize import inline_adjoints, reuse_forward_values
+from gradwright.sweeps.optimize import inline_adjoints, map_sweep, sweep_exprs
 from gradwright.sweeps.reverse import (
     active_values,
     defined_in,
@@ -91,7 +93,11 @@ def _differentiate(
             "choose --wrt parameters the result varies with smoothly",
         )
     active = frozenset(active_values(ssa, checked.wrt))
-    sweep = reuse_forward_values(inline_adjoints(sweep), ssa)
+    # repeated calls of the reverse become forward values, in scalar models only
+    # (in an array model each would be a whole array held for the reverse)
+    sweep, ssa = reuse_values(
+        inline_adjoints(sweep), ssa, share=not index.numpy_modules
+    )
     if fitter is not None:
         sweep = plan_in_place(sweep, fitter)
     return Compiled(checked, ssa, sweep, active, role, declared)
@@ -144,7 +150,90 @@ def compile_with_callees(
         compiled.append(
             _differentiate(index, checked, ssa, forms[name], adjoint_helpers)
         )
-    return compiled
+    return _narrow_helpers(index, compiled, set(lowered), stacks, adjoint_helpers)
+
+
+def _narrow_helpers(
+    index: ModuleIndex,
+    compiled: list[Compiled],
+    targets: set[str],
+    stacks: dict[str, tuple[str, ...]],
+    adjoint_helpers: Mapping[str, tuple[Var, ...]],
+) -> list[Compiled]:
+    """Each helper in partials form differentiated only in the parameters some
+    call site reads a partial of (not an integer count, a tolerance or a constant
+    limit every caller passes): its ``_grad`` computes and returns those alone, in
+    parameter order, and its callers' partial indices follow. Callers are settled
+    before their callees (the calls are acyclic), as a narrower caller needs fewer
+    partials."""
+    by_name = {c.ssa.name: c for c in compiled}
+    callers: dict[str, set[str]] = {name: set() for name in by_name}
+    for item in compiled:
+        for callee in item.ssa.callees:
+            if callee in callers:
+                callers[callee].add(item.ssa.name)
+    settled = set(targets)
+    pending = [name for name in by_name if name not in targets]
+    while pending:
+        name = next(n for n in pending if callers[n] <= settled)
+        pending.remove(name)
+        settled.add(name)
+        helper = by_name[name]
+        if helper.role != "partials":
+            continue
+        needed: set[int] = set()
+        for caller in callers[name]:
+            needed |= _partials_read(by_name[caller], name)
+        params = [p.base for p in helper.ssa.params]
+        wrt = tuple(base for k, base in enumerate(params) if k in needed)
+        if not wrt or wrt == helper.checked.wrt:
+            continue
+        checked = check_function(index, name, wrt)
+        ssa = lower(index, checked, stacks[name])
+        by_name[name] = _differentiate(index, checked, ssa, "partials", adjoint_helpers)
+        positions = {params.index(base): j for j, base in enumerate(wrt)}
+        for caller in callers[name]:
+            by_name[caller] = _renumber_partials(by_name[caller], name, positions)
+    return [by_name[c.ssa.name] for c in compiled]
+
+
+def _calls_of(item: Compiled, callee: str) -> set[Var]:
+    return {
+        let.target for let in walk_lets(item.ssa.body) if let.op == f"call:{callee}"
+    }
+
+
+def _partials_read(item: Compiled, callee: str) -> set[int]:
+    calls = _calls_of(item, callee)
+    found: set[int] = set()
+    for expr in sweep_exprs(item.reverse.statements):
+        for node in walk(expr):
+            if (
+                isinstance(node, Apply)
+                and node.op == "partial"
+                and node.args[0] in calls
+            ):
+                k = node.args[1]
+                assert isinstance(k, Const) and isinstance(k.value, int)
+                found.add(k.value)
+    return found
+
+
+def _renumber_partials(
+    item: Compiled, callee: str, positions: dict[int, int]
+) -> Compiled:
+    calls = _calls_of(item, callee)
+
+    def change(expr: Expr) -> Expr:
+        if not isinstance(expr, Apply):
+            return expr
+        if expr.op == "partial" and expr.args[0] in calls:
+            k = expr.args[1]
+            assert isinstance(k, Const) and isinstance(k.value, int)
+            return Apply("partial", (expr.args[0], const(positions[k.value])))
+        return Apply(expr.op, tuple(change(a) for a in expr.args))
+
+    return replace(item, reverse=map_sweep(item.reverse, change))
 
 
 def _helper_forms(

@@ -231,8 +231,8 @@ def _simplify(expr: Apply) -> Expr:
                 return b
             if _is(b, 0):
                 return a
-            if a == b:
-                return Apply("mul", (const(2.0), a))
+            if a == b:  # 2.0 * x * y, the factor on the leftmost (exact)
+                return simplify(Apply("mul", (const(2.0), a)))
             # a + -m is a - m, and -m + b is b - m (IEEE + commutes)
             b_negative, b_magnitude = _split_sign(b)
             if b_negative:

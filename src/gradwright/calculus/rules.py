@@ -100,11 +100,11 @@ def _log(g: E, out: E, x: E, base: E | None = None) -> tuple[E | None, ...]:
     if base is None:
         return (g / x,)
     b = number(base.node)
-    if b == 2.0:
-        # any libm within 0.79 ulp returns LN2 for log(2.0): ln 2 is 0.21 ulp from it.
-        # log(10.0) is not folded: ln 10 is 0.49 ulp from LN10, near a tie, so a libm
-        # that is not correctly rounded may return the other neighbour.
-        return g / (x * LN2), None
+    if b in (2.0, 10.0):
+        # the correctly rounded ln 2 and ln 10, as the log2 and log10 rules read
+        # them (a libm's log(10.0) may be the other neighbour of ln 10, 0.49 ulp
+        # away: the literal is the better derivative, and none is computed per call)
+        return g / (x * (LN2 if b == 2.0 else LN10)), None
     if b is not None:
         # a constant base: its log is left to the runtime libm, like the primal's
         return g / (x * log(base)), None

@@ -47,9 +47,10 @@ from gradwright.ir import (
     walk,
 )
 
-#: primitives cheap enough to recompute rather than save
+#: primitives cheap enough to recompute rather than save (not ``**``: a libm call
+#: like exp, computed once and saved like any other)
 _CHEAP = frozenset(
-    {"add", "sub", "mul", "div", "pow", "floordiv", "mod", "neg", "pos", "len", "copy"}
+    {"add", "sub", "mul", "div", "floordiv", "mod", "neg", "pos", "len", "copy"}
     | {"lt", "le", "gt", "ge", "eq", "ne", "and", "or", "not"}
 )
 

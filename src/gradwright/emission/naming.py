@@ -2,7 +2,9 @@
 
 A user variable keeps its name; a later binding of the same name, and each stored
 temporary, takes the name it helps build plus a per-name index (``inv_t_1``), so
-editing one statement renames nothing elsewhere. Adjoints are ``x_bar``.
+editing one statement renames nothing elsewhere. Adjoints are ``x_bar``; the adjoint
+of a temporary the forward sweep folded (so has no name) is a numbered part of its
+variable's, ``x_bar_1``.
 """
 
 from __future__ import annotations
@@ -50,7 +52,13 @@ class Namer:
         return self._derived(var, "partials", self.partial_names)
 
     def bar_name(self, var: Var) -> str:
-        return self._derived(var, "bar", self.bar_names)
+        known = self.bar_names.get(var)
+        if known is None and var.kind == "temp" and var not in self.names:
+            # a temporary the forward sweep folded has no name of its own: its
+            # adjoint is a numbered part of its variable's (r_bar_1), never a
+            # value_4_bar beside no value_4
+            known = self.bar_names[var] = self.fresh(f"{var.base}_bar")
+        return known or self._derived(var, "bar", self.bar_names)
 
     def _derived(self, var: Var, suffix: str, table: dict[Var, str]) -> str:
         known = table.get(var)

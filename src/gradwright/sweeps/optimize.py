@@ -2,13 +2,14 @@
 
 Adjoints that are a single atom, and adjoints of compiler temporaries read once, are
 substituted into their use instead of being stored; a carried adjoint assigned to
-itself disappears. The forward sweep's folding is decided in ``layout.py``.
+itself disappears. Reading forward values instead of recomputing them is
+``common.py``'s; the forward sweep's folding is decided in ``layout.py``.
 """
 
 from __future__ import annotations
 
 from collections import Counter
-from collections.abc import Iterable, Iterator
+from collections.abc import Callable, Iterable, Iterator
 from dataclasses import replace
 
 from gradwright.calculus.algebra import simplify
@@ -20,14 +21,12 @@ from gradwright.ir import (
     Const,
     ElementAdjoint,
     Expr,
-    Let,
     PopAdjoint,
     ReverseBranch,
     ReverseLoop,
     ReverseStmt,
     ReverseSweep,
     SpreadAdjoint,
-    SSAFunction,
     Var,
     walk,
 )
@@ -71,7 +70,8 @@ def _reads_list_adjoint(expr: Expr) -> bool:
 
 
 def _merge_adjacent(statements: tuple[ReverseStmt, ...]) -> tuple[ReverseStmt, ...]:
-    """``x_bar = a``, ``x_bar += b`` from one source statement: ``x_bar = a + b``."""
+    """``x_bar = a``, ``x_bar += b`` from one source statement: ``x_bar = a + b``;
+    likewise for one element of a list adjoint."""
     out: list[ReverseStmt] = []
     for stmt in statements:
         if isinstance(stmt, ReverseBranch):
@@ -92,6 +92,18 @@ def _merge_adjacent(statements: tuple[ReverseStmt, ...]) -> tuple[ReverseStmt, .
             and stmt.var.shape == "scalar"
             and not any(n == Bar(stmt.var) for n in walk(stmt.expr))
         ):
+            merged = simplify(Apply("add", (previous.expr, stmt.expr)))
+            out[-1] = replace(previous, expr=merged)
+            continue
+        if (
+            isinstance(stmt, ElementAdjoint)
+            and stmt.accumulate
+            and isinstance(previous, ElementAdjoint)
+            and (previous.root, previous.index, previous.origin)
+            == (stmt.root, stmt.index, stmt.origin)
+            and not _reads_list_adjoint(stmt.expr)
+        ):
+            # u_bar[i] += a; u_bar[i] += b (u[i] * u[i]): u_bar[i] += a + b
             merged = simplify(Apply("add", (previous.expr, stmt.expr)))
             out[-1] = replace(previous, expr=merged)
             continue
@@ -288,29 +300,17 @@ def _map_exprs(
     return tuple(out)
 
 
-def reuse_forward_values(sweep: ReverseSweep, function: SSAFunction) -> ReverseSweep:
-    """A rule that recomputes what the forward sweep already computed (``cos(x)``
-    in the rule for ``sin(x)`` when the model also takes ``cos(x)``) reads the
-    forward value instead. Only values computed outside branches and loops are
-    reused: those exist whatever path the forward sweep took."""
-    known: dict[Apply, Var] = {}
-    for stmt in function.body:
-        if isinstance(stmt, Let) and stmt.target.shape == "scalar":
-            known.setdefault(Apply(stmt.op, stmt.args), stmt.target)
-            if stmt.op in ("add", "mul"):
-                # a*b and b*a are the same float (IEEE + and * commute)
-                known.setdefault(Apply(stmt.op, stmt.args[::-1]), stmt.target)
+def map_sweep(sweep: ReverseSweep, change: Callable[[Expr], Expr]) -> ReverseSweep:
+    """The sweep with ``change`` applied to each adjoint contribution."""
+    return replace(sweep, statements=_map_exprs(sweep.statements, change))
 
-    def change(expr: Expr) -> Expr:
-        if isinstance(expr, Apply):
-            found = known.get(expr)
-            if found is not None:
-                return found
-            return Apply(expr.op, tuple(change(a) for a in expr.args))
-        return expr
 
-    if not known:
-        return sweep
-    return replace(
-        sweep, statements=_map_exprs(sweep.statements, lambda e: simplify(change(e)))
-    )
+def all_statements(statements: Iterable[ReverseStmt]) -> Iterator[ReverseStmt]:
+    """Every statement of a reverse sweep, nested blocks included."""
+    return _flatten(statements)
+
+
+def sweep_exprs(statements: Iterable[ReverseStmt]) -> Iterator[Expr]:
+    """Every expression of a reverse sweep, nested blocks included."""
+    for stmt in _flatten(statements):
+        yield from _exprs(stmt)
