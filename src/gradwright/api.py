@@ -32,6 +32,7 @@ from gradwright.sweeps.reverse import (
     defined_in,
     list_roots,
     reverse_sweep,
+    walk_lets,
 )
 from gradwright.sweeps.shapes import Dim, ShapeTable, with_sizes
 
