@@ -80,6 +80,9 @@ class AssignmentLowering:
         if len(targets) == 1 and self.tuple_of(value) is not None:
             self.bind_tuple(first.value, self.tuple_of(value))  # type: ignore[arg-type]
             return
+        if len(targets) == 1 and self.tuple_size(value) is not None:
+            self.bind_tuple(first.value, self.tuple_elements(value, first.value))
+            return
         if (
             len(targets) == 1
             and isinstance(value, cst.BinaryOperation)

@@ -352,6 +352,28 @@ class CallLowering:
         result = self.callee_ssa(node.func.value).result
         return result.is_tuple or result.values[0].shape == "list"
 
+    def tuple_size(self, node: cst.BaseExpression) -> int | None:
+        """How many numbers ``node`` gives, when it calls a helper that returns
+        a tuple (None otherwise)."""
+        if not self.returns_list(node):
+            return None
+        result = self.callee_ssa(node.func.value).result  # type: ignore[attr-defined]
+        return len(result.values) if result.is_tuple else None
+
+    def tuple_elements(self, node: cst.BaseExpression, base: str) -> list[Atom]:
+        """A helper's tuple result read element by element (``p = h(...)`` binds
+        ``p`` like ``p = (a, b)``: each element is a name of its own)."""
+        made = self.expr(node, base, None)
+        size = self.literal_sizes[made]  # type: ignore[index]
+        return [
+            self.emit(
+                "getitem",
+                (made, Const(str(k), k)),
+                self.new_var(f"{base}_{k}", "local"),
+            )
+            for k in range(size)
+        ]
+
     def list_argument(self, given: cst.BaseExpression, name: str, param: str) -> Atom:
         argument = self.expr(given, param, None)
         self.as_list(argument)

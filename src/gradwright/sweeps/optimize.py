@@ -203,7 +203,8 @@ def _into_arguments(
     statements: tuple[ReverseStmt, ...], keep: set[Var]
 ) -> tuple[ReverseStmt, ...]:
     """``x_1_bar, ... = h_adjoint(...)`` then ``x_bar = x_1_bar``: the call
-    writes ``x_bar`` itself (the part was read only by that copy)."""
+    writes ``x_bar`` itself (the part was read only by that copy; the layout's
+    carried-adjoint naming sees a call's writes, see ``layout._writes``)."""
     flat = list(_flatten(statements))
     reads = Counter(
         node.var
@@ -212,10 +213,6 @@ def _into_arguments(
         for node in walk(e)
         if isinstance(node, Bar)
     )
-    writes = Counter(s.var for s in flat if isinstance(s, AdjointAssign))
-    for s in flat:
-        if isinstance(s, CallAdjoint):
-            writes.update(s.parts)
     out: list[ReverseStmt] = []
     call: int | None = None  # where in ``out`` the last call adjoint is
     for stmt in statements:
@@ -243,7 +240,6 @@ def _into_arguments(
             if (
                 part in found.parts
                 and reads[part] == 1
-                and writes[stmt.var] == 1
                 and stmt.var not in found.parts
                 and stmt.var.shape == part.shape
             ):
