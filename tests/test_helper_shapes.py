@@ -8,6 +8,7 @@ reversal: DEVELOPERS.md). Each check names its outside reference beside it.
 from __future__ import annotations
 
 import math
+import re
 import sys
 from pathlib import Path
 
@@ -34,6 +35,7 @@ def generate(source: str, functions: list[str], wrt=None, target="cpython") -> d
 
 ARM = """
 import math
+import re
 
 L1 = 1.0
 L2 = 0.6
@@ -203,6 +205,7 @@ def test_dense_layer_helper_against_numpy_differences():
 
 CHAINED = """
 import math
+import re
 
 
 def polar(r, t):
@@ -402,6 +405,7 @@ def test_array_helpers_with_an_unused_operand_and_a_reduced_result():
 
 BRANCHED = """
 import math
+import re
 
 
 def polar(r, t):
@@ -428,3 +432,17 @@ def test_tuple_result_bound_to_a_name_in_each_branch(point):
     exact = mp_gradient(mp_function(BRANCHED, "pick"), list(point), [0, 1])
     for got, ref in zip(grads, exact, strict=True):
         assert rel_err(got, ref) < 1e-13
+
+
+def test_a_listed_function_also_called_as_a_helper():
+    """Its Jacobian and its adjoint are both generated, once each (a rebase once
+    left two adjoints and no Jacobian)."""
+    module = generate(ARM, ["tip", "forward_kinematics"])
+    names = re.findall(r"^def (\w+)", module["__text__"], re.M)
+    assert len(names) == len(set(names))
+    exact = _arm_jacobian(0.3, 0.9)  # closed form
+    for name in ("tip_jacobian", "forward_kinematics_jacobian"):
+        _, jac = module[name](0.3, 0.9)
+        for i in range(2):
+            for j in range(2):
+                assert abs(jac[i][j] - exact[i][j]) < 1e-15

@@ -167,35 +167,39 @@ def _narrow_helpers(
     parameter order, and its callers' partial indices follow. Callers are settled
     before their callees (the calls are acyclic), as a narrower caller needs fewer
     partials."""
-    by_name = {c.ssa.name: c for c in compiled}
-    callers: dict[str, set[str]] = {name: set() for name in by_name}
-    for item in compiled:
+    # keyed by name and role: a listed function that is also called as an
+    # adjoint-form helper is compiled twice (its gradient and its adjoint)
+    by_key = {(c.ssa.name, c.role): c for c in compiled}
+    callers: dict[tuple[str, str], set[tuple[str, str]]] = {k: set() for k in by_key}
+    for key, item in by_key.items():
         for callee in item.ssa.callees:
-            if callee in callers:
-                callers[callee].add(item.ssa.name)
-    settled = set(targets)
-    pending = [name for name in by_name if name not in targets]
+            if (callee, "partials") in callers:
+                callers[(callee, "partials")].add(key)
+    # only helpers in partials form are differentiated again
+    settled = {k for k in by_key if k[1] != "partials"}
+    pending = [k for k in by_key if k not in settled]
     while pending:
-        name = next(n for n in pending if callers[n] <= settled)
-        pending.remove(name)
-        settled.add(name)
-        helper = by_name[name]
+        key = next(k for k in pending if callers[k] <= settled)
+        pending.remove(key)
+        settled.add(key)
+        name = key[0]
+        helper = by_key[key]
         if helper.role != "partials":
             continue
         needed: set[int] = set()
-        for caller in callers[name]:
-            needed |= _partials_read(by_name[caller], name)
+        for caller in callers[key]:
+            needed |= _partials_read(by_key[caller], name)
         params = [p.base for p in helper.ssa.params]
         wrt = tuple(base for k, base in enumerate(params) if k in needed)
         if not wrt or wrt == helper.checked.wrt:
             continue
         checked = check_function(index, name, wrt)
         ssa = lower(index, checked, stacks[name])
-        by_name[name] = _differentiate(index, checked, ssa, "partials", adjoint_helpers)
+        by_key[key] = _differentiate(index, checked, ssa, "partials", adjoint_helpers)
         positions = {params.index(base): j for j, base in enumerate(wrt)}
-        for caller in callers[name]:
-            by_name[caller] = _renumber_partials(by_name[caller], name, positions)
-    return [by_name[c.ssa.name] for c in compiled]
+        for caller in callers[key]:
+            by_key[caller] = _renumber_partials(by_key[caller], name, positions)
+    return [by_key[(c.ssa.name, c.role)] for c in compiled]
 
 
 def _calls_of(item: Compiled, callee: str) -> set[Var]:
