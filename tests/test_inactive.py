@@ -61,7 +61,7 @@ def test_copied_statements_are_the_source_text():
         '        raise ValueError(f"y={y} is out of range")',
         "    while k * k < 20:",
         "        k += 1",
-        '    gains = {"p": 1.5, "q": -0.25}',
+        '    label = "k=" + str(k)',
         '        note = label + ", step " + str(i)',
     ]:
         assert line + "\n" in body

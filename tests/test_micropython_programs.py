@@ -89,6 +89,8 @@ CALLS = {
         ("guarded_grad", (2.5, -0.4)),
         ("doubling_grad", (0.9, 6)),
         ("rebound_grad", (1.7,)),
+        ("springs_grad", (0.1, -0.2, 1.3, 0.1, 0.5, 1.4)),
+        ("weighted_grad", (0.6,)),
     ],
 }
 

@@ -88,6 +88,9 @@ class Copied:
     #: an ``assert`` or an ``if ...: raise`` guard: the names bound on the path
     #: that raises are its own (not renamed, not values of the function)
     guard: bool = False
+    #: written by the generator (``keys = list(D)``): the values it binds are
+    #: never changed in place, so the reverse sweep may read them again
+    fixed: bool = False
 
 
 @dataclass(frozen=True)

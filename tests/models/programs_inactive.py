@@ -41,3 +41,35 @@ def rebound(x):
     while c < 10.0:
         c += 4.0
     return y * c
+
+
+SPRINGS = [("a", "b", 40.0, 1.0), ("b", "c", 25.0, 1.5), ("c", "a", 30.0, 1.2)]
+ANCHORS = {"a": 5.0, "c": 2.0}
+
+
+def springs(xa, ya, xb, yb, xc, yc):
+    """Energy of three nodes joined by springs, two of them tied to the origin;
+    positions per node in dicts."""
+    px = {"a": xa, "b": xb, "c": xc}
+    py = {"a": ya, "b": yb, "c": yc}
+    total = 0.0
+    for i, j, k, rest in SPRINGS:
+        dx = px[j] - px[i]
+        dy = py[j] - py[i]
+        stretch = math.sqrt(dx * dx + dy * dy) - rest
+        total += 0.5 * k * stretch**2
+    for name, k in ANCHORS.items():
+        total += 0.5 * k * (px[name] ** 2 + py[name] ** 2)
+    return total
+
+
+def weighted(x):
+    weights = {"low": 0.5, "high": 3.0}
+    total = 0.0
+    for name in weights:
+        total = total + weights[name] * x
+    for w in ANCHORS.values():
+        total = total + w * x * x
+    for name in ANCHORS.keys():
+        total = total + ANCHORS[name] * math.sin(x)
+    return total

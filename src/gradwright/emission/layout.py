@@ -227,7 +227,9 @@ class Layout:
             if not isinstance(arg, Var) or arg.kind == "index":
                 continue
             if arg in self.defs and self.defs[arg].op == "written":
-                return False  # a copied statement's value may change in place
+                statement = self.defs.get(self.defs[arg].args[0])  # type: ignore[arg-type]
+                if statement is None or not statement.copied.fixed:  # type: ignore[union-attr]
+                    return False  # a copied statement's value may change in place
             where = self.loop_of.get(arg)
             if where is loop:
                 if arg not in self.top_level[loop] and not any(

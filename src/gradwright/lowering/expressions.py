@@ -97,6 +97,8 @@ class ExpressionLowering:
                     "write `terms = [... for x in xs]` or `sum(... for x in xs)`",
                 )
             return self.comprehension(node, base, target)  # type: ignore[arg-type]
+        if isinstance(node, cst.Dict):
+            return self.dict_literal(node, target, base)
         if isinstance(node, cst.IfExp):
             return self.conditional(node, base, target)
         if isinstance(node, cst.Subscript) and self.tuple_of(node.value) is not None:
@@ -115,7 +117,8 @@ class ExpressionLowering:
             self.as_list(container)
             if not (isinstance(container, Var) and container.shape == "list"):
                 fail("only lists can be indexed", self.index.locate(node.value))
-            index = self.subscript_index(node)
+            index = self.dict_position(container, node)  # a dict of numbers
+            index = self.subscript_index(node) if index is None else index
             return self.emit(
                 "getitem", (container, index), target or self.new_var(base, "temp")
             )

@@ -431,6 +431,45 @@ class InactiveLowering:
             self.env[name] = var
         return None
 
+    def lowered_or_copied_test(
+        self, test: cst.BaseExpression, lower: Callable[[], Atom]
+    ) -> Atom:
+        """A condition as the lowering makes it; if it rejects one that reads no
+        active value (``name == "b"`` on strings), ``cond = <test>`` is copied
+        as written and the branch tests ``cond``."""
+        env, blocks = dict(self.env), [list(b) for b in self.blocks]
+        origin, errors = self.origin, len(self.errors)
+        try:
+            return lower()
+        except GradwrightError as error:
+            self.env, self.blocks[:], self.origin = env, blocks, origin
+            del self.errors[errors:]
+            module = as_module(cst.Expr(test))
+            reads: dict[str, Atom] = {}
+            for node in statement_names(module).reads:
+                bound = self.env.get(node.value)
+                if isinstance(bound, (_Unbound, _Tuple)) or (
+                    isinstance(bound, (Var, Const)) and not self.never_active(bound)
+                ):
+                    raise error from None
+                if isinstance(bound, (Var, Const)):
+                    reads[node.value] = bound
+                elif node.value in self.index.module_names:
+                    self.constants_read[node.value] = None
+            if _problem(module) is not None:
+                raise error from None
+            text = "cond = " + as_module(cst.Expr(test)).code.strip()
+            var = self.new_var("cond", "local")
+            statement = self.new_var("copied", "temp")
+            copied = Copied(text, tuple(reads), (("cond", var),))
+            self.blocks[-1].append(
+                Let(statement, "copied", tuple(reads.values()), self.origin, copied)
+            )
+            self.inert_values.add(statement)
+            self.emit("written", (statement,), var)
+            self.opaque.add(var)
+            return var
+
     def never_active(self, atom: Atom) -> bool:
         """``is_inert``, or else no path of the statements lowered so far leads
         from a --wrt parameter to ``atom`` through a differentiable primitive

@@ -374,6 +374,9 @@ class LoopLowering:
         sliced = self.slice_reader(node)  # xs[1:], TABLE[:-1] (comprehensions.py)
         if sliced is not None:
             return sliced
+        found = self.dict_reader(node)  # a constant dict (lowering/dicts.py)
+        if found is not None:
+            return found
         if self.data_root(node) is not None:
             # module-level data: its elements (or rows) are inactive constants
             table = self.data(node, "table")

@@ -34,6 +34,7 @@ from gradwright.lowering.base import (
 )
 from gradwright.lowering.calls import CallLowering
 from gradwright.lowering.comprehensions import ComprehensionLowering
+from gradwright.lowering.dicts import DictLowering
 from gradwright.lowering.expressions import ExpressionLowering
 from gradwright.lowering.frontend import (
     CheckedFunction,
@@ -69,6 +70,7 @@ class _Lowerer(
     CallLowering,
     NumpyLowering,
     InactiveLowering,
+    DictLowering,
 ):
     """The lowering of one function; each kind of construct is lowered by one of
     the mixins it is made of, over the state held here."""
@@ -117,6 +119,11 @@ class _Lowerer(
         self.inert_values: set[Var] = set()
         #: values bound by statements copied as written (see lowering/inactive.py)
         self.opaque: set[Var] = set()
+        #: dicts of numbers (lists in the SSA): their keys, where each was made,
+        #: and the copied table of positions for keys known only at run time
+        self.dict_keys: dict[Var, tuple[str, ...]] = {}
+        self.dict_made: dict[Var, tuple[list, Stmt]] = {}
+        self.positions: dict[Var, Var] = {}
 
     # -- values -------------------------------------------------------------------
 
@@ -174,7 +181,7 @@ class _Lowerer(
         return target
 
     def shape_of_expression(self, node: cst.BaseExpression) -> str:
-        if isinstance(node, (cst.List, cst.ListComp, cst.Tuple)):
+        if isinstance(node, (cst.List, cst.ListComp, cst.Tuple, cst.Dict)):
             return "list"
         if _is_list_call(node) or self.returns_list(node):
             return "list"

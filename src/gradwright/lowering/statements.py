@@ -209,7 +209,10 @@ class StatementLowering:
     # -- branches -----------------------------------------------------------------
 
     def condition(self, test: cst.BaseExpression) -> Atom:
-        return self.scalar(self.expr(test, "cond", None), test)
+        # a test reading no active value may be copied (lowering/inactive.py)
+        return self.lowered_or_copied_test(
+            test, lambda: self.scalar(self.expr(test, "cond", None), test)
+        )
 
     def if_statement(
         self, node: cst.If, rest: tuple[list[cst.CSTNode], ...], keyword: str
