@@ -1046,6 +1046,8 @@ class Case:
     wrt: list[str] | None
     seed: int
     family: str = ""
+    #: declared array shapes (gen --shape), for the npshapes family
+    shapes: dict[str, tuple] | None = None
 
     @property
     def tuple_out(self) -> bool:
@@ -1443,7 +1445,9 @@ def _generate(case: Case, func: str, constant: Callable[[], bool]) -> dict | Out
             trace.write(f"# wrt={case.wrt!r}\n{case.program.source()}")
     start = time.perf_counter()
     try:
-        text = gradwright.generate(case.program.source(), [func], wrt=case.wrt)
+        text = gradwright.generate(
+            case.program.source(), [func], wrt=case.wrt, shapes=case.shapes
+        )
     except GradwrightError as error:
         if expected_rejection(error, case.program.tags()):
             return Outcome("expected", "boolvalue", str(error))
@@ -1858,12 +1862,23 @@ def numpy_programs(draw, family: str = "numpy") -> Case:
     wrt = None
     if draw(st.integers(0, 3)) == 0:
         wrt = [p for p in params if draw(st.booleans())] or params[:1]
+    shapes = None
+    if family == "npshapes":
+        # some parameters' shapes declared, each size a number or a name (one
+        # name per size, so that equal sizes are provably equal)
+        named = {size: draw(st.sampled_from([size, f"n{size}"])) for size in (2, 3)}
+        shapes = {
+            p: tuple(named[d] for d in NP_SHAPES[p])
+            for p in params
+            if draw(st.integers(0, 3)) > 0
+        }
     return Case(
         Program([*funcs, Func("f", params, body)], numpy=True),
         kinds,
         wrt,
         draw(st.integers(0, 2**32 - 1)),
         family,
+        shapes,
     )
 
 

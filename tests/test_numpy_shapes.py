@@ -157,7 +157,8 @@ def test_logistic_regression_reads_like_hand_written_code() -> None:
     reverse = text.split("# reverse sweep")[1]
     for helper in ("_gw_unbroadcast", "_gw_unmean", "_gw_matmul", "_gw_shaped"):
         assert helper not in text, helper
-    assert "= -1.0 / n" in reverse  # the mean's seed: a number, not an array
+    # the mean's seed is the number -1.0 / n, taken out of the sum once
+    assert "p_bar = (nll_2 / nll_3 - y / nll_1) / n\n" in reverse
     assert "w_bar = 0.02 * w" in reverse  # 0.01 * (w @ w): factors folded
     assert "w_bar += X.T @ z_bar" in reverse  # in place: no other name has it
     assert "n = X.shape[0]" in text

@@ -164,6 +164,8 @@ FAMILIES: dict[str, tuple[Knobs | None, int]] = {
     ),
     "numpy": (None, 40),
     "numpy_helpers": (None, 40),
+    # the numpy family's programs with their parameters' shapes declared
+    "npshapes": (None, 40),
 }
 
 # Budgets per family (the long runs: ~0.05% rejected, ~90% compared, 75-90% of

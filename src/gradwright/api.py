@@ -25,6 +25,7 @@ from gradwright.lowering.frontend import (
 from gradwright.lowering.ssa import lower
 from gradwright.sweeps.broadcasting import Fitter
 from gradwright.sweeps.common import reuse_values
+from gradwright.sweeps.factoring import tidy
 from gradwright.sweeps.inplace import plan_in_place
 from gradwright.sweeps.optimize import inline_adjoints, map_sweep, sweep_exprs
 from gradwright.sweeps.reverse import (
@@ -100,7 +101,7 @@ def _differentiate(
         inline_adjoints(sweep), ssa, share=not index.numpy_modules
     )
     if fitter is not None:
-        sweep = plan_in_place(sweep, fitter)
+        sweep = plan_in_place(tidy(sweep, fitter), fitter)
     return Compiled(checked, ssa, sweep, active, role, declared)
 
 

@@ -9,7 +9,11 @@ logistic regression, 5 features; a tanh network 8->32->1) have n rows at 10^5 an
 10^6, target 2.5. BLAS threading and OPENBLAS_CORETYPE are left as the environment
 sets them.
 
-Run: python tests/benchmarks/bench_numpy.py [--rows]   (--rows: the row models only)
+Every model is generated with its parameters' shapes declared (SHAPES, as gen
+--shape X=m,10 would); --generic generates without them, for comparison.
+
+Run: python tests/benchmarks/bench_numpy.py [--rows] [--generic]
+(--rows: the row models only)
 """
 
 from __future__ import annotations
@@ -125,6 +129,31 @@ def _elementwise(n: int, g: np.random.Generator):
     return (g.normal(size=n), 0.7), ["x", "c"]
 
 
+#: each model's parameters' shapes, as declared with gen --shape (m: rows)
+SHAPES = {
+    LOGISTIC: {"w": (10,), "X": ("m", 10), "y": ("m",)},
+    LEAST_SQUARES: {"x": (10,), "A": ("m", 10), "b": ("m",)},
+    TWO_LAYER: {
+        "W1": (10, 16),
+        "b1": (16,),
+        "W2": (16, 1),
+        "b2": (1,),
+        "X": ("m", 10),
+        "Y": ("m", 1),
+    },
+    SOFTMAX: {"W": (10, 10), "b": (10,), "X": ("m", 10), "Y": ("m", 10)},
+    RIDGE_LOGISTIC: {"w": (5,), "b": (), "X": ("m", 5), "y": ("m",), "lam": ()},
+    TANH_NET: {
+        "W1": (8, 32),
+        "b1": (32,),
+        "W2": (32, 1),
+        "b2": (1,),
+        "X": ("m", 8),
+        "Y": ("m", 1),
+    },
+    ELEMENTWISE: {"x": ("m",), "c": ()},
+}
+
 #: name, model source, data (n, rng) -> (args, wrt), the shape that holds n elements
 MODELS = [
     ("logistic regression", LOGISTIC, _logistic, "X (n/10, 10)"),
@@ -165,7 +194,9 @@ def _best_pair(primal, grad, args) -> tuple[float, float]:
 
 def _load(source: str, wrt: list[str]) -> dict:
     namespace: dict = {}
-    text = gradwright.generate(source, ["loss"], wrt=wrt)
+    # --generic: without the declared shapes (run-time broadcasting helpers)
+    shapes = None if "--generic" in sys.argv else SHAPES[source]
+    text = gradwright.generate(source, ["loss"], wrt=wrt, shapes=shapes)
     exec(compile(text, "<loss_grad>", "exec"), namespace)
     return namespace
 
