@@ -307,3 +307,37 @@ def test_shaped_module_runs_in_a_fresh_interpreter(tmp_path: Path) -> None:
         [sys.executable, "-c", script], cwd=tmp_path, capture_output=True, text=True
     )
     assert out.stdout.strip() == "(5,)", out.stderr
+
+
+# found by the npshapes random family (long run)
+REGRESSIONS = [
+    (  # a number's adjoint from np.where was returned as a 0-d array
+        numpy_model("w, s", "u0 = np.where(s > 0.5, s, 0.5 * 0.5)\nreturn np.sum(u0)"),
+        {"w": (2,), "s": ()},
+        [(2,), ()],
+    ),
+    (  # the first write of an adjoint was smaller than its value, then added into
+        numpy_model(
+            "A",
+            "u1 = np.maximum(np.sum(A, axis=1, keepdims=True), np.sum(np.dot(A.T, A)))"
+            "\nreturn np.mean(u1)",
+        ),
+        {"A": ("n2", "n3")},
+        [(2, 3)],
+    ),
+]
+
+
+@pytest.mark.parametrize("case", range(len(REGRESSIONS)))
+def test_regressions_found_by_random_programs(case: int) -> None:
+    source, declared, shapes = REGRESSIONS[case]
+    _, ns = generate(source, declared)
+    model: dict = {}
+    exec(compile(source, "<model>", "exec"), model)
+    args = [draw(s, np.random.default_rng(case)) for s in shapes]
+    value, grads = ns["f_grad"](*args)
+    for j, arg in enumerate(args):
+        if isinstance(arg, float):
+            assert type(grads[j]) is float
+        # reference: Richardson-extrapolated central differences of the model
+        assert_close_to_differences(model["f"], args, j, grads[j], value)

@@ -66,6 +66,10 @@ _VIEWS = frozenset(
 )
 
 
+#: ops that give a number (not a 0-d array) when their result has no shape
+_NUMBER_SAFE = frozenset({"np.sum", "add", "sub", "mul", "div", "neg", "matmul"})
+
+
 def _aliases(expr: Expr) -> set[Var]:
     """Adjoints whose array ``expr`` may be, or be a view of."""
     if isinstance(expr, Bar):
@@ -123,6 +127,8 @@ def plan_in_place(sweep: ReverseSweep, fitter: Fitter) -> ReverseSweep:
             or first.expr.op not in _FRESH
             or not isinstance(wanted, tuple)
             or fitter.adj.get(var) != wanted
+            # the first array must have the full shape: += cannot grow it
+            or fitter.shape(first.expr) != wanted
             or any(
                 fitter.shape(w.expr) is None or any(n == Bar(var) for n in walk(w.expr))
                 for w in writes
@@ -131,5 +137,14 @@ def plan_in_place(sweep: ReverseSweep, fitter: Fitter) -> ReverseSweep:
             continue
         fresh.add(var)
     in_place = frozenset(v for v in fresh if len(top[v]) > 1)
-    bare = frozenset(v for v in sweep.wrt if v in fresh)
+    bare = frozenset(
+        v
+        for v in sweep.wrt
+        if v in fresh
+        and (
+            fitter.table.atom(v) != ()
+            # a number's adjoint made by these is a number, never a 0-d array
+            or all(w.expr.op in _NUMBER_SAFE for w in top[v])  # type: ignore[union-attr]
+        )
+    )
     return replace(sweep, in_place=in_place, bare=bare)
