@@ -115,6 +115,24 @@ class For:
 
 
 @dataclass
+class While:
+    """``counter = 0`` then ``while counter < limit [and cond]:`` (or ``while
+    True:`` with the limit tested first) and ``counter += 1``, then ``body``: a
+    counter bounds every while loop, so the program terminates."""
+
+    counter: str
+    limit: str
+    cond: Ex | None
+    body: list
+    forever: bool = False
+
+
+@dataclass
+class Jump:
+    word: str  # "break" or "continue"
+
+
+@dataclass
 class Return:
     values: list[Ex]
 
@@ -180,6 +198,17 @@ def _shapes(body, found, helpers, params, context, returned) -> bool:
             found.add("dead_call_in_loop" if "for" in context else "dead_call")
         if isinstance(stmt, Return) and context:
             returned = True
+            if "for" in context:
+                found.add("return_in_loop")
+        if isinstance(stmt, Jump):
+            found.add(stmt.word)
+        if isinstance(stmt, While):
+            found.add("while_true" if stmt.forever else "while")
+            if stmt.cond is not None:
+                found.add("while_cond")
+            if "for" in context:
+                found.add("nested_loop")
+            _shapes(stmt.body, found, helpers, params, (*context, "for"), returned)
         if isinstance(stmt, If):
             found.add("elif" if len(stmt.arms) > 1 else "if")
             if "if" in context:
@@ -243,6 +272,22 @@ def _lines(body: list, depth: int, mode: str, sw: list | None = None) -> list[st
         elif isinstance(stmt, For):
             out.append(f"{pad}for {stmt.var} in {stmt.iter}:")
             out.extend(_lines(stmt.body, depth + 1, mode, sw) or [f"{pad}    pass"])
+        elif isinstance(stmt, While):
+            k = stmt.counter
+            out.append(f"{pad}{k} = 0")
+            test = f"{k} < {stmt.limit}"
+            if stmt.cond is not None:
+                test += f" and ({stmt.cond.render(mode, sw)})"
+            if stmt.forever:
+                out.append(f"{pad}while True:")
+                out.append(f"{pad}    if not ({test}):")
+                out.append(f"{pad}        break")
+            else:
+                out.append(f"{pad}while {test}:")
+            out.append(f"{pad}    {k} = {k} + 1")
+            out.extend(_lines(stmt.body, depth + 1, mode, sw))
+        elif isinstance(stmt, Jump):
+            out.append(f"{pad}{stmt.word}")
         else:  # pragma: no cover - a bug in this file
             raise AssertionError(stmt)
     return out
@@ -255,7 +300,7 @@ def walk(body: list) -> Iterator:
             for _, arm in stmt.arms:
                 yield from walk(arm)
             yield from walk(stmt.orelse or [])
-        elif isinstance(stmt, For):
+        elif isinstance(stmt, For | While):
             yield from walk(stmt.body)
 
 
@@ -266,6 +311,8 @@ def stmt_exprs(stmt) -> list[Ex]:
         return [stmt.value]
     if isinstance(stmt, If):
         return [c for c, _ in stmt.arms]
+    if isinstance(stmt, While) and stmt.cond is not None:
+        return [stmt.cond]
     return []
 
 
@@ -386,6 +433,9 @@ class Knobs:
     #: the same sub-expression drawn again, in one expression or a later statement
     #: (the reverse sweep's shared values: one call, one saved read)
     repeats: bool = False
+    #: while loops (bounded by a counter), break/continue under conditions,
+    #: returns inside loops
+    jumps: bool = False
 
 
 MAX_RETURNS = 2  # returns inside ifs per function
@@ -659,8 +709,13 @@ def statement(draw, sc: Scope, allow_return: bool, tuple_out: int) -> list:
             kinds += ["idiomfor", "idiomfor"]
     if sc.shaped:
         kinds += ["shapedcall", "shapedcall"]
-    if allow_return and k.early_return and not sc.in_loop and sc.may_return():
+    loop_returns = k.jumps or not sc.in_loop
+    if allow_return and k.early_return and loop_returns and sc.may_return():
         kinds += ["ifreturn", "ifreturn"]
+    if k.jumps and sc.depth < k.max_depth and (k.nested_loops or not sc.in_loop):
+        kinds += ["while", "while"]
+    if k.jumps and sc.in_loop and sc.may_return():
+        kinds += ["jump", "jump", "jump"]
     kind = draw(st.sampled_from(kinds))
     if kind == "new":
         name = sc.new_name()
@@ -742,8 +797,27 @@ def statement(draw, sc: Scope, allow_return: bool, tuple_out: int) -> list:
         inner.in_loop = True
         inner.depth += 1
         (inner.floats if is_float else inner.ints).append(var)
-        body = draw(block(inner, 1, 3, False, tuple_out))
+        body = draw(block(inner, 1, 3, k.jumps, tuple_out))
         return [For(var, iterable, body)]
+    if kind == "while":
+        counter = sc.new_name("k")
+        limits = ["0", "1", "2", "3", "4"] + (["n"] if "n" in sc.ints else [])
+        limit = draw(st.sampled_from(limits))
+        test = draw(cond(sc, 1)) if draw(st.booleans()) else None
+        inner = sc.copy()
+        inner.in_loop = True
+        inner.depth += 1
+        inner.ints.append(counter)
+        body = draw(block(inner, 1, 3, True, tuple_out))
+        sc.ints.append(counter)
+        return [While(counter, limit, test, body, draw(st.booleans()))]
+    if kind == "jump":  # a break or continue under a condition, maybe after work
+        inner = sc.copy()
+        inner.depth += 1
+        before = draw(block(inner, 0, 1, False, tuple_out))
+        sc.returns[0] += 1  # each if that may jump copies the rest into its paths
+        word = draw(st.sampled_from(("break", "continue")))
+        return [If([(draw(cond(sc)), [*before, Jump(word)])], None)]
     if kind in ("tuple", "comp", "idiomfor"):
         return draw(idiom_statement(sc, kind, tuple_out))
     if kind in ("if", "ifreturn"):
@@ -949,8 +1023,8 @@ def if_statement(draw, sc: Scope, must_return: bool, tuple_out: int) -> If:
     for a in range(n_arms + has_else):
         inner = sc.copy()
         inner.depth += 1
-        # no return inside a loop (rejected by design: fixed trip counts)
-        body = draw(block(inner, 0, 2, not sc.in_loop, tuple_out))
+        # a return inside a loop only where the family has them
+        body = draw(block(inner, 0, 2, sc.knobs.jumps or not sc.in_loop, tuple_out))
         if must_return and a == 0 and not (body and isinstance(body[-1], Return)):
             body.append(Return(draw(returned(inner, tuple_out))))
             sc.returns[0] += 1
@@ -1520,7 +1594,7 @@ def _blocks(program: Program) -> list[list]:
                     visit(arm)
                 if stmt.orelse is not None:
                     visit(stmt.orelse)
-            elif isinstance(stmt, For):
+            elif isinstance(stmt, For | While):
                 visit(stmt.body)
 
     for fn in program.funcs:
@@ -1555,6 +1629,8 @@ def _expr_slots(stmt) -> list[tuple[Callable, Ex]]:
             slots.append(
                 (lambda new, k=k, arm=arm: stmt.arms.__setitem__(k, (new, arm)), c)
             )
+    elif isinstance(stmt, While) and stmt.cond is not None:
+        slots.append((lambda new: setattr(stmt, "cond", new), stmt.cond))
     return slots
 
 
@@ -1586,6 +1662,19 @@ def _candidates(case: Case, args: list) -> Iterator[tuple[Case, list]]:
                     yield c, args
                     c = copy.deepcopy(case)
                     _blocks(c.program)[bi][j].orelse = None
+                    yield c, args
+            if isinstance(stmt, While):
+                for change in ("cond", "limit", "forever"):
+                    c = copy.deepcopy(case)
+                    loop = _blocks(c.program)[bi][j]
+                    if change == "cond" and loop.cond is not None:
+                        loop.cond = None
+                    elif change == "limit" and loop.limit != "1":
+                        loop.limit = "1"
+                    elif change == "forever" and loop.forever:
+                        loop.forever = False
+                    else:
+                        continue
                     yield c, args
             if isinstance(stmt, For):
                 c = copy.deepcopy(case)

@@ -980,6 +980,22 @@ CASES = [
         "move the continue to the end",
     ),
     case(
+        "code-after-endless-while",
+        """
+        def f(x):
+            while True:
+                x = x * 2.0
+                if x > 3.0:
+                    return x
+            x = 1.0
+            return x
+        """,
+        "code after a `while True:` loop with no break is never run",
+        6,
+        "x = 1.0",
+        "end the loop with a break",
+    ),
+    case(
         "return-tuple-name-in-loop",
         """
         def f(x):

@@ -240,3 +240,194 @@ def test_loops_stay_loops():
     assert "        x_saved.append(x)\n" in text
     assert "for k in reversed(range(iterations)):" in text
     assert "for tier in reversed(range(iterations" in text
+
+
+ARRAYS = """
+import numpy as np
+
+
+def np_newton(a, tol):
+    x = a
+    while np.max(np.abs(x * x - a)) > tol:
+        x = 0.5 * (x + a / x)
+    return np.sum(x)
+"""
+
+
+def test_numpy_newton_while_against_closed_form():
+    np = pytest.importorskip("numpy")
+    grad = build(ARRAYS, "np_newton")["np_newton_grad"]
+    a = np.array([2.0, 3.0, 0.5, 40.0])
+    value, (a_bar, tol_bar) = grad(a, 1e-12)
+    assert same_bits(value, run_source(ARRAYS)["np_newton"](a, 1e-12))
+    for got, ak in zip(a_bar, a, strict=True):
+        # d sqrt(a) / da = 1 / (2 sqrt(a)) (closed form), as for the scalar case
+        assert rel_err(got, 1.0 / (2.0 * math.sqrt(ak))) < 1e-10
+    assert tol_bar == 0.0
+
+
+HELPERS = """
+import math
+
+
+def g(u, c):
+    return math.sin(u) * c + u
+
+
+def helper_newton(m, c):
+    x = m
+    while abs(g(x, c) - m) > 1e-13:
+        x = x - (g(x, c) - m) / (math.cos(x) * c + 1.0)
+    return x
+
+
+def helper_body(m, c):
+    x = m
+    k = 0
+    while k < 5:
+        y = g(x, c)
+        if y > 3.0:
+            break
+        x = x + 0.1 * y
+        k = k + 1
+    return x
+"""
+
+
+def test_helper_called_in_a_while_test_and_body():
+    grad = build(HELPERS, "helper_newton")["helper_newton_grad"]
+    for m, c in ((0.7, 0.4), (2.0, 0.9)):
+        x, (m_bar, c_bar) = grad(m, c)
+        # implicit-function theorem on x + c sin x = m (closed form):
+        # dx/dm = 1 / (1 + c cos x), dx/dc = -sin x / (1 + c cos x)
+        slope = 1.0 + c * math.cos(x)
+        assert rel_err(m_bar, 1.0 / slope) < 1e-10
+        assert rel_err(c_bar, -math.sin(x) / slope) < 1e-10
+
+
+@pytest.mark.parametrize("m, c", [(0.7, 0.4), (2.0, 1.0)])
+def test_helper_called_before_a_break(m, c):
+    _against_mpmath(HELPERS, "helper_body", (m, c), [0, 1])
+
+
+EDGES = """
+def list_carried_break(x, a):
+    buf = [0.0] * 3
+    k = 0
+    while k < 3:
+        buf[k] = buf[k] + x * a
+        if buf[k] > 2.0:
+            break
+        k = k + 1
+    return buf[0] + buf[1] * 2.0 + buf[2] * 3.0
+
+
+def list_loop_break(a, xs):
+    s = 0.0
+    for v in xs:
+        if v * a > 1.5:
+            break
+        s = s + v * a * a
+    return s
+
+
+def halving(x):
+    while x > 1.0:
+        x = x / 2.0
+    return x * x
+
+
+def inner_for_break(a, b):
+    s = 0.0
+    k = 0
+    while k < 4:
+        k = k + 1
+        for j in range(5):
+            if j * a > 1.0:
+                break
+            s = s + b * j
+        if s > 6.0:
+            break
+    return s
+
+
+def zero_trip_while(x, a):
+    while x > 100.0:
+        x = x * a
+    return x * 2.0
+
+
+def tuple_state_break(x, v, dt):
+    state = (x, v)
+    k = 0
+    while k < 10:
+        p, q = state
+        state = (p + dt * q, q - dt * p)
+        k = k + 1
+        if state[0] < 0.0:
+            break
+    return state[0] * state[1]
+
+
+def endless_while_returns(a, xs):
+    k = 0
+    while True:
+        if k >= len(xs):
+            return a
+        if xs[k] * a > 1.0:
+            return xs[k] * a * a
+        k = k + 1
+
+
+def elif_jumps(x, a):
+    s = 0.0
+    for i in range(6):
+        if i == 1:
+            continue
+        elif x * i > 2.0:
+            break
+        elif x > a:
+            s = s + x
+        else:
+            s = s + a * i
+    return s
+
+
+def while_in_if_returns(x, a):
+    if a > 0.5:
+        y = x
+        while y < 5.0:
+            y = y * (1.0 + a)
+            if y > 4.0:
+                return y * x
+        x = y
+    return x + a
+"""
+
+
+@pytest.mark.parametrize(
+    "func, args, active",
+    [
+        ("list_carried_break", (0.7, 1.1), [0, 1]),
+        ("list_carried_break", (0.4, 0.5), [0, 1]),
+        ("list_loop_break", (0.7, [0.5, 1.0, 3.0, 0.2]), [0, 1]),
+        ("list_loop_break", (0.1, [0.5, 1.0, 3.0, 0.2]), [0, 1]),
+        ("halving", (7.3,), [0]),
+        ("halving", (0.3,), [0]),
+        ("inner_for_break", (0.3, 0.7), [0, 1]),
+        ("inner_for_break", (0.15, 0.4), [0, 1]),
+        ("zero_trip_while", (7.0, 1.2), [0, 1]),
+        ("zero_trip_while", (300.0, 0.5), [0, 1]),
+        ("tuple_state_break", (0.5, 1.0, 0.3), [0, 1, 2]),
+        ("tuple_state_break", (0.5, -1.0, 0.3), [0, 1, 2]),
+        ("endless_while_returns", (0.7, [0.5, 1.0, 3.0]), [0, 1]),
+        ("endless_while_returns", (0.1, [0.5, 1.0, 3.0]), [0, 1]),
+        ("elif_jumps", (0.7, 1.1), [0, 1]),
+        ("elif_jumps", (0.3, 0.1), [0, 1]),
+        ("while_in_if_returns", (0.7, 0.6), [0, 1]),
+        ("while_in_if_returns", (0.7, 0.2), [0, 1]),
+        ("while_in_if_returns", (4.5, 0.6), [0, 1]),
+    ],
+)
+def test_edge_shapes(func, args, active):
+    _against_mpmath(EDGES, func, args, active)

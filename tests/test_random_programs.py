@@ -7,8 +7,10 @@ hypothesis test per family of shapes: straight-line code over most of the rule t
 branches (nested if, elif chains, not, ==/!=, and/or, copying and identical arms),
 loops (range with negative and zero-trip steps, ``for v in xs``, re-bound parameters,
 branches inside), nested loops, local lists (also bound inside a branch), helpers
-(keywords, defaults, in loops, dead calls), early returns (also before a loop), tuple
-outputs (``NAME_jacobian`` and ``NAME_vjp``), NumPy, and everything mixed.
+(keywords, defaults, in loops, dead calls), early returns (also before a loop),
+dynamic loops (while loops bounded by a counter, break and continue under
+conditions, returns inside loops), tuple outputs (``NAME_jacobian`` and
+``NAME_vjp``), NumPy, and everything mixed.
 
 Points: coordinates are +-[0.25, 1.5], never 0. An instrumented run in floats
 records every switch (condition, abs/min/max/fabs/copysign argument, % and //
@@ -115,6 +117,20 @@ FAMILIES: dict[str, tuple[Knobs | None, int]] = {
     ),
     "early_returns": (
         Knobs(statements=(1, 4), early_return=True, branches=True, loops=True),
+        50,
+    ),
+    "dynamic_loops": (
+        Knobs(
+            statements=(2, 5),
+            jumps=True,
+            early_return=True,
+            branches=True,
+            loops=True,
+            nested_loops=True,
+            int_param=True,
+            list_param=True,
+            max_depth=3,
+        ),
         50,
     ),
     "tuple_outputs": (

@@ -32,6 +32,7 @@ from gradwright.lowering.syntax import (
     _assigned_names,
     _block_statements,
     _contains_return,
+    _may_break,
     _return_arity,
     _statement_text,
 )
@@ -55,6 +56,12 @@ class LoopLowering:
         returned = self.env.get(_RETURNED)
         if returned is None or returned is FALSE or isinstance(returned, _Unbound):
             return self.sequence(rest[0], rest[1:]) if rest else False
+        if _endless(node):  # it ends only by a return: nothing runs after it
+            if rest:
+                self.recovering(self.never_reached, rest[0][0])
+            if self.loop_depth:
+                self.env[_STOP] = TRUE
+            return not self.loop_depth
         # the code after the loop selects: the result the loop returned, or the
         # rest of the function
         origin = self.origin
@@ -75,6 +82,14 @@ class LoopLowering:
             Branch(returned, tuple(then_block), tuple(else_block), merges, origin)  # type: ignore[arg-type]
         )
         return returned_then and returned_else
+
+    def never_reached(self, stmt: cst.CSTNode) -> None:
+        fail(
+            "code after a `while True:` loop with no break is never run (only a"
+            " return ends the loop)",
+            self.index.locate(stmt),
+            "remove it, or end the loop with a break",
+        )
 
     def for_statement(self, node: cst.For) -> None:
         if node.orelse is not None:
@@ -460,6 +475,16 @@ class _DataRow:
             )
             for j in range(count)
         )
+
+
+def _endless(node: cst.For | cst.While) -> bool:
+    """``while True:`` with no break: only a return ends it."""
+    return (
+        isinstance(node, cst.While)
+        and isinstance(node.test, cst.Name)
+        and node.test.value == "True"
+        and not _may_break(_block_statements(node.body))
+    )
 
 
 def _silent(bound: object) -> bool:

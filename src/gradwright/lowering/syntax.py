@@ -174,19 +174,31 @@ def _contains_return(statements: list[cst.CSTNode]) -> bool:
     return _finds(statements, (cst.Return,))
 
 
-def _finds(statements: list[cst.CSTNode], jumps: tuple[type, ...]) -> bool:
+def _may_break(statements: list[cst.CSTNode]) -> bool:
+    """Whether a break in the statements ends the loop they are the body of."""
+    return _finds(statements, (cst.Break,), nested=())
+
+
+def _finds(
+    statements: list[cst.CSTNode],
+    jumps: tuple[type, ...],
+    nested: tuple[type, ...] = (cst.Return,),
+) -> bool:
     """Whether one of ``jumps`` is in the statements or their ifs; in loops
-    nested in them, only a return (a break there is the inner loop's)."""
+    nested in them, one of ``nested`` (a return: a break there is the inner
+    loop's)."""
     for stmt in statements:
         if isinstance(stmt, jumps):
             return True
         if isinstance(stmt, cst.If) and (
-            _finds(_block_statements(stmt.body), jumps)
-            or _finds(_else_statements(stmt), jumps)
+            _finds(_block_statements(stmt.body), jumps, nested)
+            or _finds(_else_statements(stmt), jumps, nested)
         ):
             return True
-        if isinstance(stmt, (cst.For, cst.While)) and _finds(
-            _block_statements(stmt.body), (cst.Return,)
+        if (
+            nested
+            and isinstance(stmt, (cst.For, cst.While))
+            and _finds(_block_statements(stmt.body), nested, nested)
         ):
             return True
     return False
