@@ -351,6 +351,26 @@ def check_source(source: str, params: dict[str, str], args: list, wrt=None) -> N
 
 
 REGRESSIONS = {
+    # dynamic_loops family: an adjoint accumulated two branches deep inside a
+    # loop (the check's "kept" fact did not survive the outer branch): a false
+    # refusal by the layout check, never a wrong module
+    "kept_two_branches_deep": (
+        """\
+def f(x, n):
+    for i1 in range(2):
+        for i2 in range(1):
+            k3 = 0
+            while True:
+                if not (k3 < 3 and (x <= (x + 0.5))):
+                    break
+                k3 = k3 + 1
+                if x > 0.0:
+                    break
+                return x * 3.0 + i2
+    return x
+""",
+        [[0.75, 0], [-0.75, 0]],
+    ),
     "return_then_loop": (
         """\
 def f(x, c):

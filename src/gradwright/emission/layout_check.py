@@ -202,7 +202,8 @@ def _resolve(facts: frozenset) -> frozenset:
                     held = _kept(key)
                     for k2, g2 in list(found):
                         if g2 == other and k2 not in (_SAME, key):
-                            value = k2 if held is None else held
+                            # (kept on that side too: two branches deep)
+                            value = (_kept(k2) or k2) if held is None else held
                             if _kept(k2) not in (None, value) or (
                                 held is not None and k2 != held
                             ):
