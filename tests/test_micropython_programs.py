@@ -83,6 +83,7 @@ CALLS = {
         ("compound_grad", (0.2, [0.5, 1.0, 0.0, 2.0])),
         ("pairs_grad", (0.7, [0.5, -1.0, 2.0])),
         ("trapezoid_grad", (0.7, [0.0, 0.4, 1.1, 2.0])),
+        ("kiln_wall_grad", (0.15, [300.0, 420.0, 380.0, 500.0, 290.0], 4)),
     ],
     "programs_inactive.py": [
         ("guarded_grad", (0.7, 1.3)),

@@ -301,6 +301,12 @@ class ReverseSweep:
     in_place: frozenset[Var] = frozenset()
     #: wrt adjoints returned as they are (a new array of the parameter's shape)
     bare: frozenset[Var] = frozenset()
+    #: list roots whose adjoint list a rebound loop-carried list hands over (not
+    #: made of zeros where the list is made)
+    moved: tuple[Var, ...] = ()
+    #: loop-carried lists their loop rebinds: each a list root of its own, whose
+    #: adjoint list is made where its loop's block starts its reverse
+    rebound: tuple[Var, ...] = ()
 
 
 def walk(expr: Expr) -> Iterator[Expr]:

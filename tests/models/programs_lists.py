@@ -39,3 +39,16 @@ def trapezoid(k, ts):
     for a, b in zip(KNOTS[:-1], KNOTS[1:]):  # noqa: B905
         area += k * k * (b - a)
     return area + sum(list(heights)[:-1])
+
+
+def kiln_wall(conductivity, temps, steps):
+    # explicit 1-D conduction through a wall, two buffers swapped each step
+    t = list(temps)
+    t_next = [0.0] * len(temps)
+    for _ in range(steps):
+        t_next[0] = t[0]
+        t_next[-1] = t[-1]
+        for i in range(1, len(t) - 1):
+            t_next[i] = t[i] + conductivity * (t[i + 1] - 2.0 * t[i] + t[i - 1])
+        t, t_next = t_next, t
+    return max(t[1:-1])

@@ -307,7 +307,7 @@ class Layout:
         visit(self.sweep.statements, None)
         sized = dict(self.function.tuple_sizes)
         for root in self.sweep.list_roots:
-            if root not in sized:
+            if root not in sized and root not in self.sweep.moved:
                 reads.add(root)  # len(root) sizes its adjoint
         for lets in self.recompute.values():
             lets.sort(key=lambda let: self.position[let.target])

@@ -313,6 +313,9 @@ class _Emitter:
         return any(v in self.layout.live for v in self.layout.versions[root])
 
     def copy(self, target: Var, source: Atom, depth: int, out: _Lines) -> None:
+        if target.shape == "list" and target in self.layout.sweep.rebound:
+            self.rebind([(target, source)], depth, out)  # type: ignore[list-item]
+            return
         if target.shape == "list":
             # no copy is printed: the target's name must hold the source's list
             self.trace.read(self.namer.name(target), self.key(source))  # type: ignore[arg-type]
@@ -325,6 +328,24 @@ class _Emitter:
         self.reads(value)
         self.trace.write(name, self.key(target))
         out.code(f"{name} = {self.print(value)}", depth)
+
+    def rebind(self, pairs: list[tuple[Var, Var]], depth: int, out: _Lines) -> None:
+        """Names of rebound lists take their new lists all at once (``u, u_new =
+        u_new, u``); a name that holds its list already prints nothing."""
+        names = [(self.namer.name(t), self.namer.name(s), t, s) for t, s in pairs]
+        for target_name, source_name, target, source in names:
+            if target_name == source_name:
+                self.trace.alias(target_name, self.key(source), self.key(target))
+        moved = [n for n in names if n[0] != n[1]]
+        if not moved:
+            return
+        for _, source_name, _, source in moved:
+            self.trace.read(source_name, self.key(source))
+        for target_name, _, target, _ in moved:
+            self.trace.write(target_name, self.key(target))
+        left = ", ".join(n[0] for n in moved)
+        right = ", ".join(n[1] for n in moved)
+        out.code(f"{left} = {right}", depth)
 
     def forward_branch(
         self, branch: Branch, depth: int, out: _Lines, loop: Loop | None
@@ -380,7 +401,7 @@ class _Emitter:
         out.comment(loop.origin, depth)
         trace.at(loop.origin.text)
         for phi in loop.carried:
-            if phi.target in layout.live:
+            if phi.target in layout.live or phi.target in layout.sweep.rebound:
                 self.copy(phi.target, phi.first, depth, out)
         for bound in loop.bounds:
             self.reads(layout.atom_expr(bound, self.folded))
@@ -435,9 +456,19 @@ class _Emitter:
                     self.save(loop, phi.target, depth + 1, out)
             size = len(out.lines)
             self.forward_block(loop.body[loop.test_size :], depth + 1, out, loop)
+            rebound = layout.sweep.rebound
             for phi in loop.carried:
-                if phi.target in layout.live:
+                if phi.target in layout.live and phi.target not in rebound:
                     self.copy(phi.target, phi.second, depth + 1, out)
+            self.rebind(
+                [
+                    (phi.target, phi.second)  # type: ignore[misc]
+                    for phi in loop.carried
+                    if phi.target in rebound
+                ],
+                depth + 1,
+                out,
+            )
             if trips is not None:
                 out.code(f"{trips} += 1", depth + 1)
                 trace.read(trips, self.key(loop.trips))  # type: ignore[arg-type]
@@ -478,7 +509,7 @@ class _Emitter:
         layout = self.layout
         self.trace.at("the start of the reverse sweep")
         params = [p for p in layout.function.params if p.shape == "list"]
-        self.list_adjoints(params + _lists_made(layout.function.body), 1, out)
+        self.list_adjoints(params + self.made_here(layout.function.body), 1, out)
         self.reverse_block(layout.sweep.statements, 1, out)
         for var in layout.sweep.unused_wrt:
             if var.shape == "list":
@@ -495,12 +526,26 @@ class _Emitter:
             self.trace.write(self.namer.bar_name(var), self.bar_key(var))
         return out.lines
 
+    def made_here(self, statements: tuple[Stmt, ...]) -> list[Var]:
+        """The lists a block makes, and the rebound lists of its loops (their
+        adjoint lists start where the block's reverse starts)."""
+        rebound = [
+            self.layout.roots.get(phi.target, phi.target)
+            for stmt in statements
+            if isinstance(stmt, Loop)
+            for phi in stmt.carried
+            if phi.target in self.layout.sweep.rebound
+        ]
+        return _lists_made(statements) + rebound
+
     def list_adjoints(self, made: list[Var], depth: int, out: _Lines) -> None:
         """Zeroed adjoint lists for the active lists a block makes, at the start of
         its reverse (a list made in a branch or a loop body exists only there)."""
         for root in made:
             if root not in self.layout.sweep.list_roots:
                 continue
+            if root in self.layout.sweep.moved:
+                continue  # its adjoint list is handed over by a rebound list
             bar, name = self.namer.bar_name(root), self.namer.name(root)
             size = dict(self.layout.function.tuple_sizes).get(root)
             if size is not None:  # a helper's tuple: its size is known
@@ -579,7 +624,7 @@ class _Emitter:
                 events = []
                 forward = stmt.branch
                 made = (
-                    (_lists_made(forward.then), _lists_made(forward.orelse))
+                    (self.made_here(forward.then), self.made_here(forward.orelse))
                     if forward is not None
                     else ([], [])
                 )
@@ -668,7 +713,7 @@ class _Emitter:
                 call = layout.partials_call.get(var)
                 key = ("partials", call) if call is not None else self.key(var)
                 trace.restore(name, saved, var, key)
-            self.list_adjoints(_lists_made(loop.body), depth + 1, out)
+            self.list_adjoints(self.made_here(loop.body), depth + 1, out)
             for child in layout.children.get(loop, []):
                 for saved in layout.saved_lists(child):
                     by = layout.by_name(loop, saved)

@@ -454,3 +454,62 @@ class AssignmentLowering:
             self.fill(values, name)
             return
         self.append_each(name, values)
+
+    def check_rebound(
+        self,
+        carried: list[str],
+        before: dict[str, object],
+        body_env: dict[str, object],
+        node: cst.CSTNode,
+    ) -> list[str]:
+        """The loop-carried list names the body binds to another list. The
+        reverse loop hands their adjoint lists on as the names were bound, which is
+        exact when each list has one name: at the loop's start and end no two of
+        them hold one list, and no other name holds the list one starts from."""
+        lists = [
+            n
+            for n in carried
+            if isinstance(before[n], Var) and before[n].shape == "list"  # type: ignore[union-attr]
+        ]
+        rebound = [
+            n
+            for n in lists
+            if self.root_of(before[n]) != self.root_of(body_env[n])  # type: ignore[arg-type]
+        ]
+        if not rebound:
+            return []
+        where = self.index.locate(node) if node is not None else None
+        hint = "make the list the loop starts from a list of its own: u = list(u0)"
+        for env, when in ((before, "starts"), (body_env, "ends")):
+            holders: dict[Var, str] = {}
+            for n in lists:
+                root = self.root_of(env[n])  # type: ignore[arg-type]
+                if root in holders:
+                    fail(
+                        f"'{holders[root]}' and '{n}' hold the same list when the loop"
+                        f" {when}, and the loop binds '{rebound[0]}' to another list",
+                        where,  # type: ignore[arg-type]
+                        hint,
+                    )
+                holders[root] = n
+        starts = {self.root_of(before[n]): n for n in rebound}  # type: ignore[arg-type]
+        for root in list(starts):
+            if root.kind == "param":
+                del starts[root]  # the reverse adds into a parameter's adjoint list
+        for other, bound in before.items():
+            if (
+                other not in lists
+                and "\0" not in other
+                and isinstance(bound, Var)
+                and bound.shape == "list"
+                and self.root_of(bound) in starts
+            ):
+                name = starts[self.root_of(bound)]
+                fail(
+                    f"'{other}' holds the list '{name}' starts the loop with, and the"
+                    f" loop binds '{name}' to another list",
+                    where,  # type: ignore[arg-type]
+                    f"make '{name}' a list of its own before the loop: {name} ="
+                    f" list({other})",
+                )
+        return rebound

@@ -167,6 +167,8 @@ class LoopLowering:
                 self.list_root[headers[n]] = self.root_of(init)  # type: ignore[arg-type]
             if self.is_fresh(init):  # type: ignore[arg-type]
                 self.fresh.add(headers[n])
+            if isinstance(init, Var) and shape == "scalar":
+                self.copy_of[headers[n]] = init  # a parameter indexed in the loop
             self.env[n] = headers[n]
         index_var = self.new_var(index_base, "index")
         self.blocks.append([])
@@ -183,19 +185,12 @@ class LoopLowering:
         body_env = self.env
         self.env = dict(before)
         phis = []
+        # names the body binds to another list (`u = new`, `u, v = v, u`): each
+        # such header is a list of its own (assignments.check_rebound)
+        rebound = self.check_rebound(carried, before, body_env, node)
+        for n in rebound:
+            self.list_root[headers[n]] = headers[n]
         for n in carried:
-            if headers[n].shape == "list" and self.root_of(
-                before[n]  # type: ignore[arg-type]
-            ) != self.root_of(
-                body_env[n]
-            ):  # type: ignore[arg-type]
-                fail(
-                    f"'{n}' is bound to a new list inside the loop (the reverse"
-                    " sweep needs each list to stay one object)",
-                    self.index.locate(node),
-                    f"update the elements of {n} in place ({n}[i] = ...), with a"
-                    " second list made before the loop for the new values",
-                )
             exit_var = self.new_var(flow_base(n), "local", headers[n].shape)
             phis.append(Phi(headers[n], before[n], body_env[n], exit_var))  # type: ignore[arg-type]
             if exit_var.shape == "list":

@@ -63,6 +63,16 @@ def differentiable(op: str) -> bool:
     return op in RULES or op in _LIST_FLOW or op.startswith("call:")
 
 
+def _loops(statements: Iterable[Stmt]) -> Iterable[Loop]:
+    for stmt in statements:
+        if isinstance(stmt, Branch):
+            yield from _loops(stmt.then)
+            yield from _loops(stmt.orelse)
+        elif isinstance(stmt, Loop):
+            yield stmt
+            yield from _loops(stmt.body)
+
+
 def walk_lets(statements: Iterable[Stmt]) -> Iterable[Let]:
     for stmt in statements:
         if isinstance(stmt, Let):
@@ -205,6 +215,9 @@ class _Reverse:
         self.adjoint_helpers = adjoint_helpers or {}
         self.has: set[Var] = set()
         self.root: dict[Var, Var] = {}
+        self.body = function.body
+        #: loop-carried lists whose name the loop body binds to another list
+        self.rebound: set[Var] = set()
         self.carries: dict[Var, Var] = {}
         #: working out which values gain adjoint, the statements are thrown away
         self.dry = False
@@ -240,13 +253,36 @@ class _Reverse:
                     if phi.target.shape == "list":
                         self.root[phi.target] = self.root[phi.first]  # type: ignore[index]
             else:
-                for phi in stmt.carried:
-                    if phi.target.shape == "list":
-                        base = self.root[phi.first]  # type: ignore[index]
-                        self.root[phi.target] = base
-                        assert phi.exit is not None
-                        self.root[phi.exit] = base
-                self._link_block(stmt.body)
+                self._link_loop(stmt)
+
+    def _link_loop(self, loop: Loop) -> None:
+        """A carried list is the list it starts as, unless the body rebinds its name
+        to another list (``u = new``, ``u, v = v, u``): then the value at the start
+        of an iteration is a list of its own (``rebound``), whose adjoint list the
+        reverse loop hands on (``rebinding``)."""
+        lists = [phi for phi in loop.carried if phi.target.shape == "list"]
+        own: set[Var] = set()
+        while True:
+            for phi in lists:
+                # a rebound list's root is its value after the loop, a value the
+                # loop's iterations do not make (the layout check keeps it past the
+                # loop's end)
+                base = (
+                    phi.exit if phi.target in own else self.root[phi.first]  # type: ignore[index]
+                )
+                self.root[phi.target] = base
+                assert phi.exit is not None
+                self.root[phi.exit] = base
+            self._link_block(loop.body)
+            moved = {
+                phi.target
+                for phi in lists
+                if self.root[phi.second] != self.root[phi.target]  # type: ignore[index]
+            }
+            if moved <= own:
+                break
+            own |= moved
+        self.rebound |= own
 
     def list_roots(self) -> tuple[Var, ...]:
         roots = {self.root[v] for v in self.active if v.shape == "list"}
@@ -462,8 +498,71 @@ class _Reverse:
         self.carries[var] = phi.target
         return var
 
+    def rebinding(self, loop: Loop) -> list[ReverseStmt]:
+        """At the start of a reverse iteration, each rebound list's adjoint list
+        becomes that of the list its name was bound to at the end of the body (all
+        at once, as ``u, v = v, u`` swaps); a rebound list no adjoint list is handed
+        to gets zeros (its length is that of this iteration's list)."""
+        roots = set(self.list_roots())
+        phis = [
+            phi
+            for phi in loop.carried
+            if phi.target in self.rebound and self.root[phi.target] in roots
+        ]
+        moves = [(self.root[phi.second], self.root[phi.target]) for phi in phis]  # type: ignore[index]
+        moves = [(to, source) for to, source in moves if to in roots]
+        out: list[ReverseStmt] = []
+        targets = {to for to, _ in moves}
+        held: dict[Var, Var] = {}
+        for _, source in moves:
+            if source in targets:  # read before it is written over
+                held[source] = Var(self.next_uid, source.base, "temp", "list")
+                self.next_uid += 1
+                out.append(AdjointAssign(held[source], Bar(source), False, loop.origin))
+        for to, source in moves:
+            out.append(
+                AdjointAssign(to, Bar(held.get(source, source)), False, loop.origin)
+            )
+        for phi in phis:
+            own = self.root[phi.target]
+            if own not in targets:
+                zeros = Apply("newlist", (const(0.0), Apply("len", (phi.target,))))
+                out.append(AdjointAssign(own, zeros, False, loop.origin))
+        return out
+
+    def handed_over(self, loop: Loop) -> list[ReverseStmt]:
+        """After the reverse loop, a rebound list's adjoint list is that of the list
+        the loop started from."""
+        roots = set(self.list_roots())
+        out: list[ReverseStmt] = []
+        for phi in loop.carried:
+            start = self.root.get(phi.first)  # type: ignore[arg-type]
+            own = self.root.get(phi.target)
+            if phi.target not in self.rebound or own not in roots or start not in roots:
+                continue
+            if start.kind == "param":  # type: ignore[union-attr]
+                # other names may hold the parameter's list: add element by element
+                out.append(SpreadAdjoint(start, Bar(own), loop.origin, True))  # type: ignore[arg-type]
+            else:
+                out.append(AdjointAssign(start, Bar(own), False, loop.origin))  # type: ignore[arg-type]
+        return out
+
+    def moved_roots(self) -> tuple[Var, ...]:
+        """Lists whose adjoint list is handed over from a rebound list (never
+        made of zeros where the list is made)."""
+        own = {self.root[v] for v in self.rebound}
+        moved: set[Var] = set()
+        for loop in _loops(self.body):
+            for phi in loop.carried:
+                if phi.target in self.rebound:
+                    if self.root[phi.first].kind != "param":  # type: ignore[index]
+                        moved.add(self.root[phi.first])  # type: ignore[index]
+                    if self.root[phi.second] not in own:  # type: ignore[index]
+                        moved.add(self.root[phi.second])  # type: ignore[index]
+        return tuple(sorted(moved & set(self.list_roots())))
+
     def loop_body(self, loop: Loop, carries: dict[Phi, Var]) -> list[ReverseStmt]:
-        body_out: list[ReverseStmt] = []
+        body_out: list[ReverseStmt] = self.rebinding(loop)
         for phi, carry in carries.items():
             self.contribute(phi.second, Bar(carry), loop.origin, body_out)
         body_out += self.block(loop.body)
@@ -531,6 +630,7 @@ class _Reverse:
                 fitter.forget(var)
         self.has = {v for v in self.has if v not in inside}
         out.append(ReverseLoop(loop, tuple(body_out), loop.origin))
+        out += self.handed_over(loop)
         for phi, carry in carries.items():
             self.contribute(phi.first, Bar(carry), loop.origin, out)
         # a carried adjoint ends with its loop: it is no value an enclosing branch
@@ -586,4 +686,10 @@ def reverse_sweep(
         tuple(sorted(reverse.root.items())),
         tuple(s for s in seeds if isinstance(s, Var)),
         tuple(sorted(reverse.carries.items())),
+        moved=reverse.moved_roots(),
+        rebound=tuple(
+            sorted(
+                v for v in reverse.rebound if reverse.root[v] in reverse.list_roots()
+            )
+        ),
     )
