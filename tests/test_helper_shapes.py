@@ -446,3 +446,41 @@ def test_a_listed_function_also_called_as_a_helper():
         for i in range(2):
             for j in range(2):
                 assert abs(jac[i][j] - exact[i][j]) < 1e-15
+
+
+ARRAY_TUPLES = """
+import numpy as np
+
+
+def moments(z):
+    m = np.mean(z)
+    return m, np.mean((z - m) ** 2)
+
+
+def scale(z, s):
+    return [s * z, z / s]
+
+
+def f(z, w):
+    m, v = moments(z * w)
+    p = moments(w)
+    parts = scale(z, v)
+    return m * v + p[1] + np.sum(parts[0] * parts[1])
+"""
+
+
+def test_array_helpers_returning_a_tuple_and_a_list_literal():
+    module = generate(ARRAY_TUPLES, ["f"])
+    z, w = np.array([0.5, 1.5, -0.2]), np.array([1.1, 0.3, 0.7])
+    value, grads = module["f_grad"](z, w)
+    f = run_source(ARRAY_TUPLES)["f"]
+    assert value == f(z, w)
+    for k, grad in enumerate(grads):
+        # NumPy central differences, step 1e-6 (truncation ~1e-12)
+        expected = np.zeros(3)
+        for i in range(3):
+            up, down = [z.copy(), w.copy()], [z.copy(), w.copy()]
+            up[k][i] += 1e-6
+            down[k][i] -= 1e-6
+            expected[i] = (f(*up) - f(*down)) / 2e-6
+        np.testing.assert_allclose(grad, expected, rtol=1e-7, atol=1e-9)

@@ -187,7 +187,9 @@ class StatementLowering:
         self.return_origins.append(self.origin)
         atoms = []
         for element in elements if named is None else []:
-            target = self.new_var("value", "local")
+            # a helper may return a list it writes out (return [a, b])
+            shape = self.shape_of_expression(element) if arity == 1 else "scalar"
+            target = self.new_var("value", "local", shape)
             atom = self.expr(element, "value", target)
             if not self.returns_list_result(atom, arity):
                 atom = self.scalar(atom, element)
