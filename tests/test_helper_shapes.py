@@ -484,3 +484,28 @@ def test_array_helpers_returning_a_tuple_and_a_list_literal():
             down[k][i] -= 1e-6
             expected[i] = (f(*up) - f(*down)) / 2e-6
         np.testing.assert_allclose(grad, expected, rtol=1e-7, atol=1e-9)
+
+
+NAMED_ELEMENTS = """
+def g1(a, b=0.5):
+    t3 = b
+    return t3, a
+
+
+def f(x, y):
+    p4 = g1(x, b=(x * x))
+    t5 = (p4[0] * y + p4[1])
+    t6 = (t5 if y < t5 < y else t5)
+    t6 = t6
+    return (t6 + 0.5)
+"""
+
+
+def test_tuple_elements_take_names_that_clash_with_nothing():
+    """Found by the helper_shapes long run: an element named p4_1 met the
+    temporary p4_1 of the same statement, a refused layout ("internal error")."""
+    module = generate(NAMED_ELEMENTS, ["f"])
+    _, (x_bar, y_bar) = module["f_grad"](1.0, -0.45)
+    # closed form: f = x^2 y + x + 0.5
+    assert rel_err(x_bar, 2 * 1.0 * -0.45 + 1.0) < 1e-15
+    assert rel_err(y_bar, 1.0) < 1e-15

@@ -369,7 +369,8 @@ class CallLowering:
             self.emit(
                 "getitem",
                 (made, Const(str(k), k)),
-                self.new_var(f"{base}_{k}", "local"),
+                # named like temporaries (p_1, p_2): no source name to clash with
+                self.new_var(base, "temp"),
             )
             for k in range(size)
         ]
