@@ -325,6 +325,11 @@ REGRESSIONS = [
         {"A": ("n2", "n3")},
         [(2, 3)],
     ),
+    (  # a number's adjoint added into from another adjoint as it is (a crash)
+        numpy_model("s", "u1 = s\nu2 = np.arctan2(u1, 1.5 + s * s)\ns = u2\nreturn s"),
+        {"s": ()},
+        [()],
+    ),
 ]
 
 

@@ -144,7 +144,9 @@ def plan_in_place(sweep: ReverseSweep, fitter: Fitter) -> ReverseSweep:
         and (
             fitter.table.atom(v) != ()
             # a number's adjoint made by these is a number, never a 0-d array
-            or all(w.expr.op in _NUMBER_SAFE for w in top[v])  # type: ignore[union-attr]
+            or all(
+                isinstance(w.expr, Apply) and w.expr.op in _NUMBER_SAFE for w in top[v]
+            )
         )
     )
     return replace(sweep, in_place=in_place, bare=bare)
