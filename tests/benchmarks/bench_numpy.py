@@ -3,11 +3,11 @@
 Not a timed test: prints figures. Each model's data array holds n elements (the
 shapes are in MODELS); both functions are timed with timeit, best of REPEAT runs of
 a call count chosen so each run takes about 20 ms, the primal's and the gradient's
-runs interleaved. Our target is a ratio of at most 3 at 10^6 elements, where the
-arrays, not Python's per-statement overhead, set the cost. The ROW_MODELS (ridge
-logistic regression, 5 features; a tanh network 8->32->1) have n rows at 10^5 and
-10^6, target 2.5. BLAS threading and OPENBLAS_CORETYPE are left as the environment
-sets them.
+runs interleaved. Our target is a ratio of at most 2.5 at 10^5 and 10^6 elements
+(at 10^3 Python's per-statement overhead, not the arrays, sets the cost; printed,
+not judged). The ROW_MODELS (ridge logistic regression, 5 features; a tanh network
+8->32->1) have n rows at 10^5 and 10^6, same target. BLAS threading and
+OPENBLAS_CORETYPE are left as the environment sets them.
 
 Every model is generated with its parameters' shapes declared (SHAPES, as gen
 --shape X=m,10 would); --generic generates without them, for comparison.
@@ -216,15 +216,18 @@ def main() -> None:
             ns = _load(source, wrt)
             primal, grad = _best_pair(ns["loss"], ns["loss_grad"], args)
             ratio = grad / primal
-            if n == SIZES[-1]:
+            if n >= 10**5:
                 worst_at_million = max(worst_at_million, ratio)
             print(
                 f"{name:22} {n:>8.0e} {primal * 1e3:>9.3f}ms {grad * 1e3:>9.3f}ms"
                 f" {ratio:>6.2f}  {shapes}"
             )
     if "--rows" not in sys.argv:
-        verdict = "meets" if worst_at_million <= 3.0 else "misses"
-        print(f"worst ratio at 1e6: {worst_at_million:.2f} ({verdict} the target of 3)")
+        verdict = "meets" if worst_at_million <= ROW_TARGET else "misses"
+        print(
+            f"worst ratio at 1e5 and 1e6: {worst_at_million:.2f}"
+            f" ({verdict} the target of {ROW_TARGET})"
+        )
     worst_rows = 0.0
     for name, source, data, shapes in ROW_MODELS:
         for n in ROW_SIZES:
@@ -237,7 +240,11 @@ def main() -> None:
                 f" {grad / primal:>6.2f}  {shapes} (n rows)"
             )
     verdict = "meets" if worst_rows <= ROW_TARGET else "misses"
-    print(f"worst ratio, row models: {worst_rows:.2f} ({verdict} the target of 2.5)")
+    print(
+        f"worst ratio, row models: {worst_rows:.2f}"
+        f" ({verdict} the target of {ROW_TARGET}); load average now"
+        f" {os.getloadavg()[0]:.2f}"
+    )
 
 
 if __name__ == "__main__":
