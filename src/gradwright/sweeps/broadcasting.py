@@ -224,6 +224,8 @@ class Fitter:
             return self._reduction(op, g, args)
         if op in _MATMUL:
             return self._matmul(g, args)
+        if op in ("T", "np.transpose") and self.shape(g) == ():
+            return (g,)  # a number stands for itself transposed
         return None
 
     def _reduction(
