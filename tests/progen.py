@@ -138,6 +138,14 @@ class Return:
 
 
 @dataclass
+class Raw:
+    """A statement written out (``value``'s form may span lines): guards, while
+    loops, statements the generator copies as written (the guards_dicts family)."""
+
+    value: Ex
+
+
+@dataclass
 class Func:
     name: str
     params: list[str]
@@ -261,6 +269,8 @@ def _lines(body: list, depth: int, mode: str, sw: list | None = None) -> list[st
         elif isinstance(stmt, Return):
             vals = ", ".join(v.render(mode, sw) for v in stmt.values)
             out.append(f"{pad}return {vals}")
+        elif isinstance(stmt, Raw):
+            out.extend(pad + line for line in stmt.value.render(mode, sw).split("\n"))
         elif isinstance(stmt, If):
             for k, (cond, arm) in enumerate(stmt.arms):
                 head = "if" if k == 0 else "elif"
@@ -305,6 +315,8 @@ def walk(body: list) -> Iterator:
 
 
 def stmt_exprs(stmt) -> list[Ex]:
+    if isinstance(stmt, Raw):
+        return [stmt.value]
     if isinstance(stmt, Assign | Return):
         return list(stmt.values)
     if isinstance(stmt, Aug):
@@ -436,6 +448,9 @@ class Knobs:
     #: while loops (bounded by a counter), break/continue under conditions,
     #: returns inside loops
     jumps: bool = False
+    #: statements copied as written (guards, strings, while loops computing a
+    #: constant), dicts of numbers and loops over constant dicts
+    inactive: bool = False
 
 
 MAX_RETURNS = 2  # returns inside ifs per function
@@ -709,6 +724,8 @@ def statement(draw, sc: Scope, allow_return: bool, tuple_out: int) -> list:
             kinds += ["idiomfor", "idiomfor"]
     if sc.shaped:
         kinds += ["shapedcall", "shapedcall"]
+    if k.inactive:
+        kinds += ["guard", "fmt", "dictnum", "dictnum", "constdict", "whileconst"]
     loop_returns = k.jumps or not sc.in_loop
     if allow_return and k.early_return and loop_returns and sc.may_return():
         kinds += ["ifreturn", "ifreturn"]
@@ -820,6 +837,8 @@ def statement(draw, sc: Scope, allow_return: bool, tuple_out: int) -> list:
         return [If([(draw(cond(sc)), [*before, Jump(word)])], None)]
     if kind in ("tuple", "comp", "idiomfor"):
         return draw(idiom_statement(sc, kind, tuple_out))
+    if kind in ("guard", "fmt", "dictnum", "constdict", "whileconst"):
+        return draw(inactive_statement(sc, kind))
     if kind in ("if", "ifreturn"):
         stmt = draw(if_statement(sc, kind == "ifreturn", tuple_out))
         last = [s for _, arm in stmt.arms for s in arm[-1:] if isinstance(s, Assign)]
@@ -914,6 +933,65 @@ def idiom_statement(draw, sc: Scope, kind: str, tuple_out: int) -> list:
         target, iterable = v, (f"reversed({seq})" if choice == "reversed" else seq)
     body = draw(block(inner, 1, 3, False, tuple_out))
     return [For(target, iterable, body)]
+
+
+@st.composite
+def inactive_statement(draw, sc: Scope, kind: str) -> list:
+    """Statements that read no active value (copied as written) or only guard
+    active ones, and string-keyed dicts: of numbers (active), and constant dicts
+    read by lookups and loops."""
+    target = draw(st.sampled_from(sc.floats))
+    if kind == "guard":
+        if draw(st.booleans()):
+            form = 'assert {0} is not None, "no value"'
+        else:
+            form = 'if {0} is None:\n    raise ValueError("no value")'
+        return [Raw(Ex(form, (draw(num(sc, 1)),), tag="guard"))]
+    if kind == "fmt":
+        count = leaf(draw(st.sampled_from(sc.ints))) if sc.ints else leaf("3")
+        name = sc.new_name("label")
+        return [Assign([name], [Ex('"n=" + str({0})', (count,), tag="copied")])]
+    if kind == "whileconst":
+        m = sc.new_name("m")
+        stop = draw(st.integers(2, 9))
+        form = f"{m} = 1\nwhile {m} < {stop}:\n    {m} = {m} * 2"
+        return [
+            Raw(Ex(form, tag="copied_while")),
+            Assign([target], [Ex(f"{{0}} * {m} / 8.0", (leaf(target),))]),
+        ]
+    inner = sc.copy()
+    inner.in_loop = True
+    value = inner.new_name("v")
+    inner.floats.append(value)
+    if kind == "dictnum":
+        name = sc.new_name("dk")
+        pair = (draw(num(sc, 1)), draw(num(sc, 1)))
+        out = [Assign([name], [Ex('{{"a": {0}, "b": {1}}}', pair, tag="dict")])]
+        choice = draw(st.sampled_from(("lookup", "items", "keys")))
+        if choice == "lookup":
+            form = f'{name}["b"] * {{0}} + {name}["a"]'
+            out.append(Assign([target], [Ex(form, (draw(atom(sc)),))]))
+            return out
+        if choice == "items":
+            head = f"key, {value}"
+            iterable = f"{name}.items()"
+        else:
+            head, iterable = "key", name
+            inner.floats.remove(value)
+            inner.floats.append(f"{name}[key]")
+        step = Ex("{0} * 0.5 + {1}", (leaf(target), draw(num(inner, 1))))
+        return out + [For(head, iterable, [Assign([target], [step])])]
+    name = sc.new_name("cd")
+    weights = [draw(st.sampled_from(("0.5", "-1.25", "2.0", "0.75"))) for _ in "ab"]
+    form = f"{name} = dict(a={weights[0]}, b={weights[1]})"
+    out = [Raw(Ex(form, tag="constdict"))]
+    if draw(st.booleans()):
+        step = Ex(f'{{0}} * {name}["a"] + {{1}}', (leaf(target), draw(num(sc, 1))))
+        return out + [Assign([target], [step])]
+    view = draw(st.sampled_from(("items", "values")))
+    head = f"key, {value}" if view == "items" else value
+    step = Ex("{0} * {1} + {2}", (leaf(target), leaf(value), draw(num(inner, 1))))
+    return out + [For(head, f"{name}.{view}()", [Assign([target], [step])])]
 
 
 @st.composite

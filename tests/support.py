@@ -255,6 +255,37 @@ def _sympy_extreme(function):
     return reduce
 
 
+def _sympy_norm(x, axis=None):
+    """The square root of the sum of squares, over all elements or along axis."""
+    import numpy
+    import sympy
+
+    x = numpy.asarray(x, dtype=object)
+    if axis is None:
+        return sympy.sqrt(sum(e**2 for e in numpy.ravel(x)))
+    return numpy.frompyfunc(sympy.sqrt, 1, 1)(numpy.sum(x * x, axis=axis))
+
+
+def _sympy_interp(x, xp, fp):
+    """np.interp as a SymPy Piecewise per element: fp[0] before the table, the
+    segment [xp[i], xp[i + 1]) linear, fp[-1] from the last knot on."""
+    import numpy
+    import sympy
+
+    xp = [sympy.nsimplify(v) for v in xp]
+    fp = [sympy.nsimplify(v) for v in fp]
+
+    def one(t):
+        pieces = [(fp[0], t < xp[0])]
+        for i in range(len(xp) - 1):
+            slope = (fp[i + 1] - fp[i]) / (xp[i + 1] - xp[i])
+            pieces.append((fp[i] + slope * (t - xp[i]), t < xp[i + 1]))
+        pieces.append((fp[-1], True))
+        return sympy.Piecewise(*pieces)
+
+    return numpy.frompyfunc(one, 1, 1)(numpy.asarray(x, dtype=object))
+
+
 def _sympy_numpy(sympy_math) -> types.SimpleNamespace:
     """numpy over object arrays of SymPy expressions: the elementwise functions
     apply SymPy's, max/min/maximum/minimum/clip are ``Max`` and ``Min``, norm is the
@@ -275,9 +306,8 @@ def _sympy_numpy(sympy_math) -> types.SimpleNamespace:
     )
     namespace.max = namespace.amax = _sympy_extreme(sympy.Max)
     namespace.min = namespace.amin = _sympy_extreme(sympy.Min)
-    namespace.linalg = types.SimpleNamespace(
-        norm=lambda x: sympy.sqrt(sum(e**2 for e in numpy.ravel(x)))
-    )
+    namespace.linalg = types.SimpleNamespace(norm=_sympy_norm)
+    namespace.interp = _sympy_interp
     return namespace
 
 

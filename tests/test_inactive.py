@@ -168,3 +168,40 @@ def test_a_guard_reading_an_active_value_inside_a_loop():
     x = sympy.Symbol("x")
     exact = sympy.diff(sum(sympy.sin(x * i) for i in range(4)), x).subs(x, 0.3)
     assert rel_err(x_bar, float(exact)) < 1e-15  # reference: SymPy diff
+
+
+NUMPY_MODEL = """import numpy as np
+
+XP = [0.0, 1.0, 2.0, 4.0]
+FP = [1.0, 3.0, 2.0, 5.0]
+
+
+def f(x):
+    grid = np.linspace(0.0, 1.0, len(x))
+    y = np.interp(x, XP, FP) * (grid + np.ones(len(x)))
+    return np.sum(y)
+"""
+
+
+def test_interp_slope_at_knots_and_outside_the_table():
+    ns = build(NUMPY_MODEL, "f")
+    import numpy as np
+
+    x = np.array([-1.0, 0.0, 0.5, 1.0, 2.0, 3.0, 4.0, 5.0])
+    _, (x_bar,) = ns["f_grad"](x)
+    # the slope rule (closed form): segment slopes 2, -1, 1.5; at a knot the
+    # segment to its right; 0 before the table and from the last knot on
+    slope = np.array([0.0, 2.0, 2.0, -1.0, 1.5, 1.5, 0.0, 0.0])
+    weight = np.linspace(0.0, 1.0, len(x)) + 1.0
+    assert np.array_equal(x_bar, slope * weight)
+
+
+def test_array_constructors_are_copied_where_they_appear():
+    text = gradwright.generate(NUMPY_MODEL, ["f"])
+    assert "    grid = np.linspace(0.0, 1.0, len(x))\n" in text
+    assert "    ones = np.ones(len(x))\n" in text
+    text = _error(
+        "import numpy as np\n\n\ndef f(x):\n    return np.sum(np.full(3, x[0]))\n"
+    )
+    assert "this expression reads 'x'" in text
+    assert "np.zeros(n)" in text

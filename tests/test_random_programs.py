@@ -178,6 +178,18 @@ FAMILIES: dict[str, tuple[Knobs | None, int]] = {
         ),
         40,
     ),
+    # guards, strings and while loops copied as written; dicts (guards_dicts)
+    "guards_dicts": (
+        Knobs(
+            statements=(2, 5),
+            inactive=True,
+            branches=True,
+            loops=True,
+            int_param=True,
+            max_depth=2,
+        ),
+        40,
+    ),
     "numpy": (None, 40),
     "numpy_helpers": (None, 40),
     # the numpy family's programs with their parameters' shapes declared

@@ -195,3 +195,43 @@ def helper_sources(names: set[str]) -> str:
     for name in list(wanted):
         wanted |= set(NEEDS.get(name, ()))
     return "\n\n\n".join(HELPERS[n].rstrip("\n") for n in HELPERS if n in wanted)
+
+
+# -- natural models' array functions: the helpers of their rules (rules.py) -------
+
+HELPERS.update(
+    {
+        "_gw_uncumsum": """def _gw_uncumsum(g, x):
+    # each input reaches every later partial sum: a cumulative sum from the end
+    flat = np.ravel(g)
+    return np.reshape(np.cumsum(flat[::-1])[::-1], np.shape(x))
+""",
+        "_gw_undiff": """def _gw_undiff(g):
+    # out[i] = x[i + 1] - x[i] along the last axis
+    zero = np.zeros(np.shape(g)[:-1] + (1,))
+    return np.concatenate((zero, g), axis=-1) - np.concatenate((g, zero), axis=-1)
+""",
+        "_gw_stacked": """def _gw_stacked(g, k, kind, *parts):
+    # part k's block of a vstack ("v") or hstack ("h") result
+    shapes = [np.shape(p) for p in parts]
+    if kind == "v":
+        axis = 0
+        sizes = [s[0] if len(s) == 2 else 1 for s in shapes]
+    else:
+        axis = 0 if len(shapes[0]) < 2 else 1
+        sizes = [s[axis] if s else 1 for s in shapes]
+    start = sum(sizes[:k])
+    block = np.take(g, np.arange(start, start + sizes[k]), axis=axis)
+    return np.reshape(block, shapes[k])
+""",
+        "_gw_interp_slope": """def _gw_interp_slope(x, xp, fp):
+    # the slope of the segment [xp[i], xp[i + 1]) that holds x (from the right
+    # at a knot), 0 before the first knot and from the last one on
+    xp, fp = np.asarray(xp, dtype=float), np.asarray(fp, dtype=float)
+    i = np.searchsorted(xp, x, side="right") - 1
+    j = np.clip(i, 0, len(xp) - 2)
+    slope = (fp[j + 1] - fp[j]) / (xp[j + 1] - xp[j])
+    return np.where((i >= 0) & (i < len(xp) - 1), slope, 0.0)
+""",
+    }
+)

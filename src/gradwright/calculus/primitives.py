@@ -152,7 +152,13 @@ NUMPY_FUNCTIONS: dict[str, tuple[int, int | None]] = {
     "where": (3, 3),
     "clip": (3, 3),
     **{n: (1, 3) for n in ("sum mean prod max min amax amin".split())},
-    "linalg.norm": (1, 1),
+    "linalg.norm": (1, 2),
+    # natural models' array functions (rules at the bottom of rules.py)
+    "cumsum": (1, 1),
+    "diff": (1, 1),
+    "vstack": (1, 1),
+    "hstack": (1, 1),
+    "interp": (3, 3),
     "concatenate": (1, 2),
     "stack": (1, 2),
 }
@@ -168,12 +174,15 @@ _SPECS += [
     OpSpec("npscatter", "scatter", "_gw_scatter", PREC_ATOM, 3, None),
     OpSpec("np.concatenate", "listcall", "np.concatenate", PREC_ATOM, 1, None),
     OpSpec("np.stack", "listcall", "np.stack", PREC_ATOM, 1, None),
+    OpSpec("np.vstack", "listcall", "np.vstack", PREC_ATOM, 1, None),
+    OpSpec("np.hstack", "listcall", "np.hstack", PREC_ATOM, 1, None),
     *(
         OpSpec(name, "call", name, PREC_ATOM, 1, None)
         for name in (
             "_gw_unbroadcast _gw_unreduce _gw_unmean _gw_unextreme _gw_unprod"
             " _gw_matmul_left"
             " _gw_matmul_right _gw_part _gw_shaped np.reshape np.shape np.take"
+            " _gw_uncumsum _gw_undiff _gw_stacked _gw_interp_slope"
             " np.zeros_like np.broadcast_to np.expand_dims"
         ).split()
     ),

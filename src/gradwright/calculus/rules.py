@@ -329,6 +329,48 @@ RULES.update(
     }
 )
 
+# -- natural models' array functions ----------------------------------------------
+
+
+def _stacked(kind: str) -> Rule:
+    """np.vstack / np.hstack of a list of arrays: each part's adjoint is its
+    block of ``g`` (``_gw_stacked`` finds the block from the parts' shapes)."""
+
+    def rule(g: E, out: E, *parts: E) -> tuple[E | None, ...]:
+        return tuple(
+            _helper("_gw_stacked", g, Const(str(k), k), Const(f'"{kind}"'), *parts)
+            for k in range(len(parts))
+        )
+
+    return rule
+
+
+def _norm(g: E, out: E, x: E, *extra: E) -> tuple[E | None, ...]:
+    # d|x|/dx = x / |x|, the reduced adjoint spread back along the axis
+    if not extra:
+        return (g * x / out,)
+    axis, keepdims = _keywords(extra)
+    spread = _helper("_gw_unreduce", g / out, x, axis, keepdims)
+    return (spread * x,) + (None,) * len(extra)
+
+
+RULES.update(
+    {
+        "np.cumsum": lambda g, out, x: (_helper("_gw_uncumsum", g, x),),
+        "np.diff": lambda g, out, x: (_helper("_gw_undiff", g),),
+        "np.vstack": _stacked("v"),
+        "np.hstack": _stacked("h"),
+        "np.linalg.norm": _norm,
+        # the tables are constants (the lowering checks): the slope of the
+        # segment x falls in, taken from the right at a knot; 0 outside the table
+        "np.interp": lambda g, out, x, xp, fp: (
+            g * _helper("_gw_interp_slope", x, xp, fp),
+            None,
+            None,
+        ),
+    }
+)
+
 # radians and degrees multiply by these (CPython: x * (pi / 180.0)); float(x) is
 # the identity. int, round, floor, ceil and trunc have no rule: piecewise constant,
 # their results are inactive

@@ -264,6 +264,34 @@ def _augmented_names(module: cst.Module) -> list[cst.Name]:
     return found
 
 
+def _size_reads(module: cst.Module) -> set[int]:
+    """Names read only for their size (``len(x)``, ``x.shape``, ``x.size``,
+    ``x.ndim``): the size of an array has no derivative."""
+    found: set[int] = set()
+
+    class Check(cst.CSTVisitor):
+        def visit_Call(self, node: cst.Call) -> None:
+            func = node.func
+            if (
+                isinstance(func, cst.Name)
+                and func.value == "len"
+                and len(node.args) == 1
+                and isinstance(node.args[0].value, cst.Name)
+            ):
+                found.add(id(node.args[0].value))
+
+        def visit_Attribute(self, node: cst.Attribute) -> None:
+            if isinstance(node.value, cst.Name) and node.attr.value in (
+                "shape",
+                "size",
+                "ndim",
+            ):
+                found.add(id(node.value))
+
+    module.visit(Check())
+    return found
+
+
 def is_guard(stmt: cst.CSTNode) -> bool:
     """``assert ...``, or an ``if`` without else whose body ends in a raise."""
     if isinstance(stmt, cst.Assert):
@@ -444,31 +472,57 @@ class InactiveLowering:
         except GradwrightError as error:
             self.env, self.blocks[:], self.origin = env, blocks, origin
             del self.errors[errors:]
-            module = as_module(cst.Expr(test))
-            reads: dict[str, Atom] = {}
-            for node in statement_names(module).reads:
-                bound = self.env.get(node.value)
-                if isinstance(bound, (_Unbound, _Tuple)) or (
-                    isinstance(bound, (Var, Const)) and not self.never_active(bound)
-                ):
-                    raise error from None
-                if isinstance(bound, (Var, Const)):
-                    reads[node.value] = bound
-                elif node.value in self.index.module_names:
-                    self.constants_read[node.value] = None
-            if _problem(module) is not None:
+            copied = self.copied_expression(test, "cond", quiet=True)
+            if copied is None:
                 raise error from None
-            text = "cond = " + as_module(cst.Expr(test)).code.strip()
-            var = self.new_var("cond", "local")
-            statement = self.new_var("copied", "temp")
-            copied = Copied(text, tuple(reads), (("cond", var),))
-            self.blocks[-1].append(
-                Let(statement, "copied", tuple(reads.values()), self.origin, copied)
-            )
-            self.inert_values.add(statement)
-            self.emit("written", (statement,), var)
-            self.opaque.add(var)
-            return var
+            return copied
+
+    def copied_expression(
+        self, node: cst.BaseExpression, base: str, quiet: bool = False
+    ) -> Var | None:
+        """``base = <node>`` copied as written: an expression that reads no active
+        value (an array constructor, a test on strings). With ``quiet``, None
+        when it cannot be copied; else a located error."""
+        module = as_module(cst.Expr(node))
+        reads: dict[str, Atom] = {}
+        sizes = _size_reads(module)
+        for name in statement_names(module).reads:
+            bound = self.env.get(name.value)
+            if isinstance(bound, (_Unbound, _Tuple)) or (
+                isinstance(bound, (Var, Const))
+                and id(name) not in sizes
+                and not self.never_active(bound)
+            ):
+                if quiet:
+                    return None
+                fail(
+                    f"this expression reads '{name.value}', which may depend on the"
+                    " --wrt parameters, but it has no derivative here",
+                    self.index.locate(name),
+                    "build the array from constants (np.zeros(n), np.linspace(a, b,"
+                    " n)) and combine it with active values by arithmetic",
+                )
+            if isinstance(bound, (Var, Const)):
+                reads[name.value] = bound
+            elif name.value in self.index.module_names:
+                self.constants_read[name.value] = None
+        problem = _problem(module)
+        if problem is not None:
+            if quiet:
+                return None
+            fail(problem[1], self.index.locate(problem[0]), problem[2] or None)
+        text = f"{base} = " + module.code.strip()
+        var = self.new_var(base, "local")
+        statement = self.new_var("copied", "temp")
+        copied = Copied(text, tuple(reads), ((base, var),))
+        self.blocks[-1].append(
+            Let(statement, "copied", tuple(reads.values()), self.origin, copied)
+        )
+        self.inert_values.add(statement)
+        self.emit("written", (statement,), var)
+        self.opaque.add(var)
+        self.fresh.discard(var)
+        return var
 
     def never_active(self, atom: Atom) -> bool:
         """``is_inert``, or else no path of the statements lowered so far leads

@@ -29,6 +29,22 @@ _REDUCTIONS = frozenset({"sum", "mean", "prod", "max", "min", "amax", "amin"})
 _CONSTANTS = {"pi": 3.141592653589793, "e": 2.718281828459045, "inf": float("inf")}
 
 
+#: array constructors: inactive values, copied as written where they appear
+_CONSTRUCTORS = frozenset({"zeros", "ones", "full", "linspace", "arange", "array"})
+
+
+def literal_value_or_none(node: cst.BaseExpression) -> float | int | None:
+    """A number written out (a sign allowed), else None."""
+    sign = 1
+    if isinstance(node, cst.UnaryOperation) and isinstance(node.operator, cst.Minus):
+        node, sign = node.expression, -1
+    if isinstance(node, cst.Integer):
+        return sign * int(node.value)
+    if isinstance(node, cst.Float):
+        return sign * float(node.value)
+    return None
+
+
 class NumpyLowering:
     """The NumPy part of ``ssa._Lowerer``, which provides the members below."""
 
@@ -83,6 +99,8 @@ class NumpyLowering:
                 name, receiver = _METHODS[method], func.value
         if name is None:
             return None
+        if name in _CONSTRUCTORS:  # inactive: copied (lowering/inactive.py)
+            return self.copied_expression(node, name)
         if name not in NUMPY_FUNCTIONS:
             fail(
                 f"np.{name} is not supported",
@@ -98,7 +116,7 @@ class NumpyLowering:
                 fail("starred arguments are not supported", self.index.locate(arg))
             if arg.keyword is not None:
                 if arg.keyword.value not in ("axis", "keepdims") or name not in (
-                    _REDUCTIONS | {"concatenate", "stack"}
+                    _REDUCTIONS | {"concatenate", "stack", "linalg.norm"}
                 ):
                     fail(
                         f"the keyword {arg.keyword.value}= is not supported here",
@@ -109,7 +127,7 @@ class NumpyLowering:
             # np.sum(x, 0): the second positional argument is the axis
             keywords.insert(0, Const(f"axis={self.static(positional.pop(1))}"))
         op = f"np.{name}"
-        if name in ("concatenate", "stack"):
+        if name in ("concatenate", "stack", "vstack", "hstack"):
             if len(positional) != 1 or not isinstance(
                 positional[0], (cst.List, cst.Tuple)
             ):
@@ -130,10 +148,32 @@ class NumpyLowering:
             fail(
                 f"np.{name}() takes {low} array arguments here", self.index.locate(node)
             )
-        args = tuple(self.expr(a, base, None) for a in positional)
+        args = tuple(
+            self.table(a, base) if name == "interp" and k else self.expr(a, base, None)
+            for k, a in enumerate(positional)
+        )
+        if name == "interp" and not all(self.never_active(a) for a in args[1:]):
+            fail(
+                "np.interp is differentiated in x only: its tables must not depend"
+                " on the --wrt parameters",
+                self.index.locate(node),
+                "keep xp and fp constant (module-level data or inactive values)",
+            )
         return self.emit(
             op, args + tuple(keywords), target or self.new_var(base, "temp")
         )
+
+    def table(self, node: cst.BaseExpression, base: str) -> Atom:
+        """np.interp's tables: module data, or a list of numbers written out, are
+        constants as written; anything else is lowered (and must be inactive)."""
+        if self.data_root(node) is not None:
+            return self.data(node, base)
+        if isinstance(node, (cst.List, cst.Tuple)) and all(
+            isinstance(literal_value_or_none(el.value), (int, float))
+            for el in node.elements
+        ):
+            return Const(self.index.module.code_for_node(node), None)
+        return self.expr(node, base, None)
 
     def new_axis(self, node: cst.BaseExpression) -> bool:
         """``None`` or ``np.newaxis`` used as an index."""
