@@ -521,3 +521,30 @@ def test_comprehension_in_a_loop_body():
     value, (x_bar,) = module["f_grad"](0.7, xs)
     assert value == run_source(COMPREHENSION_IN_A_LOOP)["f"](0.7, xs)
     assert rel_err(x_bar, 2 * sum(xs)) < 1e-15  # t = 2 x sum(xs) by hand
+
+
+def test_layout_check_catches_a_while_list_appended_in_a_branch(monkeypatch):
+    """A while loop's saved lists grow by one slot per iteration. A printer that
+    appends a value saved inside a branch (instead of giving every iteration its
+    slot first) would shift the slots the reverse sweep restores: the check must
+    refuse the module."""
+    from gradwright.emission import layout
+
+    def all_appended(self, loop):
+        return set(self.saved_lists(loop)), []
+
+    monkeypatch.setattr(layout.Layout, "growing", all_appended)
+    source = """
+def f(x, a):
+    k = 0
+    while k < 4:
+        k = k + 1
+        if x > a:
+            x = x * math.sin(x)
+        x = x + a
+    return x
+"""
+    with pytest.raises(GradwrightError) as error:
+        gradwright.generate("import math\n" + source, ["f"])
+    assert "internal error" in str(error.value)
+    assert "not one append" in str(error.value)

@@ -42,6 +42,8 @@ class _Loop:
     test: list = field(default_factory=list)
     #: whether an iteration may also leave the loop at its end (a break)
     breaks: bool = False
+    #: the saved lists that grow by one slot per iteration (a while loop's)
+    grown: frozenset = frozenset()
 
 
 @dataclass
@@ -103,6 +105,10 @@ class Trace:
         self.read(name, source)
         self._add(("alias", name, target, source))
 
+    def grow(self, saved: str, key: Key) -> None:
+        """``saved.append(...)``: the list gains this iteration's slot."""
+        self._add(("grow", saved, key, self.where))
+
     def fill(self, saved: str, var: Var) -> None:
         """``saved[slot] = ...``: the saved list holds ``var`` of each iteration."""
         self._add(("fill", saved, ("filled", var), self.where))
@@ -132,10 +138,12 @@ class Trace:
         exits: tuple[tuple[Var, Var], ...] = (),
         test: list | None = None,
         breaks: bool = False,
+        grown: Iterable[str] = (),
     ) -> None:
         test = test or []
         branches = frozenset(_branches(test + body))
-        self._add(_Loop(body, frozenset(local), exits, branches, test, breaks))
+        grown = frozenset(grown)
+        self._add(_Loop(body, frozenset(local), exits, branches, test, breaks, grown))
 
     def extend(self, events: list) -> None:
         for event in events:
@@ -282,7 +290,7 @@ class _Checker:
             else:
                 kind, name, key, where = event
                 held = state.get(name, frozenset())
-                if kind == "read":
+                if kind in ("read", "grow"):
                     if report and not any(k == key and g <= taken for k, g in held):
                         self.found.setdefault(
                             (name, key),
@@ -304,6 +312,25 @@ class _Checker:
                     state[name] = held | {(key, g) for g in guards}
         return state
 
+    def growth(self, loop: _Loop) -> None:
+        """A list that grows by one slot per iteration must be appended to once
+        on every path through the iteration: at the body's top level, never under
+        a branch or in an inner loop (its slots would stop matching the
+        iterations the reverse sweep restores)."""
+        counts = {name: 0 for name in loop.grown}
+        places = {name: "the loop" for name in loop.grown}
+        for name, nested, where in _grows(loop.test + loop.body):
+            if name in counts:
+                counts[name] += 2 if nested else 1  # nested: on some paths only
+                places[name] = where
+        for name, count in sorted(counts.items()):
+            if count != 1:
+                key = ("list", None, name)
+                where = f"{places[name]}: not one append per iteration"
+                self.found.setdefault(
+                    (name, "grows"), Violation(name, key, frozenset(), where)
+                )
+
     def summary(self, loop: _Loop, entry: State) -> State:
         """The state after ``loop`` without analysing it again: a name it writes
         holds what it held before (no trip) and what every iteration leaves in it,
@@ -321,6 +348,7 @@ class _Checker:
         return _forget(_with_fills(state, ends), loop.local, loop.branches)
 
     def loop(self, loop: _Loop, entry: State, taken: frozenset) -> State:
+        self.growth(loop)
         head = dict(entry)
         iteration = loop.test + loop.body
         for _ in range(64):  # facts only shrink: this settles in a few rounds
@@ -349,6 +377,18 @@ class _Checker:
                 }
                 state[name] = facts | extra
         return _forget(state, loop.local, loop.branches)
+
+
+def _grows(events: list, nested: bool = False) -> Iterator[tuple[str, bool, str]]:
+    """(list, whether under a branch or an inner loop, where) for each append."""
+    for event in events:
+        if isinstance(event, _If):
+            yield from _grows(event.then, True)
+            yield from _grows(event.orelse, True)
+        elif isinstance(event, _Loop):
+            yield from _grows(event.test + event.body, True)
+        elif event[0] == "grow":
+            yield event[1], nested, event[3]
 
 
 def _written(events: list) -> Iterator[str]:

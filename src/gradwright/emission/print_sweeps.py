@@ -137,7 +137,7 @@ class _Emitter:
         where a while loop's list grows by this statement."""
         if saved in self.appending.get(loop, ()):
             out.code(f"{saved}.append({text})", depth)
-            self.trace.read(saved, self.tape_key(loop, saved))
+            self.trace.grow(saved, self.tape_key(loop, saved))
             return
         out.code(f"{saved}[{self.layout.slot(loop, forward=True)}] = {text}", depth)
         self.trace.read(saved, self.tape_key(loop, saved))
@@ -450,7 +450,7 @@ class _Emitter:
                 trace.write(self.namer.name(loop.index), self.key(loop.index))
             for saved in slotted:  # a slot for this iteration, filled in a branch
                 out.code(f"{saved}.append(0.0)", depth + 1)
-                trace.read(saved, self.tape_key(loop, saved))
+                trace.grow(saved, self.tape_key(loop, saved))
             for phi in loop.carried:
                 if phi.target in layout.tapes.get(loop, []):
                     self.save(loop, phi.target, depth + 1, out)
@@ -487,6 +487,7 @@ class _Emitter:
             exits,
             test=test,
             breaks=loop.exit_flag is not None,
+            grown=layout.saved_lists(loop) if loop.test is not None else (),
         )
         if len(out.lines) == size and not layout.tapes.get(loop):
             out.code("pass", depth + 1)
