@@ -346,3 +346,15 @@ def test_regressions_found_by_random_programs(case: int) -> None:
             assert type(grads[j]) is float
         # reference: Richardson-extrapolated central differences of the model
         assert_close_to_differences(model["f"], args, j, grads[j], value)
+
+
+def test_a_number_factor_moves_to_the_smaller_side_of_a_matrix_product() -> None:
+    source = numpy_model("x, A, b", "r = A @ x - b\nreturn r @ r")
+    text, ns = generate(source, {"x": (3,), "A": ("m", 3), "b": ("m",)}, ["x"])
+    assert "x_bar = 2.0 * (A.T @ r)\n" in text  # not 2.0 * r over all m rows
+    g = np.random.default_rng(11)
+    x, A, b = g.normal(size=3), g.normal(size=(7, 3)), g.normal(size=7)
+    _, (x_bar,) = ns["f_grad"](x, A, b)
+    # reference: the closed form 2 A^T (Ax - b) (The Matrix Cookbook, section 2.4;
+    # recalled from memory)
+    np.testing.assert_allclose(x_bar, 2.0 * A.T @ (A @ x - b), rtol=1e-13)

@@ -7,7 +7,10 @@ the shapes (``shapes.py``):
   seed) is written into its uses instead of being a statement of its own;
 - a factor that is a number and common to every term of a sum is taken out once:
   ``-1.0 / n * y / p + 1.0 / n * q / r`` becomes ``(q / r - y / p) / n``, one array
-  operation per term fewer.
+  operation per term fewer;
+- a number factor of an adjoint read once, by a matrix product, multiplies the
+  product's result instead: ``2.0 * (A.T @ r)``, not ``A.T @ (2.0 * r)`` over every
+  row.
 
 Taking a factor out of a sum reassociates: the result may differ from the
 term-by-term form in the last bit or two, as NumPy's own pairwise sums do from
@@ -56,22 +59,91 @@ def tidy(sweep: ReverseSweep, fitter: Fitter) -> ReverseSweep:
         s.var for s in _all_statements(sweep.statements) if isinstance(s, AdjointAssign)
     )
     keep = set(sweep.wrt) | {carry for carry, _ in sweep.carries}
+    reads = Counter(
+        node.var
+        for s in _all_statements(sweep.statements)
+        for e in _exprs(s)
+        for node in walk(e)
+        if isinstance(node, Bar)
+    )
     numbers: dict[Var, Expr] = {}
+    scaled: dict[Var, tuple[Expr, Expr]] = {}
     out: list[ReverseStmt] = []
+
+    def change(expr: Expr) -> Expr:
+        expr = _smaller_side(substitute(expr, numbers), scaled)
+        return _factor(simplify(expr), fitter)
+
     for stmt in sweep.statements:
-        stmt = _map(stmt, lambda e: _factor(simplify(substitute(e, numbers)), fitter))
+        stmt = _map(stmt, change)
         if (
             isinstance(stmt, AdjointAssign)
             and not stmt.accumulate
             and writes[stmt.var] == 1
             and stmt.var not in keep
             and stmt.var.shape == "scalar"
-            and _made_of_numbers(stmt.expr, fitter)
         ):
-            numbers[stmt.var] = stmt.expr
-            continue
+            if _made_of_numbers(stmt.expr, fitter):
+                numbers[stmt.var] = stmt.expr
+                continue
+            factor = _number_factor(stmt.expr, fitter)
+            if factor is not None and reads[stmt.var] == 1:
+                # read once, by a matrix product: the number multiplies its result
+                scaled[stmt.var] = factor
+                if _read_by_matmul(sweep.statements, stmt.var):
+                    continue
+                del scaled[stmt.var]
         out.append(stmt)
     return replace(sweep, statements=tuple(out))
+
+
+def _exprs(stmt: ReverseStmt) -> list[Expr]:
+    return [
+        getattr(stmt, name)
+        for name in ("expr", "index", "seed", "condition")
+        if isinstance(getattr(stmt, name, None), (Apply, Bar, Var, Const))
+    ]
+
+
+def _number_factor(expr: Expr, fitter: Fitter) -> tuple[Expr, Expr] | None:
+    """``c * x`` with c a number made of numbers: (c, x)."""
+    if isinstance(expr, Apply) and expr.op == "mul":
+        c, x = expr.args
+        if _made_of_numbers(c, fitter) and not _made_of_numbers(x, fitter):
+            return c, x
+    return None
+
+
+def _is_scaled_product(node: Expr, var: Var) -> bool:
+    return (
+        isinstance(node, Apply)
+        and node.op in ("matmul", "np.dot")
+        and Bar(var) in node.args
+    )
+
+
+def _read_by_matmul(statements: tuple[ReverseStmt, ...], var: Var) -> bool:
+    return any(
+        _is_scaled_product(node, var)
+        for s in _all_statements(statements)
+        for e in _exprs(s)
+        for node in walk(e)
+    )
+
+
+def _smaller_side(expr: Expr, scaled: dict[Var, tuple[Expr, Expr]]) -> Expr:
+    """``A.T @ x_bar`` with ``x_bar = c * x`` as ``c * (A.T @ x)``: the number
+    multiplies the product's (smaller) result, not the long vector."""
+    if not scaled or not isinstance(expr, Apply):
+        return expr
+    args = tuple(_smaller_side(a, scaled) for a in expr.args)
+    if expr.op in ("matmul", "np.dot"):
+        for k, arg in enumerate(args):
+            if isinstance(arg, Bar) and arg.var in scaled:
+                c, x = scaled[arg.var]
+                inner = Apply(expr.op, args[:k] + (x,) + args[k + 1 :])
+                return Apply("mul", (c, inner))
+    return Apply(expr.op, args)
 
 
 def _map(stmt: ReverseStmt, change) -> ReverseStmt:  # noqa: ANN001
