@@ -27,7 +27,12 @@ from gradwright.sweeps.broadcasting import Fitter
 from gradwright.sweeps.common import reuse_values
 from gradwright.sweeps.factoring import tidy
 from gradwright.sweeps.inplace import plan_in_place
-from gradwright.sweeps.optimize import inline_adjoints, map_sweep, sweep_exprs
+from gradwright.sweeps.optimize import (
+    drop_dead_zeroing,
+    inline_adjoints,
+    map_sweep,
+    sweep_exprs,
+)
 from gradwright.sweeps.reverse import (
     active_values,
     defined_in,
@@ -98,7 +103,7 @@ def _differentiate(
     # repeated calls of the reverse become forward values, in scalar models only
     # (in an array model each would be a whole array held for the reverse)
     sweep, ssa = reuse_values(
-        inline_adjoints(sweep), ssa, share=not index.numpy_modules
+        drop_dead_zeroing(inline_adjoints(sweep)), ssa, share=not index.numpy_modules
     )
     if fitter is not None:
         sweep = plan_in_place(tidy(sweep, fitter), fitter)

@@ -240,6 +240,21 @@ class Layout:
                 return False
         return True
 
+    def _leaves(self, var: Var, loop: Loop) -> set[Var]:
+        """The values of this iteration of ``loop`` that recomputing ``var`` needs
+        saved (values from outside the loop and indices it has anyway)."""
+        found: set[Var] = set()
+        for arg in self.defs[var].args:
+            if not isinstance(arg, Var) or arg.kind == "index":
+                continue
+            if self.loop_of.get(arg) is not loop:
+                continue
+            if arg in self.defs and self._recomputable(arg, loop):
+                found |= self._leaves(arg, loop)
+            else:
+                found.add(arg)
+        return found
+
     def _encloses(self, outer: Loop | None, loop: Loop) -> bool:
         current: Loop | None = self.parent.get(loop)
         while True:
@@ -251,10 +266,18 @@ class Layout:
 
     def _reverse_reads(self) -> set[Var]:
         reads: set[Var] = set()
+        #: the values the reverse expressions name (before any is recomputed)
+        direct: set[Var] = set()
+        first_pass = [True]
 
         def collect(expr: Expr, loop: Loop | None, everywhere: bool = False) -> None:
             for node in _walk_values(self.cheap(expr, everywhere)):
-                if isinstance(node, Apply):  # a call's partials: a value of its own
+                if first_pass[0]:
+                    if isinstance(node, Var):
+                        direct.update(
+                            n for n in walk(self.cheap(node)) if isinstance(n, Var)
+                        )
+                elif isinstance(node, Apply):  # a call's partials: a value of its own
                     note(self.partials_of(node.args[0]), loop)  # type: ignore[arg-type]
                 elif isinstance(node, Var) and node not in self.reverse_defined:
                     note(node, loop)
@@ -269,7 +292,13 @@ class Layout:
                         note(node, loop)
                 return
             where = self.loop_of.get(var)
-            if where is not None and self._recomputable(var, where):
+            if (
+                where is not None
+                and self._recomputable(var, where)
+                # recomputed from values saved anyway; else one save of its own
+                # costs less than saving what it is made of (u[i - 1], u[i], ...)
+                and self._leaves(var, where) <= direct
+            ):
                 let = self.defs[var]
                 bucket = self.recompute.setdefault(where, [])
                 if let not in bucket:
@@ -304,6 +333,8 @@ class Layout:
                         collect(bound, loop, everywhere=True)
                     visit(stmt.body, stmt.loop)
 
+        visit(self.sweep.statements, None)
+        first_pass[0] = False
         visit(self.sweep.statements, None)
         sized = dict(self.function.tuple_sizes)
         for root in self.sweep.list_roots:

@@ -12,7 +12,7 @@ from collections import Counter
 from collections.abc import Callable, Iterable, Iterator
 from dataclasses import replace
 
-from gradwright.calculus.algebra import simplify
+from gradwright.calculus.algebra import number, simplify
 from gradwright.ir import (
     AdjointAssign,
     Apply,
@@ -310,3 +310,35 @@ def sweep_exprs(statements: Iterable[ReverseStmt]) -> Iterator[Expr]:
     """Every expression of a reverse sweep, nested blocks included."""
     for stmt in _flatten(statements):
         yield from _exprs(stmt)
+
+
+def drop_dead_zeroing(sweep: ReverseSweep) -> ReverseSweep:
+    """``v_bar[k] = 0.0`` with nothing reading ``v_bar`` after it: the reverse of
+    the first element writes of a list made in the function (``v[0] = left``),
+    whose adjoint is not returned. Inside loops the zero is read by the next
+    iteration; only the function's own top-level statements are looked at."""
+    roots = dict(sweep.roots)
+    live = {roots.get(v, v) for v in sweep.wrt if v.shape == "list"}
+    out: list[ReverseStmt] = []
+    for stmt in reversed(sweep.statements):
+        if (
+            isinstance(stmt, ElementAdjoint)
+            and not stmt.accumulate
+            and number(stmt.expr) == 0
+            and roots.get(stmt.root, stmt.root) not in live
+        ):
+            continue
+        for inner in _flatten([stmt]):
+            for expr in _exprs(inner):
+                live |= {
+                    roots.get(n.var, n.var)
+                    for n in walk(expr)
+                    if isinstance(n, Bar) and n.var.shape == "list"
+                }
+            if isinstance(inner, (SpreadAdjoint, PopAdjoint)) or (
+                isinstance(inner, ElementAdjoint)
+                and (inner.accumulate or inner is not stmt)
+            ):
+                live.add(roots.get(inner.root, inner.root))
+        out.append(stmt)
+    return replace(sweep, statements=tuple(reversed(out)))
