@@ -53,7 +53,7 @@ def test_a_dict_of_numbers_is_a_list_with_its_keys_positions():
     text = gradwright.generate(MODEL, ["springs"])
     assert "    px = [xa, xb, xc]\n" in text
     assert '    px_at = {"a": 0, "b": 1, "c": 2}\n' in text
-    assert "        dx_1 = px[px_at[j]]\n" in text
+    assert "        dx = px[px_at[j]] - px[px_at[i]]\n" in text
     # one adjoint list of the same positions, handed to the parameters at the end
     assert "    px_bar = [0.0] * len(px)\n" in text
     assert "    xa_bar = px_bar[0]\n" in text

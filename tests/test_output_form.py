@@ -295,3 +295,25 @@ def test_shared_call_in_a_loop_is_saved_once_per_iteration():
     # made before the statement re-binds x: x keeps its one name
     assert "x = math.atan2(x, y) + x * 0.5" in forward
     _check_against_mpmath(LOOP_ATAN2, "f", (0.3, 1.2, 5), [0, 1])
+
+
+KEPLER = """
+import math
+
+
+def kepler(mean_anomaly, ecc):
+    E = mean_anomaly
+    for _ in range(12):
+        f = E - ecc * math.sin(E) - mean_anomaly
+        fp = 1.0 - ecc * math.cos(E)
+        E = E - f / fp
+    return math.atan2(math.sqrt(1.0 - ecc * ecc) * math.sin(E), math.cos(E) - ecc)
+"""
+
+
+def test_newton_iteration_reads_its_saved_sin_and_cos():
+    text = gradwright.generate(KEPLER, ["kepler"])
+    forward, reverse = _sweeps(text, "kepler")
+    assert "math.sin" not in reverse and "math.cos" not in reverse
+    assert "hypot" not in reverse and forward.count("math.hypot(") == 1
+    _check_against_mpmath(KEPLER, "kepler", (1.1, 0.3), [0, 1])
