@@ -509,3 +509,28 @@ def test_tuple_elements_take_names_that_clash_with_nothing():
     # closed form: f = x^2 y + x + 0.5
     assert rel_err(x_bar, 2 * 1.0 * -0.45 + 1.0) < 1e-15
     assert rel_err(y_bar, 1.0) < 1e-15
+
+
+LOOP_RESULT = """
+def g0(xs, a):
+    acc = a
+    for c in xs:
+        acc = (a * c)
+    return acc
+
+
+def f(x, xs):
+    return g0(xs, xs[0]) * x
+"""
+
+
+def test_adjoint_of_a_helper_whose_loop_only_makes_its_result():
+    """Found by the helper_shapes long run: the adjoint function left out the
+    loop that makes the result, whose reverse reads its trip count (refused)."""
+    module = generate(LOOP_RESULT, ["f"])
+    x, xs = 1.5, [-0.25, 0.6]
+    _, (x_bar, xs_bar) = module["f_grad"](x, xs)
+    # closed form: f = x * xs[0] * xs[-1]
+    assert rel_err(x_bar, xs[0] * xs[1]) < 1e-15
+    assert rel_err(xs_bar[0], x * xs[1]) < 1e-15
+    assert rel_err(xs_bar[1], x * xs[0]) < 1e-15

@@ -189,15 +189,10 @@ def render_function(
             else None
         )
         laid_out = lay_out(
-            # an adjoint function returns no value: its result is computed only
-            # where the reverse sweep reads it
-            (
-                dataclasses.replace(
-                    ssa, result=dataclasses.replace(ssa.result, values=())
-                )
-                if is_adjoint
-                else ssa
-            ),
+            # an adjoint function returns no value, but its forward sweep still
+            # computes it: leaving the result out dropped loops whose reverse
+            # reads their trip count (a layout the check refused)
+            ssa,
             sweep,
             namer,
             printer,
@@ -236,7 +231,7 @@ def render_function(
         seed_unpack = (
             f"{', '.join(names)}{',' if len(names) == 1 else ''} = {seed_name}"
         )
-    values = [printer(e) for e in result_exprs] or [""]
+    values = [printer(e) for e in result_exprs]
     value = (
         f"({', '.join(values)}{',' if len(values) == 1 else ''})"
         if is_vector
