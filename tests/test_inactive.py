@@ -205,3 +205,21 @@ def test_array_constructors_are_copied_where_they_appear():
     )
     assert "this expression reads 'x'" in text
     assert "np.zeros(n)" in text
+
+
+def test_two_copied_loops_from_equal_values_bind_values_of_their_own():
+    # found by the guards_dicts random family: m1 and m2 both start at 1, and value
+    # numbering took the second loop's result for the first's (y_bar read m1)
+    source = (
+        "def f(y):\n"
+        "    m1 = 1\n"
+        "    while m1 < 2:\n"
+        "        m1 = m1 * 2\n"
+        "    m2 = 1\n"
+        "    while m2 < 8:\n"
+        "        m2 = m2 * 2\n"
+        "    return y * m2 / 8.0\n"
+    )
+    ns = build(source, "f")
+    _, (y_bar,) = ns["f_grad"](-0.5)
+    assert y_bar == 1.0  # d(y * 8 / 8)/dy, a closed form

@@ -73,6 +73,8 @@ def _numbered(let: Let) -> bool:
         let.target.shape == "scalar"
         and not let.op.startswith("call:")
         and let.op not in ("setitem", "newlist", "listlit")
+        # a statement copied as written binds values of its own, whatever it read
+        and let.op not in ("copied", "written")
     )
 
 
