@@ -325,6 +325,16 @@ REGRESSIONS = [
         {"A": ("n2", "n3")},
         [(2, 3)],
     ),
+    (  # a norm along an axis is an array (it was taken for a number)
+        numpy_model("A, b", "r = np.linalg.norm(A, axis=1) + b\nreturn np.sum(r * r)"),
+        {"A": ("n", 3), "b": ("n",)},
+        [(2, 3), (2,)],
+    ),
+    (  # and a number added to it gets the sum of its adjoint
+        numpy_model("A, b", "r = np.linalg.norm(A, axis=1) + b\nreturn np.sum(r * r)"),
+        {"A": ("n", 3), "b": ()},
+        [(2, 3), ()],
+    ),
     (  # a number's adjoint added into from another adjoint as it is (a crash)
         numpy_model("s", "u1 = s\nu2 = np.arctan2(u1, 1.5 + s * s)\ns = u2\nreturn s"),
         {"s": ()},
@@ -343,7 +353,7 @@ def test_regressions_found_by_random_programs(case: int) -> None:
     value, grads = ns["f_grad"](*args)
     for j, arg in enumerate(args):
         if isinstance(arg, float):
-            assert type(grads[j]) is float
+            assert isinstance(grads[j], float)  # a number, not a 0-d array
         # reference: Richardson-extrapolated central differences of the model
         assert_close_to_differences(model["f"], args, j, grads[j], value)
 

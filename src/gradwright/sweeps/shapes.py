@@ -63,11 +63,13 @@ _SAME = frozenset(
 _BROADCAST = BROADCASTING | {"lt", "le", "gt", "ge", "eq", "ne", "and", "or"}
 #: primitives with a number as result
 _NUMBER = frozenset(
-    {"shape_at", "len", "int", "float", "np.linalg.norm", "max", "min"}
+    {"shape_at", "len", "int", "float", "max", "min"}
     | {op for op, spec in OPS.items() if spec.symbol.startswith("math.")}
 )
+#: reductions with axis= and keepdims= (a norm without axis= is a number)
 _REDUCTIONS = frozenset(
     {"np.sum", "np.mean", "np.prod", "np.max", "np.min", "np.amax", "np.amin"}
+    | {"np.linalg.norm"}
 )
 _MATMUL = frozenset({"matmul", "np.matmul", "np.dot"})
 
