@@ -431,3 +431,41 @@ def while_in_if_returns(x, a):
 )
 def test_edge_shapes(func, args, active):
     _against_mpmath(EDGES, func, args, active)
+
+
+HELPER_SOLVER = """
+import math
+
+
+def solve(m, e):
+    E = m
+    while True:
+        f = E - e * math.sin(E) - m
+        if abs(f) < 1e-14:
+            return E
+        E = E - f / (1.0 - e * math.cos(E))
+
+
+def orbit(e, ms):
+    total = 0.0
+    for m in ms:
+        total = total + math.cos(solve(m, e))
+    return total
+"""
+
+
+def test_solver_helper_returning_from_its_loop():
+    grad = build(HELPER_SOLVER, "orbit")["orbit_grad"]
+    solve = run_source(HELPER_SOLVER)["solve"]
+    ms, e = [0.3, 1.2, 2.5], 0.4
+    value, (e_bar, ms_bar) = grad(e, ms)
+    assert same_bits(value, run_source(HELPER_SOLVER)["orbit"](e, ms))
+    e_ref = 0.0
+    for m, m_bar in zip(ms, ms_bar, strict=True):
+        E = solve(m, e)
+        slope = 1.0 - e * math.cos(E)
+        # d cos(E)/dM = -sin E / (1 - e cos E), d cos(E)/de = -sin^2 E / (1 - e
+        # cos E) (closed form, implicit differentiation of Kepler's equation)
+        assert rel_err(m_bar, -math.sin(E) / slope) < 1e-10
+        e_ref += -math.sin(E) ** 2 / slope
+    assert rel_err(e_bar, e_ref) < 1e-10
