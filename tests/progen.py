@@ -451,6 +451,10 @@ class Knobs:
     #: statements copied as written (guards, strings, while loops computing a
     #: constant), dicts of numbers and loops over constant dicts
     inactive: bool = False
+    #: lists as values: growing (+ [v], += [v, w]), reductions over sequences and
+    #: generators (min, max, math.fsum, sum with a start, several for clauses),
+    #: slices (zip(xs, xs[1:])), copies and double buffering (u, w = w, u)
+    list_values: bool = False
 
 
 MAX_RETURNS = 2  # returns inside ifs per function
@@ -722,6 +726,10 @@ def statement(draw, sc: Scope, allow_return: bool, tuple_out: int) -> list:
         kinds += ["tuple", "comp"]
         if sc.depth < k.max_depth:
             kinds += ["idiomfor", "idiomfor"]
+    if k.list_values:
+        kinds += ["lvgrow", "lvreduce", "lvreduce", "lvslice"]
+        if sc.depth < k.max_depth:
+            kinds += ["lvbuffer"]
     if sc.shaped:
         kinds += ["shapedcall", "shapedcall"]
     if k.inactive:
@@ -839,6 +847,8 @@ def statement(draw, sc: Scope, allow_return: bool, tuple_out: int) -> list:
         return draw(idiom_statement(sc, kind, tuple_out))
     if kind in ("guard", "fmt", "dictnum", "constdict", "whileconst"):
         return draw(inactive_statement(sc, kind))
+    if kind.startswith("lv"):
+        return draw(list_value_statement(sc, kind, tuple_out))
     if kind in ("if", "ifreturn"):
         stmt = draw(if_statement(sc, kind == "ifreturn", tuple_out))
         last = [s for _, arm in stmt.arms for s in arm[-1:] if isinstance(s, Assign)]
@@ -854,6 +864,139 @@ def _sequences(sc: Scope) -> list[str]:
     if len(sc.floats) >= 2:
         seqs.append(f"({sc.floats[0]}, {sc.floats[-1]})")
     return seqs
+
+
+def _filled(sc: Scope) -> list[str]:
+    """Sequences of at least one element: non-empty lists, a tuple of names."""
+    seqs = [name for name, n in sc.lists.items() if n and name.startswith("xs")]
+    if len(sc.floats) >= 2:
+        seqs.append(f"({sc.floats[0]}, {sc.floats[-1]})")
+    return seqs
+
+
+@st.composite
+def list_value_statement(draw, sc: Scope, kind: str, tuple_out: int) -> list:
+    """Lists as values (the list_values family)."""
+    seqs = _filled(sc)
+    if kind == "lvgrow" or not seqs:  # a list that grows
+        name = sc.new_name("xsl")
+        out: list = [Assign([name], [Ex("[{0}]", (draw(num(sc, 1)),), tag="lv_list")])]
+        length = 1
+        for _ in range(draw(st.integers(1, 3))):
+            way = draw(st.sampled_from(("concat", "extend", "loop")))
+            if way == "concat":
+                grown = Ex(f"{name} + [{{0}}]", (draw(num(sc, 1)),), tag="lv_concat")
+                out.append(Assign([name], [grown]))
+                length += 1
+            elif way == "extend":
+                pair = (draw(num(sc, 1)), draw(num(sc, 1)))
+                out.append(Aug(name, "+", Ex("[{0}, {1}]", pair, tag="lv_extend")))
+                length += 2
+            else:
+                inner = sc.copy()
+                inner.in_loop = True
+                var = inner.new_name("i")
+                inner.ints.append(var)
+                value = Ex("[{0}]", (draw(num(inner, 1)),), tag="lv_grow_loop")
+                out.append(For(var, "range(2)", [Aug(name, "+", value)]))
+                length += 2
+        sc.lists[name] = length
+        return out
+    seq = draw(st.sampled_from(seqs))
+    if kind == "lvreduce":
+        name = sc.new_name("s")
+        inner = sc.copy()
+        var = inner.new_name("v")
+        inner.floats.append(var)
+        term = draw(num(inner, 2))
+        form = draw(
+            st.sampled_from(
+                (
+                    "min",
+                    "max",
+                    "maxgen",
+                    "fsum",
+                    "start",
+                    "twofor",
+                    "filtered",
+                )
+            )
+        )
+        if form in ("min", "max"):
+            value = Ex(f"{form}({seq})", tag="lv_minmax")
+        elif form == "maxgen":
+            op = draw(st.sampled_from(("min", "max")))
+            value = Ex(f"{op}({{0}} for {var} in {seq})", (term,), tag="lv_minmax")
+        elif form == "fsum":
+            value = Ex(
+                f"math.fsum({{0}} for {var} in {seq})",
+                (term,),
+                inst=f"sum({{0}} for {var} in {seq})",
+                tag="lv_fsum",
+            )
+        elif form == "start":
+            start = draw(num(sc, 1))
+            value = Ex(
+                f"sum(({{0}} for {var} in {seq}), {{1}})", (term, start), tag="lv_sum"
+            )
+        elif form == "twofor":
+            other = inner.new_name("w")
+            inner.floats.append(other)
+            term2 = draw(num(inner, 2))
+            test = draw(cond(inner, 1))
+            second = draw(st.sampled_from(seqs))
+            value = Ex(
+                f"sum({{0}} for {var} in {seq} for {other} in {second} if {{1}})",
+                (term2, test),
+                tag="lv_twofor",
+            )
+        else:
+            test = draw(cond(inner, 1))
+            value = Ex(
+                f"len([{{0}} for {var} in {seq} if {{1}}]) * {{2}}",
+                (term, test, draw(atom(sc))),
+                tag="lv_filtered",
+            )
+        sc.floats.append(name)
+        return [Assign([name], [value])]
+    if kind == "lvslice":
+        inner = sc.copy()
+        inner.in_loop = True
+        inner.depth += 1
+        a, b = inner.new_name("v"), inner.new_name("w")
+        inner.floats += [a, b]
+        name = sc.new_name("s")
+        if draw(st.booleans()):
+            body = draw(block(inner, 1, 2, False, tuple_out))
+            return [For(f"{a}, {b}", f"zip({seq}, {seq}[1:])", body)]
+        piece = draw(st.sampled_from(("[1:]", "[:-1]", "[:]")))
+        copy = draw(st.sampled_from(("{0}", "list({0})")))
+        value = Ex(f"sum({copy.format(seq)}{piece})", tag="lv_slice")
+        sc.floats.append(name)
+        return [Assign([name], [value])]
+    # double buffering: a copy, a second list, and a swap each step
+    lists = [name for name, n in sc.lists.items() if n and name.startswith("xs")]
+    if not lists:
+        return draw(list_value_statement(sc, "lvgrow", tuple_out))
+    source = draw(st.sampled_from(lists))
+    n = sc.lists[source]
+    u, w = sc.new_name("xsu"), sc.new_name("xsw")
+    inner = sc.copy()
+    inner.in_loop = True
+    inner.depth += 1
+    k = inner.new_name("k")
+    inner.floats += [f"{u}[{k}]", f"{u}[-1]"]
+    value = draw(num(inner, 2))
+    step = sc.new_name("i")
+    cell = For(k, f"range({n})", [Assign([f"{w}[{k}]"], [value])])
+    swap = Assign([f"{u}, {w}"], [leaf(w), leaf(u)])
+    out = [
+        Assign([u], [Ex(f"list({source})", tag="lv_copy")]),
+        Assign([w], [Ex(f"[0.0] * {n}", tag="lv_buffer")]),
+        For(step, "range(2)", [cell, swap]),
+    ]
+    sc.lists[u] = n
+    return out
 
 
 @st.composite

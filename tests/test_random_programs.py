@@ -148,6 +148,17 @@ FAMILIES: dict[str, tuple[Knobs | None, int]] = {
         ),
         50,
     ),
+    "list_values": (
+        Knobs(
+            statements=(2, 5),
+            list_values=True,
+            branches=True,
+            loops=True,
+            list_param=True,
+            max_depth=2,
+        ),
+        50,
+    ),
     "mixed": (
         Knobs(
             statements=(2, 5),

@@ -401,7 +401,9 @@ class _Emitter:
         out.comment(loop.origin, depth)
         trace.at(loop.origin.text)
         for phi in loop.carried:
-            if phi.target in layout.live or phi.target in layout.sweep.rebound:
+            if phi.target in layout.live or (
+                phi.target in layout.sweep.rebound and self._list_live(phi.target)
+            ):
                 self.copy(phi.target, phi.first, depth, out)
         for bound in loop.bounds:
             self.reads(layout.atom_expr(bound, self.folded))
@@ -464,7 +466,7 @@ class _Emitter:
                 [
                     (phi.target, phi.second)  # type: ignore[misc]
                     for phi in loop.carried
-                    if phi.target in rebound
+                    if phi.target in rebound and self._list_live(phi.target)
                 ],
                 depth + 1,
                 out,

@@ -687,9 +687,5 @@ def reverse_sweep(
         tuple(s for s in seeds if isinstance(s, Var)),
         tuple(sorted(reverse.carries.items())),
         moved=reverse.moved_roots(),
-        rebound=tuple(
-            sorted(
-                v for v in reverse.rebound if reverse.root[v] in reverse.list_roots()
-            )
-        ),
+        rebound=tuple(sorted(reverse.rebound)),
     )
