@@ -548,3 +548,27 @@ def f(x, a):
         gradwright.generate("import math\n" + source, ["f"])
     assert "internal error" in str(error.value)
     assert "not one append" in str(error.value)
+
+
+ATAN2_OF_A_SELECTION = """
+import math
+
+def f(x, y):
+    t1 = math.atan2(x if x > 0 else 0.5, y)
+    return t1
+"""
+
+
+@pytest.mark.parametrize("x", [0.8, -0.3])
+def test_shared_value_never_placed_before_the_merge_it_reads(x):
+    """atan2's hypot, used twice on one side of the selection's reverse, was made a
+    forward value at the top of that side, before the merge it reads existed (the
+    layout check refused every atan2 of a conditional expression)."""
+    module = build(ATAN2_OF_A_SELECTION, "f")
+    y = 0.6
+    value, (x_bar, y_bar) = module["f_grad"](x, y)
+    assert value == run_source(ATAN2_OF_A_SELECTION)["f"](x, y)
+    u = x if x > 0 else 0.5
+    # d atan2(u, y) = (y du - u dy) / (u^2 + y^2): textbook closed form
+    assert rel_err(x_bar, y / (u * u + y * y) if x > 0 else 0.0) < 1e-15
+    assert rel_err(y_bar, -u / (u * u + y * y)) < 1e-15

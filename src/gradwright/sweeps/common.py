@@ -269,7 +269,12 @@ class _Sharing:
         self.added: dict[object, list[tuple[int, Let]]] = {}
 
     def run(self) -> tuple[ReverseSweep, SSAFunction]:
-        statements = self._block(self.sweep.statements, self.function.body, _TOP)
+        statements = self._block(
+            self.sweep.statements,
+            self.function.body,
+            _TOP,
+            frozenset(self.function.params),
+        )
         if not self.added:
             return self.sweep, self.function
         rebuilt: dict[int, Stmt] = {}
@@ -285,22 +290,39 @@ class _Sharing:
         statements: tuple[ReverseStmt, ...],
         forward: tuple[Stmt, ...],
         key: object,
+        entry: frozenset[Var],
     ) -> tuple[ReverseStmt, ...]:
+        """``entry``: the values that exist when the forward block starts (a value
+        of the enclosing block made after it, such as the merge of the branch whose
+        side this is, does not)."""
+        position, hidden = _positions(forward)
+
+        def before(nested: Stmt) -> frozenset[Var]:
+            k = next(i for i, s in enumerate(forward) if s is nested)
+            return entry | {v for v, at in position.items() if at < k}
+
         out: list[ReverseStmt] = []
         for stmt in statements:
             if isinstance(stmt, ReverseLoop):
+                loop = stmt.loop
+                inner = before(loop) | {loop.index} | {p.target for p in loop.carried}
                 out.append(
                     replace(
-                        stmt, body=self._block(stmt.body, stmt.loop.body, id(stmt.loop))
+                        stmt, body=self._block(stmt.body, loop.body, id(loop), inner)
                     )
                 )
             elif isinstance(stmt, ReverseBranch) and stmt.branch is not None:
                 branch = stmt.branch
+                inner = before(branch)
                 out.append(
                     replace(
                         stmt,
-                        then=self._block(stmt.then, branch.then, (id(branch), 0)),
-                        orelse=self._block(stmt.orelse, branch.orelse, (id(branch), 1)),
+                        then=self._block(
+                            stmt.then, branch.then, (id(branch), 0), inner
+                        ),
+                        orelse=self._block(
+                            stmt.orelse, branch.orelse, (id(branch), 1), inner
+                        ),
                     )
                 )
             else:
@@ -317,7 +339,6 @@ class _Sharing:
                 if _costly(node):
                     counts[node] += 1
                     first.setdefault(node, stmt.origin)
-        position, hidden = _positions(forward)
         found: dict[Expr, Var] = {}
         for expr, count in counts.items():
             if count < 2:
@@ -325,6 +346,8 @@ class _Sharing:
             free = {n for n in walk(expr) if isinstance(n, Var)}
             if free & hidden:
                 continue  # made inside a nested block: not a value of this one
+            if not free <= entry | set(position):
+                continue  # made after this block (the merge of its branch)
             origin = first[expr]
             # as early as its values allow, but not before its statement's first
             # primitive (it prints under that statement's comment, and reads
