@@ -2,7 +2,7 @@
 # source: samples/greenhouse_net.py
 # source sha256: f94a505cbabce5a779320a9a523463a3af5a29e82a9d607fbc7c2942e6341334
 # command: gradwright gen samples/greenhouse_net.py humidity_loss --wrt W1,b1,w2,b2 --shape W1=4,h --shape b1=h --shape 'b2=()' --shape features=n,4 --shape humidity=n --shape w2=h -o samples/greenhouse_net_grad.py
-# output sha256: c01274da8430b53c8c85b3fcfd31f24b0f155d5370553e9bcb749ee06404cfea
+# output sha256: 0ccfb2b0423e86aa9af313b325863f383ea852d772c2d8ca04b0120d4416341d
 
 import numpy as np
 
@@ -29,6 +29,16 @@ def _gw_check_shapes(declared, *values):
                 f" shape {wanted} (gen --shape {name}=...): generate it again"
                 " for these shapes"
             )
+
+
+def _gw_shaped(g, x):
+    """An adjoint with the shape of its value (a zero becomes an array of zeros),
+    in an array of its own that the caller may change."""
+    if isinstance(x, (int, float)) and np.ndim(g) == 0:
+        return float(g)  # a number gets a number (not a 0-d array)
+    if np.shape(g) != np.shape(x):
+        return np.zeros(np.shape(x)) + g
+    return np.array(g) if isinstance(g, np.ndarray) else g
 
 
 def humidity_loss(W1, b1, w2, b2, features, humidity):
@@ -81,4 +91,4 @@ def humidity_loss_grad(W1, b1, w2, b2, features, humidity):
     hidden_bar_1 = hidden_bar * (1.0 - hidden * hidden)
     b1_bar = np.sum(hidden_bar_1, axis=0)
     W1_bar += features.T @ hidden_bar_1
-    return value, (W1_bar, b1_bar, w2_bar, b2_bar)
+    return value, (W1_bar, b1_bar, w2_bar, _gw_shaped(b2_bar, b2))

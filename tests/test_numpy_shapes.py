@@ -335,6 +335,11 @@ REGRESSIONS = [
         {"A": ("n", 3), "b": ()},
         [(2, 3), ()],
     ),
+    (  # a number broadcast over a matrix: its adjoint 6.0, not the int 6
+        numpy_model("A, s", "return np.sum(s - A)"),
+        {"A": ("n2", "n3"), "s": ()},
+        [(2, 3), ()],
+    ),
     (  # a number's adjoint added into from another adjoint as it is (a crash)
         numpy_model("s", "u1 = s\nu2 = np.arctan2(u1, 1.5 + s * s)\ns = u2\nreturn s"),
         {"s": ()},

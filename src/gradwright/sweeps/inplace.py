@@ -66,10 +66,6 @@ _VIEWS = frozenset(
 )
 
 
-#: ops that give a number (not a 0-d array) when their result has no shape
-_NUMBER_SAFE = frozenset({"np.sum", "add", "sub", "mul", "div", "neg", "matmul"})
-
-
 def _aliases(expr: Expr) -> set[Var]:
     """Adjoints whose array ``expr`` may be, or be a view of."""
     if isinstance(expr, Bar):
@@ -137,16 +133,7 @@ def plan_in_place(sweep: ReverseSweep, fitter: Fitter) -> ReverseSweep:
             continue
         fresh.add(var)
     in_place = frozenset(v for v in fresh if len(top[v]) > 1)
-    bare = frozenset(
-        v
-        for v in sweep.wrt
-        if v in fresh
-        and (
-            fitter.table.atom(v) != ()
-            # a number's adjoint made by these is a number, never a 0-d array
-            or all(
-                isinstance(w.expr, Apply) and w.expr.op in _NUMBER_SAFE for w in top[v]
-            )
-        )
-    )
+    # a number's adjoint goes through _gw_shaped, which makes it a float (not an
+    # int count, not a 0-d array)
+    bare = frozenset(v for v in sweep.wrt if v in fresh and fitter.table.atom(v) != ())
     return replace(sweep, in_place=in_place, bare=bare)

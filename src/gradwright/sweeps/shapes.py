@@ -264,7 +264,8 @@ def size_of(dims: Iterable[Dim], sizes: Mapping[str, Var]) -> Expr | None:
             named.append(sizes[d])
         else:
             return None
-    expr: Expr | None = const(number) if number != 1 or not named else None
+    # a float: an adjoint is a float even where a count multiplies a 1.0 away
+    expr: Expr | None = const(float(number)) if number != 1 or not named else None
     for item in named:
         expr = item if expr is None else Apply("mul", (expr, item))
     return expr
