@@ -539,7 +539,35 @@ class InactiveLowering:
         def is_active(arg: object) -> bool:
             if isinstance(arg, Var) and arg.kind == "param":
                 return arg.base in self.function.wrt
+            # a value no statement lowered so far defines is a carried value of
+            # a loop still being lowered: it may be active (a while loop in a
+            # for loop's body updating x read x * 0.9 as inactive: a zero
+            # gradient)
+            if isinstance(arg, Var) and arg.kind != "index" and arg not in known:
+                return True
             return arg in active
+
+        known: set[Var] = set()
+
+        def collect(statements: list | tuple) -> None:
+            for stmt in statements:
+                if isinstance(stmt, Let):
+                    known.add(stmt.target)
+                    continue
+                phis = stmt.merges if isinstance(stmt, Branch) else stmt.carried
+                if isinstance(stmt, Branch):
+                    collect(stmt.then)
+                    collect(stmt.orelse)
+                else:
+                    known.add(stmt.index)
+                    collect(stmt.body)
+                    if stmt.trips is not None:
+                        known.add(stmt.trips)
+                for phi in phis:
+                    known.update({phi.target} | ({phi.exit} if phi.exit else set()))
+
+        for block in self.blocks:
+            collect(block)
 
         def visit(statements: list | tuple) -> bool:
             changed = False
