@@ -469,3 +469,25 @@ def test_solver_helper_returning_from_its_loop():
         assert rel_err(m_bar, -math.sin(E) / slope) < 1e-10
         e_ref += -math.sin(E) ** 2 / slope
     assert rel_err(e_bar, e_ref) < 1e-10
+
+
+WHILE_IN_FOR = """
+def f(x):
+    for i1 in range(2):
+        x = x * 0.9
+        k3 = 0
+        while k3 < 1:
+            k3 = k3 + 1
+            x += x
+    return x
+"""
+
+
+def test_while_updating_a_value_of_an_enclosing_for():
+    # found by the dynamic_loops long run: the while loop was taken for a
+    # statement reading no active value (the enclosing loop's x was not lowered
+    # yet) and copied as written: a zero gradient. d(3.24 x)/dx = 3.24 (closed
+    # form: two iterations of x -> 2 * 0.9 x)
+    _, (x_bar,) = build(WHILE_IN_FOR, "f")["f_grad"](0.7)
+    assert rel_err(x_bar, 3.24) < 1e-15
+    _against_mpmath(WHILE_IN_FOR, "f", (0.7,), [0])
