@@ -461,6 +461,7 @@ CASES = [
         "missing argument 'y' in the call to 'g'",
         6,
         "g(x)",
+        "pass every parameter that has no default",
     ),
     case(
         "helper-too-many-arguments",
@@ -475,6 +476,7 @@ CASES = [
         "too many arguments for 'g'",
         6,
         "3.0",
+        "pass only the parameters the function declares",
     ),
     # a list handed to a helper: rejected at the argument, whether the helper's
     # result is added to itself or scaled (both forms were once accepted silently
@@ -558,6 +560,7 @@ CASES = [
         "math.gamma is not supported",
         5,
         "gamma",
+        "write it with the math functions the README's subset table lists",
     ),
     case(
         "name-not-defined",
@@ -642,6 +645,7 @@ CASES = [
         "every return must give the same number of values",
         4,
         "x",
+        "return the same number of values on every path",
     ),
     case(
         "statement-after-return",
@@ -677,6 +681,7 @@ CASES = [
         "return without a value",
         3,
         "return",
+        "return the model's result: return value",
     ),
     case(
         "expression-statement",
@@ -702,6 +707,7 @@ CASES = [
         "keyword and starred arguments are not supported",
         5,
         "base=2.0",
+        "pass the arguments by position",
     ),
     case(
         "wrong-arity",
@@ -715,6 +721,7 @@ CASES = [
         "math.atan2() takes 2 arguments, not 1",
         5,
         "math.atan2(x)",
+        "pass the number of arguments the function takes",
     ),
     case(
         "decorator",
@@ -740,6 +747,7 @@ CASES = [
         "async functions cannot be differentiated",
         1,
         "f",
+        "move the arithmetic into a plain `def` and call it from the async code",
         occurrence=1,
     ),
     case(
@@ -856,6 +864,7 @@ CASES = [
         "this unary operator is not supported",
         2,
         "~x",
+        "use - or + on numbers; ~ and not are for integers and truth values",
     ),
     case(
         "augmented-matmul",
@@ -880,6 +889,7 @@ CASES = [
         "only < <= > >= == != comparisons are supported",
         2,
         "is",
+        "compare numbers with < <= > >= == != (not is or in)",
     ),
     case(
         "in-comparison",
@@ -890,6 +900,7 @@ CASES = [
         "only < <= > >= == != comparisons are supported",
         2,
         "in",
+        "compare numbers with < <= > >= == != (not is or in)",
     ),
     case(
         "assigned-in-one-branch",
@@ -1172,6 +1183,7 @@ CASES = [
         "True is not a number",
         2,
         "True",
+        "write 1.0 or 0.0",
     ),
     case(
         "parameter-default-not-numeric",
@@ -1193,6 +1205,7 @@ CASES = [
         "'f' has no parameters",
         1,
         "f",
+        "pass the quantities the result depends on as parameters",
         occurrence=1,
     ),
     case(
@@ -1568,7 +1581,11 @@ def test_input_is_a_directory(tmp_path: Path) -> None:
     "wrt, message",
     [
         (",", "error: --wrt needs at least one parameter name"),
-        ("x,x", "error: --wrt lists a parameter twice: x, x"),
+        (
+            "x,x",
+            "error: --wrt lists a parameter twice: x, x\n"
+            "hint: name each parameter once",
+        ),
     ],
     ids=["empty", "repeated"],
 )
@@ -1672,7 +1689,7 @@ def test_output_is_a_directory(tmp_path: Path) -> None:
     assert (
         stderr.startswith("gen: error: cannot write: ") and "Is a directory" in stderr
     ), stderr
-    assert stderr.count("\n") == 1, stderr
+    assert stderr.count("\n") == 2 and "\nhint: " in stderr, stderr
     assert list((tmp_path / "gen").iterdir()) == []
 
 
@@ -1684,3 +1701,23 @@ def test_success_replaces_output_without_leftovers(tmp_path: Path) -> None:
     assert (tmp_path / OUT).read_bytes() != PRECIOUS
     assert "def f_grad(x):" in (tmp_path / OUT).read_text(encoding="utf-8")
     assert sorted(p.name for p in tmp_path.iterdir()) == sorted([MODEL, OUT])
+
+
+def test_every_located_error_says_what_to_write_instead() -> None:
+    """Each fail() in the package passes a hint (a rejection without one leaves the
+    user guessing; this fails when a new one is added without it)."""
+    import ast
+
+    import gradwright
+
+    package = Path(gradwright.__file__).parent
+    missing = []
+    for path in sorted(package.rglob("*.py")):
+        for node in ast.walk(ast.parse(path.read_text(encoding="utf-8"))):
+            if isinstance(node, ast.Call) and getattr(node.func, "id", None) == "fail":
+                has_hint = len(node.args) >= 3 or any(
+                    k.arg == "hint" for k in node.keywords
+                )
+                if not has_hint:
+                    missing.append(f"{path.name}:{node.lineno}")
+    assert missing == []

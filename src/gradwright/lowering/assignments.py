@@ -34,6 +34,7 @@ class AssignmentLowering:
                 fail(
                     "chained element assignment is not supported",
                     self.index.locate(first),
+                    "assign once, then copy: ys[i] = v; zs[i] = ys[i]",
                 )
             self.set_element(first, lambda base: self.expr(value, base, None))
             return
@@ -54,11 +55,13 @@ class AssignmentLowering:
                     f"cannot unpack {len(value.elements)} values into {len(names)}"
                     " names",
                     self.index.locate(value),
+                    "give as many names as the value has elements",
                 )
             if len(targets) > 1:
                 fail(
                     "chained tuple assignment is not supported",
                     self.index.locate(first),
+                    "write one assignment per target",
                 )
             # every right-hand side is evaluated before any name is bound
             computed = [
@@ -102,12 +105,14 @@ class AssignmentLowering:
                 fail(
                     "chained tuple assignment is not supported",
                     self.index.locate(other),
+                    "write one assignment per target",
                 )
             assert isinstance(other, cst.Name)
             if var.shape == "list":
                 fail(
                     "a second name for a list is not supported",
                     self.index.locate(other),
+                    "copy it: zs = list(ys)",
                 )
             self.env[other.value] = self.emit(
                 "copy", (var,), self.new_var(other.value, "local")
@@ -149,7 +154,11 @@ class AssignmentLowering:
         assert isinstance(key, cst.Integer)
         k = sign * int(key.value)
         if not -len(atoms) <= k < len(atoms):
-            fail("tuple index out of range", self.index.locate(node))
+            fail(
+                "tuple index out of range",
+                self.index.locate(node),
+                "index with 0 to len - 1, or -1 for the last element",
+            )
         return atoms[k]
 
     def bind_tuple(self, name: str, atoms: list[Atom]) -> None:
@@ -169,10 +178,15 @@ class AssignmentLowering:
             fail(
                 f"cannot unpack {len(atoms)} values into {len(names)} names",
                 self.index.locate(first),
+                "give as many names as the value has elements",
             )
         for name, atom in zip(names, atoms, strict=True):
             if not isinstance(name, cst.Name):
-                fail("unpack into plain names", self.index.locate(name))
+                fail(
+                    "unpack into plain names",
+                    self.index.locate(name),
+                    "unpack into names, then build what you need from them",
+                )
             assert isinstance(name, cst.Name)
             self.env[name.value] = atom
 
@@ -185,7 +199,11 @@ class AssignmentLowering:
         head = self.data(value, "row")
         for k, name in enumerate(names):
             if not isinstance(name, cst.Name):
-                fail("unpack into plain names", self.index.locate(name))
+                fail(
+                    "unpack into plain names",
+                    self.index.locate(name),
+                    "unpack into names, then build what you need from them",
+                )
             assert isinstance(name, cst.Name)
             if isinstance(head, Const):
                 self.env[name.value] = Const(f"{head.text}[{k}]", None)
@@ -219,11 +237,16 @@ class AssignmentLowering:
             fail(
                 f"cannot unpack {size} values into {len(names)} names",
                 self.index.locate(first),
+                "give as many names as the value has elements",
             )
         assert isinstance(container, Var)
         for k, name in enumerate(names):
             if not isinstance(name, cst.Name):
-                fail("unpack into plain names", self.index.locate(name))
+                fail(
+                    "unpack into plain names",
+                    self.index.locate(name),
+                    "unpack into names, then build what you need from them",
+                )
             assert isinstance(name, cst.Name)
             self.env[name.value] = self.emit(
                 "getitem",
@@ -243,7 +266,11 @@ class AssignmentLowering:
         if isinstance(target, (cst.Tuple, cst.List)):
             for el in target.elements:
                 if not isinstance(el.value, cst.Name):
-                    fail("only names can be unpacked into", self.index.locate(el.value))
+                    fail(
+                        "only names can be unpacked into",
+                        self.index.locate(el.value),
+                        "unpack into names: a, b = pair",
+                    )
             return
         if isinstance(target, cst.Attribute):
             fail(
@@ -254,13 +281,18 @@ class AssignmentLowering:
             )
         if isinstance(target, cst.Subscript):
             return
-        fail("unsupported assignment target", self.index.locate(target))
+        fail(
+            "unsupported assignment target",
+            self.index.locate(target),
+            "assign to a name, names (a, b) or a list element y[i]",
+        )
 
     def element_target(self, target: cst.Subscript) -> tuple[Var, Atom, str]:
         if not isinstance(target.value, cst.Name):
             fail(
                 "only a local list's elements can be assigned",
                 self.index.locate(target),
+                "make a local list first: ys = list(xs), then ys[i] = ...",
             )
         assert isinstance(target.value, cst.Name)
         current = self.list_to_change(target.value, target)
@@ -284,7 +316,11 @@ class AssignmentLowering:
                 "build a new array instead, with np.where or np.concatenate",
             )
         if not (isinstance(current, Var) and current.shape == "list"):
-            fail(f"'{name}' is not a list", self.index.locate(node))
+            fail(
+                f"'{name}' is not a list",
+                self.index.locate(node),
+                "index a list made in the function or passed as a parameter",
+            )
         assert isinstance(current, Var)
         if current.kind == "param":
             fail(
@@ -356,7 +392,11 @@ class AssignmentLowering:
             self.set_element(target, updated)
             return
         if not isinstance(target, cst.Name):
-            fail("unsupported assignment target", self.index.locate(target))
+            fail(
+                "unsupported assignment target",
+                self.index.locate(target),
+                "assign to a name, names (a, b) or a list element y[i]",
+            )
         assert isinstance(target, cst.Name)
         if symbol == "+" and self.names_list(target):
             self.extend_list(target, stmt.value, stmt)  # `ys += [v]`: in place
@@ -419,7 +459,11 @@ class AssignmentLowering:
                 " for other changes",
             )
         if len(call.args) != 1 or call.args[0].keyword or call.args[0].star:
-            fail(f"{method}() takes one argument here", self.index.locate(call))
+            fail(
+                f"{method}() takes one argument here",
+                self.index.locate(call),
+                "pass one sequence: ys.extend(other)",
+            )
         argument = call.args[0].value
         if method == "append":
             current = self.list_to_change(name_node, call)
@@ -442,7 +486,11 @@ class AssignmentLowering:
         self.list_to_change(node, where)
         if isinstance(values, (cst.List, cst.Tuple)):
             if any(isinstance(el, cst.StarredElement) for el in values.elements):
-                fail("starred elements are not supported", self.index.locate(values))
+                fail(
+                    "starred elements are not supported",
+                    self.index.locate(values),
+                    "write the elements out: [a, b, c]",
+                )
             elements = [
                 self.scalar(self.expr(el.value, name, None), el.value)
                 for el in values.elements

@@ -130,6 +130,7 @@ class CallLowering:
                 fail(
                     "keyword and starred arguments are not supported in this call",
                     self.index.locate(arg),
+                    "pass the arguments by position",
                 )
         spec = OPS[op]
         count = len(node.args)
@@ -155,6 +156,7 @@ class CallLowering:
             fail(
                 f"{spec.symbol}() takes {expected} arguments, not {count}",
                 self.index.locate(node),
+                "pass the number of arguments the function takes",
             )
         args = tuple(
             self.scalar(self.expr(a.value, base, None), a.value) for a in node.args
@@ -270,17 +272,29 @@ class CallLowering:
             params.star_arg not in (None, cst.MaybeSentinel.DEFAULT)
             or params.star_kwarg
         ):
-            fail(f"'{name}' takes *args or **kwargs", self.index.locate(node.func))
+            fail(
+                f"'{name}' takes *args or **kwargs",
+                self.index.locate(node.func),
+                "give the helper named parameters: def h(a, b, scale=1.0)",
+            )
         lowered = self.callee_ssa(name)
         declared = [*params.posonly_params, *params.params, *params.kwonly_params]
         positional_limit = len(params.posonly_params) + len(params.params)
         slots: dict[str, cst.BaseExpression] = {}
         for position, arg in enumerate(node.args):
             if arg.star:
-                fail("starred arguments are not supported", self.index.locate(arg))
+                fail(
+                    "starred arguments are not supported",
+                    self.index.locate(arg),
+                    "pass each argument by name or position",
+                )
             if arg.keyword is None:
                 if position >= positional_limit:
-                    fail(f"too many arguments for '{name}'", self.index.locate(arg))
+                    fail(
+                        f"too many arguments for '{name}'",
+                        self.index.locate(arg),
+                        "pass only the parameters the function declares",
+                    )
                 slots[declared[position].name.value] = arg.value
             else:
                 key = arg.keyword.value
@@ -288,6 +302,7 @@ class CallLowering:
                     fail(
                         f"'{key}' is given twice in the call to '{name}'",
                         self.index.locate(arg),
+                        "give each argument once",
                     )
                 if key not in {p.name.value for p in declared}:
                     fail(
@@ -306,6 +321,7 @@ class CallLowering:
                 fail(
                     f"missing argument '{param.name.value}' in the call to '{name}'",
                     self.index.locate(node),
+                    "pass every parameter that has no default",
                 )
             assert given is not None
             if shapes.get(param.name.value) == "list":
@@ -401,9 +417,14 @@ class CallLowering:
                 fail(
                     "range() is supported only as the iterable of a for-loop",
                     loc,
+                    "loop over it (for i in range(n)) or use its length n directly",
                 )
             if name in self.index.math_names:
-                fail(f"math.{self.index.math_names[name]} is not supported", loc)
+                fail(
+                    f"math.{self.index.math_names[name]} is not supported",
+                    loc,
+                    "write it with the math functions the README's subset table lists",
+                )
         fail(
             "unsupported call",
             loc,

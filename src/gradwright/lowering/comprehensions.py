@@ -58,11 +58,16 @@ class ComprehensionLowering:
         clause: cst.CompFor | None = node.for_in
         while clause is not None:
             if clause.asynchronous is not None:
-                fail("async comprehensions are not supported", self.index.locate(node))
+                fail(
+                    "async comprehensions are not supported",
+                    self.index.locate(node),
+                    "use a plain comprehension or a for loop",
+                )
             if _target_names(clause.target) is None:
                 fail(
                     "the comprehension's target must be a name or a tuple of names",
                     self.index.locate(clause.target),
+                    "write for x in xs or for a, b in pairs",
                 )
             clauses.append(clause)
             clause = clause.inner_for_in
@@ -252,7 +257,11 @@ class ComprehensionLowering:
             return self.emit("fsum", (terms,), target or self.new_var(base, "temp"))
         if name == "sum" and (is_comprehension or len(args) == 2):
             if len(args) > 2:
-                fail("sum() takes a sequence and a start", self.index.locate(node))
+                fail(
+                    "sum() takes a sequence and a start",
+                    self.index.locate(node),
+                    "write sum(xs) or sum(xs, start)",
+                )
             operands: tuple[Atom, ...] = (self.sequence_value(first, base),)
             if len(args) == 2:
                 start = args[1]

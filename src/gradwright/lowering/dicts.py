@@ -45,7 +45,11 @@ class DictLowering:
         ):
             view, source = node.func.attr.value, node.func.value
             if node.args:
-                fail(f".{view}() takes no arguments", self.index.locate(node))
+                fail(
+                    f".{view}() takes no arguments",
+                    self.index.locate(node),
+                    "call it without arguments: d.items()",
+                )
         numbers = self.env.get(source.value) if isinstance(source, cst.Name) else None
         if isinstance(numbers, Var) and self.root_of(numbers) in self.dict_keys:
             return self.numbers_reader(numbers, view)
@@ -160,7 +164,11 @@ class DictLowering:
                 )
             return Const(str(keys.index(key.value)), keys.index(key.value))
         if key is None:
-            fail("one key at a time", self.index.locate(node))
+            fail(
+                "one key at a time",
+                self.index.locate(node),
+                "index one key at a time: d[key]",
+            )
         found = self.scalar(self.expr(key, "key", None), key)
         root = self.root_of(container)
         table = self.positions.get(root)

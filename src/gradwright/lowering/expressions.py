@@ -116,7 +116,11 @@ class ExpressionLowering:
             container = self.expr(node.value, base, None)
             self.as_list(container)
             if not (isinstance(container, Var) and container.shape == "list"):
-                fail("only lists can be indexed", self.index.locate(node.value))
+                fail(
+                    "only lists can be indexed",
+                    self.index.locate(node.value),
+                    "index a list or a tuple; a number has no elements",
+                )
             index = self.dict_position(container, node)  # a dict of numbers
             index = self.subscript_index(node) if index is None else index
             return self.emit(
@@ -131,6 +135,7 @@ class ExpressionLowering:
                 fail(
                     "a list literal can only be assigned to a name",
                     self.index.locate(node),
+                    "bind it to a name first: ys = [a, b], then use ys",
                 )
             elements = tuple(
                 self.scalar(self.expr(el.value, base, None), el.value)
@@ -168,6 +173,7 @@ class ExpressionLowering:
                 fail(
                     "only `[value] * n`, assigned to a name, builds a list",
                     self.index.locate(node),
+                    "write ys = [0.0] * n, or ys = [a, b, c]",
                 )
             fill_node = literal.elements[0].value  # type: ignore[union-attr]
             fill = self.scalar(self.expr(fill_node, base, None), literal)
@@ -186,6 +192,7 @@ class ExpressionLowering:
                 fail(
                     "only < <= > >= == != comparisons are supported",
                     self.index.locate(part.operator),
+                    "compare numbers with < <= > >= == != (not is or in)",
                 )
             assert op is not None
             right = self.scalar(self.expr(part.comparator, base, None), part.comparator)
@@ -377,11 +384,17 @@ class ExpressionLowering:
         if imported in MATH_CONSTANTS:
             return Const(f"math.{imported}", MATH_CONSTANTS[imported])
         if name in ("True", "False", "None"):
-            fail(f"{name} is not a number", self.index.locate(node))
+            fail(
+                f"{name} is not a number",
+                self.index.locate(node),
+                "write 1.0 or 0.0, or test a condition in an if: `while not done:`"
+                " becomes a loop on a number or a `break`",
+            )
         if name in self.index.functions or imported is not None:
             fail(
                 f"'{name}' is a function: call it",
                 self.index.locate(node),
+                "call it with its arguments: name(...)",
             )
         if name in self.index.module_names:
             fail(
@@ -442,5 +455,6 @@ class ExpressionLowering:
         fail(
             "this unary operator is not supported on numbers",
             self.index.locate(node),
+            "use - or + on numbers; ~ and not are for integers and truth values",
         )
         raise AssertionError  # unreachable

@@ -566,7 +566,11 @@ def check_function(
         )
         raise AssertionError  # unreachable
     if node.asynchronous is not None:
-        fail("async functions cannot be differentiated", index.locate(node.name))
+        fail(
+            "async functions cannot be differentiated",
+            index.locate(node.name),
+            "move the arithmetic into a plain `def` and call it from the async code",
+        )
     if node.decorators:
         fail(
             "decorated functions are not supported (the decorator could change what"
@@ -610,6 +614,7 @@ def check_function(
         fail(
             f"'{name}' has no parameters to differentiate with respect to",
             index.locate(node.name),
+            "pass the quantities the result depends on as parameters",
         )
     if wrt is None:
         chosen = names
@@ -626,7 +631,10 @@ def check_function(
                     f"parameters: {', '.join(names)}",
                 )
         if len(set(wrt)) != len(wrt):
-            fail(f"--wrt lists a parameter twice: {', '.join(wrt)}")
+            fail(
+                f"--wrt lists a parameter twice: {', '.join(wrt)}",
+                hint="name each parameter once",
+            )
         chosen = tuple(wrt)
     for param in all_params:
         if param.name.value in chosen and param.annotation is not None:

@@ -93,9 +93,17 @@ class LoopLowering:
 
     def for_statement(self, node: cst.For) -> None:
         if node.orelse is not None:
-            fail("for-else is not supported", self.index.locate(node.orelse))
+            fail(
+                "for-else is not supported",
+                self.index.locate(node.orelse),
+                "set a flag before break and test it after the loop",
+            )
         if node.asynchronous is not None:
-            fail("async for is not supported", self.index.locate(node))
+            fail(
+                "async for is not supported",
+                self.index.locate(node),
+                "use a plain for loop",
+            )
         target_text = _statement_text(self.index, node.target)
         self.set_origin(
             f"for {target_text} in {_statement_text(self.index, node.iter)}:"
@@ -114,7 +122,11 @@ class LoopLowering:
 
     def while_statement(self, node: cst.While) -> None:
         if node.orelse is not None:
-            fail("while-else is not supported", self.index.locate(node.orelse))
+            fail(
+                "while-else is not supported",
+                self.index.locate(node.orelse),
+                "set a flag before break and test it after the loop",
+            )
         self.set_origin(f"while {_statement_text(self.index, node.test)}:")
         origin = self.origin
         # the index counts the iterations run, from 0 (the saved lists' slot)
@@ -293,6 +305,7 @@ class LoopLowering:
             fail(
                 "range() takes one to three positional arguments",
                 self.index.locate(node),
+                "write range(stop), range(start, stop) or range(start, stop, step)",
             )
         bounds = [self.scalar(self.expr(a.value, "range", None), a.value) for a in args]
         if len(bounds) == 1:
@@ -317,11 +330,19 @@ class LoopLowering:
                 a.star or (a.keyword and a.keyword.value != "start")
                 for a in node.args  # type: ignore[attr-defined]
             ):
-                fail(f"{call}() takes plain arguments here", self.index.locate(node))
+                fail(
+                    f"{call}() takes plain arguments here",
+                    self.index.locate(node),
+                    "pass the sequences by position: zip(xs, ys)",
+                )
         if call == "zip":
             parts = [self.sequence_reader(a.value) for a in node.args]  # type: ignore[attr-defined]
             if len(parts) < 2:
-                fail("zip() needs two or more sequences here", self.index.locate(node))
+                fail(
+                    "zip() needs two or more sequences here",
+                    self.index.locate(node),
+                    "loop over the sequence itself: for x in xs",
+                )
             length = parts[0][0]
             for other, _, _ in parts[1:]:  # zip stops at the shortest
                 length = self.emit("min", (length, other), self.new_var("n", "temp"))
@@ -331,7 +352,9 @@ class LoopLowering:
             args = node.args  # type: ignore[attr-defined]
             if not 1 <= len(args) <= 2:
                 fail(
-                    "enumerate() takes a sequence and a start", self.index.locate(node)
+                    "enumerate() takes a sequence and a start",
+                    self.index.locate(node),
+                    "write enumerate(xs) or enumerate(xs, 1)",
                 )
             length, read, base = self.sequence_reader(args[0].value)
             offset = (
@@ -350,7 +373,11 @@ class LoopLowering:
         if call == "reversed":
             args = node.args  # type: ignore[attr-defined]
             if len(args) != 1:
-                fail("reversed() takes one sequence", self.index.locate(node))
+                fail(
+                    "reversed() takes one sequence",
+                    self.index.locate(node),
+                    "write reversed(xs)",
+                )
             length, read, base = self.sequence_reader(args[0].value)
 
             def backwards(index: Var) -> object:
@@ -375,7 +402,11 @@ class LoopLowering:
                 isinstance(el, cst.StarredElement)
                 for el in getattr(node, "elements", ())
             ):
-                fail("loop over a tuple of plain values", self.index.locate(node))
+                fail(
+                    "loop over a tuple of plain values",
+                    self.index.locate(node),
+                    "write the values out: for q in (q1, q2, q3)",
+                )
             listed = self.emit(
                 "listlit", values, self.new_var("values", "local", "list")
             )

@@ -74,7 +74,11 @@ class NumpyLowering:
         if name is not None:
             if name in _CONSTANTS:
                 return Const(f"np.{name}", _CONSTANTS[name])
-            fail(f"np.{name} is not a supported constant", self.index.locate(node))
+            fail(
+                f"np.{name} is not a supported constant",
+                self.index.locate(node),
+                "use np.pi, np.e, np.inf, or write the number",
+            )
         if node.attr.value == "T":
             value = self.expr(node.value, base, None)
             return self.emit("T", (value,), target or self.new_var(base, "temp"))
@@ -113,7 +117,11 @@ class NumpyLowering:
         keywords: list[Const] = []
         for arg in node.args:
             if arg.star:
-                fail("starred arguments are not supported", self.index.locate(arg))
+                fail(
+                    "starred arguments are not supported",
+                    self.index.locate(arg),
+                    "pass each argument by name or position",
+                )
             if arg.keyword is not None:
                 if arg.keyword.value not in ("axis", "keepdims") or name not in (
                     _REDUCTIONS | {"concatenate", "stack", "linalg.norm"}
@@ -121,6 +129,7 @@ class NumpyLowering:
                     fail(
                         f"the keyword {arg.keyword.value}= is not supported here",
                         self.index.locate(arg),
+                        "leave the keyword out, or write the operation another way",
                     )
                 keywords.append(Const(f"{arg.keyword.value}={self.static(arg.value)}"))
         if name in _REDUCTIONS and len(positional) > 1:
@@ -134,6 +143,7 @@ class NumpyLowering:
                 fail(
                     f"np.{name} takes a list of arrays here: np.{name}([a, b], axis=0)",
                     self.index.locate(node),
+                    "pass a list: np.concatenate([a, b], axis=0)",
                 )
             parts = tuple(
                 self.expr(el.value, base, None)
@@ -146,7 +156,9 @@ class NumpyLowering:
         count = len(positional)
         if count < low or (high is not None and count + len(keywords) > high):
             fail(
-                f"np.{name}() takes {low} array arguments here", self.index.locate(node)
+                f"np.{name}() takes {low} array arguments here",
+                self.index.locate(node),
+                "pass the arrays the function takes by position",
             )
         args = tuple(
             self.table(a, base) if name == "interp" and k else self.expr(a, base, None)
@@ -197,6 +209,7 @@ class NumpyLowering:
         fail(
             "axis= and keepdims= take literal values here",
             self.index.locate(node),
+            "write the axis as a number: axis=0, keepdims=True",
         )
         raise AssertionError
 
@@ -211,7 +224,11 @@ class NumpyLowering:
         dims: list[Atom] = []
         for arg in node.args:
             if arg.keyword is not None or arg.star:
-                fail("reshape takes the new shape only", self.index.locate(arg))
+                fail(
+                    "reshape takes the new shape only",
+                    self.index.locate(arg),
+                    "write x.reshape(n, m) or x.reshape((n, m))",
+                )
             items = (
                 [el.value for el in arg.value.elements]
                 if isinstance(arg.value, cst.Tuple)

@@ -138,6 +138,7 @@ class StatementLowering:
                 fail(
                     "an annotation without a value binds nothing",
                     self.index.locate(stmt),
+                    "give it a value: x: float = 0.0",
                 )
             assert stmt.value is not None
             self.bind_targets([stmt.target], stmt.value)
@@ -161,7 +162,11 @@ class StatementLowering:
     def return_statement(self, stmt: cst.Return) -> None:
         value = stmt.value
         if value is None:
-            fail("return without a value: there is no result", self.index.locate(stmt))
+            fail(
+                "return without a value: there is no result",
+                self.index.locate(stmt),
+                "return the model's result: return value",
+            )
         assert value is not None
         elements = (
             [el.value for el in value.elements]
@@ -182,6 +187,7 @@ class StatementLowering:
             fail(
                 "every return must give the same number of values",
                 self.index.locate(value),
+                "return the same number of values on every path",
             )
         self.result_arity = arity
         self.return_origins.append(self.origin)

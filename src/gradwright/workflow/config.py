@@ -119,7 +119,11 @@ def load_project(pyproject: Path) -> Project:
     try:
         document = tomllib.loads(text)
     except tomllib.TOMLDecodeError as error:
-        fail(f"invalid TOML: {error}", finder.syntax_error(str(error)))
+        fail(
+            f"invalid TOML: {error}",
+            finder.syntax_error(str(error)),
+            "fix the line shown; strings need quotes, lists brackets",
+        )
     table = document.get("tool", {}).get("gradwright")
     if not isinstance(table, dict):
         fail(
@@ -357,5 +361,6 @@ def _check_distinct(finder: _KeyFinder, targets: tuple[Target, ...]) -> None:
                 fail(
                     f"{target.key}.{key}: {path!r} is also written by {writers[path]}",
                     finder.locate(index, key),
+                    "give each target an output file of its own",
                 )
             writers[path] = f"{target.key}.{key}"

@@ -141,5 +141,6 @@ def write_artifact(artifact: Artifact, force: bool) -> bool:
         fail(
             f"cannot write: {reason} (the old file, if any, is unchanged)",
             file_location(artifact.label),
+            "check that the folder exists and is writable, or choose another -o",
         )
     return True
