@@ -546,7 +546,7 @@ CASES = [
         "math.gamma is not supported",
         5,
         "math.gamma",
-        "supported-subset table",
+        "What a model may contain",
     ),
     case(
         "unsupported-math-function-imported-by-name",
@@ -560,7 +560,7 @@ CASES = [
         "math.gamma is not supported",
         5,
         "gamma",
-        "write it with the math functions the README's subset table lists",
+        "write it with the math functions the README lists",
     ),
     case(
         "name-not-defined",

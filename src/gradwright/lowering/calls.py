@@ -409,7 +409,7 @@ class CallLowering:
                 fail(
                     f"math.{func.attr.value} is not supported",
                     loc,
-                    "see the supported-subset table in the README",
+                    'see "What a model may contain" in the README',
                 )
         if isinstance(func, cst.Name):
             name = func.value
@@ -423,7 +423,7 @@ class CallLowering:
                 fail(
                     f"math.{self.index.math_names[name]} is not supported",
                     loc,
-                    "write it with the math functions the README's subset table lists",
+                    "write it with the math functions the README lists",
                 )
         fail(
             "unsupported call",

@@ -109,7 +109,7 @@ class NumpyLowering:
             fail(
                 f"np.{name} is not supported",
                 self.index.locate(func),
-                "see the supported-subset table in the README",
+                'see "What a model may contain" in the README',
             )
         positional = [a.value for a in node.args if a.keyword is None and not a.star]
         if receiver is not None:
