@@ -572,3 +572,28 @@ def test_shared_value_never_placed_before_the_merge_it_reads(x):
     # d atan2(u, y) = (y du - u dy) / (u^2 + y^2): textbook closed form
     assert rel_err(x_bar, y / (u * u + y * y) if x > 0 else 0.0) < 1e-15
     assert rel_err(y_bar, -u / (u * u + y * y)) < 1e-15
+
+
+INNER_WHILE_ONLY_REPLAYED = """
+def f(y):
+    t1 = y
+    k22 = 0
+    while k22 < 1:
+        k22 = k22 + 1
+        k23 = 0
+        while k23 < 1:
+            k23 = k23 + 1
+            y, t1 = t1, y
+        t1 = 0.5
+    return t1
+"""
+
+
+def test_inner_while_whose_values_are_dead_still_counts_its_trips():
+    """No value of the inner while loop is needed forward, so the forward sweep
+    dropped it, but the reverse replays it and reads its saved trip counts (the
+    layout check refused it; found by the dynamic_loops long run)."""
+    module = build(INNER_WHILE_ONLY_REPLAYED, "f")
+    value, (y_bar,) = module["f_grad"](0.7)
+    assert value == run_source(INNER_WHILE_ONLY_REPLAYED)["f"](0.7)
+    assert y_bar == 0.0  # the outer loop runs once and ends with t1 = 0.5: by hand

@@ -492,7 +492,10 @@ class Layout:
                     live.add(phi.target)
                     live |= {a for a in (phi.first, phi.second) if isinstance(a, Var)}
                 inner = self._live_block(stmt.body, live)
-                if inner or carried_live:
+                # a loop whose trip count the reverse sweep reads runs, even when
+                # none of its values is needed forward (its reverse replays it)
+                counted = stmt.trips is not None and stmt.trips in live
+                if inner or carried_live or counted:
                     needed = True
                     live |= {
                         a
