@@ -302,3 +302,24 @@ def test_tuple_used_as_a_number_is_a_located_error():
         gradwright.generate(source, ["g"])
     assert "<string>:3:12:" in str(error.value)
     assert "'pair' is a tuple of 2 numbers" in str(error.value)
+
+
+def test_loop_over_a_local_table_copied_as_written():
+    """`rays = [...]` reads no active value, so it is copied as written; a loop over
+    its rows reads them like module data (it was taken for a dict's keys)."""
+    source = """
+def spot(f1):
+    rays = [(1.0, 0.0), (-1.0, 0.02)]
+    total = 0.0
+    for h, u in rays:
+        u = u - h / f1
+        total += u * u
+    return total
+"""
+    module = build(source, "spot")
+    value, (f1_bar,) = module["spot_grad"](40.0)
+    assert value == run_source(source)["spot"](40.0)
+    rays = [(1.0, 0.0), (-1.0, 0.02)]
+    # d/df1 sum (u - h/f1)^2 = sum 2 (u - h/f1) h / f1^2, by hand
+    want = sum(2 * (u - h / 40.0) * h / 40.0**2 for h, u in rays)
+    assert rel_err(f1_bar, want) < 1e-14

@@ -84,7 +84,11 @@ class DictLowering:
         names; a plain name of module data only when it is a dict literal."""
         if isinstance(source, cst.Name):
             bound = self.env.get(source.value)
-            if isinstance(bound, Var) and bound in self.opaque:
+            if (
+                isinstance(bound, Var)
+                and bound in self.opaque
+                and bound not in self.opaque_sequences
+            ):
                 return bound
             if bound is not None:
                 if dict_view:

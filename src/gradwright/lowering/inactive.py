@@ -452,9 +452,12 @@ class InactiveLowering:
             Let(statement, "copied", tuple(reads.values()), self.origin, copied)
         )
         self.inert_values.add(statement)
+        sequence = _sequence_literal_target(stmt)
         for name, var in writes:
             self.emit("written", (statement,), var)
             self.opaque.add(var)
+            if name == sequence:
+                self.opaque_sequences.add(var)  # a loop runs over its elements
             self.fresh.discard(var)  # it may name an array it did not make
             self.env[name] = var
         return None
@@ -623,3 +626,17 @@ class InactiveLowering:
         item = self.emit("dataitem", (bound, index), self.new_var(base, "temp"))
         self.fresh.discard(item)
         return item
+
+
+def _sequence_literal_target(stmt: cst.CSTNode) -> str | None:
+    """The name ``rays = [(1.0, 0.0), ...]`` binds to a list or tuple literal (a
+    copied table a loop may run over, row by row), else None."""
+    assign = stmt
+    if isinstance(stmt, cst.SimpleStatementLine) and len(stmt.body) == 1:
+        assign = stmt.body[0]
+    if not (isinstance(assign, cst.Assign) and len(assign.targets) == 1):
+        return None
+    target = assign.targets[0].target
+    if isinstance(target, cst.Name) and isinstance(assign.value, (cst.List, cst.Tuple)):
+        return target.value
+    return None

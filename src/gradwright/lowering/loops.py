@@ -418,9 +418,13 @@ class LoopLowering:
         found = self.dict_reader(node)  # a constant dict (lowering/dicts.py)
         if found is not None:
             return found
-        if self.data_root(node) is not None:
-            # module-level data: its elements (or rows) are inactive constants
-            table = self.data(node, "table")
+        copied = self.env.get(node.value) if isinstance(node, cst.Name) else None
+        if self.data_root(node) is not None or (
+            isinstance(copied, Var) and copied in self.opaque_sequences
+        ):
+            # module-level data, or a local table a statement copied as written
+            # bound (rays = [(1.0, 0.0), ...]): its rows are inactive constants
+            table = copied if copied is not None else self.data(node, "table")
             length = self.emit("len", (table,), self.new_var("n", "temp"))
 
             def row(index: Var) -> object:

@@ -119,6 +119,8 @@ class _Lowerer(
         self.inert_values: set[Var] = set()
         #: values bound by statements copied as written (see lowering/inactive.py)
         self.opaque: set[Var] = set()
+        #: opaque values bound to a list or tuple literal (tables of rows)
+        self.opaque_sequences: set[Var] = set()
         #: dicts of numbers (lists in the SSA): their keys, where each was made,
         #: and the copied table of positions for keys known only at run time
         self.dict_keys: dict[Var, tuple[str, ...]] = {}
