@@ -204,7 +204,7 @@ def _into_arguments(
 ) -> tuple[ReverseStmt, ...]:
     """``x_1_bar, ... = h_adjoint(...)`` then ``x_bar = x_1_bar``: the call
     writes ``x_bar`` itself (the part was read only by that copy; the layout's
-    carried-adjoint naming sees a call's writes, see ``layout._writes``)."""
+    carried-adjoint naming sees a call's writes, see ``layout_names._writes``)."""
     flat = list(_flatten(statements))
     reads = Counter(
         node.var
