@@ -180,15 +180,8 @@ class AssignmentLowering:
                 self.index.locate(first),
                 "give as many names as the value has elements",
             )
-        for name, atom in zip(names, atoms, strict=True):
-            if not isinstance(name, cst.Name):
-                fail(
-                    "unpack into plain names",
-                    self.index.locate(name),
-                    "unpack into names, then build what you need from them",
-                )
-            assert isinstance(name, cst.Name)
-            self.env[name.value] = atom
+        for name, atom in zip(self.plain_names(names), atoms, strict=True):
+            self.env[name] = atom
 
     def unpack_data(
         self, names: list[cst.BaseExpression], value: cst.BaseExpression
@@ -197,24 +190,15 @@ class AssignmentLowering:
         element (inactive constants; a length that does not match fails at run time
         as it does in the model)."""
         head = self.data(value, "row")
-        for k, name in enumerate(names):
-            if not isinstance(name, cst.Name):
-                fail(
-                    "unpack into plain names",
-                    self.index.locate(name),
-                    "unpack into names, then build what you need from them",
-                )
-            assert isinstance(name, cst.Name)
+        for k, name in enumerate(self.plain_names(names)):
             if isinstance(head, Const):
-                self.env[name.value] = Const(f"{head.text}[{k}]", None)
+                self.env[name] = Const(f"{head.text}[{k}]", None)
             else:
                 item = self.emit(
-                    "dataitem",
-                    (head, Const(str(k), k)),
-                    self.new_var(name.value, "temp"),
+                    "dataitem", (head, Const(str(k), k)), self.new_var(name, "temp")
                 )
                 self.fresh.discard(item)
-                self.env[name.value] = item
+                self.env[name] = item
 
     def unpack_list(
         self,
@@ -240,19 +224,21 @@ class AssignmentLowering:
                 "give as many names as the value has elements",
             )
         assert isinstance(container, Var)
-        for k, name in enumerate(names):
+        for k, name in enumerate(self.plain_names(names)):
+            self.env[name] = self.emit(
+                "getitem", (container, Const(str(k), k)), self.new_var(name, "local")
+            )
+
+    def plain_names(self, names: list[cst.BaseExpression]) -> list[str]:
+        """The names an unpacking binds; each target must be a plain name."""
+        for name in names:
             if not isinstance(name, cst.Name):
                 fail(
                     "unpack into plain names",
                     self.index.locate(name),
                     "unpack into names, then build what you need from them",
                 )
-            assert isinstance(name, cst.Name)
-            self.env[name.value] = self.emit(
-                "getitem",
-                (container, Const(str(k), k)),
-                self.new_var(name.value, "local"),
-            )
+        return [name.value for name in names]  # type: ignore[attr-defined]
 
     def literal_size(self, atom: Atom) -> int | None:
         """How many elements a local list made by a literal has (None otherwise)."""
