@@ -2,7 +2,7 @@
 # source: samples/cable_sag.py
 # source sha256: 60a95002dd1d21d9e5e7f63265caaee126765d6ffe25172b57604f5de1edd964
 # command: gradwright gen samples/cable_sag.py rig_loss -o samples/cable_sag_grad.py
-# output sha256: ca563b72e3b58ce89db10c65947428d4c07780285520523f71f7106d991c2c82
+# output sha256: f9cd782f581576f922ffe1b1c47cff513a3662e9180ab0d91e51d72769724cb7
 
 import math
 
@@ -57,5 +57,5 @@ def rig_loss_grad(a, span):
     half_bar += sag_err_bar * a * length_2
     # half = span / (2.0 * a)
     span_bar = half_bar / half_1
-    a_bar += -2.0 * half_bar * half / half_1
+    a_bar -= 2.0 * half_bar * half / half_1
     return loss, (a_bar, span_bar)

@@ -2,7 +2,7 @@
 # source: samples/fuel_hedge.py
 # source sha256: 0ea00fed34a5da6fdf8d79be718d957302aa63a99bc63f8c28269a24d0084725
 # command: gradwright gen samples/fuel_hedge.py call_value --wrt spot,vol,rate,years -o samples/fuel_hedge_grad.py
-# output sha256: 4fa927dfa7a18df26b04eabebf286a20dbd99f6374193219bb66059653d26583
+# output sha256: 06217391cdce071751ebf91f18820a1b79d4f0df3fd3767c9697eecefe779498
 
 import math
 from math import erf, exp, log, sqrt
@@ -49,19 +49,17 @@ def call_value_grad(spot, strike, vol, rate, years):
     # reverse sweep
     # return spot * n1 - strike * exp(-rate * years) * n2
     spot_bar = n1
-    n2_bar = -value_3
     value_bar_1 = -n2 * strike * value_2
     years_bar = value_bar_1 * value_1
     rate_bar = -value_bar_1 * years
     # n2 = 0.5 * (1.0 + erf(d2 / SQRT2))
-    d2_bar = 0.5641895835477563 * n2_bar * math.exp(-n2_1 * n2_1) / SQRT2
+    d2_bar = -0.5641895835477563 * value_3 * math.exp(-n2_1 * n2_1) / SQRT2
     # n1 = 0.5 * (1.0 + erf(d1 / SQRT2))
     d1_bar = 0.5641895835477563 * spot * math.exp(-n1_1 * n1_1) / SQRT2
     # d2 = d1 - vol * root_t
     d1_bar += d2_bar
-    d2_bar_1 = -d2_bar
-    vol_bar = d2_bar_1 * root_t
-    root_t_bar = d2_bar_1 * vol
+    vol_bar = -d2_bar * root_t
+    root_t_bar = -d2_bar * vol
     # d1 = (log(spot / strike) + (rate + 0.5 * vol * vol) * years) / (vol * root_t)
     d1_bar_1 = d1_bar / d1_4
     d1_4_bar = -d1_bar * d1 / d1_4

@@ -317,3 +317,33 @@ def test_newton_iteration_reads_its_saved_sin_and_cos():
     assert "math.sin" not in reverse and "math.cos" not in reverse
     assert "hypot" not in reverse and forward.count("math.hypot(") == 1
     _check_against_mpmath(KEPLER, "kepler", (1.1, 0.3), [0, 1])
+
+
+# ---------------------------------------------------------------------------------
+# signs a person would write
+
+SIGNS = """
+import math
+
+
+def orbit_radius(a, ecc, anomaly):
+    return a * (1.0 - ecc * math.cos(anomaly)) - 0.5 * ecc * a
+
+
+def bend(a, b):
+    c = a * b
+    return math.sin(a) - c
+"""
+
+
+def test_negative_contributions_subtract_and_double_negations_cancel():
+    text = gradwright.generate(SIGNS, ["orbit_radius", "bend"])
+    assert "+= -" not in text and "- -" not in text and "-(-" not in text
+    _, reverse = _sweeps(text, "orbit_radius")
+    # d/d(anomaly) of -a*ecc*cos(anomaly) is +a*ecc*sin(anomaly): no minus left
+    assert "anomaly_bar = a * ecc * math.sin(anomaly)" in reverse
+    _, reverse = _sweeps(text, "bend")
+    assert "a_bar -= b" in reverse
+    # outside reference: mpmath central differences
+    _check_against_mpmath(SIGNS, "orbit_radius", (1.3, 0.4, 0.7), [0, 1, 2])
+    _check_against_mpmath(SIGNS, "bend", (0.3, 2.0), [0, 1])

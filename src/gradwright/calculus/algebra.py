@@ -163,6 +163,13 @@ def _split_sign(expr: Expr) -> tuple[bool, Expr]:
     return False, expr
 
 
+def negated(expr: Expr) -> Expr | None:
+    """m when ``expr == -m`` bit for bit (``-a * b``, ``-2.0``), else None: lets
+    ``x += -m`` be written ``x -= m``."""
+    negative, magnitude = _split_sign(expr)
+    return magnitude if negative else None
+
+
 def _signed(negative: bool, magnitude: Expr) -> Expr:
     """``-magnitude`` written with the minus on the leftmost factor (``-a * b``)."""
     if not negative:

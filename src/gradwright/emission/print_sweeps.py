@@ -10,6 +10,7 @@ from __future__ import annotations
 
 from collections.abc import Iterator
 
+from gradwright.calculus.algebra import negated
 from gradwright.emission.copied import copied_lines
 from gradwright.emission.formatting import format_statement
 from gradwright.emission.layout import Layout, reverse_bounds
@@ -558,6 +559,13 @@ class _Emitter:
                 self.trace.read(name, self.key(root))
             self.trace.write(bar, self.bar_key(root))
 
+    def subtracted(self, expr: Expr, text: str) -> tuple[str, str]:
+        """``-= m`` for an accumulation of ``-m`` (no ``+= -m``), else ``+= text``."""
+        magnitude = negated(expr)
+        if magnitude is None:
+            return "+=", text
+        return "-=", self.rprint(magnitude)
+
     def reverse_block(
         self, statements: tuple[ReverseStmt, ...], depth: int, out: _Lines
     ) -> None:
@@ -584,6 +592,7 @@ class _Emitter:
                 self.reads(expr)
                 if operator == "+=":
                     trace.read(bar, self.bar_key(stmt.var))
+                    operator, value = self.subtracted(expr, value)
                 trace.write(bar, self.bar_key(stmt.var))
                 out.statement(stmt.origin, f"{bar} {operator} {value}", depth)
             elif isinstance(stmt, ElementAdjoint):
@@ -596,6 +605,8 @@ class _Emitter:
                 self.reads(index_expr)
                 self.reads(value_expr)
                 trace.read(bar, self.bar_key(stmt.root))
+                if operator == "+=":
+                    operator, value = self.subtracted(value_expr, value)
                 out.statement(stmt.origin, f"{bar}[{index}] {operator} {value}", depth)
             elif isinstance(stmt, SpreadAdjoint):
                 bar = self.namer.bar_name(stmt.root)

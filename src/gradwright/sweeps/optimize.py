@@ -150,7 +150,12 @@ def inline_adjoints(sweep: ReverseSweep) -> ReverseSweep:
                 var = stmt.var
                 if expr == Bar(var) and not stmt.accumulate:
                     continue  # a carried adjoint that stayed as it was
-                atom = isinstance(expr, (Var, Const, Bar))
+                # a negated atom too: ``-(-a) * b`` then simplifies to ``a * b``
+                atom = isinstance(expr, (Var, Const, Bar)) or (
+                    isinstance(expr, Apply)
+                    and expr.op == "neg"
+                    and isinstance(expr.args[0], (Var, Const, Bar))
+                )
                 carried = isinstance(expr, Bar) and expr.var in carries
                 if (
                     var not in keep
