@@ -822,6 +822,71 @@ def test_emitted_test_draws_lists_and_trip_counts(tmp_path: Path) -> None:
     assert "3 passed" in run.stdout
 
 
+HORNER = """
+def horner(coeffs, x):
+    total = 0.0
+    for c in coeffs:
+        total = total * x + c
+    return total
+"""
+
+MIXTURE = """
+import numpy as np
+
+
+def mixture_nll(mu, log_sigma, x):
+    sigma = np.exp(log_sigma)
+    z1 = (x - mu[0]) / sigma[0]
+    z2 = (x - mu[1]) / sigma[1]
+    p = 0.3 * np.exp(-0.5 * z1 * z1) / sigma[0] + 0.7 * np.exp(-0.5 * z2 * z2) / sigma[1]
+    return -np.mean(np.log(p))
+"""
+
+
+def _break_line(path: Path, pattern: str) -> None:
+    """Scale the right-hand side of the one line matching pattern by 2."""
+    text, count = re.subn(
+        rf"^(\s+{pattern} )(.*)$", r"\1 2.0 * (\2)", path.read_text(), flags=re.M
+    )
+    assert count == 1
+    path.write_text(text)
+
+
+def test_emitted_test_checks_each_element_of_a_list_parameter(tmp_path: Path) -> None:
+    (tmp_path / "h.py").write_text(HORNER)
+    gen = ("gen", "h.py", "horner", "-o", "h_grad.py", "--emit-test", "test_h.py")
+    assert cli(*gen, cwd=tmp_path).code == 0
+    run = _run_pytest(tmp_path, "test_h.py")
+    assert run.returncode == 0, run.stdout + run.stderr
+    # the list's adjoint is checked element by element: break it and the test fails
+    _break_line(tmp_path / "h_grad.py", r"coeffs_bar\[\w+\] \+=")
+    broken = _run_pytest(tmp_path, "test_h.py")
+    assert broken.returncode == 1 and "3 failed" in broken.stdout, broken.stdout
+
+
+def test_emitted_test_draws_arrays_of_the_declared_shapes(tmp_path: Path) -> None:
+    (tmp_path / "m.py").write_text(MIXTURE)
+    gen = ("gen", "m.py", "mixture_nll", "--wrt", "mu,log_sigma", "-o", "m_grad.py")
+    emit = ("--emit-test", "test_m.py")
+    # an array's shape cannot be known without running the model: an error, and
+    # nothing written
+    refused = cli(*gen, *emit, cwd=tmp_path)
+    assert refused.code == 2
+    assert "--shape mu=DIMS" in refused.err
+    assert (
+        not (tmp_path / "m_grad.py").exists() and not (tmp_path / "test_m.py").exists()
+    )
+    shapes = ("--shape", "mu=2", "--shape", "log_sigma=2", "--shape", "x=n")
+    assert cli(*gen, *emit, *shapes, cwd=tmp_path).code == 0
+    text = (tmp_path / "test_m.py").read_text()
+    assert "import numpy as np" in text and '"x": np.array([' in text
+    run = _run_pytest(tmp_path, "test_m.py")
+    assert run.returncode == 0, run.stdout + run.stderr
+    _break_line(tmp_path / "m_grad.py", "log_sigma_bar =")
+    broken = _run_pytest(tmp_path, "test_m.py")
+    assert broken.returncode == 1 and "3 failed" in broken.stdout, broken.stdout
+
+
 def test_a_pipe_as_output_is_written_to_not_replaced(proj: Path) -> None:
     # like -o /dev/null: renaming a file over it would replace the device
     import threading

@@ -40,6 +40,7 @@ from gradwright.workflow.points import (
     Value,
     check_names,
     choose_points,
+    declared_sizes,
     describe_kinds,
     parse_at,
     parse_declared_shapes,
@@ -592,30 +593,6 @@ def _draw(
     )
 
 
-def _declared_sizes(module_text: str, names: set[str]) -> dict[str, tuple[int, ...]]:
-    """The shapes a module's header command declares (``--shape X=n,5``), each name
-    given a size of its own from 3 up, so no two of them broadcast."""
-    import shlex
-
-    from gradwright.header import read_header
-
-    header = read_header(module_text)
-    command = header.fields.get("command") if header is not None else None
-    if not command:
-        return {}
-    words = shlex.split(command)
-    texts = [words[k + 1] for k, w in enumerate(words[:-1]) if w == "--shape"]
-    sizes: dict[str, int] = {}
-    concrete: dict[str, tuple[int, ...]] = {}
-    for name, dims in parse_declared_shapes(texts).items():
-        if name in names:
-            concrete[name] = tuple(
-                d if isinstance(d, int) else sizes.setdefault(d, 3 + len(sizes))
-                for d in dims
-            )
-    return concrete
-
-
 def _verify(args: argparse.Namespace) -> int:
     from gradwright.workflow.kinds import COUNT, INDEX, parameter_kinds
     from gradwright.workflow.verify import check_point, guess_shapes, load
@@ -661,7 +638,7 @@ def _verify(args: argparse.Namespace) -> int:
         )
         primal = namespace[subject.function]
         # a module generated for declared shapes is drawn at those (names as sizes)
-        known = {**_declared_sizes(subject.module_text, names), **shapes}
+        known = {**declared_sizes(subject.module_text, names), **shapes}
         shaped = {**guess_shapes(primal, kinds, known, given, draw), **known}
         points = draw(shaped, args.samples)
         integers = frozenset(n for n, k in kinds.items() if k in (COUNT, INDEX))

@@ -172,6 +172,30 @@ def parse_declared_shapes(texts: Sequence[str], option: str = "--shape") -> Decl
     return shapes
 
 
+def declared_sizes(module_text: str, names: set[str]) -> dict[str, tuple[int, ...]]:
+    """The shapes a module's header command declares (``--shape X=n,5``), each name
+    given a size of its own from 3 up, so no two of them broadcast."""
+    import shlex
+
+    from gradwright.header import read_header
+
+    header = read_header(module_text)
+    command = header.fields.get("command") if header is not None else None
+    if not command:
+        return {}
+    words = shlex.split(command)
+    texts = [words[k + 1] for k, w in enumerate(words[:-1]) if w == "--shape"]
+    sizes: dict[str, int] = {}
+    concrete: dict[str, tuple[int, ...]] = {}
+    for name, dims in parse_declared_shapes(texts).items():
+        if name in names:
+            concrete[name] = tuple(
+                d if isinstance(d, int) else sizes.setdefault(d, 3 + len(sizes))
+                for d in dims
+            )
+    return concrete
+
+
 def parse_dims(value: str, label: str) -> tuple[int | str, ...]:
     if value == "()":
         return ()

@@ -21,13 +21,14 @@ from pathlib import PurePosixPath
 from gradwright import __version__
 from gradwright.diagnostics import GradwrightError, Location, fail
 from gradwright.header import sha256_text, stamp
-from gradwright.workflow.kinds import parameter_kinds
+from gradwright.workflow.kinds import ARRAY, parameter_kinds
 from gradwright.workflow.points import (
     DEFAULT_RTOL,
     DEFAULT_SEED,
     NOISE_ULPS,
     Range,
     choose_points,
+    declared_sizes,
     signature_of,
     typical_sizes,
 )
@@ -73,11 +74,12 @@ typical size is the larger end of its range, or 1.
 
 import importlib.util
 import inspect
+import itertools
 import math
 import sys
 from pathlib import Path
 
-import pytest
+import pytest{numpy}
 
 MODULE = (Path(__file__).resolve().parent / {relative!r}).resolve()
 RTOL = {rtol!r}
@@ -104,13 +106,41 @@ def _call(func, point):
     return func(*args, **kwargs)
 
 
-def _central_difference(func, point, name):
-    """The central difference in `name` and a bound on its rounding noise."""
-    x = point[name]
+def _elements(value):
+    """Where each number of a parameter's value sits: () for a number, an index
+    tuple for each element of a list or an array."""
+    if isinstance(value, (int, float)):
+        return [()]
+    shape = getattr(value, "shape", None) or (len(value),)
+    return list(itertools.product(*(range(size) for size in shape)))
+
+
+def _at(value, where):
+    for k in where:
+        value = value[k]
+    return value
+
+
+def _moved(value, where, x):
+    """value with the number at `where` replaced by x (a copy; value unchanged)."""
+    if not where:
+        return x
+    changed = value.copy()
+    inner = changed
+    for k in where[:-1]:
+        inner = inner[k]
+    inner[where[-1]] = x
+    return changed
+
+
+def _central_difference(func, point, name, where):
+    """The central difference in one number of `name` and a bound on its rounding
+    noise."""
+    x = _at(point[name], where)
     h = EPSILON ** (1 / 3) * max(abs(x), SIZES.get(name, 1.0))
     up_x, down_x = x + h, x - h
-    up = _call(func, {{**point, name: up_x}})
-    down = _call(func, {{**point, name: down_x}})
+    up = _call(func, {{**point, name: _moved(point[name], where, up_x)}})
+    down = _call(func, {{**point, name: _moved(point[name], where, down_x)}})
     width = up_x - down_x
     noise = {ulps} * EPSILON * max(abs(up), abs(down)) / width
     return (up - down) / width, noise
@@ -126,10 +156,19 @@ def test_{function}_grad_matches_central_differences(point):
     value, grads = _call(generated.{function}_grad, point)
     assert value == _call(generated.{function}, point)
     for name, grad in zip({wrt!r}, grads, strict=True):
-        assert math.isfinite(grad), f"{{name}}: gradient entry is {{grad!r}}"
-        slope, noise = _central_difference(generated.{function}, point, name)
-        gap = abs(grad - slope)
-        assert gap <= RTOL * max(abs(grad), abs(slope)) + noise, (name, grad, slope)
+        for where in _elements(point[name]):
+            entry = _at(grad, where)
+            label = name + "".join(f"[{{k}}]" for k in where)
+            assert math.isfinite(entry), f"{{label}}: gradient entry is {{entry!r}}"
+            slope, noise = _central_difference(
+                generated.{function}, point, name, where
+            )
+            gap = abs(entry - slope)
+            assert gap <= RTOL * max(abs(entry), abs(slope)) + noise, (
+                label,
+                entry,
+                slope,
+            )
 """
 
 
@@ -138,22 +177,9 @@ def render_test(request: TestRequest, module_text: str) -> str:
     test_dir = PurePosixPath(request.test_label).parent.as_posix() or "."
     relative = PurePosixPath(os.path.relpath(request.module_label, test_dir)).as_posix()
     stem = PurePosixPath(request.module_label).stem
-    parts = [
-        _PRELUDE.format(
-            version=__version__,
-            source=request.source_label,
-            sha256=sha256_text(request.source_text),
-            command=request.command,
-            module=request.module_label,
-            seed=DEFAULT_SEED,
-            relative=relative,
-            rtol=DEFAULT_RTOL,
-            sizes=typical_sizes(request.ranges, {}),
-            module_name=f"_gradwright_{stem}",
-            ulps=NOISE_ULPS,
-        )
-    ]
     used: set[str] = set()
+    checks = []
+    arrays = False
     for function in request.functions:
         try:
             params = signature_of(module_text, f"{function}_grad")
@@ -165,21 +191,74 @@ def render_test(request: TestRequest, module_text: str) -> str:
         wrt = request.wrt if request.wrt is not None else tuple(p.name for p in params)
         used.update(p.name for p in params)
         kinds = parameter_kinds(module_text, function)
+        shapes = _array_shapes(module_text, kinds, {p.name for p in params})
+        arrays = arrays or bool(shapes)
         points = choose_points(
-            params, wrt, {}, request.ranges, TEST_POINTS, DEFAULT_SEED, kinds=kinds
+            params,
+            wrt,
+            {},
+            request.ranges,
+            TEST_POINTS,
+            DEFAULT_SEED,
+            shapes=shapes,
+            kinds=kinds,
         )
-        parts.append(
+        checks.append(
             _CHECK.format(
                 points_name=f"{function.upper()}_POINTS",
-                points=repr(points),
+                points="[" + ", ".join(_point_literal(p) for p in points) + "]",
                 function=function,
                 wrt=tuple(wrt),
             )
         )
     _check_ranges_used(request, used)
+    prelude = _PRELUDE.format(
+        version=__version__,
+        source=request.source_label,
+        sha256=sha256_text(request.source_text),
+        command=request.command,
+        module=request.module_label,
+        seed=DEFAULT_SEED,
+        relative=relative,
+        rtol=DEFAULT_RTOL,
+        sizes=typical_sizes(request.ranges, {}),
+        module_name=f"_gradwright_{stem}",
+        ulps=NOISE_ULPS,
+        numpy="\n\nimport numpy as np" if arrays else "",
+    )
     from gradwright.emission.formatting import format_code  # black, only when used
 
-    return stamp(format_code("".join(parts)))
+    return stamp(format_code(prelude + "".join(checks)))
+
+
+def _array_shapes(
+    module_text: str, kinds: Mapping[str, str], names: set[str]
+) -> dict[str, tuple[int, ...]]:
+    """The arrays' shapes the points are drawn with: those the module was generated
+    for (``--shape``, a name given one size of its own); an array with none is an
+    error, as there is no way to tell its shape without running the model."""
+    shapes = declared_sizes(module_text, names)
+    for name in sorted(names):
+        if kinds.get(name) == ARRAY and name not in shapes:
+            raise GradwrightError.usage(
+                f"--emit-test: '{name}' is an array, and the test draws its points"
+                " without running the model, so it needs the array's shape",
+                f"declare it when generating: --shape {name}=DIMS (for example"
+                f" --shape {name}=n,5; in a build target, shapes = {{ {name} ="
+                ' "n,5" })',
+            )
+    return {name: dims for name, dims in shapes.items() if dims}
+
+
+def _point_literal(point: Mapping[str, object]) -> str:
+    """A point as Python source: arrays as ``np.array([...])``."""
+
+    def literal(value: object) -> str:
+        if hasattr(value, "tolist"):
+            return f"np.array({value.tolist()!r})"
+        return repr(value)
+
+    return "{" + ", ".join(f"{n!r}: {literal(v)}" for n, v in point.items()) + "}"
 
 
 def _check_ranges_used(request: TestRequest, used: set[str]) -> None:
