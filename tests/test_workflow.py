@@ -838,8 +838,9 @@ def mixture_nll(mu, log_sigma, x):
     sigma = np.exp(log_sigma)
     z1 = (x - mu[0]) / sigma[0]
     z2 = (x - mu[1]) / sigma[1]
-    p = 0.3 * np.exp(-0.5 * z1 * z1) / sigma[0] + 0.7 * np.exp(-0.5 * z2 * z2) / sigma[1]
-    return -np.mean(np.log(p))
+    p1 = 0.3 * np.exp(-0.5 * z1 * z1) / sigma[0]
+    p2 = 0.7 * np.exp(-0.5 * z2 * z2) / sigma[1]
+    return -np.mean(np.log(p1 + p2))
 """
 
 
