@@ -110,6 +110,24 @@ CASES = [
         {"a": ("n",), "b": ()},
         [[(4,), ()]],
     ),
+    (  # elements of a short vector against a long one (a two-part mixture)
+        numpy_model(
+            "m, s, x",
+            "z = (x - m[0]) / s[1]\nq = np.exp(-z * z) / s[0] + m[1]\n"
+            "return np.mean(np.log(q))",
+        ),
+        {"m": (2,), "s": (2,), "x": ("n",)},
+        [[(2,), (2,), (5,)], [(2,), (2,), (1,)]],
+    ),
+    (  # a column, a row and a constant slice of a matrix
+        numpy_model(
+            "a, b",
+            "c = a[:, 1] * b[0, 1:4]\nd = a[1] + b[1, :]\n"
+            "return np.sum(c) + np.sum(d * d) + np.sum(a[0:2, 0])",
+        ),
+        {"a": (3, 4), "b": (2, 4)},
+        [[(3, 4), (2, 4)]],
+    ),
     (  # a loop carrying an array
         numpy_model(
             "a, b", "for k in range(3):\n    a = a * b + 1.0\nreturn np.sum(a)"
@@ -221,6 +239,12 @@ def test_known_broadcasts_are_written_as_sums() -> None:
     text, _ = generate(*CASES[0][:2])
     assert "_gw_unbroadcast" not in text
     assert "b_bar = np.sum(a, axis=0)" in text
+
+
+def test_indexed_elements_and_slices_have_known_shapes() -> None:
+    for case in (CASES[12], CASES[13]):
+        text, _ = generate(*case[:2])
+        assert "_gw_unbroadcast" not in text and "_gw_unmean" not in text, text
 
 
 def test_same_shapes_need_no_helper_even_undeclared() -> None:

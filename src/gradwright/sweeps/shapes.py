@@ -21,7 +21,7 @@ products, the generic helpers) get ``np.broadcast_to(g, shape)`` first.
 
 from __future__ import annotations
 
-from collections.abc import Iterable, Mapping
+from collections.abc import Callable, Iterable, Mapping
 from dataclasses import dataclass, replace
 
 from gradwright.calculus.numpy_rules import BROADCASTING
@@ -237,6 +237,9 @@ class ShapeTable:
             if isinstance(a, tuple) and isinstance(b, tuple) and len(a) == len(b) == 1:
                 return a + b
             return None
+        if op == "npindex":
+            pattern = args[1].text if isinstance(args[1], Const) else ""
+            return index_shape(shapes[0], pattern, args[2:], self.atom)
         if op in ("T", "np.transpose"):
             return tuple(reversed(shapes[0])) if isinstance(shapes[0], tuple) else None
         if op == "reshape":
@@ -247,6 +250,44 @@ class ShapeTable:
                 return tuple(dims)  # type: ignore[arg-type]
             return None
         return None
+
+
+def index_shape(
+    array: Shape,
+    pattern: str,
+    values: tuple[Atom, ...],
+    shape_of: Callable[[Atom], Shape],
+) -> Shape | None:
+    """The shape of ``x[...]`` (pattern as lowering writes it: ``{}`` an index,
+    ``{}:{}`` a slice, ``:`` all): an index drops its axis, a slice with constant
+    bounds of a known size keeps its length; anything else (an array as index, a
+    slice of a named size) is not known."""
+    pieces = [piece.strip() for piece in pattern.split(",")]
+    if not isinstance(array, tuple) or len(pieces) > len(array):
+        return None
+    given = iter(values)
+    out: list[Dim] = []
+    for dim, piece in zip(array[: len(pieces)], pieces, strict=True):
+        if piece == "{}":
+            if shape_of(next(given)) != ():  # an array of indices picks elements
+                return None
+            continue
+        if piece == ":":
+            out.append(dim)
+            continue
+        bounds: list[int | None] = []
+        for part in piece.split(":"):
+            bound = next(given) if part else None
+            if bound is None:
+                bounds.append(None)
+            elif isinstance(bound, Const) and type(bound.value) is int:
+                bounds.append(bound.value)
+            else:
+                return None
+        if not isinstance(dim, int) or bounds[2:] == [0]:
+            return None
+        out.append(len(range(dim)[slice(*bounds)]))
+    return (*out, *array[len(pieces) :])
 
 
 def _is_keyword(atom: Atom) -> bool:
