@@ -442,15 +442,56 @@ def test_atan2_rule_huge_arguments() -> None:
     assert all(rel_err(g, e) <= TOLERANCE for g, e in zip(grads, exact, strict=True))
 
 
+@pytest.mark.parametrize("y", [2, 1, sympy.Rational(3, 2)])
 @pytest.mark.parametrize("expr", ["x**y", "math.pow(x, y)"])
-def test_pow_active_exponent_at_zero_base(expr: str) -> None:
+def test_pow_active_exponent_at_zero_base(expr: str, y: sympy.Rational) -> None:
+    # rules._power reads out / x only for y < 1: from 1 on x == 0 stays finite
     source = f"import math\n\ndef f(x, y):\n    return {expr}\n"
-    # SymPy diff of x**y, (y * x**(y - 1), x**y * log(x)), at y = 2 and x -> 0+
-    # (SymPy's limit: log(0) alone is undefined, x**2 * log(x) tends to 0)
+    # SymPy diff of x**y, (y * x**(y - 1), x**y * log(x)), at x -> 0+
+    # (SymPy's limit: log(0) alone is undefined, x**y * log(x) tends to 0)
     exact = tuple(
-        float(sympy.limit(sympy.diff(X**Y, s).subs(Y, 2), X, 0, "+")) for s in (X, Y)
+        float(sympy.limit(sympy.diff(X**Y, s).subs(Y, y), X, 0, "+")) for s in (X, Y)
     )
-    assert _grad(source, 0.0, 2.0) == exact, REFERENCE
+    assert _grad(source, 0.0, float(y)) == exact, REFERENCE
+
+
+@pytest.mark.parametrize("y", [0.5, 0.0])
+@pytest.mark.parametrize("expr", ["x**y", "math.pow(x, y)"])
+def test_pow_active_exponent_below_one_at_zero_base_raises(expr: str, y: float) -> None:
+    """The derivative y * x**(y - 1) is infinite at x == 0 for y < 1 (y == 0 gives
+    0 * inf): Python raised ZeroDivisionError there for x**(y-1) and does for
+    out / x (0.0 ** -0.5 and 0.0 / 0.0 both raise; SymPy: x**(y-1) -> oo)."""
+    source = f"import math\n\ndef f(x, y):\n    return {expr}\n"
+    with pytest.raises(ZeroDivisionError):
+        _grad(source, 0.0, y)
+
+
+@pytest.mark.parametrize(
+    ("x", "y"), [(3.7, 0.3), (0.2, -1.5), (1e-300, 0.5), (1e-200, 2.0), (1e-160, 2.5)]
+)
+def test_pow_active_exponent_accurate(x: float, y: float) -> None:
+    # out / x for y < 1 (no second pow); x**(y-1) from 1 on, where x**y underflows
+    # (1e-200**2.0 is 0.0: out / x would give 0 for d/dx = 2e-200)
+    source = "def f(x, y):\n    return x**y\n"
+    grads = _grad(source, x, y)
+    # reference: mpmath at 50 digits, the closed forms y*x**(y-1) and x**y*log(x)
+    with mpmath.workdps(50):
+        mx, my = mpmath.mpf(x), mpmath.mpf(y)
+        exact = (my * mx ** (my - 1), mx**my * mpmath.log(mx))
+    for grad, ref in zip(grads, exact, strict=True):
+        if abs(ref) < 2.2250738585072014e-308:  # below the normal range: absolute
+            assert abs(grad - float(ref)) <= 1e-323, "mpmath closed form"
+        else:
+            assert rel_err(grad, ref) <= TOLERANCE, "mpmath closed form"
+
+
+def test_pow_active_exponent_reads_out() -> None:
+    # rules._power: x**y with both active divides out by x below 1 (issue 12);
+    # an exponent without an adjoint (a count) keeps the one pow
+    code = _reverse_code("def f(x, y):\n    return x**y\n")
+    assert any("/ x if y < 1 else x ** (y - 1)" in line for line in code), code
+    code = _reverse_code("def f(x, n):\n    return x**n\n", ["x"])
+    assert any(line.endswith("n * x ** (n - 1)") for line in code), code
 
 
 @pytest.mark.parametrize("expr", ["x**y", "math.pow(x, y)"])
@@ -498,8 +539,8 @@ def test_power_rule_reads_out_instead_of_recomputing() -> None:
     assert not any("**" in line for line in code), code
 
 
-def _reverse_code(source: str) -> list[str]:
-    text = gradwright.generate(source, ["f"])
+def _reverse_code(source: str, wrt: list[str] | None = None) -> list[str]:
+    text = gradwright.generate(source, ["f"], wrt=wrt)
     lines = text.split("# reverse sweep")[1].splitlines()
     return [line for line in lines if not line.lstrip().startswith("#")]
 

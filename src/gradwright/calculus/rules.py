@@ -50,8 +50,19 @@ def _power(g: E, out: E, x: E, y: E) -> tuple[E | None, E]:
     d_exponent = where(x.eq(0), 0.0, g * out * log(x))
     p = number(y.node)
     if p is None or isinstance(p, bool):
-        return g * y * x ** (y - 1), d_exponent
+        # _constant_power's choice made at run time: out / x below 1 (no second
+        # pow; at x == 0 it raises ZeroDivisionError as x**(y-1) did), x**(y-1)
+        # from 1 on (finite at x == 0, accurate where out is subnormal)
+        return g * y * where(y.lt(1), out / x, x ** (y - 1)), d_exponent
     return _constant_power(g, out, x, p), d_exponent
+
+
+def _one_power(g: E, out: E, x: E, y: E) -> tuple[E | None, E]:
+    # y * x**(y-1) as written: for arrays (np.where would compute both of
+    # _power's sides) and for an exponent with no adjoint (a count: u**j)
+    if number(y.node) is None:
+        return g * y * x ** (y - 1), where(x.eq(0), 0.0, g * out * log(x))
+    return _power(g, out, x, y)
 
 
 def _constant_power(g: E, out: E, x: E, p: float | int) -> E | None:
@@ -293,6 +304,16 @@ _SHARED = {
     "power": "pow",
 }
 RULES.update({f"np.{name}": RULES[scalar] for name, scalar in _SHARED.items()})
+
+
+def rule_for(op: str, array: bool, active: tuple[bool, ...]) -> Rule:
+    """``RULES[op]``, or the one-pow power rule for arrays and for an exponent
+    that has no adjoint (see ``_one_power``)."""
+    if op in ("pow", "math_pow", "np.power") and (array or not active[1]):
+        return _one_power
+    return RULES[op]
+
+
 RULES.update(
     {
         # For arrays, speed wins over the last digits in the tails: 1 - out**2 has

@@ -21,7 +21,7 @@ from collections.abc import Iterable, Mapping
 
 from gradwright.calculus.algebra import E, is_zero, simplify
 from gradwright.calculus.numpy_rules import BROADCASTING
-from gradwright.calculus.rules import RULES
+from gradwright.calculus.rules import RULES, rule_for
 from gradwright.ir import (
     AdjointAssign,
     Apply,
@@ -378,7 +378,9 @@ class _Reverse:
                 return known
             if op not in SMALL_OK:
                 g = self.fitter.full(g, target)
-        parts = RULES[op](E(g), E(target), *(E(a) for a in args))
+        active = tuple(isinstance(a, Var) and a in self.active for a in args)
+        rule = rule_for(op, self.numpy, active)
+        parts = rule(E(g), E(target), *(E(a) for a in args))
         return tuple(None if p is None else p.node for p in parts)
 
     def unbroadcast(self, total: Expr, var: Atom, result: Var) -> Expr:
