@@ -347,3 +347,60 @@ def test_negative_contributions_subtract_and_double_negations_cancel():
     # outside reference: mpmath central differences
     _check_against_mpmath(SIGNS, "orbit_radius", (1.3, 0.4, 0.7), [0, 1, 2])
     _check_against_mpmath(SIGNS, "bend", (0.3, 2.0), [0, 1])
+
+
+def _check_flat(source, func, args, active, tolerance=1e-11):
+    """As _check_against_mpmath, for models with list parameters too."""
+    module = build(source, func, [_params(source, func)[k] for k in active])
+    value, grads = module[f"{func}_grad"](*args)
+    assert value == run_source(source)[func](*args)  # bit-identical to the primal
+
+    def flat(values):
+        return [
+            v
+            for value in values
+            for v in (value if isinstance(value, list) else [value])
+        ]
+
+    # outside reference: mpmath high-precision central differences
+    reference = flat(mp_gradient(mp_function(source, func), args, active))
+    grads = flat(grads)
+    assert len(grads) == len(reference)
+    for got, want in zip(grads, reference, strict=True):
+        assert rel_err(got, want) < tolerance, (got, want)
+
+
+# ---------------------------------------------------------------------------------
+# helpers, sums and folds as a person writes them
+
+FOLDS = """
+def spread(a, xs):
+    errs = [(x - a) ** 2 for x in xs]
+    return a * max(errs)
+
+
+def floor(a, xs):
+    return min(x * a for x in xs) + min(xs) * a
+
+
+def worst(a, xs):
+    errs = [(x - a) ** 2 for x in xs]
+    worst = max(errs)
+    return worst * a
+"""
+
+
+def test_fold_without_a_name_is_named_for_what_it_holds():
+    # comprehensions.accumulator: not `value`, the return's own name
+    text = gradwright.generate(FOLDS, ["spread", "floor", "worst"])
+    forward, _ = _sweeps(text, "spread")
+    assert "largest = errs[0]" in forward and "value = a * largest" in forward
+    forward, _ = _sweeps(text, "floor")
+    assert "smallest = terms[0]" in forward and "smallest_2 = xs[0]" in forward
+    assert "value = smallest + smallest_2 * a" in forward
+    forward, _ = _sweeps(text, "worst")
+    assert "worst = errs[0]" in forward  # bound to a name: that name
+    for func in ("spread", "floor", "worst"):
+        forward, reverse = _sweeps(text, func)
+        assert "value_" not in forward + reverse
+        _check_flat(FOLDS, func, (0.4, [0.3, 0.9, -0.6, 0.1]), [0, 1])

@@ -30,6 +30,8 @@ IN_PLACE = frozenset({"setitem", "append"})
 
 #: the loop flags' constants: one object each, so that an unchanged flag is
 #: recognised by identity (``a is b``) where paths merge
+#: the base name of what a return gives (the generated function's ``value``)
+RESULT = "value"
 TRUE = Const("True", True)
 FALSE = Const("False", False)
 
@@ -65,7 +67,7 @@ def flow_base(key: str) -> str:
     """The base name of a value merged for an env key: the result slots are
     ``value``, the loop flags ``returned`` and ``stop``."""
     if key.startswith(_RESULT):
-        return "value"
+        return RESULT
     if key in (_RETURNED, _STOP):
         return key[1:]
     return display(key)

@@ -17,6 +17,7 @@ import libcst as cst
 
 from gradwright.diagnostics import fail
 from gradwright.ir import Atom, Const, Var
+from gradwright.lowering.base import RESULT
 from gradwright.lowering.loops import _DataRow, _target_names
 from gradwright.lowering.syntax import _statement_text
 
@@ -30,10 +31,10 @@ class ComprehensionLowering:
         base: str,
         target: Var | None = None,
     ) -> Var:
-        """A new local list of the comprehension's terms."""
-        return self.new_list(
-            f"{base}_terms", target, lambda name: self.fill(node, name)
-        )
+        """A new local list of the comprehension's terms (``terms`` in a return,
+        not ``value_terms``)."""
+        named = "terms" if base == RESULT else f"{base}_terms"
+        return self.new_list(named, target, lambda name: self.fill(node, name))
 
     def new_list(
         self, base: str, target: Var | None, fill: Callable[[str], None]
@@ -275,10 +276,19 @@ class ComprehensionLowering:
         """``min(xs)``: ``m = xs[0]``, then ``m = min(m, x)`` for the rest, which
         picks the element Python's ``min`` picks (the first extreme one)."""
         values = self.sequence_value(node, base)
+        acc = self.accumulator(op, target)
         zero = Const("0", 0)
-        first = self.emit("getitem", (values, zero), self.new_var(base, "local"))
+        first = self.emit("getitem", (values, zero), self.new_var(acc, "local"))
         count = self.emit("len", (values,), self.new_var("n", "temp"))
-        return self.fold(op, values, first, Const("1", 1), count, base, target)
+        return self.fold(op, values, first, Const("1", 1), count, acc)
+
+    def accumulator(self, op: str, target: Var | None) -> str:
+        """The name a fold's running value takes: the name its result is bound
+        to, else what it holds (``a * max(errs)``: ``largest``), never the
+        statement's (``value`` in a return)."""
+        if target is not None and target.base != RESULT:
+            return target.base
+        return self._free_name(_FOLDED[op], [])
 
     def product(
         self, args: list[cst.BaseExpression], base: str, target: Var | None
@@ -289,7 +299,8 @@ class ComprehensionLowering:
         if len(args) == 2:
             start = self.scalar(self.expr(args[1], base, None), args[1])
         count = self.emit("len", (values,), self.new_var("n", "temp"))
-        return self.fold("mul", values, start, Const("0", 0), count, base, target)
+        acc = self.accumulator("mul", target)
+        return self.fold("mul", values, start, Const("0", 0), count, acc)
 
     def fold(
         self,
@@ -298,14 +309,11 @@ class ComprehensionLowering:
         initial: Atom,
         start: Atom,
         stop: Atom,
-        base: str,
-        target: Var | None,
+        acc: str,
     ) -> Atom:
         """``acc = op(acc, values[k])`` for k in range(start, stop): a loop."""
-        # the accumulator takes the name the result is bound to
-        acc = target.base if target is not None else self._free_name(base, [])
         index = self._free_name(f"{acc}_index", [acc])
-        seq = self._free_name(f"{base}_values", [acc, index])
+        seq = self._free_name(f"{acc}_values", [acc, index])
         saved = {n: self.env.get(n) for n in (acc, index, seq)}
         self.env[acc], self.env[seq] = initial, values
         element = cst.Subscript(
@@ -327,6 +335,10 @@ class ComprehensionLowering:
         result = self.env[acc]
         self._restore(saved)
         return result  # type: ignore[return-value]
+
+
+#: what a fold's running value holds, its name when the result has none
+_FOLDED = {"max": "largest", "min": "smallest", "mul": "product"}
 
 
 def _whole_number(node: cst.BaseExpression | None) -> int | None:

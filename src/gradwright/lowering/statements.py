@@ -16,6 +16,7 @@ from gradwright.lowering.base import (
     _RESULT,
     _RETURNED,
     _STOP,
+    RESULT,
     TRUE,
     _Reported,
     _Tuple,
@@ -195,8 +196,8 @@ class StatementLowering:
         for element in elements if named is None else []:
             # a helper may return a list it writes out (return [a, b])
             shape = self.shape_of_expression(element) if arity == 1 else "scalar"
-            target = self.new_var("value", "local", shape)
-            atom = self.expr(element, "value", target)
+            target = self.new_var(RESULT, "local", shape)
+            atom = self.expr(element, RESULT, target)
             if not self.returns_list_result(atom, arity):
                 atom = self.scalar(atom, element)
             atoms.append(atom)
