@@ -404,3 +404,95 @@ def test_fold_without_a_name_is_named_for_what_it_holds():
         forward, reverse = _sweeps(text, func)
         assert "value_" not in forward + reverse
         _check_flat(FOLDS, func, (0.4, [0.3, 0.9, -0.6, 0.1]), [0, 1])
+
+
+POLAR = """
+import math
+
+
+def polar(r, t):
+    return r * math.cos(t), r * math.sin(t)
+
+
+def spiral(r, t, n):
+    x, y = polar(r, t)
+    s = x * y
+    for i in range(n):
+        a, b = polar(r + i, t * s)
+        s = s + a * b
+    return s
+
+
+def parts(r, t):
+    p = polar(r, t)
+    u = p[0] * 2.0
+    x, _ = polar(u, t)
+    return p[1] + u * x
+"""
+
+
+def test_tuple_helper_seed_is_the_tuple_of_its_adjoints():
+    # optimize.tuple_seeds: no adjoint list made and filled element by element
+    text = gradwright.generate(POLAR, ["spiral", "parts"])
+    _, spiral = _sweeps(text, "spiral")
+    assert "seed=(a_bar, b_bar)" in spiral and "seed=(x_bar, y_bar)" in spiral
+    _, parts = _sweeps(text, "parts")
+    assert ", 0.0)" in parts  # the unused element of x, _ = polar(u, t)
+    assert "[0.0] * 2" not in text and "] += " not in spiral + parts
+    # arguments the reverse needs again are named for the parameter they are
+    assert "values" not in text and "polar_t_1 = t * s" in spiral
+    _check_against_mpmath(POLAR, "spiral", (0.7, 0.4, 3), [0, 1])
+    _check_against_mpmath(POLAR, "parts", (0.7, 0.4), [0, 1])
+
+
+PRICES = """
+import math
+
+
+def present_value(rate, cash):
+    price_terms = [c * math.exp(-rate * k) for k, c in enumerate(cash)]
+    price = sum(price_terms)
+    return price * price
+
+
+def nested(a, xs):
+    total = 1.0
+    for k in range(3):
+        terms = []
+        for x in xs:
+            if x > 0.5:
+                terms.append(x * total)
+            else:
+                terms.append(a)
+        total = total * a - (sum(terms) + math.fsum(terms)) * 0.1
+    return total
+
+
+def running(a, xs):
+    terms = []
+    s = 0.0
+    for x in xs:
+        terms.append(a * x)
+        s = s + sum(terms) * a
+    return s
+"""
+
+
+def test_summed_list_adjoint_is_read_directly():
+    # optimize.spread_reads: each term's adjoint is the sum's, no list spread
+    # and popped
+    text = gradwright.generate(PRICES, ["present_value", "nested"])
+    _, reverse = _sweeps(text, "present_value")
+    assert "price_terms_bar" not in reverse and "pop()" not in reverse
+    assert "rate_bar -= price_bar * c * price_terms_1 * k" in reverse
+    _, reverse = _sweeps(text, "nested")
+    assert "terms_bar =" not in reverse and "terms_bar[" not in reverse
+    assert "pop()" not in reverse and "terms_bar_1 = 2.0 * total_bar_2" in reverse
+    # made before the loop that sums it: each element gathers every later
+    # iteration's sum, so the list stays (each pop reading one sum was wrong)
+    text = gradwright.generate(PRICES, ["running"])
+    assert "terms_bar.pop()" in _sweeps(text, "running")[1]
+    args = (0.05, [1.0, 2.0, 3.5, 4.0])
+    _check_flat(PRICES, "present_value", args, [0, 1])
+    _check_flat(PRICES, "running", (0.7, [0.3, 0.9, 0.6, 0.1]), [0, 1])
+    _check_flat(PRICES, "nested", (0.8, [0.3, 0.9, 0.6, 0.1]), [0, 1])

@@ -31,7 +31,9 @@ from gradwright.sweeps.optimize import (
     drop_dead_zeroing,
     inline_adjoints,
     map_sweep,
+    spread_reads,
     sweep_exprs,
+    tuple_seeds,
 )
 from gradwright.sweeps.reverse import (
     active_values,
@@ -102,8 +104,12 @@ def _differentiate(
     active = frozenset(active_values(ssa, checked.wrt))
     # repeated calls of the reverse become forward values, in scalar models only
     # (in an array model each would be a whole array held for the reverse)
+    scalar = not index.numpy_modules  # an array adjoint read twice would be shared
+    sweep = inline_adjoints(spread_reads(sweep, ssa.body) if scalar else sweep)
+    if scalar:
+        sweep = tuple_seeds(sweep, dict(ssa.tuple_sizes))
     sweep, ssa = reuse_values(
-        drop_dead_zeroing(inline_adjoints(sweep)), ssa, share=not index.numpy_modules
+        drop_dead_zeroing(sweep), ssa, share=not index.numpy_modules
     )
     if fitter is not None:
         sweep = plan_in_place(tidy(sweep, fitter), fitter)

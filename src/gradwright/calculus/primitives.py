@@ -188,6 +188,8 @@ _SPECS += [
     ),
     # a shape written out, (n, 5), for np.broadcast_to in the reverse sweep
     OpSpec("shape_tuple", "tuple", "", PREC_ATOM, 0, None),
+    # a helper's tuple result's adjoint, (x_bar, y_bar), its reverse's seed
+    OpSpec("seed_tuple", "tuple", "", PREC_ATOM, 0, None),
 ]
 
 OPS: dict[str, OpSpec] = {spec.name: spec for spec in _SPECS}

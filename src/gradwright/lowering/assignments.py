@@ -11,7 +11,13 @@ from gradwright.ir import (
     Const,
     Var,
 )
-from gradwright.lowering.base import _Reported, _Tuple, _Unbound, element_key
+from gradwright.lowering.base import (
+    UNPACKED,
+    _Reported,
+    _Tuple,
+    _Unbound,
+    element_key,
+)
 from gradwright.lowering.syntax import (
     _AUGMENTED_SYMBOLS,
     LIST_METHODS,
@@ -208,7 +214,7 @@ class AssignmentLowering:
     ) -> None:
         """``x, v = state`` where ``state`` holds a tuple (or list) of numbers
         written out in the function: its elements by position."""
-        container = self.expr(value, "values", None)
+        container = self.expr(value, UNPACKED, None)
         size = self.literal_size(container)
         if size is None:
             fail(

@@ -30,6 +30,9 @@ IN_PLACE = frozenset({"setitem", "append"})
 
 #: the loop flags' constants: one object each, so that an unchanged flag is
 #: recognised by identity (``a is b``) where paths merge
+#: the base name of what a tuple unpacking computes (``x, y = ...`` has no one
+#: name to go by)
+UNPACKED = "values"
 #: the base name of what a return gives (the generated function's ``value``)
 RESULT = "value"
 TRUE = Const("True", True)

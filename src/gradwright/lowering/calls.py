@@ -12,7 +12,7 @@ from gradwright.ir import (
     SSAFunction,
     Var,
 )
-from gradwright.lowering.base import _Reported, _Unbound
+from gradwright.lowering.base import UNPACKED, _Reported, _Unbound
 from gradwright.lowering.frontend import (
     ModuleIndex,
     check_function,
@@ -327,7 +327,10 @@ class CallLowering:
             if shapes.get(param.name.value) == "list":
                 args.append(self.list_argument(given, name, param.name.value))
             else:
-                args.append(self.scalar(self.expr(given, base, None), given))
+                # unpacked into several names, the call has no one name to go
+                # by: an argument is named for the parameter it is (polar_r)
+                named = f"{name}_{param.name.value}" if base == UNPACKED else base
+                args.append(self.scalar(self.expr(given, named, None), given))
         self.callees[name] = None
         result = lowered.result
         if result.is_tuple or result.values[0].shape == "list":

@@ -21,13 +21,16 @@ from gradwright.ir import (
     Const,
     ElementAdjoint,
     Expr,
+    Let,
     PopAdjoint,
     ReverseBranch,
     ReverseLoop,
     ReverseStmt,
     ReverseSweep,
     SpreadAdjoint,
+    Stmt,
     Var,
+    const,
     walk,
 )
 
@@ -347,3 +350,213 @@ def drop_dead_zeroing(sweep: ReverseSweep) -> ReverseSweep:
                 live.add(roots.get(inner.root, inner.root))
         out.append(stmt)
     return replace(sweep, statements=tuple(reversed(out)))
+
+
+def _writes(stmt: ReverseStmt) -> set[Var]:
+    """The adjoints a statement of a block writes, nested blocks included (a list
+    adjoint by its root)."""
+    written: set[Var] = set()
+    for inner in _flatten([stmt]):
+        if isinstance(inner, AdjointAssign):
+            written.add(inner.var)
+        elif isinstance(inner, (ElementAdjoint, SpreadAdjoint)):
+            written.add(inner.root)
+        elif isinstance(inner, PopAdjoint):
+            written |= {inner.root} | ({inner.var} if inner.var else set())
+        elif isinstance(inner, CallAdjoint):
+            written |= set(inner.parts)
+    return written
+
+
+def _bars(expr: Expr) -> set[Var]:
+    return {n.var for n in walk(expr) if isinstance(n, Bar)}
+
+
+def tuple_seeds(sweep: ReverseSweep, sizes: dict[Var, int]) -> ReverseSweep:
+    """``p_bar = [0.0] * 2``, ``p_bar[1] += y_bar``, ``p_bar[0] += x_bar``, then
+    ``h_adjoint(..., seed=p_bar)``: the seed is ``(x_bar, y_bar)``, no list made.
+
+    For a helper's tuple result whose adjoint list nothing else touches: each
+    element's contributions (constant indices, summed in their order) move to the
+    call, which they reach in the same block past statements that write none of
+    the adjoints they read (no loop or branch between: a loop's reverse restores
+    forward values into shared names)."""
+    flat = list(_flatten(sweep.statements))
+    touching: Counter[Var] = Counter()
+    for stmt in flat:
+        found: set[Var] = set()
+        if isinstance(stmt, (ElementAdjoint, SpreadAdjoint, PopAdjoint)):
+            found.add(stmt.root)
+        for expr in _exprs(stmt):
+            found |= {v for v in _bars(expr) if v in sizes}
+        touching.update(found)
+    moved = set(sweep.moved)
+    made: set[Var] = set()
+
+    def block(statements: tuple[ReverseStmt, ...]) -> tuple[ReverseStmt, ...]:
+        out = list(statements)
+        for at, stmt in enumerate(statements):
+            if isinstance(stmt, ReverseBranch):
+                out[at] = replace(
+                    stmt, then=block(stmt.then), orelse=block(stmt.orelse)
+                )
+            elif isinstance(stmt, ReverseLoop):
+                out[at] = replace(stmt, body=block(stmt.body))
+        for at, stmt in enumerate(statements):
+            if not isinstance(stmt, CallAdjoint) or not isinstance(stmt.seed, Bar):
+                continue
+            root = stmt.seed.var
+            if root not in sizes or root in moved or root not in sweep.list_roots:
+                continue
+            parts = _seed_parts(statements[:at], root, sizes[root])
+            if parts is None or touching[root] != len(parts[1]) + 1:
+                continue
+            elements, used = parts
+            for k in used:
+                out[k] = None  # type: ignore[call-overload]
+            out[at] = replace(stmt, seed=Apply("seed_tuple", elements))
+            made.add(root)
+        return tuple(s for s in out if s is not None)
+
+    statements = block(sweep.statements)
+    if not made:
+        return sweep
+    roots = tuple(r for r in sweep.list_roots if r not in made)
+    return replace(sweep, statements=statements, list_roots=roots)
+
+
+def _seed_parts(
+    before: tuple[ReverseStmt, ...], root: Var, size: int
+) -> tuple[tuple[Expr, ...], list[int]] | None:
+    """The elements of ``root``'s adjoint at the end of ``before`` (a block's
+    statements up to a call that reads it), and the positions of the statements
+    that make them; None unless they can move to the call."""
+    contributions: list[tuple[int, int, Expr]] = []
+    written: set[Var] = set()  # written after the contributions met so far
+    for at in range(len(before) - 1, -1, -1):
+        stmt = before[at]
+        if isinstance(stmt, ElementAdjoint) and stmt.root == root:
+            k = number(stmt.index)
+            if (
+                not stmt.accumulate
+                or not isinstance(k, int)
+                or isinstance(k, bool)
+                or not 0 <= k < size
+                or _reads_list_adjoint(stmt.expr)
+                or _bars(stmt.expr) & written
+            ):
+                return None
+            contributions.append((at, k, stmt.expr))
+            continue
+        if not isinstance(stmt, (AdjointAssign, ElementAdjoint)):
+            break  # a loop, branch, call, pop or spread: the elements stop here
+        written |= _writes(stmt)
+    elements: list[Expr] = [const(0.0)] * size
+    filled: list[Expr | None] = [None] * size
+    for _, k, expr in reversed(contributions):  # in the sweep's order
+        previous = filled[k]
+        filled[k] = expr if previous is None else Apply("add", (previous, expr))
+    for k, expr in enumerate(filled):
+        if expr is not None:
+            elements[k] = simplify(expr)
+    return tuple(elements), [at for at, _, _ in contributions]
+
+
+def spread_reads(sweep: ReverseSweep, body: tuple[Stmt, ...]) -> ReverseSweep:
+    """``s = sum(ts)``'s reverse adds ``s_bar`` to every element of ``ts_bar``,
+    then the reverse of each append pops its element: when nothing else touches
+    ``ts_bar``, each pop reads ``s_bar`` itself and no adjoint list is made.
+
+    The spreads (``each=False``, unconditional) are in the reverse of the block
+    that makes the list (``body``, the function's), so one list's adjoint lives
+    there (a list made before a loop and summed in it gathers every iteration's
+    sums), and come before every statement holding a pop, in the sweep's order;
+    ``s_bar`` is the adjoint of the sum's own value, final where its spread is
+    (run before inlining). Scalar models only: an array adjoint read twice
+    would be shared."""
+    roots = dict(sweep.roots)
+    kept = {roots.get(v, v) for v in sweep.wrt} | set(sweep.moved)
+    touching: Counter[Var] = Counter()
+    for stmt in _flatten(sweep.statements):
+        found: set[Var] = set()
+        if isinstance(stmt, (ElementAdjoint, SpreadAdjoint, PopAdjoint)):
+            found.add(roots.get(stmt.root, stmt.root))
+        for expr in _exprs(stmt):
+            found |= {roots.get(v, v) for v in _bars(expr) if v.shape == "list"}
+        touching.update(found)
+    pops: Counter[Var] = Counter(
+        roots.get(s.root, s.root)
+        for s in _flatten(sweep.statements)
+        if isinstance(s, PopAdjoint)
+    )
+    done: set[Var] = set()
+
+    def block(
+        statements: tuple[ReverseStmt, ...], forward: tuple[Stmt, ...]
+    ) -> tuple[ReverseStmt, ...]:
+        out = list(statements)
+        for at, stmt in enumerate(statements):
+            if isinstance(stmt, ReverseBranch):
+                sides = (
+                    (stmt.branch.then, stmt.branch.orelse) if stmt.branch else ((), ())
+                )
+                then, orelse = block(stmt.then, sides[0]), block(stmt.orelse, sides[1])
+                out[at] = replace(stmt, then=then, orelse=orelse)
+            elif isinstance(stmt, ReverseLoop):
+                out[at] = replace(stmt, body=block(stmt.body, stmt.loop.body))
+        made = {s.target for s in forward if isinstance(s, Let)}
+        spreads: dict[Var, list[int]] = {}
+        for at, stmt in enumerate(statements):
+            if isinstance(stmt, SpreadAdjoint) and not stmt.each:
+                spreads.setdefault(roots.get(stmt.root, stmt.root), []).append(at)
+        for root, places in spreads.items():
+            if root in kept or root not in sweep.list_roots or root not in made:
+                continue
+            last = places[-1]
+            later = [
+                s
+                for s in statements[last + 1 :]
+                for s in _flatten([s])
+                if isinstance(s, PopAdjoint) and roots.get(s.root, s.root) == root
+            ]
+            if len(places) + pops[root] != touching[root] or len(later) != pops[root]:
+                continue
+            value: Expr | None = None
+            for at in places:
+                expr = statements[at].expr  # type: ignore[union-attr]
+                value = expr if value is None else Apply("add", (value, expr))
+                out[at] = None  # type: ignore[call-overload]
+            for at in range(last + 1, len(out)):
+                out[at] = _read_spread(out[at], root, value, roots)  # type: ignore[arg-type]
+            done.add(root)
+        return tuple(s for s in out if s is not None)
+
+    statements = block(sweep.statements, body)
+    if not done:
+        return sweep
+    list_roots = tuple(r for r in sweep.list_roots if r not in done)
+    return replace(sweep, statements=statements, list_roots=list_roots)
+
+
+def _read_spread(
+    stmt: ReverseStmt, root: Var, value: Expr, roots: dict[Var, Var]
+) -> ReverseStmt | None:
+    """``stmt`` with each pop of ``root``'s adjoint reading ``value`` instead."""
+    if isinstance(stmt, PopAdjoint) and roots.get(stmt.root, stmt.root) == root:
+        if stmt.var is None:
+            return None
+        return AdjointAssign(stmt.var, value, stmt.accumulate, stmt.origin)
+    if isinstance(stmt, ReverseBranch):
+        then = _read_spreads(stmt.then, root, value, roots)
+        orelse = _read_spreads(stmt.orelse, root, value, roots)
+        return replace(stmt, then=then, orelse=orelse)
+    if isinstance(stmt, ReverseLoop):
+        return replace(stmt, body=_read_spreads(stmt.body, root, value, roots))
+    return stmt
+
+
+def _read_spreads(
+    statements: tuple[ReverseStmt, ...], root: Var, value: Expr, roots: dict[Var, Var]
+) -> tuple[ReverseStmt, ...]:
+    changed = (_read_spread(s, root, value, roots) for s in statements)
+    return tuple(s for s in changed if s is not None)
