@@ -399,6 +399,14 @@ CASES = [
         "return np.sum(np.stack([x, x * w], axis=-1) ** 3)",
         data(x=normal((2, 3)), w=normal((2, 3))),
     ),
+    ArrayCase(
+        "array-of-active-parts",
+        "np.array",
+        ("x", "w"),
+        "m = np.array([[x[0] * w[1], np.sum(x)], [w[0], x[1] * x[2]]])\n"
+        "return np.sum(np.array([w, x]) ** 2) + np.sum(m @ m)",
+        data(x=normal((3,)), w=normal((3,))),
+    ),
 ]
 
 

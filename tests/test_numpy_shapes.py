@@ -128,6 +128,23 @@ CASES = [
         {"a": (3, 4), "b": (2, 4)},
         [[(3, 4), (2, 4)]],
     ),
+    (  # np.array of numbers that depend on the parameters, nested lists too
+        numpy_model(
+            "a, b",
+            "tip = np.array([np.sum(a * np.cos(b)), np.sum(a * np.sin(b))])\n"
+            "m = np.array([[a[0], 2.0 * b[1]], [b[0] * b[1], 1.0]])\n"
+            "return np.sum((tip - np.array([1.2, 0.7])) ** 2) + np.sum(m @ tip)",
+        ),
+        {"a": (3,), "b": (3,)},
+        [[(3,), (3,)]],
+    ),
+    (  # np.array of arrays: stacked rows; a module-level table of literal shape
+        "import numpy as np\n\nW = np.array([[0.5, -1.0], [2.0, 0.25], [1.0, 1.0]])"
+        "\n\n\ndef f(a, b):\n    rows = np.array([a * b, np.exp(a) - b])\n"
+        "    return np.mean(rows @ W.T)\n",
+        {"a": (2,), "b": (2,)},
+        [[(2,), (2,)]],
+    ),
     (  # a loop carrying an array
         numpy_model(
             "a, b", "for k in range(3):\n    a = a * b + 1.0\nreturn np.sum(a)"
@@ -242,9 +259,30 @@ def test_known_broadcasts_are_written_as_sums() -> None:
 
 
 def test_indexed_elements_and_slices_have_known_shapes() -> None:
-    for case in (CASES[12], CASES[13]):
+    for case in CASES[12:16]:
         text, _ = generate(*case[:2])
         assert "_gw_unbroadcast" not in text and "_gw_unmean" not in text, text
+
+
+def test_an_array_of_active_numbers_reads_like_hand_written_code() -> None:
+    text, _ = generate(*CASES[14][:2])
+    # the parts' adjoints are the elements of the array's adjoint
+    assert "tip_bar = 2.0 * " in text and "= tip_bar[0]" in text
+    # the constructor copied out of the return statement sits under its comment
+    forward = text.split("def f_grad")[1].split("# reverse sweep")[0]
+    assert "# return np.sum((tip - np.array([1.2, 0.7])) ** 2)" in forward
+
+
+def test_an_array_of_active_numbers_without_declared_shapes() -> None:
+    source = CASES[14][0]
+    _, generic = generate(source, None)
+    model: dict = {}
+    exec(compile(source, "<model>", "exec"), model)
+    args = (np.array([0.3, 1.1, 0.7]), np.array([0.2, -0.4, 0.9]))
+    value, grads = generic["f_grad"](*args)
+    for k in range(2):
+        # reference: Richardson-extrapolated central differences
+        assert_close_to_differences(model["f"], args, k, grads[k], value)
 
 
 def test_same_shapes_need_no_helper_even_undeclared() -> None:
@@ -397,3 +435,18 @@ def test_a_number_factor_moves_to_the_smaller_side_of_a_matrix_product() -> None
     # reference: the closed form 2 A^T (Ax - b) (The Matrix Cookbook, section 2.4;
     # recalled from memory)
     np.testing.assert_allclose(x_bar, 2.0 * A.T @ (A @ x - b), rtol=1e-13)
+
+
+def test_a_constructor_assigned_to_a_name_is_copied_once() -> None:
+    source = numpy_model(
+        "x", "z = np.zeros(3)\nw = np.linspace(0.0, 1.0, 3)\nreturn np.sum((x - z) * w)"
+    )
+    text, ns = generate(source, {"x": (3,)})
+    forward = text.split("def f_grad")[1].split("# reverse sweep")[0]
+    # as written, under the statement's own line: no `zeros = ...; z = zeros`
+    assert "    z = np.zeros(3)\n    w = np.linspace(0.0, 1.0, 3)\n" in forward
+    assert "_gw_unbroadcast" not in text  # literal sizes: known shapes
+    x = np.array([0.3, -1.2, 2.0])
+    value, (x_bar,) = ns["f_grad"](x)
+    # reference: d/dx sum((x - z) * w) = w, by hand
+    np.testing.assert_array_equal(x_bar, np.linspace(0.0, 1.0, 3))

@@ -42,7 +42,7 @@ from gradwright.sweeps.reverse import (
     reverse_sweep,
     walk_lets,
 )
-from gradwright.sweeps.shapes import Dim, ShapeTable, with_sizes
+from gradwright.sweeps.shapes import Dim, ShapeTable, literal_shape, with_sizes
 
 
 def compile_function(
@@ -88,7 +88,14 @@ def _differentiate(
     broadcasting = bool(index.numpy_modules) and role != "partials"
     fitter = None
     if broadcasting:
-        table = ShapeTable(ssa.params, ssa.body, declared, index.constants)
+        table = ShapeTable(
+            ssa.params,
+            ssa.body,
+            declared,
+            index.constants,
+            data_shapes(index),
+            index.numpy_modules,
+        )
         fitter = Fitter(table, sizes)
     sweep = reverse_sweep(
         ssa, checked.wrt, seeds, broadcasting, adjoint_helpers, fitter
@@ -493,3 +500,20 @@ def _collector_paused() -> Iterator[None]:
     finally:
         if was_enabled:
             gc.enable()
+
+
+def data_shapes(index: ModuleIndex) -> dict[str, tuple[Dim, ...]]:
+    """Module-level arrays bound once to a constructor of literal sizes
+    (``MASSES = np.array([1.0, 0.8])``): their shapes, read from the text."""
+    binders: dict[str, list[str]] = {}
+    for statement in index.statements:
+        for name in statement.binds:
+            binders.setdefault(name, []).append(statement.text)
+    shapes: dict[str, tuple[Dim, ...]] = {}
+    for name in sorted(index.data_names):
+        texts = binders.get(name, [])
+        if len(texts) == 1:
+            shape = literal_shape(texts[0], index.numpy_modules)
+            if isinstance(shape, tuple):
+                shapes[name] = shape
+    return shapes

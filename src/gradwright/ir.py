@@ -91,6 +91,9 @@ class Copied:
     #: written by the generator (``keys = list(D)``): the values it binds are
     #: never changed in place, so the reverse sweep may read them again
     fixed: bool = False
+    #: a part of a larger statement (``array = np.array([1.0, 2.0])`` taken out
+    #: of a return), printed under that statement's comment
+    part: bool = False
 
 
 @dataclass(frozen=True)

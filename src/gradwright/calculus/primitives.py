@@ -174,6 +174,8 @@ _SPECS += [
     OpSpec("npscatter", "scatter", "_gw_scatter", PREC_ATOM, 3, None),
     OpSpec("np.concatenate", "listcall", "np.concatenate", PREC_ATOM, 1, None),
     OpSpec("np.stack", "listcall", "np.stack", PREC_ATOM, 1, None),
+    # np.array([a, b, ...]) of values that depend on the --wrt parameters
+    OpSpec("np.array", "listcall", "np.array", PREC_ATOM, 1, None),
     OpSpec("np.vstack", "listcall", "np.vstack", PREC_ATOM, 1, None),
     OpSpec("np.hstack", "listcall", "np.hstack", PREC_ATOM, 1, None),
     *(

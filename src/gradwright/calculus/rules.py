@@ -258,6 +258,15 @@ def _stack(g: E, out: E, *args: E) -> tuple[E | None, ...]:
     return pieces + (None,) * (len(args) - len(parts))
 
 
+def _array_of(g: E, out: E, *parts: E) -> tuple[E, ...]:
+    # np.array([a, b, ...]) stacks its parts along a new first axis: part k's
+    # adjoint is g[k]
+    return tuple(
+        E(Apply("npindex", (g.node, Const("{}", None), Const(str(k), k))))
+        for k in range(len(parts))
+    )
+
+
 def _is_keyword_const(item: E) -> bool:
     node = item.node
     return isinstance(node, Const) and node.value is None and "=" in node.text
@@ -347,6 +356,7 @@ RULES.update(
         "npindex": _index,
         "np.concatenate": _concatenate,
         "np.stack": _stack,
+        "np.array": _array_of,
     }
 )
 

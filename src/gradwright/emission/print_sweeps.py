@@ -10,7 +10,7 @@ from __future__ import annotations
 
 from collections.abc import Iterator
 
-from gradwright.calculus.algebra import negated
+from gradwright.calculus.algebra import negated, simplify
 from gradwright.emission.copied import copied_lines
 from gradwright.emission.formatting import format_statement
 from gradwright.emission.layout import Layout, reverse_bounds
@@ -298,7 +298,10 @@ class _Emitter:
             self.reads(self.value(arg))
         for _, var in copied.writes:
             trace.write(self.namer.name(var), self.key(var))
-        out.last_origin[depth] = let.origin  # the statement quotes itself
+        if copied.part:  # `array = np.array([1.0, 2.0])` out of a larger statement
+            out.comment(let.origin, depth)
+        else:
+            out.last_origin[depth] = let.origin  # the statement quotes itself
         out.code(text, depth)
 
     def save(self, loop: Loop, var: Var, depth: int, out: _Lines) -> None:
@@ -582,7 +585,8 @@ class _Emitter:
                     and stmt.var not in self.layout.sweep.in_place
                 ):
                     # arrays: a new sum, never an in-place add into a shared array
-                    operator, expr = "=", Apply("add", (Bar(stmt.var), expr))
+                    operator = "="
+                    expr = simplify(Apply("add", (Bar(stmt.var), expr)))
                 value = self.rprint(expr)
                 if operator == "=" and bar == value:
                     # the carried adjoint was updated in place

@@ -481,30 +481,30 @@ class InactiveLowering:
             return copied
 
     def copied_expression(
-        self, node: cst.BaseExpression, base: str, quiet: bool = False
+        self,
+        node: cst.BaseExpression,
+        base: str,
+        quiet: bool = False,
+        target: Var | None = None,
     ) -> Var | None:
         """``base = <node>`` copied as written: an expression that reads no active
         value (an array constructor, a test on strings). With ``quiet``, None
         when it cannot be copied; else a located error."""
         module = as_module(cst.Expr(node))
         reads: dict[str, Atom] = {}
-        sizes = _size_reads(module)
+        active = self.active_read(node)
+        if active is not None:
+            if quiet:
+                return None
+            fail(
+                f"this expression reads '{active.value}', which may depend on the"
+                " --wrt parameters, but it has no derivative here",
+                self.index.locate(active),
+                "build the array from constants (np.zeros(n), np.linspace(a, b,"
+                " n)) and combine it with active values by arithmetic",
+            )
         for name in statement_names(module).reads:
             bound = self.env.get(name.value)
-            if isinstance(bound, (_Unbound, _Tuple)) or (
-                isinstance(bound, (Var, Const))
-                and id(name) not in sizes
-                and not self.never_active(bound)
-            ):
-                if quiet:
-                    return None
-                fail(
-                    f"this expression reads '{name.value}', which may depend on the"
-                    " --wrt parameters, but it has no derivative here",
-                    self.index.locate(name),
-                    "build the array from constants (np.zeros(n), np.linspace(a, b,"
-                    " n)) and combine it with active values by arithmetic",
-                )
             if isinstance(bound, (Var, Const)):
                 reads[name.value] = bound
             elif name.value in self.index.module_names:
@@ -514,10 +514,13 @@ class InactiveLowering:
             if quiet:
                 return None
             fail(problem[1], self.index.locate(problem[0]), problem[2] or None)
-        text = f"{base} = " + module.code.strip()
-        var = self.new_var(base, "local")
+        # the statement's own target when it is one (`z = np.zeros(3)`), else a
+        # name of its own (`array = np.array([1.0, 2.0])` out of a return)
+        var = target if target is not None else self.new_var(base, "local")
+        text = f"{var.base} = " + module.code.strip()
         statement = self.new_var("copied", "temp")
-        copied = Copied(text, tuple(reads), ((base, var),))
+        part = target is None
+        copied = Copied(text, tuple(reads), ((var.base, var),), part=part)
         self.blocks[-1].append(
             Let(statement, "copied", tuple(reads.values()), self.origin, copied)
         )
@@ -526,6 +529,22 @@ class InactiveLowering:
         self.opaque.add(var)
         self.fresh.discard(var)
         return var
+
+    def active_read(self, node: cst.BaseExpression) -> cst.Name | None:
+        """The first name ``node`` reads that may hold an active value (or one
+        that cannot be copied: a tuple, a name unbound on some path), else None;
+        reading an array only for its size does not count."""
+        module = as_module(cst.Expr(node))
+        sizes = _size_reads(module)
+        for name in statement_names(module).reads:
+            bound = self.env.get(name.value)
+            if isinstance(bound, (_Unbound, _Tuple)) or (
+                isinstance(bound, (Var, Const))
+                and id(name) not in sizes
+                and not self.never_active(bound)
+            ):
+                return name
+        return None
 
     def never_active(self, atom: Atom) -> bool:
         """``is_inert``, or else no path of the statements lowered so far leads

@@ -103,8 +103,12 @@ class NumpyLowering:
                 name, receiver = _METHODS[method], func.value
         if name is None:
             return None
+        if name == "array" and receiver is None:
+            listed = self.active_array(node, base, target)
+            if listed is not None:
+                return listed
         if name in _CONSTRUCTORS:  # inactive: copied (lowering/inactive.py)
-            return self.copied_expression(node, name)
+            return self.copied_expression(node, name, target=target)
         if name not in NUMPY_FUNCTIONS:
             fail(
                 f"np.{name} is not supported",
@@ -238,6 +242,39 @@ class NumpyLowering:
         return self.emit(
             "reshape", (value, *dims), target or self.new_var(base, "temp")
         )
+
+    def active_array(
+        self, node: cst.Call, base: str, target: Var | None
+    ) -> Atom | None:
+        """``np.array([a, b, ...])`` (lists nested to any depth) reading active
+        values: each list becomes an ``np.array`` of its lowered elements. None
+        when it reads no active value (copied as written, like np.zeros)."""
+        if (
+            len(node.args) != 1
+            or node.args[0].keyword is not None
+            or not isinstance(node.args[0].value, (cst.List, cst.Tuple))
+            or self.active_read(node) is None
+        ):
+            return None
+        return self._array_of(node.args[0].value, base, target)
+
+    def _array_of(
+        self, node: cst.List | cst.Tuple, base: str, target: Var | None
+    ) -> Atom:
+        parts = []
+        for element in node.elements:
+            if isinstance(element, cst.StarredElement):
+                fail(
+                    "a starred element in np.array([...]) is not supported",
+                    self.index.locate(element),
+                    "write each element out, or use np.concatenate([a, b])",
+                )
+            value = element.value
+            if isinstance(value, (cst.List, cst.Tuple)):
+                parts.append(self._array_of(value, base, None))
+            else:
+                parts.append(self.expr(value, base, None))
+        return self.emit("np.array", tuple(parts), target or self.new_var(base, "temp"))
 
     def numpy_subscript(
         self, node: cst.Subscript, base: str, target: Var | None

@@ -29,6 +29,7 @@ from gradwright.sweeps.shapes import (
     ShapeTable,
     axis_text,
     broadcast,
+    index_shape,
     keyword,
     matmul_shape,
     reduce_shape,
@@ -113,6 +114,12 @@ class Fitter:
             return tuple(dims)
         if op == "np.broadcast_to":
             return self.shape(args[1])
+        if op == "npindex":  # g[k]: a part of np.array([...])'s adjoint
+            pattern = args[1].text if isinstance(args[1], Const) else ""
+            whole = self.shape(args[0])
+            if whole is None:
+                return None
+            return index_shape(whole, pattern, args[2:], self.table.atom)
         if op in _SHAPED_LIKE:  # helpers that return an array of one operand's shape
             return self.table.atom(args[_SHAPED_LIKE[op]])
         shapes = [self.shape(a) for a in args if not _is_keyword(a)]

@@ -21,6 +21,7 @@ products, the generic helpers) get ``np.broadcast_to(g, shape)`` first.
 
 from __future__ import annotations
 
+import re
 from collections.abc import Callable, Iterable, Mapping
 from dataclasses import dataclass, replace
 
@@ -32,6 +33,7 @@ from gradwright.ir import (
     Atom,
     Branch,
     Const,
+    Copied,
     Expr,
     Let,
     Loop,
@@ -154,10 +156,14 @@ class ShapeTable:
         declared: Mapping[str, tuple[Dim, ...]],
         numbers: Iterable[str] = (),
         data: Mapping[str, tuple[Dim, ...]] | None = None,
+        numpy_names: frozenset[str] = frozenset(),
     ) -> None:
         self.numbers = frozenset(numbers)
         self.data = dict(data or {})
+        self.numpy_names = numpy_names
         self.of: dict[Var, Shape] = {}
+        #: copied statements (``array = np.array([1.0, 2.0])``) by their value
+        self.copied: dict[Var, Copied] = {}
         for p in params:
             self.of[p] = declared[p.base] if p.base in declared else Like(p.uid)
         self._block(body)
@@ -168,9 +174,8 @@ class ShapeTable:
         if isinstance(atom, Const):
             if atom.value is not None or atom.text in self.numbers:
                 return ()
-            if atom.text in self.data:
-                return self.data[atom.text]
-            return Like(atom.text)
+            found = _data_shape(atom.text, self.data)
+            return found if found is not None else Like(atom.text)
         return Like(id(atom))
 
     def _block(self, statements: tuple) -> None:
@@ -214,6 +219,14 @@ class ShapeTable:
 
     def _let(self, let: Let) -> Shape | None:
         op, args = let.op, let.args
+        if op == "copied" and let.copied is not None:
+            self.copied[let.target] = let.copied
+            return None
+        if op == "written":
+            copied = self.copied.get(args[0]) if isinstance(args[0], Var) else None
+            if copied is not None and len(copied.writes) == 1:
+                return literal_shape(copied.text, self.numpy_names)
+            return None
         shapes = [self.atom(a) for a in args if not _is_keyword(a)]
         if op in _NUMBER:
             return ()
@@ -236,6 +249,23 @@ class ShapeTable:
             a, b = shapes
             if isinstance(a, tuple) and isinstance(b, tuple) and len(a) == len(b) == 1:
                 return a + b
+            return None
+        if op in ("np.cumsum", "np.diff") and isinstance(shapes[0], tuple):
+            if op == "np.cumsum":  # flattened (no axis=)
+                count = 1
+                for d in shapes[0]:
+                    if not isinstance(d, int):
+                        return shapes[0] if len(shapes[0]) == 1 else None
+                    count *= d
+                return (count,)
+            last = shapes[0][-1] if shapes[0] else None  # along the last axis
+            if isinstance(last, int) and last >= 1:
+                return (*shapes[0][:-1], last - 1)
+            return None
+        if op == "np.array":  # parts of one known shape, stacked on a new axis
+            first = shapes[0] if shapes else None
+            if isinstance(first, tuple) and all(p == first for p in shapes):
+                return (len(shapes), *first)
             return None
         if op == "npindex":
             pattern = args[1].text if isinstance(args[1], Const) else ""
@@ -288,6 +318,89 @@ def index_shape(
             return None
         out.append(len(range(dim)[slice(*bounds)]))
     return (*out, *array[len(pieces) :])
+
+
+def _data_shape(text: str, data: Mapping[str, tuple[Dim, ...]]) -> Shape | None:
+    """The shape of a read of module data as lowering writes it: ``W``, ``W.T``,
+    ``W[0]`` (constant indices, one level at a time)."""
+    match = re.fullmatch(r"(\w+)((?:\.T|\[-?\d+\])*)", text)
+    if match is None or match.group(1) not in data:
+        return None
+    shape: tuple[Dim, ...] = data[match.group(1)]
+    for step in re.findall(r"\.T|\[-?\d+\]", match.group(2)):
+        if step == ".T":
+            shape = tuple(reversed(shape))
+        elif shape:
+            shape = shape[1:]
+        else:
+            return None
+    return shape
+
+
+def literal_shape(statement: str, numpy_names: Iterable[str]) -> Shape | None:
+    """The shape of the array ``NAME = <constructor>`` makes, read from its text
+    (never run): ``np.array`` of nested lists of number literals, ``np.zeros`` /
+    ``np.ones`` / ``np.full`` of literal sizes, ``np.linspace(a, b, k)``,
+    ``np.arange(n)``; None for anything else."""
+    import ast
+
+    try:
+        tree = ast.parse(statement.strip())
+    except SyntaxError:
+        return None
+    if len(tree.body) != 1 or not isinstance(tree.body[0], ast.Assign):
+        return None
+    call = tree.body[0].value
+    if not (
+        isinstance(call, ast.Call)
+        and isinstance(call.func, ast.Attribute)
+        and isinstance(call.func.value, ast.Name)
+        and call.func.value.id in set(numpy_names)
+        and not call.keywords
+        and call.args
+    ):
+        return None
+    name, first = call.func.attr, call.args[0]
+    if name == "array" and len(call.args) == 1:
+        return _nested_shape(first)
+    if name in ("zeros", "ones", "full") and len(call.args) == (
+        2 if name == "full" else 1
+    ):
+        items = first.elts if isinstance(first, ast.Tuple) else [first]
+        sizes = [_int_literal(item) for item in items]
+        return tuple(sizes) if all(n is not None for n in sizes) else None  # type: ignore[arg-type]
+    if name == "linspace" and len(call.args) == 3:
+        count = _int_literal(call.args[2])
+        return (count,) if count is not None else None
+    if name == "arange" and len(call.args) == 1:
+        stop = _int_literal(first)
+        return (max(stop, 0),) if stop is not None else None
+    return None
+
+
+def _int_literal(node: object) -> int | None:
+    import ast
+
+    if isinstance(node, ast.Constant) and type(node.value) is int:
+        return node.value
+    return None
+
+
+def _nested_shape(node: object) -> tuple[int, ...] | None:
+    """The shape of nested lists of number literals (rectangular), else None."""
+    import ast
+
+    if isinstance(node, ast.UnaryOp) and isinstance(node.op, (ast.USub, ast.UAdd)):
+        node = node.operand
+    if isinstance(node, ast.Constant):
+        ok = type(node.value) in (int, float)
+        return () if ok else None
+    if not isinstance(node, (ast.List, ast.Tuple)) or not node.elts:
+        return None
+    inner = [_nested_shape(e) for e in node.elts]
+    if inner[0] is None or any(i != inner[0] for i in inner):
+        return None
+    return (len(inner), *inner[0])
 
 
 def _is_keyword(atom: Atom) -> bool:
