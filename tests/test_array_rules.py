@@ -400,6 +400,14 @@ CASES = [
         data(x=normal((2, 3)), w=normal((2, 3))),
     ),
     ArrayCase(
+        "copy-then-change-in-place",
+        "ndcopy",
+        ("x", "w"),
+        "y = x.copy()\ny += w * y\nz = np.copy(y)\nz *= x\n"
+        "return np.sum(z * y) + np.sum(x)",
+        data(x=normal((2, 3)), w=normal((2, 3))),
+    ),
+    ArrayCase(
         "array-of-active-parts",
         "np.array",
         ("x", "w"),

@@ -168,6 +168,8 @@ _SPECS += [
     _infix("matmul", "@", PREC_MUL),
     OpSpec("T", "attr", "T", PREC_ATOM, 1, 1),
     OpSpec("reshape", "method", "reshape", PREC_ATOM, 1, None),
+    # x.copy() / np.copy(x) of an array: a new array, never a view
+    OpSpec("ndcopy", "method", "copy", PREC_ATOM, 1, 1),
     OpSpec("shape_at", "index", "{0}.shape[{1}]", PREC_ATOM, 2, 2),
     # x[...] with a fixed pattern of indices and slices: args (x, pattern, *values)
     OpSpec("npindex", "index", "", PREC_ATOM, 2, None),

@@ -357,6 +357,7 @@ RULES.update(
         "np.concatenate": _concatenate,
         "np.stack": _stack,
         "np.array": _array_of,
+        "ndcopy": lambda g, out, x: (g,),
     }
 )
 
@@ -411,7 +412,8 @@ RULES["float"] = lambda g, out, x: (g,)
 
 #: primitives that only array (NumPy) models have; the rest are the scalar rules
 ARRAY_OPS: frozenset[str] = frozenset(
-    {k for k in RULES if k.startswith("np.")} | {"matmul", "T", "reshape", "npindex"}
+    {k for k in RULES if k.startswith("np.")}
+    | {"matmul", "T", "reshape", "npindex", "ndcopy"}
 )
 SCALAR_OPS: frozenset[str] = frozenset(set(RULES) - ARRAY_OPS)
 

@@ -86,7 +86,7 @@ class NumpyLowering:
             f"the attribute .{node.attr.value} is not supported",
             self.index.locate(node),
             "supported on arrays: .T, .shape[k], .sum() .mean() .max() .min()"
-            " .prod() .dot() .reshape()",
+            " .prod() .dot() .reshape() .copy()",
         )
         raise AssertionError
 
@@ -99,6 +99,12 @@ class NumpyLowering:
             method = func.attr.value
             if method == "reshape":
                 return self.reshape(node, func.value, base, target)
+            if method == "copy" and not node.args:
+                # x.copy(): an array of its own, which the model may then change
+                value = self.expr(func.value, base, None)
+                return self.emit(
+                    "ndcopy", (value,), target or self.new_var(base, "temp")
+                )
             if method in _METHODS and self.numpy_name(func.value) is None:
                 name, receiver = _METHODS[method], func.value
         if name is None:
@@ -107,6 +113,9 @@ class NumpyLowering:
             listed = self.active_array(node, base, target)
             if listed is not None:
                 return listed
+        if name == "copy" and len(node.args) == 1 and node.args[0].keyword is None:
+            value = self.expr(node.args[0].value, base, None)
+            return self.emit("ndcopy", (value,), target or self.new_var(base, "temp"))
         if name in _CONSTRUCTORS:  # inactive: copied (lowering/inactive.py)
             return self.copied_expression(node, name, target=target)
         if name not in NUMPY_FUNCTIONS:

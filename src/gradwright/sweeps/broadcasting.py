@@ -52,7 +52,7 @@ _SHAPED_LIKE = {
     "npscatter": 1,
 }
 #: ops whose rules read their incoming adjoint elementwise (it may be smaller)
-SMALL_OK = _ELEMENTWISE | {"copy"}
+SMALL_OK = _ELEMENTWISE | {"copy", "ndcopy"}
 
 
 class Fitter:

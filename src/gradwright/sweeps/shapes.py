@@ -58,7 +58,7 @@ Shape = tuple[Dim, ...] | Like
 #: one-argument primitives whose result has the argument's shape (NumPy's
 #: elementwise functions; the scalar rules' functions print as NumPy's)
 _SAME = frozenset(
-    {"neg", "pos", "not", "copy", "abs"}
+    {"neg", "pos", "not", "copy", "ndcopy", "abs"}
     | {op for op in ELEMENTWISE_OPS - SCALAR_OPS if OPS[op].max_args == 1}
 )
 #: primitives whose operands broadcast against each other
