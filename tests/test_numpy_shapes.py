@@ -450,3 +450,19 @@ def test_a_constructor_assigned_to_a_name_is_copied_once() -> None:
     value, (x_bar,) = ns["f_grad"](x)
     # reference: d/dx sum((x - z) * w) = w, by hand
     np.testing.assert_array_equal(x_bar, np.linspace(0.0, 1.0, 3))
+
+
+def test_np_where_is_printed_as_a_call_without_extra_parentheses() -> None:
+    source = numpy_model(
+        "x, lo",
+        "y = np.clip(x * 2.0, -1.0, 1.0)\nz = np.clip(x, lo, 3.0)\n"
+        "return np.sum(y * y) + np.sum(z)",
+    )
+    text, ns = generate(source, {"x": ("n",), "lo": ()}, wrt=["x"])
+    assert "x_bar += 2.0 * np.where(" in text and "* (np.where(" not in text
+    x = np.array([-0.7, 0.1, 0.3, 2.0, 3.5])
+    value, (x_bar,) = ns["f_grad"](x, 0.2)
+    model: dict = {}
+    exec(compile(source, "<model>", "exec"), model)
+    # reference: Richardson-extrapolated central differences (no point on a kink)
+    assert_close_to_differences(model["f"], (x, 0.2), 0, x_bar, value)

@@ -57,6 +57,8 @@ class Printer:
         if isinstance(expr, Apply):
             if expr.op.startswith("call:"):
                 return PREC_ATOM
+            if expr.op == "ifexp" and self.where_call is not None:
+                return PREC_ATOM  # printed as a call: np.where(c, a, b)
             return OPS[expr.op].precedence
         if isinstance(expr, Const) and expr.text.startswith("-"):
             return PREC_UNARY
