@@ -207,6 +207,19 @@ def f(x):
         ["x"],
         [(0.9,)],
     ),
+    # a carried adjoint read negated (-z_bar) was substituted into the swap's
+    # start-of-iteration adjoint, then read after z_bar was updated: dz/dx was 0
+    "negated-carried-adjoint-in-a-swap": (
+        """
+def f(x, z):
+    t = x
+    for i in range(2):
+        t, z = z, 0.25 * i - t
+    return z + 0.5 * t
+""",
+        ["x", "z"],
+        [(1.0, -1.2)],
+    ),
 }
 
 

@@ -159,7 +159,9 @@ def inline_adjoints(sweep: ReverseSweep) -> ReverseSweep:
                     and expr.op == "neg"
                     and isinstance(expr.args[0], (Var, Const, Bar))
                 )
-                carried = isinstance(expr, Bar) and expr.var in carries
+                # the negated atom's too: -z_bar read after z_bar's update was wrong
+                bare = expr.args[0] if isinstance(expr, Apply) and atom else expr
+                carried = isinstance(bare, Bar) and bare.var in carries
                 if (
                     var not in keep
                     and not (var in headers and carried)
