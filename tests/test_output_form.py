@@ -496,3 +496,27 @@ def test_summed_list_adjoint_is_read_directly():
     _check_flat(PRICES, "present_value", args, [0, 1])
     _check_flat(PRICES, "running", (0.7, [0.3, 0.9, 0.6, 0.1]), [0, 1])
     _check_flat(PRICES, "nested", (0.8, [0.3, 0.9, 0.6, 0.1]), [0, 1])
+
+
+MEAN_CENTRED = """
+def spread_fit(gain, drift, readings):
+    est = readings[0]
+    resid = []
+    for z in readings:
+        pred = est + drift * 0.5
+        est = pred + gain * (z - pred)
+        resid.append(z - pred)
+    mean = sum(resid) / len(resid)
+    return sum((r - mean) ** 2 for r in resid) + 0.1 * gain * gain
+"""
+
+
+def test_a_mean_spread_over_a_list_is_computed_once():
+    text = gradwright.generate(MEAN_CENTRED, ["spread_fit"], wrt=["gain", "drift"])
+    _, reverse = _sweeps(text, "spread_fit")
+    # the same number goes to every element: one division, then the loop
+    assert "resid_bar_each = mean_bar / mean_1" in reverse
+    assert "resid_bar[resid_bar_index] += resid_bar_each" in reverse
+    args = (0.4, 0.3, [0.9, 1.3, 1.1, 1.8, 2.2])
+    # outside reference: mpmath central differences
+    _check_against_mpmath(MEAN_CENTRED, "spread_fit", args, [0, 1])

@@ -614,12 +614,17 @@ class _Emitter:
                 out.statement(stmt.origin, f"{bar}[{index}] {operator} {value}", depth)
             elif isinstance(stmt, SpreadAdjoint):
                 bar = self.namer.bar_name(stmt.root)
-                index = self.namer.fresh(f"{bar}_index")
-                out.statement(stmt.origin, f"for {index} in range(len({bar})):", depth)
                 value_expr = self.layout.cheap(stmt.expr)
                 self.reads(value_expr)
                 trace.read(bar, self.bar_key(stmt.root))
                 value = self.rprint(value_expr)
+                if not stmt.each and isinstance(value_expr, Apply):
+                    # the same number for every element: computed once
+                    each = self.namer.claim(f"{bar}_each")
+                    out.statement(stmt.origin, f"{each} = {value}", depth)
+                    value = each
+                index = self.namer.claim(f"{bar}_index")
+                out.statement(stmt.origin, f"for {index} in range(len({bar})):", depth)
                 if stmt.each:
                     value = f"{value}[{index}]"
                 out.code(f"{bar}[{index}] += {value}", depth + 1)
