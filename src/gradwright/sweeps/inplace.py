@@ -40,6 +40,7 @@ _FRESH = ELEMENTWISE_OPS | {
     "np.dot",
     "np.outer",
     "np.sum",
+    "np.einsum",
     "lt",
     "le",
     "gt",
