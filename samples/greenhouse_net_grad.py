@@ -2,7 +2,7 @@
 # source: samples/greenhouse_net.py
 # source sha256: f94a505cbabce5a779320a9a523463a3af5a29e82a9d607fbc7c2942e6341334
 # command: gradwright gen samples/greenhouse_net.py humidity_loss --wrt W1,b1,w2,b2 --shape W1=4,h --shape b1=h --shape 'b2=()' --shape features=n,4 --shape humidity=n --shape w2=h -o samples/greenhouse_net_grad.py
-# output sha256: 8b9f6528ba375ee1ad16da1622d99b392e6d4faa848b94002cc8700679e99006
+# output sha256: cbdee35b4c4e22fc68570ebdb347e559afc3aa12d55117e235d74988f3e0b64a
 
 import numpy as np
 
@@ -88,7 +88,7 @@ def humidity_loss_grad(W1, b1, w2, b2, features, humidity):
     hidden_bar = np.outer(err_bar, w2)
     w2_bar += hidden.T @ err_bar
     # hidden = np.tanh(features @ W1 + b1)
-    hidden_bar_1 = hidden_bar * (1.0 - hidden * hidden)
-    b1_bar = np.einsum("ij->j", hidden_bar_1)
-    W1_bar += features.T @ hidden_bar_1
+    hidden_bar *= 1.0 - hidden * hidden
+    b1_bar = np.einsum("ij->j", hidden_bar)
+    W1_bar += features.T @ hidden_bar
     return value, (W1_bar, b1_bar, w2_bar, _gw_shaped(b2_bar, b2))

@@ -195,7 +195,11 @@ def test_logistic_regression_reads_like_hand_written_code() -> None:
     # the mean's seed is the number -1.0 / n, taken out of the sum once
     assert "p_bar = (nll_2 / nll_3 - y / nll_1) / n\n" in reverse
     assert "w_bar = 0.02 * w" in reverse  # 0.01 * (w @ w): factors folded
-    assert "w_bar += X.T @ z_bar" in reverse  # in place: no other name has it
+    # the logistic's rule updates p's adjoint in place: p_bar is read
+    # no more, and no other name has its array
+    assert "p_bar *= p * p * p_1\n" in reverse
+    assert "z_bar" not in reverse  # the old form: a second array of n floats
+    assert "w_bar += X.T @ p_bar" in reverse  # in place: no other name has it
     assert "n = X.shape[0]" in text
 
 
@@ -246,6 +250,90 @@ def test_a_violated_declared_shape_is_a_clear_error() -> None:
     with pytest.raises(ValueError, match=r"y has shape \(6, 1\)"):
         ns["f_grad"](w, X, y.reshape(6, 1))  # the broadcast a wrong gradient needs
     assert ns["f"](w, X, y.reshape(6, 1)) is not None  # the primal stays as written
+
+
+TWO_LAYER = numpy_model(
+    "W1, b1, W2, b2, X, Y",
+    """\
+    H = np.tanh(X @ W1 + b1)
+    r = H @ W2 + b2 - Y
+    return np.mean(r * r)
+    """,
+)
+TWO_LAYER_SHAPES = {
+    "W1": (3, 4),
+    "b1": (4,),
+    "W2": (4, 1),
+    "b2": (1,),
+    "X": ("n", 3),
+    "Y": ("n", 1),
+}
+
+
+DEEP_NET = numpy_model(
+    "W1, W2, W3, X, Y",
+    """\
+    H1 = np.tanh(X @ W1)
+    H2 = np.tanh(H1 @ W2)
+    r = H2 @ W3 - Y
+    return np.sum(r * r)
+    """,
+)
+DEEP_NET_SHAPES = {
+    "W1": (3, 4),
+    "W2": (4, 4),
+    "W3": (4, 1),
+    "X": ("n", 3),
+    "Y": ("n", 1),
+}
+# (model, declared shapes, the update in place, what the old form printed)
+LENDING = [
+    (TWO_LAYER, TWO_LAYER_SHAPES, "H_bar *= 1.0 - H * H\n", "H_bar_1"),
+    (DEEP_NET, DEEP_NET_SHAPES, "H2_bar *= 1.0 - H2 * H2\n", "H2_bar_1"),
+]
+
+
+@pytest.mark.parametrize("case", range(len(LENDING)))
+def test_an_adjoint_read_no_more_lends_its_array(case: int) -> None:
+    source, shapes, update, old = LENDING[case]
+    wrt = [p for p in shapes if p not in ("X", "Y")]
+    text, ns = generate(source, shapes, wrt)
+    reverse = text.split("# reverse sweep")[1]
+    # tanh's rule reads H's adjoint once, elementwise, and nothing reads it after:
+    # the product goes into its array, not into a second (n, 4) array
+    assert update in reverse
+    assert old not in reverse  # the old form: H_bar_1 = H_bar * (1.0 - H * H)
+    g = np.random.default_rng(12 + case)
+    args = [
+        g.normal(size=tuple(6 if d == "n" else d for d in s)) for s in shapes.values()
+    ]
+    before = [a.copy() for a in args]
+    value, grads = ns["f_grad"](*args)
+    model: dict = {}
+    exec(compile(source, "<model>", "exec"), model)
+    for j in range(len(wrt)):
+        # reference: Richardson-extrapolated central differences of the model
+        assert_close_to_differences(model["f"], args, j, grads[j], value)
+    # no argument was written into, and no two arrays returned share memory
+    for arg, copy in zip(args, before, strict=True):
+        np.testing.assert_array_equal(arg, copy)
+    arrays = [*grads, *args]
+    for i, a in enumerate(arrays):
+        assert not any(np.shares_memory(a, b) for b in arrays[i + 1 :])
+
+
+def test_int_data_adjoints_are_not_updated_in_place() -> None:
+    # w_bar's first array is Y * X: int for int data, and += of floats into it
+    # would raise; it is summed into a new array instead
+    source = numpy_model(
+        "w, X, Y", "b = np.sum(w * w)\na = np.sum(w * X * Y)\nreturn a + b"
+    )
+    text, ns = generate(source, {"w": ("n",), "X": ("n",), "Y": ("n",)}, ["w"])
+    assert "w_bar = w_bar + 2.0 * w" in text
+    w, X, Y = np.array([0.5, 1.5]), np.array([1, 2]), np.array([3, 4])
+    _, (w_bar,) = ns["f_grad"](w, X, Y)
+    # reference by hand: d/dw (sum(w * X * Y) + sum(w * w)) = X * Y + 2 w
+    np.testing.assert_array_equal(w_bar, X * Y + 2.0 * w)
 
 
 def test_known_broadcasts_are_written_as_sums() -> None:

@@ -304,6 +304,10 @@ class ReverseSweep:
     in_place: frozenset[Var] = frozenset()
     #: wrt adjoints returned as they are (a new array of the parameter's shape)
     bare: frozenset[Var] = frozenset()
+    #: (adjoint, lender): the adjoint's first write is ``lender_bar op= rest``,
+    #: an update of the lender's array, which no statement reads again; its
+    #: expression is ``lender_bar op rest`` and both have one name
+    updates: tuple[tuple[Var, Var], ...] = ()
     #: list roots whose adjoint list a rebound loop-carried list hands over (not
     #: made of zeros where the list is made)
     moved: tuple[Var, ...] = ()

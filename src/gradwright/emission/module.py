@@ -162,6 +162,7 @@ def render_function(
 
     def lay_out_with(share_names: bool):  # noqa: ANN202
         namer = Namer(reserved)
+        namer.share_arrays(sweep.updates)
         for param in ssa.params:
             namer.name(param)
         for param in sweep.wrt:

@@ -20,6 +20,16 @@ class Namer:
         self.bar_names: dict[Var, str] = {}
         self.partial_names: dict[Var, str] = {}
         self.claimed_bare: set[str] = set()
+        #: adjoints that take over one array (``ReverseSweep.updates``), each
+        #: to the first of them, and the one name each such array has
+        self.same_array: dict[Var, Var] = {}
+        self.array_names: dict[Var, str] = {}
+
+    def share_arrays(self, updates: tuple[tuple[Var, Var], ...]) -> None:
+        """One name for the adjoints that take over one array in turn."""
+        for var, lender in updates:
+            first = self.same_array.setdefault(lender, lender)
+            self.same_array[var] = first
 
     def fresh(self, base: str) -> str:
         k = self.counters.get(base, 0)
@@ -53,12 +63,18 @@ class Namer:
 
     def bar_name(self, var: Var) -> str:
         known = self.bar_names.get(var)
+        first = self.same_array.get(var)
+        if known is None and first is not None and first in self.array_names:
+            known = self.bar_names[var] = self.array_names[first]
         if known is None and var.kind == "temp" and var not in self.names:
             # a temporary the forward sweep folded has no name of its own: its
             # adjoint is a numbered part of its variable's (r_bar_1), never a
             # value_4_bar beside no value_4
             known = self.bar_names[var] = self.fresh(f"{var.base}_bar")
-        return known or self._derived(var, "bar", self.bar_names)
+        known = known or self._derived(var, "bar", self.bar_names)
+        if first is not None:
+            self.array_names.setdefault(first, known)
+        return known
 
     def _derived(self, var: Var, suffix: str, table: dict[Var, str]) -> str:
         known = table.get(var)

@@ -11,6 +11,7 @@ from __future__ import annotations
 from collections.abc import Iterator
 
 from gradwright.calculus.algebra import negated, simplify
+from gradwright.calculus.primitives import OPS
 from gradwright.emission.copied import copied_lines
 from gradwright.emission.formatting import format_statement
 from gradwright.emission.layout import Layout, reverse_bounds
@@ -88,6 +89,8 @@ class _Emitter:
         self.trace = Trace()
         #: the saved lists a while loop's top-level saves append to
         self.appending: dict[Loop, set[str]] = {}
+        #: adjoints whose first write updates another's array in place
+        self.lenders = dict(layout.sweep.updates)
 
     # -- the record the layout check reads ----------------------------------------
 
@@ -579,7 +582,14 @@ class _Emitter:
                 operator = "+=" if stmt.accumulate else "="
                 bar = self.namer.bar_name(stmt.var)
                 expr = self.layout.cheap(stmt.expr)
-                if (
+                lender = self.lenders.get(stmt.var)
+                if lender is not None and not stmt.accumulate:
+                    # the lender's array updated in place (sweeps/inplace.py):
+                    # the one name both adjoints have
+                    assert isinstance(expr, Apply) and expr.args[0] == Bar(lender)
+                    operator, expr = OPS[expr.op].symbol + "=", expr.args[1]
+                    trace.read(bar, self.bar_key(lender))
+                elif (
                     stmt.accumulate
                     and self.layout.numpy
                     and stmt.var not in self.layout.sweep.in_place

@@ -1,13 +1,23 @@
 """Which array adjoints a NumPy model's reverse sweep may change in place.
 
 ``x_bar += g`` adds into the array ``x_bar`` holds; that is right only when no
-other name holds the same array. An adjoint qualifies when its shape is known to be
-its value's (so the sum does not grow it), every write to it is at the top of the
-sweep (no branch or loop decides which array it holds), its first write makes a
-new array (arithmetic, a NumPy function, a matrix product: not a copy of another
-name, a view or a helper's result) and no statement copies it into another name or
-takes a view of it. Such an adjoint of a ``wrt`` parameter is also returned as it
-is, without ``_gw_shaped`` making it an array of its own again.
+other name holds the same array. An adjoint is *unshared* when its shape is known
+to be its value's (so the sum does not grow it), every write to it is at the top
+of the sweep (no branch or loop decides which array it holds), its first write
+makes a new array (arithmetic, a NumPy function, a matrix product: not a copy of
+another name, a view or a helper's result) and no statement copies it into
+another name or takes a view of it. Such an adjoint of a ``wrt`` parameter is also
+returned as it is, without ``_gw_shaped`` making it an array of its own again.
+In-place arithmetic also needs a float array (``+=`` of floats into an int array
+is an error): only an adjoint whose first write surely makes floats takes it.
+
+An unshared float adjoint that no statement reads or writes after one that reads
+it elementwise, ``y_bar = x_bar * (1.0 - y * y)``, lends that statement its array:
+``x_bar *= 1.0 - y * y``, and ``y_bar`` is printed under ``x_bar``'s name from
+there on (``ReverseSweep.updates``). On a large array a fresh result costs more
+than the arithmetic (new pages are faulted in), and no adjoint array is shared:
+the lending adjoint is dead, and the array was never a parameter's or a forward
+value's.
 """
 
 from __future__ import annotations
@@ -20,8 +30,10 @@ from gradwright.ir import (
     Apply,
     Bar,
     CallAdjoint,
+    Const,
     ElementAdjoint,
     Expr,
+    PopAdjoint,
     ReverseBranch,
     ReverseLoop,
     ReverseStmt,
@@ -33,7 +45,8 @@ from gradwright.ir import (
 from gradwright.sweeps.broadcasting import Fitter
 
 #: ops whose result is a new array (or a number), never one of their operands
-_FRESH = ELEMENTWISE_OPS | {
+#: (``copy`` prints as the plain name)
+_FRESH = (ELEMENTWISE_OPS - {"copy"}) | {
     "ifexp",
     "matmul",
     "np.matmul",
@@ -65,6 +78,30 @@ _VIEWS = frozenset(
         "_gw_shaped",
     }
 )
+#: ops whose result is floats whatever their operands are
+_ALWAYS_FLOAT = frozenset(
+    {"div", "float", "np.mean"}
+    | {
+        op
+        for op in ELEMENTWISE_OPS
+        if op.removeprefix("np.")
+        in (
+            "exp exp2 expm1 log log2 log10 log1p sqrt cbrt sin cos tan sinh cosh tanh"
+            " asin acos atan asinh acosh atanh arcsin arccos arctan arcsinh arccosh"
+            " arctanh atan2 arctan2 hypot erf erfc"
+        ).split()
+    }
+)
+#: ops whose result is floats when an operand is (NumPy's type promotion)
+_PROMOTING = frozenset(
+    {"add", "sub", "mul", "neg", "pos", "abs", "np.abs", "np.absolute", "np.fabs"}
+    | {"np.square", "np.sum", "np.einsum", "matmul", "np.matmul", "np.dot"}
+    | {"np.outer", "np.maximum", "np.minimum", "np.clip", "np.where", "ifexp"}
+    | {"T", "np.broadcast_to", "np.expand_dims", "np.transpose"}
+)
+#: an elementwise operator whose left operand can be updated in place (``*=``)
+_UPDATES = frozenset({"mul", "add", "sub", "div"})
+_COMMUTE = frozenset({"mul", "add"})
 
 
 def _aliases(expr: Expr) -> set[Var]:
@@ -76,12 +113,83 @@ def _aliases(expr: Expr) -> set[Var]:
     return set()
 
 
+def _surely_float(expr: Expr, floats: set[Var]) -> bool:
+    """Whether ``expr`` evaluates to floats (an int or bool array otherwise may,
+    where a seed of 1.0 was folded away: ``x_bar = y * z`` of int data)."""
+    if isinstance(expr, Const):
+        return isinstance(expr.value, float)
+    if isinstance(expr, Bar):
+        return expr.var in floats
+    if isinstance(expr, Apply):
+        if expr.op in _ALWAYS_FLOAT:
+            return True
+        if expr.op in _PROMOTING:
+            return any(_surely_float(a, floats) for a in expr.args)
+    return False
+
+
 def _statements(stmt: ReverseStmt) -> list[ReverseStmt]:
     if isinstance(stmt, ReverseBranch):
         return [*stmt.then, *stmt.orelse]
     if isinstance(stmt, ReverseLoop):
         return list(stmt.body)
     return []
+
+
+def _mentions(stmt: ReverseStmt, var: Var) -> bool:
+    """Whether ``stmt`` (or a statement inside it) reads or writes ``var``'s
+    adjoint."""
+    if isinstance(stmt, AdjointAssign) and stmt.var == var:
+        return True
+    if isinstance(stmt, (ElementAdjoint, SpreadAdjoint, PopAdjoint)) and var in (
+        stmt.root,
+        getattr(stmt, "var", None),
+    ):
+        return True
+    if isinstance(stmt, CallAdjoint) and var in stmt.parts:
+        return True
+    exprs = [
+        getattr(stmt, name)
+        for name in ("expr", "index", "seed", "condition")
+        if hasattr(stmt, name)
+    ]
+    if isinstance(stmt, CallAdjoint):
+        exprs += list(stmt.args)
+    if any(Bar(var) == node for e in exprs for node in walk(e)):
+        return True
+    return any(_mentions(inner, var) for inner in _statements(stmt))
+
+
+def _factors(expr: Expr) -> list[Expr]:
+    if isinstance(expr, Apply) and expr.op == "mul":
+        return _factors(expr.args[0]) + _factors(expr.args[1])
+    return [expr]
+
+
+def _lending(expr: Expr, lenders: set[Var]) -> tuple[Var, Expr] | None:
+    """``expr`` as ``lender op rest`` with the lender's adjoint as left operand,
+    for the first adjoint of ``lenders`` it reads once: (lender, rewritten)."""
+    if not isinstance(expr, Apply) or expr.op not in _UPDATES:
+        return None
+    found = [n.var for n in walk(expr) if isinstance(n, Bar) and n.var in lenders]
+    once = [v for v in found if found.count(v) == 1]
+    if expr.op == "mul":
+        # a product's factors in any order (only the rounding may differ)
+        factors = _factors(expr)
+        for k, factor in enumerate(factors):
+            if isinstance(factor, Bar) and factor.var in once and len(factors) > 1:
+                rest = factors[:k] + factors[k + 1 :]
+                product = rest[0]
+                for f in rest[1:]:
+                    product = Apply("mul", (product, f))
+                return factor.var, Apply("mul", (factor, product))
+        return None
+    left, right = expr.args
+    if isinstance(left, Bar) and left.var in once:
+        return left.var, expr
+    if expr.op in _COMMUTE and isinstance(right, Bar) and right.var in once:
+        return right.var, Apply(expr.op, (right, left))
+    return None
 
 
 def plan_in_place(sweep: ReverseSweep, fitter: Fitter) -> ReverseSweep:
@@ -111,30 +219,72 @@ def plan_in_place(sweep: ReverseSweep, fitter: Fitter) -> ReverseSweep:
     for stmt in sweep.statements:
         visit(stmt, False)
     carried = {carry for carry, _ in sweep.carries}
-    fresh: set[Var] = set()
-    for var, writes in top.items():
-        first = writes[0]
+
+    def unshared_but_first(var: Var) -> bool:
+        """Every condition of an unshared adjoint but the first write's op."""
+        writes = top.get(var)
         wanted = fitter.table.atom(var)
-        if (
-            var in unfit
+        return not (
+            writes is None
+            or var in unfit
             or var in carried
             or var.shape == "list"
-            or first.accumulate
-            or not isinstance(first.expr, Apply)
-            or first.expr.op not in _FRESH
+            or writes[0].accumulate
             or not isinstance(wanted, tuple)
             or fitter.adj.get(var) != wanted
             # the first array must have the full shape: += cannot grow it
-            or fitter.shape(first.expr) != wanted
+            or fitter.shape(writes[0].expr) != wanted
             or any(
                 fitter.shape(w.expr) is None or any(n == Bar(var) for n in walk(w.expr))
                 for w in writes
             )
-        ):
+        )
+
+    fresh: set[Var] = set()
+    floats: set[Var] = set()
+    updates: dict[Var, Var] = {}
+    statements = list(sweep.statements)
+    for position, stmt in enumerate(statements):
+        if not isinstance(stmt, AdjointAssign) or stmt.accumulate:
             continue
+        var = stmt.var
+        if top.get(var, [None])[0] is not stmt:
+            continue  # not its first write at the top of the sweep
+        if _surely_float(stmt.expr, floats):
+            floats.add(var)
+        if not unshared_but_first(var):
+            continue
+        if isinstance(stmt.expr, Apply) and stmt.expr.op in _FRESH:
+            fresh.add(var)
+        if var in sweep.wrt:
+            continue  # a parameter's adjoint keeps its own name and array
+        wanted = fitter.table.atom(var)
+        lenders = {
+            d
+            for d in fresh & floats
+            if d != var
+            and d not in sweep.wrt
+            and fitter.table.atom(d) == wanted
+            and wanted != ()
+            and not any(_mentions(s, d) for s in statements[position + 1 :])
+        }
+        lent = _lending(stmt.expr, lenders)
+        if lent is None:
+            continue
+        lender, expr = lent
+        # the array is the lender's: unshared, float, of the full shape
+        updates[var] = lender
         fresh.add(var)
-    in_place = frozenset(v for v in fresh if len(top[v]) > 1)
+        floats.add(var)
+        statements[position] = replace(stmt, expr=expr)
+    in_place = frozenset(v for v in fresh & floats if len(top[v]) > 1)
     # a number's adjoint goes through _gw_shaped, which makes it a float (not an
     # int count, not a 0-d array)
     bare = frozenset(v for v in sweep.wrt if v in fresh and fitter.table.atom(v) != ())
-    return replace(sweep, in_place=in_place, bare=bare)
+    return replace(
+        sweep,
+        statements=tuple(statements),
+        in_place=in_place,
+        bare=bare,
+        updates=tuple(updates.items()),
+    )
