@@ -2,7 +2,7 @@
 # source: samples/greenhouse_net.py
 # source sha256: f94a505cbabce5a779320a9a523463a3af5a29e82a9d607fbc7c2942e6341334
 # command: gradwright gen samples/greenhouse_net.py humidity_loss --wrt W1,b1,w2,b2 --shape W1=4,h --shape b1=h --shape 'b2=()' --shape features=n,4 --shape humidity=n --shape w2=h -o samples/greenhouse_net_grad.py
-# output sha256: cbdee35b4c4e22fc68570ebdb347e559afc3aa12d55117e235d74988f3e0b64a
+# output sha256: 2d5a5818033e79d5a1e77a4026555cea1b74d031710a79ba2722c4edda3858d4
 
 import numpy as np
 
@@ -85,10 +85,10 @@ def humidity_loss_grad(W1, b1, w2, b2, features, humidity):
     w2_bar = 2.0 * PENALTY * w2
     # predicted = hidden @ w2 + b2
     b2_bar = np.sum(err_bar)
-    hidden_bar = np.outer(err_bar, w2)
     w2_bar += hidden.T @ err_bar
     # hidden = np.tanh(features @ W1 + b1)
-    hidden_bar *= 1.0 - hidden * hidden
-    b1_bar = np.einsum("ij->j", hidden_bar)
-    W1_bar += features.T @ hidden_bar
+    hidden_bar_1 = 1.0 - hidden * hidden
+    hidden_bar_1 *= np.outer(err_bar, w2)
+    b1_bar = np.einsum("ij->j", hidden_bar_1)
+    W1_bar += features.T @ hidden_bar_1
     return value, (W1_bar, b1_bar, w2_bar, _gw_shaped(b2_bar, b2))

@@ -308,6 +308,9 @@ class ReverseSweep:
     #: an update of the lender's array, which no statement reads again; its
     #: expression is ``lender_bar op rest`` and both have one name
     updates: tuple[tuple[Var, Var], ...] = ()
+    #: adjoints whose first write ``a op b`` prints as ``x_bar = a`` then
+    #: ``x_bar op= b`` (sweeps/inplace.py)
+    split: frozenset[Var] = frozenset()
     #: list roots whose adjoint list a rebound loop-carried list hands over (not
     #: made of zeros where the list is made)
     moved: tuple[Var, ...] = ()

@@ -583,7 +583,17 @@ class _Emitter:
                 bar = self.namer.bar_name(stmt.var)
                 expr = self.layout.cheap(stmt.expr)
                 lender = self.lenders.get(stmt.var)
-                if lender is not None and not stmt.accumulate:
+                if stmt.var in self.layout.sweep.split and not stmt.accumulate:
+                    # a new array from the first operand, the second multiplied
+                    # (or added) into it in place (sweeps/inplace.py)
+                    assert isinstance(expr, Apply)
+                    first, expr = expr.args[0], expr.args[1]
+                    self.reads(first)
+                    trace.write(bar, self.bar_key(stmt.var))
+                    out.statement(stmt.origin, f"{bar} = {self.rprint(first)}", depth)
+                    operator = OPS[stmt.expr.op].symbol + "="  # type: ignore[union-attr]
+                    trace.read(bar, self.bar_key(stmt.var))
+                elif lender is not None and not stmt.accumulate:
                     # the lender's array updated in place (sweeps/inplace.py):
                     # the one name both adjoints have
                     assert isinstance(expr, Apply) and expr.args[0] == Bar(lender)

@@ -243,7 +243,8 @@ def plan_in_place(sweep: ReverseSweep, fitter: Fitter) -> ReverseSweep:
     fresh: set[Var] = set()
     floats: set[Var] = set()
     updates: dict[Var, Var] = {}
-    statements = list(sweep.statements)
+    split: set[Var] = set()
+    statements: list[ReverseStmt | None] = list(sweep.statements)
     for position, stmt in enumerate(statements):
         if not isinstance(stmt, AdjointAssign) or stmt.accumulate:
             continue
@@ -266,16 +267,27 @@ def plan_in_place(sweep: ReverseSweep, fitter: Fitter) -> ReverseSweep:
             and d not in sweep.wrt
             and fitter.table.atom(d) == wanted
             and wanted != ()
-            and not any(_mentions(s, d) for s in statements[position + 1 :])
+            and not any(
+                s is not None and _mentions(s, d) for s in statements[position + 1 :]
+            )
         }
         lent = _lending(stmt.expr, lenders)
         if lent is None:
             continue
         lender, expr = lent
-        # the array is the lender's: unshared, float, of the full shape
-        updates[var] = lender
         fresh.add(var)
         floats.add(var)
+        moved = _movable(statements, position, lender, expr, fitter, floats)
+        if moved is not None:
+            # the lender's one write moves here as the update; the rest of the
+            # rule, heavier, makes the array
+            where, own = moved
+            statements[where] = None
+            statements[position] = replace(stmt, expr=own)
+            split.add(var)
+            continue
+        # the array is the lender's: unshared, float, of the full shape
+        updates[var] = lender
         statements[position] = replace(stmt, expr=expr)
     in_place = frozenset(v for v in fresh & floats if len(top[v]) > 1)
     # a number's adjoint goes through _gw_shaped, which makes it a float (not an
@@ -283,8 +295,79 @@ def plan_in_place(sweep: ReverseSweep, fitter: Fitter) -> ReverseSweep:
     bare = frozenset(v for v in sweep.wrt if v in fresh and fitter.table.atom(v) != ())
     return replace(
         sweep,
-        statements=tuple(statements),
+        statements=tuple(s for s in statements if s is not None),
         in_place=in_place,
         bare=bare,
         updates=tuple(updates.items()),
+        split=frozenset(split),
     )
+
+
+def _written(stmt: ReverseStmt) -> set[Var]:
+    """The adjoints ``stmt`` (or a statement inside it) writes."""
+    out: set[Var] = set()
+    if isinstance(stmt, AdjointAssign):
+        out.add(stmt.var)
+    elif isinstance(stmt, (ElementAdjoint, SpreadAdjoint)):
+        out.add(stmt.root)
+    elif isinstance(stmt, PopAdjoint):
+        out |= {stmt.root} | ({stmt.var} if stmt.var is not None else set())
+    elif isinstance(stmt, CallAdjoint):
+        out |= set(stmt.parts)
+    for inner in _statements(stmt):
+        out |= _written(inner)
+    return out
+
+
+def _operations(expr: Expr, fitter: Fitter, shape: tuple) -> int:
+    """The full-size arrays computing ``expr`` makes (a view or a smaller
+    operand's arithmetic costs nothing to count)."""
+    return sum(
+        isinstance(node, Apply) and fitter.shape(node) == shape for node in walk(expr)
+    )
+
+
+def _movable(
+    statements: list[ReverseStmt | None],
+    position: int,
+    lender: Var,
+    expr: Apply,
+    fitter: Fitter,
+    floats: set[Var],
+) -> tuple[int, Apply] | None:
+    """``y_bar = x_bar * rest`` where ``x_bar = d`` is the lender's one write,
+    elementwise, and ``rest`` takes more array operations than ``d``: the
+    position of that write, and ``rest * d`` (printed ``y_bar = rest`` then
+    ``y_bar *= d``). Made in that order, the heavier operand's temporaries come
+    and go before the lighter one's result is held: ``H_bar_1 = 1.0 - H * H``
+    then ``H_bar_1 *= r_bar * W2.T`` holds two full-size arrays at once where
+    ``H_bar *= 1.0 - H * H`` holds three."""
+    op, (_, rest) = expr.op, expr.args
+    writes = [
+        k
+        for k, s in enumerate(statements[:position])
+        if s is not None and lender in _written(s)
+    ]
+    if op not in _COMMUTE or len(writes) != 1:
+        return None
+    where = writes[0]
+    first = statements[where]
+    assert isinstance(first, AdjointAssign)
+    defined = first.expr
+    shape = fitter.table.atom(lender)
+    assert isinstance(shape, tuple)
+    between = [s for s in statements[where + 1 : position] if s is not None]
+    reads = {n.var for n in walk(defined) if isinstance(n, Bar)}
+    if (
+        not isinstance(defined, Apply)
+        or not isinstance(rest, Apply)
+        or rest.op not in _FRESH
+        or fitter.shape(rest) != shape
+        or not _surely_float(rest, floats)
+        or _operations(rest, fitter, shape) <= _operations(defined, fitter, shape)
+        # only adjoint statements in between: no loop restores a forward name
+        or any(not isinstance(s, AdjointAssign) for s in between)
+        or any(_mentions(s, lender) or _written(s) & reads for s in between)
+    ):
+        return None
+    return where, Apply(op, (rest, defined))
