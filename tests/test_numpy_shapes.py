@@ -568,3 +568,18 @@ def test_np_where_is_printed_as_a_call_without_extra_parentheses() -> None:
     exec(compile(source, "<model>", "exec"), model)
     # reference: Richardson-extrapolated central differences (no point on a kink)
     assert_close_to_differences(model["f"], (x, 0.2), 0, x_bar, value)
+
+
+def test_a_number_parameter_rebound_gets_a_float_back() -> None:
+    # s = np.where(...) re-binds s to a 0-d array; _gw_shaped(s_bar, s) read that
+    # array instead of the parameter and gave a 0-d array back
+    source = numpy_model("x, s", "s = np.where(s > 0.0, s, -s)\nreturn np.sum(x * s)")
+    for shapes in (None, {"x": ("n",), "s": ()}):
+        _, ns = generate(source, shapes)
+        x = np.array([1.0, 2.0, -0.5])
+        for s in (0.5, -0.5):
+            _, (x_bar, s_bar) = ns["f_grad"](x, s)
+            assert type(s_bar) is float, type(s_bar)
+            # reference by hand: d/ds sum(x * |s|) = sign(s) * sum(x), d/dx = |s|
+            assert s_bar == np.sign(s) * 2.5
+            np.testing.assert_array_equal(x_bar, np.full(3, abs(s)))

@@ -67,6 +67,7 @@ class Layout(NamingLayout):
         printer: Printer,
         active: set[Var],
         share_names: bool = True,
+        shaped: bool = False,
     ) -> None:
         #: let versions of a variable share its name (readable); off, every stored
         #: value has a name of its own (the fallback when the check fails)
@@ -113,6 +114,8 @@ class Layout(NamingLayout):
         self.pinned |= self._stale_reads()
         # the returned values are read at the very end
         self.pinned |= {a for a in function.result.values if isinstance(a, Var)}
+        if shaped:  # _gw_shaped(x_bar, x) reads the parameter at the very end
+            self.pinned |= {v for v in sweep.wrt if v not in sweep.bare}
         self.stored = self._stored()
         self.partials_needed = {
             node.args[0]

@@ -836,7 +836,9 @@ def lay_out(
     ``reverse_printer`` prints the reverse sweep's own expressions (NumPy spellings
     in an array model); the forward sweep's always print as the source wrote them.
     """
-    layout = Layout(function, sweep, namer, printer, active, share_names)
+    # an array model returns its parameters' adjoints through _gw_shaped
+    shaped = reverse_printer is not None
+    layout = Layout(function, sweep, namer, printer, active, share_names, shaped)
     layout.reverse_printer = reverse_printer or printer
     layout.numpy = (
         reverse_printer is not None and reverse_printer.where_call is not None
