@@ -2,21 +2,30 @@
 # source: samples/greenhouse_net.py
 # source sha256: f94a505cbabce5a779320a9a523463a3af5a29e82a9d607fbc7c2942e6341334
 # command: gradwright gen samples/greenhouse_net.py humidity_loss --wrt W1,b1,w2,b2 --shape W1=4,h --shape b1=h --shape 'b2=()' --shape features=n,4 --shape humidity=n --shape w2=h -o samples/greenhouse_net_grad.py
-# output sha256: 2d5a5818033e79d5a1e77a4026555cea1b74d031710a79ba2722c4edda3858d4
+# output sha256: e06078bd1ce2db004cba855936bb3a89b69fe475aed67772828e168f0c48cd7d
 
 import numpy as np
 
 PENALTY = 1e-3
 
 
+#: each declaration read so far: (name, sizes) per parameter
+_GW_DECLARED = {}
+
+
 def _gw_check_shapes(declared, *values):
     """Refuse arguments of other shapes than those the gradient was written for
     (gen --shape NAME=DIMS, one per word); a name stands for one size wherever it
-    appears."""
+    appears. The declaration is read once, not at every call."""
+    words = _GW_DECLARED.get(declared)
+    if words is None:
+        words = _GW_DECLARED[declared] = []
+        for word in declared.split():
+            name, _, text = word.partition("=")
+            dims = text.strip("()").split(",")
+            words.append((name, [int(d) if d.isdigit() else d for d in dims if d]))
     sizes = {}
-    for word, value in zip(declared.split(), values, strict=True):
-        name, _, text = word.partition("=")
-        dims = [int(d) if d.isdigit() else d for d in text.strip("()").split(",") if d]
+    for (name, dims), value in zip(words, values, strict=True):
         shape = np.shape(value)
         fits = len(shape) == len(dims) and all(
             sizes.setdefault(d, s) == s if isinstance(d, str) else d == s

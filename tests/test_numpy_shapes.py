@@ -583,3 +583,20 @@ def test_a_number_parameter_rebound_gets_a_float_back() -> None:
             # reference by hand: d/ds sum(x * |s|) = sign(s) * sum(x), d/dx = |s|
             assert s_bar == np.sign(s) * 2.5
             np.testing.assert_array_equal(x_bar, np.full(3, abs(s)))
+
+
+def test_the_declared_shapes_are_read_once() -> None:
+    # the check runs at every call; reading its declaration cost more than the
+    # check itself (least squares, 10^4 rows: 4.5 us of a 30 us primal, CPU time)
+    text, ns = generate(LOGISTIC, LOGISTIC_SHAPES, ["w"])
+    assert "_GW_DECLARED.get(declared)" in text
+    g = np.random.default_rng(4)
+    w, X, y = g.normal(size=5), g.normal(size=(6, 5)), g.normal(size=6)
+    ns["f_grad"](w, X, y)
+    ns["f_grad"](w, X, y)
+    assert list(ns["_GW_DECLARED"].values()) == [
+        [("w", [5]), ("X", ["n", 5]), ("y", ["n"])]
+    ]
+    # read from the cache, a violation is still refused
+    with pytest.raises(ValueError, match=r"y has shape \(7,\).*\(6,\)"):
+        ns["f_grad"](w, X, g.normal(size=7))

@@ -61,14 +61,23 @@ BROADCASTING = frozenset(
 )
 
 HELPERS: dict[str, str] = {
-    "_gw_check_shapes": '''def _gw_check_shapes(declared, *values):
+    "_gw_check_shapes": '''#: each declaration read so far: (name, sizes) per parameter
+_GW_DECLARED = {}
+
+
+def _gw_check_shapes(declared, *values):
     """Refuse arguments of other shapes than those the gradient was written for
     (gen --shape NAME=DIMS, one per word); a name stands for one size wherever it
-    appears."""
+    appears. The declaration is read once, not at every call."""
+    words = _GW_DECLARED.get(declared)
+    if words is None:
+        words = _GW_DECLARED[declared] = []
+        for word in declared.split():
+            name, _, text = word.partition("=")
+            dims = text.strip("()").split(",")
+            words.append((name, [int(d) if d.isdigit() else d for d in dims if d]))
     sizes = {}
-    for word, value in zip(declared.split(), values, strict=True):
-        name, _, text = word.partition("=")
-        dims = [int(d) if d.isdigit() else d for d in text.strip("()").split(",") if d]
+    for (name, dims), value in zip(words, values, strict=True):
         shape = np.shape(value)
         fits = len(shape) == len(dims) and all(
             sizes.setdefault(d, s) == s if isinstance(d, str) else d == s
