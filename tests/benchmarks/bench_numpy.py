@@ -3,11 +3,14 @@
 Not a timed test: prints figures. Each model's data array holds n elements (the
 shapes are in MODELS); both functions are timed with timeit, best of REPEAT runs of
 a call count chosen so each run takes about 20 ms, the primal's and the gradient's
-runs interleaved. Our target is a ratio of at most 2.5 at 10^5 and 10^6 elements
-(at 10^3 Python's per-statement overhead, not the arrays, sets the cost; printed,
-not judged). The ROW_MODELS (ridge logistic regression, 5 features; a tanh network
-8->32->1) have n rows at 10^5 and 10^6, same target. BLAS threading and
-OPENBLAS_CORETYPE are left as the environment sets them.
+runs interleaved; "faults" are the fewest minor page faults per call
+(primal/gradient: memory touched for the first time, fresh large arrays), which
+other processes' load hardly moves where timings move by a third. Our target is a
+ratio of at most 2.5 at 10^5 and 10^6 elements (at 10^3 Python's per-statement
+overhead, not the arrays, sets the cost; printed, not judged). The ROW_MODELS
+(ridge logistic regression, 5 features; a tanh network 8->32->1) have n rows at
+10^5 and 10^6, same target. BLAS threading and OPENBLAS_CORETYPE are left as the
+environment sets them.
 
 Every model is generated with its parameters' shapes declared (SHAPES, as gen
 --shape X=m,10 would); --generic generates without them, for comparison.
@@ -19,6 +22,7 @@ Run: python tests/benchmarks/bench_numpy.py [--rows] [--generic]
 from __future__ import annotations
 
 import os
+import resource
 import sys
 import timeit
 
@@ -180,16 +184,30 @@ def _number(fn, args) -> int:
     return max(1, int(RUN_SECONDS / max(once, 1e-9)))
 
 
-def _best_pair(primal, grad, args) -> tuple[float, float]:
+def _faults() -> int:
+    return resource.getrusage(resource.RUSAGE_SELF).ru_minflt
+
+
+def _best_pair(primal, grad, args) -> tuple[float, float, float, float]:
     """Best time per call of each over REPEAT runs, the two interleaved run by run
-    so that both see the same machine load (other processes, BLAS threads)."""
+    so that both see the same machine load (other processes, BLAS threads), and
+    the fewest minor page faults per call of each (memory touched for the first
+    time: fresh large arrays; other processes' load hardly moves it)."""
     counts = _number(primal, args), _number(grad, args)
     timers = timeit.Timer(lambda: primal(*args)), timeit.Timer(lambda: grad(*args))
     best = [float("inf"), float("inf")]
+    faults = [float("inf"), float("inf")]
     for _ in range(REPEAT):
         for k in (0, 1):
+            before = _faults()
             best[k] = min(best[k], timers[k].timeit(number=counts[k]) / counts[k])
-    return best[0], best[1]
+            faults[k] = min(faults[k], (_faults() - before) / counts[k])
+    return best[0], best[1], faults[0], faults[1]
+
+
+def _pair(faults: list[float]) -> str:
+    """Page faults per call, primal/gradient."""
+    return f"{faults[0]:.0f}/{faults[1]:.0f}"
 
 
 def _load(source: str, wrt: list[str]) -> dict:
@@ -207,20 +225,23 @@ def main() -> None:
         f"{os.environ.get('OPENBLAS_CORETYPE', '(unset)')}; best of {REPEAT};"
         f" {os.cpu_count()} CPUs, load average {os.getloadavg()[0]:.2f}"
     )
-    print(f"{'model':22} {'n':>8} {'primal':>11} {'gradient':>11} {'ratio':>6}  shapes")
+    print(
+        f"{'model':22} {'n':>8} {'primal':>11} {'gradient':>11} {'ratio':>6}"
+        f" {'faults':>11}  shapes"
+    )
     worst_at_million = 0.0
     # --rows: only the row models (the issue-12 targets)
     for name, source, data, shapes in [] if "--rows" in sys.argv else MODELS:
         for n in SIZES:
             args, wrt = data(n, np.random.default_rng(n))
             ns = _load(source, wrt)
-            primal, grad = _best_pair(ns["loss"], ns["loss_grad"], args)
+            primal, grad, *faults = _best_pair(ns["loss"], ns["loss_grad"], args)
             ratio = grad / primal
             if n >= 10**5:
                 worst_at_million = max(worst_at_million, ratio)
             print(
                 f"{name:22} {n:>8.0e} {primal * 1e3:>9.3f}ms {grad * 1e3:>9.3f}ms"
-                f" {ratio:>6.2f}  {shapes}"
+                f" {ratio:>6.2f} {_pair(faults):>11}  {shapes}"
             )
     if "--rows" not in sys.argv:
         verdict = "meets" if worst_at_million <= ROW_TARGET else "misses"
@@ -233,11 +254,11 @@ def main() -> None:
         for n in ROW_SIZES:
             args, wrt = data(n, np.random.default_rng(n))
             ns = _load(source, wrt)
-            primal, grad = _best_pair(ns["loss"], ns["loss_grad"], args)
+            primal, grad, *faults = _best_pair(ns["loss"], ns["loss_grad"], args)
             worst_rows = max(worst_rows, grad / primal)
             print(
                 f"{name:22} {n:>8.0e} {primal * 1e3:>9.3f}ms {grad * 1e3:>9.3f}ms"
-                f" {grad / primal:>6.2f}  {shapes} (n rows)"
+                f" {grad / primal:>6.2f} {_pair(faults):>11}  {shapes} (n rows)"
             )
     verdict = "meets" if worst_rows <= ROW_TARGET else "misses"
     print(
