@@ -2345,7 +2345,10 @@ def evaluate_numpy(case: Case, args: list) -> Outcome:
         if not want and not isinstance(g, float):
             return _fail("entry not a float", f"{name}_bar = {g!r}")
         flat += list(np.ravel(g)) if want else [g]
-    scale = max([abs(mpmath.mpf(float(value)))] + [abs(r) for r in refs])
+    # the inputs' sizes too: terms of their size that cancel (sum(a - a), a
+    # value and a gradient exactly 0) leave rounding of that size, not of 0
+    sizes = [abs(mpmath.mpf(float(x))) for a in args for x in np.ravel(a)]
+    scale = max([abs(mpmath.mpf(float(value)))] + [abs(r) for r in refs] + sizes)
     return compare(flat, refs, scale, "")
 
 
