@@ -2,7 +2,7 @@
 # source: samples/cable_sag.py
 # source sha256: 60a95002dd1d21d9e5e7f63265caaee126765d6ffe25172b57604f5de1edd964
 # command: gradwright gen samples/cable_sag.py rig_loss -o samples/cable_sag_grad.py
-# output sha256: f9cd782f581576f922ffe1b1c47cff513a3662e9180ab0d91e51d72769724cb7
+# output sha256: 796ebf8c0cc20526c853848beb16e3975af5bfab3258a77d6d34cec1ac685dc1
 
 import math
 
@@ -51,10 +51,8 @@ def rig_loss_grad(a, span):
     # loss = sag_err**2
     sag_err_bar = 2.0 * sag_err
     # sag, length = a * (math.cosh(half) - 1.0), 2.0 * a * math.sinh(half)
-    a_bar = 2.0 * length_err_bar * length_2
-    half_bar = length_err_bar * length_1 * sag_1
-    a_bar += sag_err_bar * sag_2
-    half_bar += sag_err_bar * a * length_2
+    a_bar = 2.0 * length_err_bar * length_2 + sag_err_bar * sag_2
+    half_bar = length_err_bar * length_1 * sag_1 + sag_err_bar * a * length_2
     # half = span / (2.0 * a)
     span_bar = half_bar / half_1
     a_bar -= 2.0 * half_bar * half / half_1

@@ -2,7 +2,7 @@
 # source: samples/fuel_hedge.py
 # source sha256: 0ea00fed34a5da6fdf8d79be718d957302aa63a99bc63f8c28269a24d0084725
 # command: gradwright gen samples/fuel_hedge.py call_value --wrt spot,vol,rate,years -o samples/fuel_hedge_grad.py
-# output sha256: 06217391cdce071751ebf91f18820a1b79d4f0df3fd3767c9697eecefe779498
+# output sha256: 6a122a4bf4208f2d02aac176cb9854fb7cd272112c91e2bde74bbeecb2b8e69c
 
 import math
 from math import erf, exp, log, sqrt
@@ -67,7 +67,7 @@ def call_value_grad(spot, strike, vol, rate, years):
     d1_3_bar = d1_bar_1 * years
     years_bar += d1_bar_1 * d1_3
     rate_bar += d1_3_bar
-    vol_bar += d1_3_bar * d1_2 + 0.5 * d1_3_bar * vol + d1_4_bar * root_t
+    vol_bar += 2.0 * d1_3_bar * d1_2 + d1_4_bar * root_t
     root_t_bar += d1_4_bar * vol
     # root_t = sqrt(years)
     years_bar += 0.5 * root_t_bar / root_t

@@ -2,7 +2,7 @@
 # source: samples/tide_gauge.py
 # source sha256: 41f2e6ad8faaef888ec4fb61d9e9a8b106c978f34cbbdb886a71de8b9d6e2f7b
 # command: gradwright gen samples/tide_gauge.py tide_misfit -o samples/tide_gauge_grad.py
-# output sha256: 6362b17313a9be9579d7c770aabe7007b186f6d633ed41f433a4525ce2b6573f
+# output sha256: 71483621d1798ed2c70465400369ab6cb485443542f86d8ebe3cacd07a2cc209
 
 import math
 from collections import namedtuple
@@ -48,7 +48,6 @@ def tide_misfit_grad(amp_m2, phase_m2, amp_s2, phase_s2):
     # total = 0.0
     total = 0.0
     # for hour, height in READINGS:
-    weight_saved = [0.0] * len(READINGS)
     m2_1_saved = [0.0] * len(READINGS)
     s2_1_saved = [0.0] * len(READINGS)
     total_1_saved = [0.0] * len(READINGS)
@@ -61,7 +60,6 @@ def tide_misfit_grad(amp_m2, phase_m2, amp_s2, phase_s2):
             weight = WEIGHTS["night"]
         else:
             weight = WEIGHTS["day"]
-        weight_saved[hour_index] = weight
         # m2 = amp_m2 * math.cos(2.0 * math.pi * hour / HARBOUR.period_m2 - phase_m2)
         m2_1 = math.cos(2.0 * math.pi * hour / HARBOUR.period_m2 - phase_m2)
         m2_1_saved[hour_index] = m2_1
@@ -89,22 +87,15 @@ def tide_misfit_grad(amp_m2, phase_m2, amp_s2, phase_s2):
     amp_s2_bar = 0.0
     phase_s2_bar = 0.0
     for hour_index in reversed(range(len(READINGS))):
-        weight = weight_saved[hour_index]
         m2_1 = m2_1_saved[hour_index]
         s2_1 = s2_1_saved[hour_index]
         total_1 = total_1_saved[hour_index]
         row_1 = READINGS[hour_index]
         hour = row_1[0]
-        height = row_1[1]
         m2_2 = 2.0 * math.pi * hour / HARBOUR.period_m2 - phase_m2
-        m2 = amp_m2 * m2_1
         s2_2 = 2.0 * math.pi * hour / HARBOUR.period_s2 - phase_s2
-        s2 = amp_s2 * s2_1
-        miss_1 = HARBOUR.datum + m2
-        miss_2 = miss_1 + s2
-        miss = miss_2 - height
         # total += weight * miss * miss
-        miss_bar = total_bar * total_1 + total_bar * miss * weight
+        miss_bar = 2.0 * total_bar * total_1
         # s2 = amp_s2 * math.cos(2.0 * math.pi * hour / HARBOUR.period_s2 - phase_s2)
         amp_s2_bar += miss_bar * s2_1
         phase_s2_bar += miss_bar * amp_s2 * math.sin(s2_2)

@@ -18,6 +18,27 @@ from gradwright import GradwrightError
 from gradwright.emission import print_sweeps
 
 CASES = {
+    # x * (0.25 * i), invariant in the inner loops, was computed at the head of
+    # the outer loop's reverse body: outside the if around them (the layout check
+    # refused it); now just before the while loop's reverse, in the if's side
+    "invariant-hoisted-within-its-branch": (
+        """
+def f(x, y, n):
+    for i in range(n):
+        if y > 0.25 * i:
+            x = x * 0.9
+            k = 0
+            while k < 2:
+                k = k + 1
+                for j in range(2):
+                    y = y * 0.5 + (x * (0.25 * i)) * (x * (0.25 * i))
+        else:
+            x = x * 1.1
+    return x + y
+""",
+        ["x", "y"],
+        [(0.7, 0.9, 3), (0.7, -0.5, 3), (1.3, 2.0, 4)],
+    ),
     # a loop on one path of an if zeroed the adjoint on the other path
     "loop-after-early-return": (
         """

@@ -520,3 +520,102 @@ def test_a_mean_spread_over_a_list_is_computed_once():
     args = (0.4, 0.3, [0.9, 1.3, 1.1, 1.8, 2.2])
     # outside reference: mpmath central differences
     _check_against_mpmath(MEAN_CENTRED, "spread_fit", args, [0, 1])
+
+
+STENCIL = """
+def smoothed(k, p, xs):
+    ys = [0.0] * len(xs)
+    for i in range(1, len(xs) - 1):
+        ys[i] = xs[i] + k * (xs[i - 1] - 2.0 * xs[i] + xs[i + 1])
+    total = 0.0
+    for i in range(1, len(xs) - 1):
+        total += p * ys[i] + (1.0 - p) * ys[i - 1]
+    return total * total
+"""
+
+
+def _repeated_accumulations(reverse: str) -> list[str]:
+    """Targets given two ``+=`` in the reverse lines of one source statement."""
+    repeated: list[str] = []
+    seen: set[str] = set()
+    for line in reverse.splitlines():
+        stripped = line.strip()
+        if stripped.startswith(("#", "for ", "if ", "else", "while ")):
+            seen = set()  # another statement's (or block's) lines
+            continue
+        for operator in (" += ", " -= "):
+            if operator not in stripped:
+                continue
+            target = stripped.split(operator)[0]
+            if target in seen:
+                repeated.append(target)
+            seen.add(target)
+    return repeated
+
+
+@pytest.mark.parametrize(
+    "source, func, wrt",
+    [
+        (STENCIL, "smoothed", None),
+        (scalar_models.BINOMIAL_TREE, "tree_price", None),
+        (scalar_models.HEAT_SCHEME, "heat_loss", None),
+    ],
+)
+def test_one_accumulation_per_adjoint_and_statement(source, func, wrt):
+    """``u_bar[i] += a`` then ``u_bar[i] += b`` from one statement is one
+    ``u_bar[i] += a + b`` (one load and store of the element), and a factor common
+    to both terms is taken out (``p_bar += g * (a - b)``)."""
+    text = gradwright.generate(source, [func], wrt=wrt)
+    reverse = text.split(f"def {func}_grad(")[1].split("# reverse sweep")[1]
+    assert _repeated_accumulations(reverse) == []
+    if func == "smoothed":
+        # total += p * ys[i] + (1.0 - p) * ys[i - 1]
+        assert "p_bar += total_bar * (total_1 - total_2)" in reverse
+        assert "xs_bar[i] += ys_bar_1 - 2.0 * ys_1_bar" in reverse
+    if func == "tree_price":
+        assert "p_bar += hold_3_bar * (hold_1 - hold_2)" in reverse
+
+
+def test_stencil_gradient_against_mpmath():
+    args = (0.3, 0.6, [0.5, 1.5, -0.25, 2.0, 0.75, 1.25])
+    module = build(STENCIL, "smoothed")
+    value, (k_bar, p_bar, xs_bar) = module["smoothed_grad"](*args)
+    assert value == run_source(STENCIL)["smoothed"](*args)
+    # outside reference: mpmath high-precision central differences
+    k_ref, p_ref, xs_ref = mp_gradient(
+        mp_function(STENCIL, "smoothed"), args, [0, 1, 2]
+    )
+    for got, want in zip([k_bar, p_bar, *xs_bar], [k_ref, p_ref, *xs_ref], strict=True):
+        assert rel_err(got, want) < 1e-11, (got, want)
+
+
+def test_loop_invariant_recomputation_is_done_once_before_the_reverse_loops():
+    text = gradwright.generate(scalar_models.BINOMIAL_TREE, ["tree_price"])
+    _, reverse = _sweeps(text, "tree_price")
+    # hold = disc * (p * values[j + 1] + (1.0 - p) * values[j]): 1.0 - p once,
+    # before both reverse loops, not at every node
+    assert reverse.count("= 1.0 - p") == 1
+    assert "\n    hold_4 = 1.0 - p\n    for i in reversed(" in reverse
+
+
+NO_TRIPS = """
+def scaled(x, c, n):
+    total = 0.0
+    for i in range(n):
+        total += x * (1.0 / c) * (x - c * i)
+    return total + x
+"""
+
+
+def test_an_invariant_division_stays_in_a_loop_that_may_run_no_trip():
+    """The forward sweep never divides by c when n is 0: neither may the reverse
+    (a division recomputed before the loop would raise ZeroDivisionError)."""
+    module = build(NO_TRIPS, "scaled", ["x"])
+    value, (x_bar,) = module["scaled_grad"](1.5, 0.0, 0)
+    assert (value, x_bar) == (1.5, 1.0)  # by hand: the loop adds nothing
+    args = (1.5, 0.7, 4)
+    value, (x_bar,) = module["scaled_grad"](*args)
+    assert value == run_source(NO_TRIPS)["scaled"](*args)
+    # outside reference: mpmath high-precision central differences
+    (want,) = mp_gradient(mp_function(NO_TRIPS, "scaled"), args, [0])
+    assert rel_err(x_bar, want) < 1e-12

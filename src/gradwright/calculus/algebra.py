@@ -170,6 +170,11 @@ def negated(expr: Expr) -> Expr | None:
     return magnitude if negative else None
 
 
+def split_sign(expr: Expr) -> tuple[bool, Expr]:
+    """``(negative, m)``: ``expr == -m if negative else m`` (``_split_sign``)."""
+    return _split_sign(expr)
+
+
 def _signed(negative: bool, magnitude: Expr) -> Expr:
     """``-magnitude`` written with the minus on the leftmost factor (``-a * b``)."""
     if not negative:
@@ -311,6 +316,9 @@ def _product(op: str, a: Expr, b: Expr) -> Expr:
         # the constant first, as written by hand (IEEE * commutes)
         a, b, na, nb = b, a, nb, na
     if na is None:
+        inner = _leading_power_of_two(b)
+        if inner is not None:  # x * (2.0 * y) is 2.0 * x * y, the same bits
+            return _scale_leftmost(inner[0], _product("mul", a, inner[1]))
         return Apply("mul", (a, b))
     merged = _merge_constant(na, b)
     if merged is not None:
@@ -318,6 +326,15 @@ def _product(op: str, a: Expr, b: Expr) -> Expr:
     if _power_of_two(na) and _is_chain(b):
         return _scale_leftmost(a, b)
     return Apply("mul", (a, b))
+
+
+def _leading_power_of_two(expr: Expr) -> tuple[Expr, Expr] | None:
+    """``c * y`` with c a power of two: (c, y)."""
+    if isinstance(expr, Apply) and expr.op == "mul":
+        c = number(expr.args[0])
+        if c is not None and _power_of_two(c) and number(expr.args[1]) is None:
+            return expr.args[0], expr.args[1]
+    return None
 
 
 def _is_chain(expr: Expr) -> bool:

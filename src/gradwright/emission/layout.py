@@ -46,6 +46,7 @@ from gradwright.ir import (
     const,
     walk,
 )
+from gradwright.sweeps.reverse import defined_in
 
 #: primitives cheap enough to recompute rather than save (not ``**``: a libm call
 #: like exp, computed once and saved like any other)
@@ -53,6 +54,10 @@ _CHEAP = frozenset(
     {"add", "sub", "mul", "div", "floordiv", "mod", "neg", "pos", "len", "copy"}
     | {"lt", "le", "gt", "ge", "eq", "ne", "and", "or", "not"}
 )
+
+#: cheap primitives that cannot raise, computed before a loop that may run no
+#: iteration: not ``/``, ``//``, ``%`` (a zero divisor)
+_NEVER_RAISE = frozenset({"add", "sub", "mul", "neg", "pos"})
 
 #: the statements copied as written and the values they bind (always printed)
 _COPIED = frozenset({"copied", "written"})
@@ -101,6 +106,12 @@ class Layout(NamingLayout):
         self.reverse_defined = self._reverse_defined(sweep.statements)
         self.recompute: dict[Loop, list[Let]] = {}
         self.reverse_reads = self._reverse_reads()
+        #: recomputed values that no iteration of a loop changes, computed once
+        #: before its reverse (``hold_4 = 1.0 - p``, not once per node)
+        self.hoisted: dict[Loop, list[Let]] = {}
+        #: each of those values, and the outermost loop it is computed before
+        self.lifted: dict[Var, Loop] = {}
+        self._hoist()
         self.tapes: dict[Loop, list[Var]] = {}
         self.by_names: dict[tuple[Loop, str], str] = {}
         self._assign_tapes()
@@ -108,7 +119,9 @@ class Layout(NamingLayout):
         self.live = self._liveness()
         self.replayed = {v for vs in self.tapes.values() for v in vs}
         self.replayed |= {
-            let.target for lets in self.recompute.values() for let in lets
+            let.target
+            for lets in (*self.recompute.values(), *self.hoisted.values())
+            for let in lets
         }
         self.pinned = {v for v in self.reverse_reads if self.loop_of.get(v) is None}
         self.pinned |= self._stale_reads()
@@ -346,6 +359,46 @@ class Layout(NamingLayout):
         for lets in self.recompute.values():
             lets.sort(key=lambda let: self.position[let.target])
         return reads
+
+    def _hoist(self) -> None:
+        """Moves each recomputed temporary that reads no value of its loop's
+        iteration out of the loop's reverse body: computed just before the
+        outermost reverse loop it is invariant in, in the block that loop is in
+        (a branch side of an enclosing loop's body, say)."""
+        for loop in list(self.recompute):
+            for let in list(self.recompute[loop]):
+                if (
+                    let.target.kind != "temp"
+                    or let.target.shape != "scalar"
+                    or let.op not in _NEVER_RAISE
+                ):
+                    continue  # a loop of no trips never computed it: nor may we
+                nodes = [n for a in let.args for n in walk(self.cheap(a))]
+                if any(
+                    isinstance(n, Apply) and n.op not in _NEVER_RAISE for n in nodes
+                ):
+                    continue
+                reads = {n for n in nodes if isinstance(n, Var)}
+                outermost: Loop | None = None
+                current: Loop | None = loop
+                while current is not None and not reads & iteration_values(current):
+                    outermost, current = current, self.parent.get(current)
+                if outermost is None:
+                    continue
+                self.recompute[loop].remove(let)
+                self.lifted[let.target] = outermost
+                self.hoisted.setdefault(outermost, []).append(let)
+        for lets in self.hoisted.values():
+            lets.sort(key=lambda let: self.position[let.target])
+
+    def iteration_local(self, loop: Loop) -> set[Var]:
+        """The values the reverse of one iteration of ``loop`` holds, forgotten
+        when it ends: not those computed once before it (``lifted``)."""
+        local = iteration_values(loop)
+        for var, outermost in self.lifted.items():
+            if var in local and (loop is outermost or self._encloses(outermost, loop)):
+                local.discard(var)
+        return local
 
     def _assign_tapes(self) -> None:
         for var in sorted(self.reverse_reads):
@@ -622,6 +675,11 @@ class Layout(NamingLayout):
             return self.expr(Apply("mul", (zeros, length))), length
         bounds = Apply("listlit", (start, stop, step))
         return f"[0.0] * len(range({self.range_args(loop, folded)}))", bounds
+
+
+def iteration_values(loop: Loop) -> set[Var]:
+    """Values that belong to one iteration of ``loop`` (nested loops' included)."""
+    return defined_in(loop.body) | {loop.index} | {phi.target for phi in loop.carried}
 
 
 def _partials_var(call: Var) -> Var:

@@ -14,7 +14,7 @@ from gradwright.calculus.algebra import negated, simplify
 from gradwright.calculus.primitives import OPS
 from gradwright.emission.copied import copied_lines
 from gradwright.emission.formatting import format_statement
-from gradwright.emission.layout import Layout, reverse_bounds
+from gradwright.emission.layout import Layout, iteration_values, reverse_bounds
 from gradwright.emission.layout_check import Key, Trace, Violation, check
 from gradwright.emission.naming import Namer
 from gradwright.emission.printer import Printer
@@ -41,7 +41,6 @@ from gradwright.ir import (
     Stmt,
     Var,
 )
-from gradwright.sweeps.reverse import defined_in
 
 
 class _Lines:
@@ -492,7 +491,7 @@ class _Emitter:
         )
         trace.loop(
             body,
-            _iteration_values(loop),
+            iteration_values(loop),
             exits,
             test=test,
             breaks=loop.exit_flag is not None,
@@ -572,6 +571,17 @@ class _Emitter:
             return "+=", text
         return "-=", self.rprint(magnitude)
 
+    def _accumulated(self, expr: Expr, bar: str) -> tuple[Expr, bool]:
+        """The term added to ``bar`` and True when ``expr`` is ``bar`` plus a
+        term (floats: no array shares the name), else ``expr`` and False."""
+        if isinstance(expr, Apply) and expr.op == "add":
+            for k in (0, 1):
+                term = expr.args[k]
+                if isinstance(term, Bar) and self.namer.bar_name(term.var) == bar:
+                    self.reads(term)
+                    return expr.args[1 - k], True
+        return expr, False
+
     def reverse_block(
         self, statements: tuple[ReverseStmt, ...], depth: int, out: _Lines
     ) -> None:
@@ -607,6 +617,10 @@ class _Emitter:
                     # arrays: a new sum, never an in-place add into a shared array
                     operator = "="
                     expr = simplify(Apply("add", (Bar(stmt.var), expr)))
+                added = False
+                if operator == "=" and not self.layout.numpy:
+                    # x_bar = x_bar + e with one name for both adjoints: x_bar += e
+                    expr, added = self._accumulated(expr, bar)
                 value = self.rprint(expr)
                 if operator == "=" and bar == value:
                     # the carried adjoint was updated in place
@@ -616,6 +630,8 @@ class _Emitter:
                 self.reads(expr)
                 if operator == "+=":
                     trace.read(bar, self.bar_key(stmt.var))
+                    operator, value = self.subtracted(expr, value)
+                if added:
                     operator, value = self.subtracted(expr, value)
                 trace.write(bar, self.bar_key(stmt.var))
                 out.statement(stmt.origin, f"{bar} {operator} {value}", depth)
@@ -719,6 +735,17 @@ class _Emitter:
             text = f"{', '.join(names)} = {call}"
         out.statement(stmt.origin, text, depth)
 
+    def recomputed(self, lets: list[Let], depth: int, out: _Lines) -> None:
+        """The forward values a reverse loop recomputes instead of restoring."""
+        for let in lets:
+            name = self.namer.name(let.target)
+            self.restored.add(name)
+            args = tuple(self.layout.cheap(a) for a in let.args)
+            for arg in args:
+                self.reads(arg)
+            self.trace.write(name, self.key(let.target))
+            out.code(f"{name} = {self.print(Apply(let.op, args))}", depth)
+
     def reverse_loop(self, stmt: ReverseLoop, depth: int, out: _Lines) -> None:
         layout = self.layout
         loop = stmt.loop
@@ -737,6 +764,7 @@ class _Emitter:
         out.comment(stmt.origin, depth)
         index = self.namer.name(loop.index)
         trace.at(stmt.origin.text)
+        self.recomputed(layout.hoisted.get(loop, []), depth, out)
         for bound in reverse_bounds(loop):
             self.reads(layout.cheap(bound, everywhere=True))
         out.code(
@@ -768,15 +796,8 @@ class _Emitter:
                     # them (the by-list keeps each list it made: trusted here)
                     for var in layout.tapes_of(child, saved):
                         trace.fill(saved, var)
-            for let in layout.recompute.get(loop, []):
-                name = self.namer.name(let.target)
-                self.restored.add(name)
-                args = tuple(layout.cheap(a) for a in let.args)
-                for arg in args:
-                    self.reads(arg)
-                trace.write(name, self.key(let.target))
-                out.code(f"{name} = {self.print(Apply(let.op, args))}", depth + 1)
-        trace.loop(head + body_events, _iteration_values(loop))
+            self.recomputed(layout.recompute.get(loop, []), depth + 1, out)
+        trace.loop(head + body_events, layout.iteration_local(loop))
         out.lines.extend(body.lines)
         out.last_origin[depth] = None
 
@@ -792,12 +813,6 @@ def _lists_made(statements: tuple[Stmt, ...]) -> list[Var]:
             or (s.op.startswith("call:") and s.target.shape == "list")
         )
     ]
-
-
-def _iteration_values(loop: Loop) -> set[Var]:
-    """Values that belong to one iteration of ``loop``."""
-    values = defined_in(loop.body) | {loop.index}
-    return values | {phi.target for phi in loop.carried}
 
 
 def _loop_values(loop: Loop) -> Iterator[Var]:

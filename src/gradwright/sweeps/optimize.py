@@ -12,7 +12,7 @@ from collections import Counter
 from collections.abc import Callable, Iterable, Iterator
 from dataclasses import replace
 
-from gradwright.calculus.algebra import number, simplify
+from gradwright.calculus.algebra import number, simplify, split_sign
 from gradwright.ir import (
     AdjointAssign,
     Apply,
@@ -72,9 +72,110 @@ def _reads_list_adjoint(expr: Expr) -> bool:
     return any(isinstance(n, Bar) and n.var.shape == "list" for n in walk(expr))
 
 
+def _written_bars(stmt: ReverseStmt) -> set[Var]:
+    """The scalar adjoints a statement writes."""
+    if isinstance(stmt, AdjointAssign):
+        return {stmt.var}
+    if isinstance(stmt, CallAdjoint):
+        return set(stmt.parts)
+    if isinstance(stmt, PopAdjoint) and stmt.var is not None:
+        return {stmt.var}
+    return set()
+
+
+def _bars_read(stmt: ReverseStmt) -> set[Var]:
+    return {n.var for e in _exprs(stmt) for n in walk(e) if isinstance(n, Bar)}
+
+
+def _can_pass(moved: ReverseStmt, between: list[ReverseStmt]) -> bool:
+    """Whether ``moved`` (an ``+=`` or ``=``, into a number's adjoint or a list
+    adjoint's element) can move past ``between``, statements of its own source
+    statement: none reads or sets what it writes, none changes what it reads; an
+    ``+=`` into any list element commutes with it."""
+    reads = _bars_read(moved)
+    for stmt in between:
+        if stmt.origin != moved.origin or not isinstance(
+            stmt, (AdjointAssign, ElementAdjoint)
+        ):
+            return False
+        if _written_bars(stmt) & reads:
+            return False
+        if isinstance(moved, AdjointAssign):
+            if moved.var in _written_bars(stmt) | _bars_read(stmt):
+                return False
+        elif _reads_list_adjoint_stmt(stmt) or (
+            isinstance(stmt, ElementAdjoint) and not stmt.accumulate
+        ):
+            return False
+    return True
+
+
+def _reads_list_adjoint_stmt(stmt: ReverseStmt) -> bool:
+    return any(_reads_list_adjoint(e) for e in _exprs(stmt))
+
+
+def _same_target(first: ReverseStmt, stmt: ReverseStmt) -> bool:
+    if isinstance(stmt, AdjointAssign):
+        return (
+            isinstance(first, AdjointAssign)
+            and first.var == stmt.var
+            and stmt.var.shape == "scalar"
+            and not any(n == Bar(stmt.var) for n in walk(stmt.expr))
+        )
+    return (
+        isinstance(stmt, ElementAdjoint)
+        and isinstance(first, ElementAdjoint)
+        and (first.root, first.index) == (stmt.root, stmt.index)
+        and not _reads_list_adjoint(stmt.expr)
+    )
+
+
+def _factors(expr: Expr) -> list[Expr]:
+    """The factors of a product chain ``a * b * c`` (a quotient is one factor)."""
+    if isinstance(expr, Apply) and expr.op == "mul":
+        return _factors(expr.args[0]) + _factors(expr.args[1])
+    return [expr]
+
+
+def _product_of(factors: list[Expr]) -> Expr:
+    out = factors[0] if factors else const(1.0)
+    for factor in factors[1:]:
+        out = Apply("mul", (out, factor))
+    return out
+
+
+def _with_sign(negative: bool, expr: Expr) -> Expr:
+    return Apply("neg", (expr,)) if negative else expr
+
+
+def _sum_factored(a: Expr, b: Expr) -> Expr:
+    """``a + b`` with a factor common to both terms taken out once, as a person
+    writes it: ``g * x - g * y`` is ``g * (x - y)`` (reassociated: may differ in
+    the last bit from the term-by-term sum)."""
+    a, b = simplify(a), simplify(b)
+    if a == b:  # 2.0 * x, from simplify
+        return simplify(Apply("add", (a, b)))
+    a_negative, a_magnitude = split_sign(a)
+    b_negative, b_magnitude = split_sign(b)
+    left, right = _factors(a_magnitude), _factors(b_magnitude)
+    for k, factor in enumerate(left):
+        if number(factor) is None and factor in right:
+            rest_a = _product_of(left[:k] + left[k + 1 :])
+            others = list(right)
+            others.remove(factor)
+            rest_b = _product_of(others)
+            inner = Apply(
+                "add", (_with_sign(a_negative, rest_a), _with_sign(b_negative, rest_b))
+            )
+            return simplify(Apply("mul", (factor, inner)))
+    return simplify(Apply("add", (a, b)))
+
+
 def _merge_adjacent(statements: tuple[ReverseStmt, ...]) -> tuple[ReverseStmt, ...]:
-    """``x_bar = a``, ``x_bar += b`` from one source statement: ``x_bar = a + b``;
-    likewise for one element of a list adjoint."""
+    """``x_bar = a`` (or ``+= a``), ``x_bar += b`` from one source statement:
+    ``x_bar = a + b`` where the second is, when the first can move there;
+    likewise for one element of a list adjoint (``u_bar[i] += a - 2.0 * b``), so
+    each adjoint gets one ``+=`` per source statement."""
     out: list[ReverseStmt] = []
     for stmt in statements:
         if isinstance(stmt, ReverseBranch):
@@ -85,31 +186,22 @@ def _merge_adjacent(statements: tuple[ReverseStmt, ...]) -> tuple[ReverseStmt, .
             )
         elif isinstance(stmt, ReverseLoop):
             stmt = replace(stmt, body=_merge_adjacent(stmt.body))
-        previous = out[-1] if out else None
         if (
-            isinstance(stmt, AdjointAssign)
+            isinstance(stmt, (AdjointAssign, ElementAdjoint))
             and stmt.accumulate
-            and isinstance(previous, AdjointAssign)
-            and previous.var == stmt.var
-            and previous.origin == stmt.origin
-            and stmt.var.shape == "scalar"
-            and not any(n == Bar(stmt.var) for n in walk(stmt.expr))
-        ):
-            merged = simplify(Apply("add", (previous.expr, stmt.expr)))
-            out[-1] = replace(previous, expr=merged)
-            continue
-        if (
-            isinstance(stmt, ElementAdjoint)
-            and stmt.accumulate
-            and isinstance(previous, ElementAdjoint)
-            and (previous.root, previous.index, previous.origin)
-            == (stmt.root, stmt.index, stmt.origin)
             and not _reads_list_adjoint(stmt.expr)
         ):
-            # u_bar[i] += a; u_bar[i] += b (u[i] * u[i]): u_bar[i] += a + b
-            merged = simplify(Apply("add", (previous.expr, stmt.expr)))
-            out[-1] = replace(previous, expr=merged)
-            continue
+            for at in range(len(out) - 1, -1, -1):
+                first = out[at]
+                if first.origin != stmt.origin:
+                    break
+                if not _same_target(first, stmt):
+                    continue
+                if _can_pass(first, out[at + 1 :]):
+                    merged = _sum_factored(first.expr, stmt.expr)  # type: ignore[union-attr]
+                    del out[at]
+                    stmt = replace(first, expr=merged)
+                break
         out.append(stmt)
     return tuple(out)
 
