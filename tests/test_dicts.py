@@ -61,8 +61,9 @@ def test_a_dict_of_numbers_is_a_list_with_its_keys_positions():
 
 def test_loops_over_constant_dicts():
     text = gradwright.generate(MODEL, ["weighted"])
-    assert "    keys = list(ANCHORS)\n" in text
-    assert "        w = ANCHORS[keys[w_index]]\n" in text
+    # (keys, the weights loop's, is read again by its reverse: weights[name])
+    assert "    keys_1 = list(ANCHORS)\n" in text
+    assert "        w = ANCHORS[keys_1[w_index]]\n" in text
     ns = build(MODEL, "weighted")
     _, (x_bar,) = ns["weighted_grad"](0.6)
     x = sympy.Symbol("x")

@@ -9,8 +9,10 @@ Decides, for the structured SSA and its reverse sweep:
   source's; a value the reverse sweep reads later keeps a name of its own;
 - what each loop saves for its reverse: values the reverse body reads are written to
   a list preallocated when the loop starts (``x_saved``), one slot per iteration;
-  cheap values that depend only on the loop index and on values from before the loop
-  are recomputed instead; the lists of an inner loop are saved by the outer one;
+  a cheap value one operation away from values the reverse reads anyway (the loop
+  index, values from before the loop, restored values, elements of a list nothing
+  writes after) is recomputed instead, and one rebuilt through a chain of
+  temporaries is saved; the lists of an inner loop are saved by the outer one;
 - and prints both sweeps as indented lines with the quoting comments.
 """
 
@@ -233,7 +235,10 @@ class Layout(NamingLayout):
             return False
         if let.op == "getitem":
             container = let.args[0]
-            if not (isinstance(container, Var) and container.kind == "param"):
+            if not (
+                isinstance(container, Var)
+                and (container.kind == "param" or self._final(container, var))
+            ):
                 return False
         elif let.op == "dataitem":
             pass  # module-level data: read again, as cheap as reading the save
@@ -256,6 +261,34 @@ class Layout(NamingLayout):
                 return False
         return True
 
+    def _final(self, version: Var, reader: Var) -> bool:
+        """Whether no element write or append changes the list ``version`` after
+        ``reader`` reads it: every write to the list comes before the read and in
+        no loop around it (read again in the reverse sweep, not saved: the total
+        of u[i] * u[i] after the last write to u)."""
+        root = self.roots.get(version, version)
+        if root in self.sweep.rebound:
+            return False
+        for other in self.versions.get(root, [root]):
+            let = self.defs.get(other)
+            if let is None:
+                continue  # a loop's or a branch's merge: written by its own Lets
+            if let.op not in ("setitem", "append", "newlist", "listlit"):
+                return False  # a copied statement's or a call's list
+            if self.position[other] > self.position[reader]:
+                return False
+            if self._loops_around(other) & self._loops_around(reader):
+                return False  # a later iteration writes it again
+        return True
+
+    def _loops_around(self, var: Var) -> set[Loop]:
+        found: set[Loop] = set()
+        loop = self.loop_of.get(var)
+        while loop is not None:
+            found.add(loop)
+            loop = self.parent.get(loop)
+        return found
+
     def _leaves(self, var: Var, loop: Loop) -> set[Var]:
         """The values of this iteration of ``loop`` that recomputing ``var`` needs
         saved (values from outside the loop and indices it has anyway)."""
@@ -270,6 +303,24 @@ class Layout(NamingLayout):
             else:
                 found.add(arg)
         return found
+
+    def _rebuild_cost(self, var: Var, loop: Loop, direct: set[Var]) -> int:
+        """The operations recomputing ``var`` in ``loop``'s reverse body takes
+        beyond those the reverse does anyway (values it reads itself are free)."""
+        cost = 1
+        for arg in self.defs[var].args:
+            if (
+                isinstance(arg, Var)
+                and arg.kind != "index"
+                and arg not in direct
+                and self.cheap(arg) == arg  # inactive arithmetic printed inline
+                and self.loop_of.get(arg) is loop
+                and arg in self.defs
+                and self.defs[arg].op != "dataitem"  # module data: as cheap as a save
+                and self._recomputable(arg, loop)
+            ):
+                cost += self._rebuild_cost(arg, loop, direct)
+        return cost
 
     def _encloses(self, outer: Loop | None, loop: Loop) -> bool:
         current: Loop | None = self.parent.get(loop)
@@ -314,6 +365,9 @@ class Layout(NamingLayout):
                 # recomputed from values saved anyway; else one save of its own
                 # costs less than saving what it is made of (u[i - 1], u[i], ...)
                 and self._leaves(var, where) <= direct
+                # and in one operation: a value rebuilt through a chain of
+                # temporaries is saved instead (the one value the reverse reads)
+                and self._rebuild_cost(var, where, direct) <= 1
             ):
                 let = self.defs[var]
                 bucket = self.recompute.setdefault(where, [])
