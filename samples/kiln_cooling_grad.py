@@ -2,7 +2,7 @@
 # source: samples/kiln_cooling.py
 # source sha256: a06d7e41ceb820bdb9f7afefdfd582c36125c98be226eb56a6a555feac5b0ed6
 # command: gradwright gen samples/kiln_cooling.py kiln_loss --wrt k_conv,k_rad,start_temp -o samples/kiln_cooling_grad.py
-# output sha256: 2127527339f1d51f735ce5e4e1db233e38baaeb3e2823a7e4db5cb99b9ebed45
+# output sha256: 8e897298d6de2a539c01b621d458cdc2e6d8ed3c7c6fca16bac2ed70d84dd46d
 
 AMBIENT = 293.15  # kelvin
 SAFE_POINT = 700.0  # kelvin: below this the heater comes on
@@ -87,13 +87,12 @@ def kiln_loss_grad(k_conv, k_rad, start_temp, readings, dt, steps_per_reading):
     # return loss / len(readings)
     loss_bar = 1.0 / value_1
     # for reading in readings:
-    temp_bar_1 = 0.0
+    temp_bar = 0.0
     k_conv_bar = 0.0
     k_rad_bar = 0.0
     for reading_index in reversed(range(len(readings))):
         err = err_saved[reading_index]
         temp_1_partials_saved = temp_1_partials_saved_by_reading_index[reading_index]
-        temp_bar = temp_bar_1
         # loss += err * err
         err_bar = 2.0 * loss_bar * err
         # err = temp - reading
@@ -106,7 +105,6 @@ def kiln_loss_grad(k_conv, k_rad, start_temp, readings, dt, steps_per_reading):
             temp_bar += temp_1_bar * temp_1_partials[0]
             k_conv_bar += temp_1_bar * temp_1_partials[1]
             k_rad_bar += temp_1_bar * temp_1_partials[2]
-        temp_bar_1 = temp_bar
     # temp = start_temp
-    start_temp_bar = temp_bar_1
+    start_temp_bar = temp_bar
     return value, (k_conv_bar, k_rad_bar, start_temp_bar)

@@ -675,3 +675,31 @@ def test_a_list_no_later_write_changes_is_read_again_not_saved():
     assert "s_1 = s_1_saved[i]" in reverse  # u[i], as s's update read it
     args = (0.7, 0.9, 4)
     _check_against_mpmath(REREAD, "f", args, [0, 1])
+
+
+NESTED_STEPS = """
+def settle(x, k, n, m):
+    loss = 0.0
+    for i in range(n):
+        for j in range(m):
+            x = x - 0.1 * k * x * x
+        loss += (x - 0.5 * i) ** 2
+    return loss
+"""
+
+
+def test_adjoint_carried_through_nested_loops_keeps_one_name():
+    """x_bar flows through both loops: updated in place, not copied into
+    another name at the start of each outer iteration and back at its end."""
+    text = gradwright.generate(NESTED_STEPS, ["settle"], wrt=["x", "k"])
+    _, reverse = _sweeps(text, "settle")
+    # one copy into the parameter's adjoint after the loops, none in them
+    assert "x_bar_1 = x_bar\n" not in reverse
+    assert reverse.count("x_bar = x_bar_1") == 1
+    assert reverse.rstrip().endswith("x_bar = x_bar_1\n    return loss, (x_bar, k_bar)")
+    kiln = (ROOT / "samples" / "kiln_cooling.py").read_text()
+    wrt = ["k_conv", "k_rad", "start_temp"]
+    _, reverse = _sweeps(gradwright.generate(kiln, ["kiln_loss"], wrt=wrt), "kiln_loss")
+    assert "temp_bar_1" not in reverse
+    args = (0.8, 0.3, 3, 4)
+    _check_against_mpmath(NESTED_STEPS, "settle", args, [0, 1])

@@ -203,7 +203,14 @@ class NamingLayout:
                     if carry is None or carry in self.namer.bar_names:
                         continue
                     handed = _first_write_of(statements[position + 1 :], phi.first)
-                    if handed is not None and handed.expr == Bar(carry):
+                    if phi.target in self.namer.bar_names and _writes_then_no_read(
+                        body, phi.target, carry
+                    ):
+                        # named by an inner loop it is handed to (temp_bar through
+                        # both loops of a nested time stepping): the carried
+                        # adjoint is updated in place, no copies at the ends
+                        name = self.namer.bar_names[phi.target]
+                    elif handed is not None and handed.expr == Bar(carry):
                         name = self.namer.bar_name(phi.first)  # type: ignore[arg-type]
                     else:
                         # the start-of-iteration value's own name, claimed for the
