@@ -277,6 +277,16 @@ def test_empty_sum_gives_a_float_gradient_entry():
     assert y_bar == 4.0
 
 
+def test_a_trip_count_times_a_parameter_gives_a_float_gradient_entry():
+    source = (
+        "def f(y, n):\n    for k in range(n):\n        y = y + 0.5\n    return y * n\n"
+    )
+    module = build(source, "f", ["y"])
+    value, (y_bar,) = module["f_grad"](1.0, 3)
+    # closed form: d/dy ((y + 0.5 n) n) = n, a float as any gradient entry
+    assert y_bar == 3.0 and type(y_bar) is float
+
+
 LOOP_ATAN2 = """
 import math
 

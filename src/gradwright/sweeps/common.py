@@ -183,7 +183,13 @@ def _floats(sweep: ReverseSweep, function: SSAFunction) -> ReverseSweep:
     """An adjoint made only of values that may be ints (``x *= sum(zs)`` with an
     empty ``zs``: ``x_bar = x_1`` once the seed's ``1.0 *`` is folded) is made a
     float, as the seed would have made it."""
-    maybe_int: set[Var] = set()
+    # a range bound is an int (``return y * n`` after ``for k in range(n)``)
+    maybe_int: set[Var] = {
+        bound
+        for loop in _loops(function.body)
+        for bound in loop.bounds
+        if isinstance(bound, Var)
+    }
     for let in walk_lets(function.body):
         ints = all(
             (isinstance(a, Var) and (a in maybe_int or a.kind == "index"))
@@ -207,6 +213,16 @@ def _floats(sweep: ReverseSweep, function: SSAFunction) -> ReverseSweep:
     if not maybe_int:
         return sweep
     return map_sweep(sweep, lambda e: Apply("float", (e,)) if int_valued(e) else e)
+
+
+def _loops(statements: Iterable[Stmt]) -> Iterable[Loop]:
+    for stmt in statements:
+        if isinstance(stmt, Branch):
+            yield from _loops(stmt.then)
+            yield from _loops(stmt.orelse)
+        elif isinstance(stmt, Loop):
+            yield stmt
+            yield from _loops(stmt.body)
 
 
 def _map(stmt: ReverseStmt, change: Callable[[Expr], Expr]) -> ReverseStmt:
