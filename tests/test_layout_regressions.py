@@ -631,3 +631,32 @@ def test_inner_while_whose_values_are_dead_still_counts_its_trips():
     value, (y_bar,) = module["f_grad"](0.7)
     assert value == run_source(INNER_WHILE_ONLY_REPLAYED)["f"](0.7)
     assert y_bar == 0.0  # the outer loop runs once and ends with t1 = 0.5: by hand
+
+
+SWAPPED_BUFFERS = """
+def f(y, xs):
+    xsu2 = list(xs)
+    xsw3 = [0.0] * 2
+    for i5 in range(2):
+        for k4 in range(2):
+            xsw3[k4] = (
+                (xsu2[-1] * xsu2[-1])
+                if min(xs[1], (xsu2[-1] + 0.375)) != (xsu2[-1] + 0.375)
+                else xsu2[k4]
+            )
+        xsu2, xsw3 = xsw3, xsu2
+    return sum(xsu2)
+"""
+
+
+def test_an_element_of_a_swapped_buffer_is_saved_not_read_again():
+    # xsu2[-1] was read again in the reverse sweep as if xsu2 were never written
+    # after it, but the swap makes xsu2 the buffer the next iteration writes
+    # (found by a long list_values run: 67.17 against 23.18)
+    module = build(SWAPPED_BUFFERS, "f")
+    args = (1.0, [-0.309298537388435, 1.4256669269653848])
+    value, grads = module["f_grad"](*args)
+    # outside reference: mpmath central differences
+    reference = mp_gradient(mp_function(SWAPPED_BUFFERS, "f"), args, [1])
+    for got, want in zip(grads[1], reference[0], strict=True):
+        assert rel_err(got, want) < 1e-9, (got, want)

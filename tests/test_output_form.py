@@ -182,8 +182,9 @@ def test_heat_scheme_reads_each_cell_once():
     forward, reverse = _sweeps(text, "heat_loss")
     # v[0] = left: its adjoint is read and then nothing reads v_bar[0]: no zeroing
     assert "v_bar[0] = 0.0" not in reverse and "u_bar[0] = 0.0" not in reverse
-    # total += u[i] * u[i]: u is not written after it: read again, not saved
-    assert "total_1_saved" not in forward and "total_1 = u[i]" in reverse
+    # total += u[i] * u[i]: u comes out of a loop (a merge, which may hold
+    # another list object after a swap), so its cells are saved, once each
+    assert forward.count("total_1_saved[i] = total_1") == 1
     # v[i] = u[i] + r * (u[i - 1] - 2.0 * u[i] + u[i + 1]):
     # the reverse reads only the stencil: saved once, not the three cells it is
     # made of
@@ -406,8 +407,10 @@ def test_fold_without_a_name_is_named_for_what_it_holds():
     forward, _ = _sweeps(text, "spread")
     assert "largest = errs[0]" in forward and "value = a * largest" in forward
     forward, _ = _sweeps(text, "floor")
-    assert "smallest = terms[0]" in forward and "smallest_1 = xs[0]" in forward
-    assert "value = smallest + smallest_1 * a" in forward
+    # the second fold's number depends on how many names the layout keeps
+    second = re.search(r"(smallest_\d+) = xs\[0\]", forward)
+    assert "smallest = terms[0]" in forward and second is not None
+    assert f"value = smallest + {second.group(1)} * a" in forward
     forward, _ = _sweeps(text, "worst")
     assert "worst = errs[0]" in forward  # bound to a name: that name
     for func in ("spread", "floor", "worst"):
@@ -677,11 +680,12 @@ def f(x, c, n):
 
 
 def test_a_list_no_later_write_changes_is_read_again_not_saved():
-    """w is not written after the last loop reads it: the reverse reads w[i]
-    again; u is, by the next iteration of t: its elements are saved."""
+    """u is written again by the next iteration of t: its elements are saved.
+    w comes out of the loop that writes it (a merge, which after a swap may be
+    another list object): saved too, until merges are followed to their lists."""
     text = gradwright.generate(REREAD, ["f"], wrt=["x", "c"])
     forward, reverse = _sweeps(text, "f")
-    assert "= w[i]" in reverse and "= u[i]" not in reverse
+    assert "= u[i]" not in reverse
     assert "s_1 = s_1_saved[i]" in reverse  # u[i], as s's update read it
     args = (0.7, 0.9, 4)
     _check_against_mpmath(REREAD, "f", args, [0, 1])

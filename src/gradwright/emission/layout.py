@@ -272,7 +272,9 @@ class Layout(NamingLayout):
         for other in self.versions.get(root, [root]):
             let = self.defs.get(other)
             if let is None:
-                continue  # a loop's or a branch's merge: written by its own Lets
+                # a loop's or a branch's merge: it may hold another list object
+                # (xs, ys = ys, xs swaps two buffers), which later writes change
+                return False
             if let.op not in ("setitem", "append", "newlist", "listlit"):
                 return False  # a copied statement's or a call's list
             if self.position[other] > self.position[reader]:
