@@ -53,7 +53,7 @@ from gradwright.ir import (
     walk,
 )
 from gradwright.sweeps.optimize import all_statements, map_sweep, sweep_exprs
-from gradwright.sweeps.reverse import defined_in, walk_lets
+from gradwright.sweeps.reverse import defined_in, walk_lets, walk_loops
 
 Table = dict[Apply, Var]
 #: a block of the forward SSA: None for the function body, the loop, or a side
@@ -186,7 +186,7 @@ def _floats(sweep: ReverseSweep, function: SSAFunction) -> ReverseSweep:
     # a range bound is an int (``return y * n`` after ``for k in range(n)``)
     maybe_int: set[Var] = {
         bound
-        for loop in _loops(function.body)
+        for loop in walk_loops(function.body)
         for bound in loop.bounds
         if isinstance(bound, Var)
     }
@@ -213,16 +213,6 @@ def _floats(sweep: ReverseSweep, function: SSAFunction) -> ReverseSweep:
     if not maybe_int:
         return sweep
     return map_sweep(sweep, lambda e: Apply("float", (e,)) if int_valued(e) else e)
-
-
-def _loops(statements: Iterable[Stmt]) -> Iterable[Loop]:
-    for stmt in statements:
-        if isinstance(stmt, Branch):
-            yield from _loops(stmt.then)
-            yield from _loops(stmt.orelse)
-        elif isinstance(stmt, Loop):
-            yield stmt
-            yield from _loops(stmt.body)
 
 
 def _map(stmt: ReverseStmt, change: Callable[[Expr], Expr]) -> ReverseStmt:

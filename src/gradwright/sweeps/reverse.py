@@ -63,14 +63,14 @@ def differentiable(op: str) -> bool:
     return op in RULES or op in _LIST_FLOW or op.startswith("call:")
 
 
-def _loops(statements: Iterable[Stmt]) -> Iterable[Loop]:
+def walk_loops(statements: Iterable[Stmt]) -> Iterable[Loop]:
     for stmt in statements:
         if isinstance(stmt, Branch):
-            yield from _loops(stmt.then)
-            yield from _loops(stmt.orelse)
+            yield from walk_loops(stmt.then)
+            yield from walk_loops(stmt.orelse)
         elif isinstance(stmt, Loop):
             yield stmt
-            yield from _loops(stmt.body)
+            yield from walk_loops(stmt.body)
 
 
 def walk_lets(statements: Iterable[Stmt]) -> Iterable[Let]:
@@ -554,7 +554,7 @@ class _Reverse:
         made of zeros where the list is made)."""
         own = {self.root[v] for v in self.rebound}
         moved: set[Var] = set()
-        for loop in _loops(self.body):
+        for loop in walk_loops(self.body):
             for phi in loop.carried:
                 if phi.target in self.rebound:
                     if self.root[phi.first].kind != "param":  # type: ignore[index]
