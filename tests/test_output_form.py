@@ -175,6 +175,29 @@ def test_binomial_tree_powers_are_saved_not_recomputed():
     )
 
 
+def test_binomial_tree_branches_on_the_exercise_condition():
+    # max(hold, exercise)'s adjoint goes to one side: the exercise side's powers
+    # are evaluated only at nodes where exercising wins
+    text = gradwright.generate(scalar_models.BINOMIAL_TREE, ["tree_price"])
+    _, reverse = _sweeps(text, "tree_price")
+    lines = reverse.splitlines()
+    test = next(
+        k for k, line in enumerate(lines) if line.strip() == "if values_6 > hold:"
+    )
+    power = next(k for k, line in enumerate(lines) if "u ** (j - 1)" in line)
+    indent = len(lines[test]) - len(lines[test].lstrip())
+    assert test < power and lines[power].startswith(" " * (indent + 4))
+    assert lines[test + 6].strip() == "else:"
+    assert "else 0.0" not in reverse
+    # the payoff's max(..., 0.0): nothing at all where the option is out of money
+    assert "if values_3 >= 0.0:" in reverse
+    for steps in (5, 8):  # nodes on both sides of the exercise boundary
+        args = (100.0, 95.0, 0.25, 0.03, 1.0, steps)
+        _check_against_mpmath(
+            scalar_models.BINOMIAL_TREE, "tree_price", args, range(5), 1e-9
+        )
+
+
 def test_heat_scheme_reads_each_cell_once():
     text = gradwright.generate(
         scalar_models.HEAT_SCHEME, ["heat_loss"], wrt=["conductivity", "left"]

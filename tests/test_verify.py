@@ -23,9 +23,9 @@ def lse(a, b):
     return 3.0 * s
 """
 
-CAPPED = """def capped(x):
+DAMPED = """def damped(x):
     y = 1e200 * x * x
-    return min(y, 1.0)
+    return 1.0 / (1.0 + y)
 """
 
 ROOT_SQUARED = """import math
@@ -178,11 +178,12 @@ def test_a_non_finite_adjoint_is_traced_to_its_source_statement(
 
 
 def test_forward_overflow_is_told_apart_from_the_adjoint(tmp_path: Path) -> None:
-    # y overflows to inf, min(y, 1.0) is 1.0, and 0.0 * inf is nan in the sweep
-    model = _model(tmp_path, "capped", CAPPED)
-    result = cli("verify", str(model), "capped", "--at", "x=1e160", cwd=tmp_path)
+    # y overflows to inf, 1 / (1 + y) is 0.0, and its derivative -0.0 times
+    # dy/dx = inf is nan in the sweep
+    model = _model(tmp_path, "damped", DAMPED)
+    result = cli("verify", str(model), "damped", "--at", "x=1e160", cwd=tmp_path)
     assert result.code == 1
-    assert "the value is finite (1.0) but gradient entry x is nan" in result.out
+    assert "the value is finite (0.0) but gradient entry x is nan" in result.out
     assert re.search(r"first non-finite forward value: \w+ = inf", result.out)
     assert re.search(r"first non-finite adjoint: x_bar = nan", result.out)
     assert f"from {model}:2: y = 1e200 * x * x" in result.out

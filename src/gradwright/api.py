@@ -42,6 +42,7 @@ from gradwright.sweeps.reverse import (
     reverse_sweep,
     walk_lets,
 )
+from gradwright.sweeps.selects import branch_selects
 from gradwright.sweeps.shapes import Dim, ShapeTable, literal_shape, with_sizes
 
 
@@ -118,6 +119,8 @@ def _differentiate(
     sweep, ssa = reuse_values(
         drop_dead_zeroing(sweep), ssa, share=not index.numpy_modules
     )
+    if scalar:
+        sweep = branch_selects(sweep)
     if fitter is not None:
         sweep = plan_in_place(tidy(sweep, fitter), fitter)
     return Compiled(checked, ssa, sweep, active, role, declared)

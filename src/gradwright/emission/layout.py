@@ -397,7 +397,8 @@ class Layout(NamingLayout):
                 elif isinstance(stmt, PopAdjoint):
                     pass  # reads only adjoints
                 elif isinstance(stmt, ReverseBranch):
-                    collect(stmt.condition, loop, everywhere=True)
+                    # a kink's branch tests saved values like its select did
+                    collect(stmt.condition, loop, stmt.branch is not None)
                     visit(stmt.then, loop)
                     visit(stmt.orelse, loop)
                 else:

@@ -699,21 +699,28 @@ class _Emitter:
                     sides.append(side.lines)
                     events.append(side_events)
                 then_lines, else_lines = sides
+                # a branch on a kink's condition (sweeps/selects.py) has no
+                # forward branch: its sides go with no other branch's
+                key = id(stmt.branch) if stmt.branch is not None else id(stmt)
                 if not then_lines and not else_lines:
-                    trace.branch(id(stmt.branch), *events)
+                    trace.branch(key, *events)
                     continue
                 out.comment(stmt.origin, depth)
-                condition_expr = self.layout.cheap(stmt.condition, True)
+                condition_expr = self.layout.cheap(
+                    stmt.condition, stmt.branch is not None
+                )
                 trace.at(stmt.origin.text)
                 self.reads(condition_expr)
-                trace.branch(id(stmt.branch), *events)
+                trace.branch(key, *events)
                 condition = self.rprint(condition_expr)
                 out.code(f"if {condition}:", depth)
                 out.lines.extend(then_lines or ["    " * (depth + 1) + "pass"])
                 if else_lines:
                     out.code("else:", depth)
                     out.lines.extend(else_lines)
-                out.last_origin[depth] = None
+                # a kink's branch is part of its statement's lines: what follows
+                # from the same statement stays under the one comment
+                out.last_origin[depth] = stmt.origin if stmt.branch is None else None
             else:
                 self.reverse_loop(stmt, depth, out)
 

@@ -67,6 +67,10 @@ def _exprs(stmt: ReverseStmt) -> tuple[Expr, ...]:
     return ()
 
 
+#: the expressions one statement evaluates (not those of nested blocks)
+statement_exprs = _exprs
+
+
 def _reads_list_adjoint(expr: Expr) -> bool:
     # a list adjoint changes in place: reading it must stay where it is
     return any(isinstance(n, Bar) and n.var.shape == "list" for n in walk(expr))
