@@ -2,7 +2,7 @@
 # source: samples/cable_sag.py
 # source sha256: 60a95002dd1d21d9e5e7f63265caaee126765d6ffe25172b57604f5de1edd964
 # command: gradwright gen samples/cable_sag.py rig_loss -o samples/cable_sag_grad.py
-# output sha256: 796ebf8c0cc20526c853848beb16e3975af5bfab3258a77d6d34cec1ac685dc1
+# output sha256: 137268ab2305a69f6fbdbd12ea2ded71d56a19839c7aea00f06ef4904e171256
 
 import math
 
@@ -55,5 +55,5 @@ def rig_loss_grad(a, span):
     half_bar = length_err_bar * length_1 * sag_1 + sag_err_bar * a * length_2
     # half = span / (2.0 * a)
     span_bar = half_bar / half_1
-    a_bar -= 2.0 * half_bar * half / half_1
+    a_bar -= 2.0 * span_bar * half
     return loss, (a_bar, span_bar)

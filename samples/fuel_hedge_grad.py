@@ -2,7 +2,7 @@
 # source: samples/fuel_hedge.py
 # source sha256: 0ea00fed34a5da6fdf8d79be718d957302aa63a99bc63f8c28269a24d0084725
 # command: gradwright gen samples/fuel_hedge.py call_value --wrt spot,vol,rate,years -o samples/fuel_hedge_grad.py
-# output sha256: 6a122a4bf4208f2d02aac176cb9854fb7cd272112c91e2bde74bbeecb2b8e69c
+# output sha256: 2b890e36f58533aef8bd15db3cfd2a3e1e77ab0fd4f32338ce6379c155810534
 
 import math
 from math import erf, exp, log, sqrt
@@ -62,7 +62,7 @@ def call_value_grad(spot, strike, vol, rate, years):
     root_t_bar = -d2_bar * vol
     # d1 = (log(spot / strike) + (rate + 0.5 * vol * vol) * years) / (vol * root_t)
     d1_bar_1 = d1_bar / d1_4
-    d1_4_bar = -d1_bar * d1 / d1_4
+    d1_4_bar = -d1_bar_1 * d1
     spot_bar += d1_bar_1 / d1_1 / strike
     d1_3_bar = d1_bar_1 * years
     years_bar += d1_bar_1 * d1_3

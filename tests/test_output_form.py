@@ -164,6 +164,40 @@ def test_atan2_shares_one_hypot_and_trig_values_are_read_not_recomputed():
     _check_against_mpmath(scalar_models.ARM_REACH, "reach_cost", args, range(6))
 
 
+def test_arm_divides_each_adjoint_by_a_hypot_once():
+    text = gradwright.generate(scalar_models.ARM_REACH, ["reach_cost"])
+    _, reverse = _sweeps(text, "reach_cost")
+    # hypot's rule divides its adjoint by the result once per argument, atan2's
+    # once per argument too: one shared quotient each (sweeps/quotients.py)
+    # (unshared: 2 and 4 + 2 divisions by span, 2 by dist, 4 by hypot(tx, ty))
+    assert reverse.count("span_bar / span") == 1
+    assert reverse.count("dist_bar / dist") == 1
+    assert reverse.count("/ dist") == 1 and reverse.count("/ span") == 4
+    assert reverse.count("/ target_bearing_1") == 3
+    for args in [(1.0, 0.7, 0.4, 0.9, 0.8, 1.1), (0.3, 1.9, -2.0, 2.5, -0.4, 0.2)]:
+        _check_against_mpmath(scalar_models.ARM_REACH, "reach_cost", args, range(6))
+
+
+QUOTIENT_CHAIN = """
+def chain(a, b, c):
+    q = a / (b * c)
+    g = q * q - a
+    r = g / c
+    return r + q * b
+"""
+
+
+@pytest.mark.parametrize("point", [(1.3, 0.4, 2.1), (-0.7, 3.0, -0.25)])
+def test_a_quotients_numerator_adjoint_is_reused_by_its_divisor(point):
+    # q = a / (b * c): the divisor's adjoint -q_bar * q / (b * c) reads the
+    # numerator's a_bar = q_bar / (b * c) instead of dividing again, also where
+    # a_bar is added to later (the read must come first)
+    text = gradwright.generate(QUOTIENT_CHAIN, ["chain"])
+    _, reverse = _sweeps(text, "chain")
+    assert reverse.count("/ q_1") == 1, reverse
+    _check_against_mpmath(QUOTIENT_CHAIN, "chain", point, range(3))
+
+
 def test_binomial_tree_powers_are_saved_not_recomputed():
     text = gradwright.generate(scalar_models.BINOMIAL_TREE, ["tree_price"])
     _, reverse = _sweeps(text, "tree_price")

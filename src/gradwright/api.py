@@ -24,7 +24,7 @@ from gradwright.lowering.frontend import (
 )
 from gradwright.lowering.ssa import lower
 from gradwright.sweeps.broadcasting import Fitter
-from gradwright.sweeps.common import reuse_values
+from gradwright.sweeps.common import fresh_uid, reuse_values
 from gradwright.sweeps.factoring import tidy
 from gradwright.sweeps.inplace import plan_in_place
 from gradwright.sweeps.optimize import (
@@ -35,6 +35,7 @@ from gradwright.sweeps.optimize import (
     sweep_exprs,
     tuple_seeds,
 )
+from gradwright.sweeps.quotients import share_quotients
 from gradwright.sweeps.reverse import (
     active_values,
     defined_in,
@@ -121,6 +122,7 @@ def _differentiate(
     )
     if scalar:
         sweep = branch_selects(sweep)
+        sweep = share_quotients(sweep, fresh_uid(ssa, sweep))
     if fitter is not None:
         sweep = plan_in_place(tidy(sweep, fitter), fitter)
     return Compiled(checked, ssa, sweep, active, role, declared)

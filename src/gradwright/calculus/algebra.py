@@ -310,6 +310,15 @@ def _product(op: str, a: Expr, b: Expr) -> Expr:
         return b
     if _is(b, 1):
         return a
+    # 1.0 / x * y is y / x: one rounding instead of two, one operation fewer
+    for recip, other in ((a, b), (b, a)):
+        if (
+            isinstance(recip, Apply)
+            and recip.op == "div"
+            and _is(recip.args[0], 1)
+            and number(other) is None
+        ):
+            return Apply("div", (other, recip.args[1]))
     if na is None and nb is not None:
         if _is_chain(a) and _merge_constant(nb, a) is None and not _power_of_two(nb):
             return Apply("mul", (a, b))  # x * y * 0.9: first would need parentheses

@@ -47,13 +47,13 @@ LN10 = 2.302585092994046
 def _power(g: E, out: E, x: E, y: E) -> tuple[E | None, E]:
     # d/dy = out*log(x) has the limit 0 at x == 0; a negative x has no real
     # derivative in y, and log(x) says so by raising.
-    d_exponent = where(x.eq(0), 0.0, g * out * log(x))
+    d_exponent = where(x.eq(0.0), 0.0, g * out * log(x))
     p = number(y.node)
     if p is None or isinstance(p, bool):
         # _constant_power's choice made at run time: out / x below 1 (no second
         # pow; at x == 0 it raises ZeroDivisionError as x**(y-1) did), x**(y-1)
         # from 1 on (finite at x == 0, accurate where out is subnormal)
-        return g * y * where(y.lt(1), out / x, x ** (y - 1)), d_exponent
+        return g * y * where(y.lt(1.0), out / x, x ** (y - 1)), d_exponent
     return _constant_power(g, out, x, p), d_exponent
 
 
@@ -61,7 +61,7 @@ def _one_power(g: E, out: E, x: E, y: E) -> tuple[E | None, E]:
     # y * x**(y-1) as written: for arrays (np.where would compute both of
     # _power's sides) and for an exponent with no adjoint (a count: u**j)
     if number(y.node) is None:
-        return g * y * x ** (y - 1), where(x.eq(0), 0.0, g * out * log(x))
+        return g * y * x ** (y - 1), where(x.eq(0.0), 0.0, g * out * log(x))
     return _power(g, out, x, y)
 
 
@@ -137,8 +137,8 @@ RULES: dict[str, Rule] = {
     # x % y == x - y * (x // y), and x // y is piecewise constant
     "mod": lambda g, out, x, y: (g, -g * (x // y)),
     "pow": _power,
-    "abs": lambda g, out, x: (where(x.ge(0), g, -g),),
-    "fabs": lambda g, out, x: (where(x.ge(0), g, -g),),
+    "abs": lambda g, out, x: (where(x.ge(0.0), g, -g),),
+    "fabs": lambda g, out, x: (where(x.ge(0.0), g, -g),),
     "max": lambda g, out, a, b: (where(a.ge(b), g, 0.0), where(b.gt(a), g, 0.0)),
     "min": lambda g, out, a, b: (where(a.le(b), g, 0.0), where(b.lt(a), g, 0.0)),
     "sin": lambda g, out, x: (g * cos(x),),
@@ -186,7 +186,7 @@ RULES: dict[str, Rule] = {
     "erfc": lambda g, out, x: (-_erf(g, x),),
     # copysign(x, y) == |x| * sign(y): no derivative in y away from y == 0
     "copysign": lambda g, out, x, y: (
-        where(x.ge(0), g * copysign(1.0, y), -g * copysign(1.0, y)),
+        where(x.ge(0.0), g * copysign(1.0, y), -g * copysign(1.0, y)),
         None,
     ),
 }

@@ -391,8 +391,7 @@ class _Sharing:
                 assert isinstance(arg, (Var, Const))
                 args.append(arg)
         if not self.next_uid:
-            uids = [v.uid for v in _vars(self.function, self.sweep)]
-            self.next_uid = max(uids, default=0) + 1
+            self.next_uid = fresh_uid(self.function, self.sweep)
         target = Var(self.next_uid, base, "temp")
         self.next_uid += 1
         self.added.setdefault(key, []).append(
@@ -470,6 +469,11 @@ def _relink(statements: tuple[ReverseStmt, ...], rebuilt: dict[int, Stmt]) -> tu
         else:
             out.append(stmt)
     return tuple(out)
+
+
+def fresh_uid(function: SSAFunction, sweep: ReverseSweep) -> int:
+    """A uid no value of the function or its reverse sweep has."""
+    return max((v.uid for v in _vars(function, sweep)), default=0) + 1
 
 
 def _vars(function: SSAFunction, sweep: ReverseSweep) -> Iterable[Var]:

@@ -87,6 +87,10 @@ def _written_bars(stmt: ReverseStmt) -> set[Var]:
     return set()
 
 
+#: the scalar adjoints one statement writes
+written_bars = _written_bars
+
+
 def _bars_read(stmt: ReverseStmt) -> set[Var]:
     return {n.var for e in _exprs(stmt) for n in walk(e) if isinstance(n, Bar)}
 
@@ -139,6 +143,10 @@ def _factors(expr: Expr) -> list[Expr]:
     if isinstance(expr, Apply) and expr.op == "mul":
         return _factors(expr.args[0]) + _factors(expr.args[1])
     return [expr]
+
+
+#: the factors of a product chain
+product_factors = _factors
 
 
 def _product_of(factors: list[Expr]) -> Expr:

@@ -344,9 +344,10 @@ class _Brancher:
             if var in private and self._foldable(expr, taken[at + 1 :]):
                 values[var] = expr
                 continue
-            out.append(replace(stmt, expr=expr))
             if is_zero(expr):
+                expr = _zero()  # -0.0 (a zero's negation) reads as noise
                 values[var] = expr
+            out.append(replace(stmt, expr=expr))
         return tuple(out)
 
     @staticmethod
