@@ -252,6 +252,13 @@ def test_heat_scheme_reads_each_cell_once():
 
 
 def test_power_law_fit():
+    text = gradwright.generate(scalar_models.POWER_LAW, ["power_fit"])
+    _, reverse = _sweeps(text, "power_fit")
+    # the three squares' 2.0 is taken once, into their shared seed (scales.py);
+    # 1.0 / (ln 2 * a * a) * a is a / (ln 2 * a * a)
+    assert "value_bar_1 = 2.0 / scale" in reverse
+    assert "e1_bar = value_bar_1 * e1" in reverse
+    assert "1.0 /" not in reverse
     args = (2.0, 0.7, 0.3, 1.5, 2.9, 2.5, 4.1, 4.0, 5.3)
     _check_against_mpmath(scalar_models.POWER_LAW, "power_fit", args, range(9))
 
@@ -301,6 +308,43 @@ def model(a, b):
     assert "Returns (value, (s_bar, t_bar))." in text
     assert "Returns (value, (p_bar, q_bar))." in text
     _check_against_mpmath(source, "model", (0.8, 0.6), [0, 1])
+
+
+STEPPER = """
+import math
+
+
+def advance(x, v, push, dt, drag):
+    accel = push - drag * v * abs(v)
+    return x + dt * v, v + dt * accel
+
+
+def coast(y, v, dt):
+    return advance(y, v, 0.0, dt, 0.3)
+
+
+def glide(push, drag, steps):
+    x, v = 0.0, 1.0
+    for n in range(steps):
+        x, v = advance(x, v, push * math.cos(0.1 * n), 0.05, drag)
+    x, v = coast(x, v, 0.05)
+    return x * x + v
+"""
+
+
+def test_adjoint_helpers_return_only_the_adjoints_a_call_site_reads():
+    # a tuple result: advance is reversed by advance_adjoint; no call differentiates
+    # dt (a constant at both calls), and coast's call passes constant push and drag
+    # but glide's differentiates them, so advance keeps them
+    text = gradwright.generate(STEPPER, ["glide"])
+    advance = text.split("def advance_adjoint")[1].split("\ndef ")[0]
+    assert "(x_bar, v_bar, push_bar, drag_bar), the adjoints" in advance
+    assert "dt_bar" not in advance
+    coast = text.split("def coast_adjoint")[1].split("\ndef ")[0]
+    assert "(y_bar, v_bar), the adjoints" in coast and "dt_bar" not in coast
+    # coast's call of advance still unpacks all four parts advance returns
+    assert "= advance_adjoint(" in coast
+    _check_against_mpmath(STEPPER, "glide", (0.7, 0.4, 6), [0, 1])
 
 
 def _folded_temporaries_with_a_bar(text: str) -> list[str]:
@@ -557,7 +601,9 @@ def test_summed_list_adjoint_is_read_directly():
     assert "rate_bar -= price_bar * c * price_terms_1 * k" in reverse
     _, reverse = _sweeps(text, "nested")
     assert "terms_bar =" not in reverse and "terms_bar[" not in reverse
-    assert "pop()" not in reverse and "terms_bar_1 = 2.0 * total_bar_2" in reverse
+    assert "pop()" not in reverse and "terms_bar_1 = total_bar_2" in reverse
+    # sum + fsum reads each term twice: the 2.0 goes into the one seed (scales.py)
+    assert "total_bar_2 = -0.2 * total_bar" in reverse
     # made before the loop that sums it: each element gathers every later
     # iteration's sum, so the list stays (each pop reading one sum was wrong)
     text = gradwright.generate(PRICES, ["running"])

@@ -15,7 +15,19 @@ from gradwright.diagnostics import GradwrightError, fail, file_location
 from gradwright.emission.module import Compiled, HelperRole, render_module
 from gradwright.emission.targets import DEFAULT_TARGET, get_target
 from gradwright.header import regeneration_command, shape_words, stamp
-from gradwright.ir import Apply, Const, Expr, SSAFunction, Var, const, walk
+from gradwright.ir import (
+    Apply,
+    CallAdjoint,
+    Const,
+    Expr,
+    ReverseBranch,
+    ReverseLoop,
+    ReverseStmt,
+    SSAFunction,
+    Var,
+    const,
+    walk,
+)
 from gradwright.lowering.frontend import (
     CheckedFunction,
     ModuleIndex,
@@ -28,6 +40,7 @@ from gradwright.sweeps.common import fresh_uid, reuse_values
 from gradwright.sweeps.factoring import tidy
 from gradwright.sweeps.inplace import plan_in_place
 from gradwright.sweeps.optimize import (
+    all_statements,
     drop_dead_zeroing,
     inline_adjoints,
     map_sweep,
@@ -43,6 +56,7 @@ from gradwright.sweeps.reverse import (
     reverse_sweep,
     walk_lets,
 )
+from gradwright.sweeps.scales import fold_scales
 from gradwright.sweeps.selects import branch_selects
 from gradwright.sweeps.shapes import Dim, ShapeTable, literal_shape, with_sizes
 
@@ -123,6 +137,7 @@ def _differentiate(
     if scalar:
         sweep = branch_selects(sweep)
         sweep = share_quotients(sweep, fresh_uid(ssa, sweep))
+        sweep = fold_scales(sweep)
     if fitter is not None:
         sweep = plan_in_place(tidy(sweep, fitter), fitter)
     return Compiled(checked, ssa, sweep, active, role, declared)
@@ -197,33 +212,74 @@ def _narrow_helpers(
     callers: dict[tuple[str, str], set[tuple[str, str]]] = {k: set() for k in by_key}
     for key, item in by_key.items():
         for callee in item.ssa.callees:
-            if (callee, "partials") in callers:
-                callers[(callee, "partials")].add(key)
-    # only helpers in partials form are differentiated again
-    settled = {k for k in by_key if k[1] != "partials"}
+            for role in ("partials", "adjoint"):
+                if (callee, role) in callers:
+                    callers[(callee, role)].add(key)
+    # only helpers are differentiated again
+    settled = {k for k in by_key if k[1] == "target"}
     pending = [k for k in by_key if k not in settled]
     while pending:
         key = next(k for k in pending if callers[k] <= settled)
         pending.remove(key)
         settled.add(key)
-        name = key[0]
+        name, role = key
         helper = by_key[key]
-        if helper.role != "partials":
-            continue
+        read = _partials_read if role == "partials" else _adjoint_parts_read
         needed: set[int] = set()
         for caller in callers[key]:
-            needed |= _partials_read(by_key[caller], name)
+            needed |= read(by_key[caller], name)
         params = [p.base for p in helper.ssa.params]
         wrt = tuple(base for k, base in enumerate(params) if k in needed)
         if not wrt or wrt == helper.checked.wrt:
             continue
+        if role == "adjoint" and helper.checked.wrt != tuple(params):
+            continue  # its callers' parts are one per parameter: kept aligned
         checked = check_function(index, name, wrt)
         ssa = lower(index, checked, stacks[name])
-        by_key[key] = _differentiate(index, checked, ssa, "partials", adjoint_helpers)
+        by_key[key] = _differentiate(index, checked, ssa, role, adjoint_helpers)
         positions = {params.index(base): j for j, base in enumerate(wrt)}
         for caller in callers[key]:
-            by_key[caller] = _renumber_partials(by_key[caller], name, positions)
+            if role == "partials":
+                by_key[caller] = _renumber_partials(by_key[caller], name, positions)
+            else:
+                by_key[caller] = _keep_parts(by_key[caller], name, set(positions))
     return [by_key[(c.ssa.name, c.role)] for c in compiled]
+
+
+def _adjoint_parts_read(item: Compiled, callee: str) -> set[int]:
+    """The parameters of ``callee`` whose adjoints ``item`` takes from a call of
+    its adjoint function: those whose argument is active at that call (as
+    ``reverse.call_adjoint`` adds only those; an array model may then read the
+    part through an in-place plan rather than an expression)."""
+    return {
+        k
+        for stmt in all_statements(item.reverse.statements)
+        if isinstance(stmt, CallAdjoint) and stmt.callee == callee
+        for k, arg in enumerate(stmt.args)
+        if isinstance(arg, Var) and arg in item.active
+    }
+
+
+def _keep_parts(item: Compiled, callee: str, kept: set[int]) -> Compiled:
+    """``item`` with its calls of ``callee``'s adjoint receiving only the parts
+    of the parameters in ``kept`` (the adjoint function returns those alone)."""
+
+    def block(statements: tuple[ReverseStmt, ...]) -> tuple[ReverseStmt, ...]:
+        out: list[ReverseStmt] = []
+        for stmt in statements:
+            if isinstance(stmt, CallAdjoint) and stmt.callee == callee:
+                parts = tuple(p for k, p in enumerate(stmt.parts) if k in kept)
+                stmt = replace(stmt, parts=parts)
+            elif isinstance(stmt, ReverseBranch):
+                stmt = replace(stmt, then=block(stmt.then), orelse=block(stmt.orelse))
+            elif isinstance(stmt, ReverseLoop):
+                stmt = replace(stmt, body=block(stmt.body))
+            out.append(stmt)
+        return tuple(out)
+
+    return replace(
+        item, reverse=replace(item.reverse, statements=block(item.reverse.statements))
+    )
 
 
 def _calls_of(item: Compiled, callee: str) -> set[Var]:

@@ -83,8 +83,10 @@ def _load(source: str, func: str, wrt: tuple[str, ...] | None) -> dict:
     return namespace
 
 
-REPEAT = 7
-RUN_SECONDS = 0.05
+#: runs per model and seconds per run; raise them on a machine with other load
+#: (GRADWRIGHT_BENCH_REPEAT=21 GRADWRIGHT_BENCH_SECONDS=0.2) for steadier figures
+REPEAT = int(os.environ.get("GRADWRIGHT_BENCH_REPEAT", "7"))
+RUN_SECONDS = float(os.environ.get("GRADWRIGHT_BENCH_SECONDS", "0.05"))
 TARGET = 2.0
 
 

@@ -385,5 +385,10 @@ def _power_of_two(value: float | int) -> bool:
     return value != 0 and math.isfinite(value) and abs(mantissa) == 0.5
 
 
+def power_of_two(value: float | int) -> bool:
+    """Whether multiplying by ``value`` is exact (outside overflow and underflow)."""
+    return _power_of_two(value)
+
+
 def is_zero(expr: Expr) -> bool:
     return _is(expr, 0)

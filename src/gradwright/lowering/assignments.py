@@ -216,6 +216,21 @@ class AssignmentLowering:
         written out in the function: its elements by position."""
         container = self.expr(value, UNPACKED, None)
         size = self.literal_size(container)
+        if size is None and isinstance(container, Var) and container.kind == "param":
+            # a state tuple handed to a step helper: not a parameter kind here
+            elements = [n.value for n in names if isinstance(n, cst.Name)]
+            params = [
+                ", ".join(elements) if p == container.base else p
+                for p in self.function.params
+            ]
+            fail(
+                f"'{container.base}' is a parameter: parameters are numbers or lists,"
+                " so it cannot be unpacked",
+                self.index.locate(value),
+                f"take its elements as parameters, def {self.function.name}"
+                f"({', '.join(params)}), and pass them at each call (unpack the"
+                " tuple there first)",
+            )
         if size is None:
             fail(
                 "tuple unpacking needs a tuple of expressions, or a name bound to"

@@ -347,11 +347,22 @@ class InactiveLowering:
                 "a statement that reads no value depending on the --wrt parameters"
                 f" is copied as written, but this one reads '{active.value}'"
             )
-            hint = error.diagnostic.hint
+            hint = error.diagnostic.hint or ""
+            where = error.diagnostic.location
+            span = self.index.positions[stmt]
+            if (
+                "is copied as written" in hint
+                or f"'{active.value}'" in error.diagnostic.message
+                or where is None
+                or not span.start.line <= where.line <= span.end.line
+            ):
+                # said once already, the error names the value itself, or it is
+                # about another statement (in a helper this one calls)
+                why = ""
             fail(
                 error.diagnostic.message,
                 error.diagnostic.location,
-                f"{hint} ({why})" if hint else why,
+                f"{hint} ({why})" if hint and why else hint or why or None,
             )
 
     def copy_statement(
@@ -376,6 +387,8 @@ class InactiveLowering:
                 if isinstance(bound, _Unbound):
                     self.read_name(node)  # raises, located
                 if isinstance(bound, _Tuple):
+                    if quiet:
+                        return node  # not copyable: the lowering's error stands
                     fail(
                         f"'{name}' is a tuple of {bound.size} numbers: a statement"
                         " copied as written cannot read it whole",

@@ -209,7 +209,7 @@ class LoopLowering:
                 self.list_root[exit_var] = self.root_of(headers[n])
             self.env[n] = exit_var
         for n in assigned:
-            if isinstance(before.get(n), _Tuple):
+            if isinstance(before.get(n), _Tuple) and not _silent(body_env.get(n)):
                 if body_env.get(n) != before[n]:
                     fail(
                         f"'{n}' is a tuple of another length at the end of the loop",

@@ -176,6 +176,9 @@ class StatementLowering:
         )
         arity = -len(elements) if isinstance(value, cst.Tuple) else 1
         named = self.tuple_of(value)
+        if named is None and self.tuple_size(value) is not None:
+            # `return advance(x, v)`: another helper's tuple, element by element
+            named = self.tuple_elements(value, RESULT)
         if named is not None:  # `return state`, a name bound to a tuple
             arity = -len(named)
             if self.loop_depth:

@@ -370,49 +370,44 @@ def _into_arguments(
     return tuple(out)
 
 
-def _map_exprs(
-    statements: tuple[ReverseStmt, ...], change
-) -> tuple[ReverseStmt, ...]:  # noqa: ANN001
+def map_statements(
+    statements: tuple[ReverseStmt, ...],
+    change: Callable[[ReverseStmt], ReverseStmt],
+) -> tuple[ReverseStmt, ...]:
+    """``change`` applied to every statement that is not a block; branches and
+    loops are rebuilt around their changed bodies."""
     out: list[ReverseStmt] = []
     for stmt in statements:
-        if isinstance(stmt, AdjointAssign):
-            out.append(
-                AdjointAssign(stmt.var, change(stmt.expr), stmt.accumulate, stmt.origin)
+        if isinstance(stmt, ReverseBranch):
+            stmt = replace(
+                stmt,
+                then=map_statements(stmt.then, change),
+                orelse=map_statements(stmt.orelse, change),
             )
-        elif isinstance(stmt, ElementAdjoint):
-            out.append(
-                ElementAdjoint(
-                    stmt.root,
-                    stmt.index,
-                    change(stmt.expr),
-                    stmt.accumulate,
-                    stmt.origin,
-                )
-            )
-        elif isinstance(stmt, SpreadAdjoint):
-            out.append(replace(stmt, expr=change(stmt.expr)))
-        elif isinstance(stmt, CallAdjoint):
-            out.append(replace(stmt, seed=change(stmt.seed)))
-        elif isinstance(stmt, PopAdjoint):
-            out.append(stmt)
-        elif isinstance(stmt, ReverseBranch):
-            out.append(
-                replace(
-                    stmt,
-                    then=_map_exprs(stmt.then, change),
-                    orelse=_map_exprs(stmt.orelse, change),
-                )
-            )
+        elif isinstance(stmt, ReverseLoop):
+            stmt = replace(stmt, body=map_statements(stmt.body, change))
         else:
-            out.append(
-                ReverseLoop(stmt.loop, _map_exprs(stmt.body, change), stmt.origin)
-            )
+            stmt = change(stmt)
+        out.append(stmt)
     return tuple(out)
+
+
+def _change_expr(stmt: ReverseStmt, change: Callable[[Expr], Expr]) -> ReverseStmt:
+    if isinstance(stmt, (AdjointAssign, ElementAdjoint, SpreadAdjoint)):
+        return replace(stmt, expr=change(stmt.expr))
+    if isinstance(stmt, CallAdjoint):
+        return replace(stmt, seed=change(stmt.seed))
+    return stmt
 
 
 def map_sweep(sweep: ReverseSweep, change: Callable[[Expr], Expr]) -> ReverseSweep:
     """The sweep with ``change`` applied to each adjoint contribution."""
-    return replace(sweep, statements=_map_exprs(sweep.statements, change))
+    return replace(
+        sweep,
+        statements=map_statements(
+            sweep.statements, lambda stmt: _change_expr(stmt, change)
+        ),
+    )
 
 
 def all_statements(statements: Iterable[ReverseStmt]) -> Iterator[ReverseStmt]:
