@@ -491,3 +491,30 @@ def test_while_updating_a_value_of_an_enclosing_for():
     _, (x_bar,) = build(WHILE_IN_FOR, "f")["f_grad"](0.7)
     assert rel_err(x_bar, 3.24) < 1e-15
     _against_mpmath(WHILE_IN_FOR, "f", (0.7,), [0])
+
+
+AUGMENTED_IN_WHILE = """
+def f(x, y):
+    y = y * x
+    k = 0
+    while k < 2:
+        k = k + 1
+        y **= 2
+        y /= 2.0
+        y += 1.0
+    return y
+"""
+
+
+def test_augmented_assignment_with_a_constant_right_side_in_a_while():
+    # found by the long random run: ``y **= 2`` reads y, but the scope analysis
+    # records only its binding, so the loop was taken for one reading no active
+    # value and copied (then rejected as constant in y). Closed form (chain rule
+    # by hand): y0 = x y, then twice y -> y^2 / 2 + 1 (y1, y2); dy2/dy0 = y1 y0
+    x, y = 0.8, 1.3
+    _, (x_bar, y_bar) = build(AUGMENTED_IN_WHILE, "f")["f_grad"](x, y)
+    y0 = x * y
+    y1 = y0 * y0 / 2.0 + 1.0
+    assert rel_err(y_bar, y1 * y0 * x) < 1e-15
+    assert rel_err(x_bar, y1 * y0 * y) < 1e-15
+    _against_mpmath(AUGMENTED_IN_WHILE, "f", (x, y), [0, 1])

@@ -6,6 +6,7 @@ against the primal, bit for bit."""
 
 from __future__ import annotations
 
+import math
 import re
 import sys
 from pathlib import Path
@@ -431,6 +432,27 @@ def test_newton_iteration_reads_its_saved_sin_and_cos():
     _check_against_mpmath(KEPLER, "kepler", (1.1, 0.3), [0, 1])
 
 
+FIXED_POINT = (Path(__file__).parent / "models" / "dynamic_loops.py").read_text(
+    encoding="utf-8"
+)
+
+
+def test_an_adjoint_that_is_only_ever_zero_leaves_no_trace():
+    # change is read only by the loop's test: its adjoint is 0.0 in every
+    # iteration, so neither it nor the abs kink's side appears in the reverse
+    text = gradwright.generate(FIXED_POINT, ["fixed_point"], wrt=["p"])
+    _, reverse = _sweeps(text, "fixed_point")
+    assert "change" not in reverse.replace("# while change > tol:", "")
+    assert "x_bar = -0.5 * new_bar * math.sin(x)" in reverse
+    assert "x_bar = 0.0" not in reverse
+    settle = build(FIXED_POINT, "fixed_point")["fixed_point_grad"]
+    for p in (-0.8, 0.1, 0.9):
+        x, (p_bar, _) = settle(p, 1e-15)
+        # implicit-function theorem for x = 0.5 cos x + p (closed form):
+        # dx/dp = 1 / (1 + 0.5 sin x); iterations as run converge to it
+        assert rel_err(p_bar, 1.0 / (1.0 + 0.5 * math.sin(x))) < 1e-12
+
+
 # ---------------------------------------------------------------------------------
 # signs a person would write
 
@@ -809,7 +831,7 @@ def test_adjoint_carried_through_nested_loops_keeps_one_name():
     """x_bar flows through both loops: updated in place, not copied into
     another name at the start of each outer iteration and back at its end."""
     text = gradwright.generate(NESTED_STEPS, ["settle"], wrt=["x", "k"])
-    _, reverse = _sweeps(text, "settle")
+    _, reverse = _sweeps(text, "fixed_point")
     # one copy into the parameter's adjoint after the loops, none in them
     assert "x_bar_1 = x_bar\n" not in reverse
     assert reverse.count("x_bar = x_bar_1") == 1

@@ -59,6 +59,7 @@ from gradwright.sweeps.reverse import (
 from gradwright.sweeps.scales import fold_scales
 from gradwright.sweeps.selects import branch_selects
 from gradwright.sweeps.shapes import Dim, ShapeTable, literal_shape, with_sizes
+from gradwright.sweeps.zeros import merge_zero_starts, settle_zeros
 
 
 def compile_function(
@@ -128,7 +129,9 @@ def _differentiate(
     # repeated calls of the reverse become forward values, in scalar models only
     # (in an array model each would be a whole array held for the reverse)
     scalar = not index.numpy_modules  # an array adjoint read twice would be shared
-    sweep = inline_adjoints(spread_reads(sweep, ssa.body) if scalar else sweep)
+    if scalar:
+        sweep = spread_reads(settle_zeros(sweep), ssa.body)
+    sweep = inline_adjoints(sweep)
     if scalar:
         sweep = tuple_seeds(sweep, dict(ssa.tuple_sizes))
     sweep, ssa = reuse_values(
@@ -137,7 +140,7 @@ def _differentiate(
     if scalar:
         sweep = branch_selects(sweep)
         sweep = share_quotients(sweep, fresh_uid(ssa, sweep))
-        sweep = fold_scales(sweep)
+        sweep = merge_zero_starts(fold_scales(sweep))
     if fitter is not None:
         sweep = plan_in_place(tidy(sweep, fitter), fitter)
     return Compiled(checked, ssa, sweep, active, role, declared)

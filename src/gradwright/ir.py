@@ -30,6 +30,11 @@ class Var:
     kind: VarKind
     shape: Shape = "scalar"
 
+    def __hash__(self) -> int:
+        # the uid alone: values are hashed millions of times by the layout
+        # check, and the generated hash went through the kind enum each time
+        return hash(self.uid)
+
 
 @dataclass(frozen=True)
 class Const:

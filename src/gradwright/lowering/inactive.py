@@ -105,6 +105,8 @@ def statement_names(module: cst.Module) -> StatementNames:
                 node = getattr(assignment, "node", None)
                 if isinstance(node, cst.Name):
                     write_ids.add(id(node))
+    # ``y **= 2`` reads y too; the scope analysis records only the binding
+    read_ids.update(id(n) for n in _augmented_names(module) if id(n) in write_ids)
     reads: list[cst.Name] = []
     writes: list[cst.Name] = []
 

@@ -372,23 +372,27 @@ def _into_arguments(
 
 def map_statements(
     statements: tuple[ReverseStmt, ...],
-    change: Callable[[ReverseStmt], ReverseStmt],
+    change: Callable[[ReverseStmt], ReverseStmt | None],
 ) -> tuple[ReverseStmt, ...]:
-    """``change`` applied to every statement that is not a block; branches and
-    loops are rebuilt around their changed bodies."""
+    """``change`` applied to every statement that is not a block (None drops
+    it); branches and loops are rebuilt around their changed bodies, and go
+    when nothing is left in them."""
     out: list[ReverseStmt] = []
     for stmt in statements:
+        changed: ReverseStmt | None
         if isinstance(stmt, ReverseBranch):
-            stmt = replace(
-                stmt,
-                then=map_statements(stmt.then, change),
-                orelse=map_statements(stmt.orelse, change),
+            then = map_statements(stmt.then, change)
+            orelse = map_statements(stmt.orelse, change)
+            changed = (
+                replace(stmt, then=then, orelse=orelse) if then or orelse else None
             )
         elif isinstance(stmt, ReverseLoop):
-            stmt = replace(stmt, body=map_statements(stmt.body, change))
+            body = map_statements(stmt.body, change)
+            changed = replace(stmt, body=body) if body else None
         else:
-            stmt = change(stmt)
-        out.append(stmt)
+            changed = change(stmt)
+        if changed is not None:
+            out.append(changed)
     return tuple(out)
 
 

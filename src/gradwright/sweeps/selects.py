@@ -206,9 +206,8 @@ class _Brancher:
             if region is None:
                 out.append(stmt)
                 continue
-            branch, taken = region
-            if branch is not None:
-                out.append(branch)
+            emitted, taken = region
+            out.extend(emitted)
             rest = [s for s in rest if not any(s is t for t in taken)]
         return tuple(out)
 
@@ -234,9 +233,9 @@ class _Brancher:
 
     def _region(
         self, test: Expr, candidates: list[ReverseStmt]
-    ) -> tuple[ReverseBranch | None, list[ReverseStmt]] | None:
-        """The branch on ``test`` and the statements it takes (no branch: all of
-        them add zero), or None when it would save nothing."""
+    ) -> tuple[tuple[ReverseStmt, ...], list[ReverseStmt]] | None:
+        """What replaces the statements it takes (the branch on ``test``; no
+        branch if the sides agree), or None when it would save nothing."""
         taken: list[Simple] = []
         skipped: list[_Effects] = []
         zero: tuple[set[Var], set[Var]] = (set(), set())
@@ -270,16 +269,15 @@ class _Brancher:
         strict = self._strict(test, taken)
         if strict is not None:
             condition, then, orelse = strict, orelse, then
-        if not then and not orelse:
-            return None, list(taken)
+        if then == orelse:  # all of them add zero, or do the same either way
+            return then, list(taken)
         if not then:
             condition, then, orelse = _negated(condition), orelse, then
         origin: Origin = taken[0].origin
         # the sides are not branched again: each statement is copied into two
         # sides at most once, so the sweep at most doubles (a chain of kinks
         # branched inside each other would grow as 2**k)
-        branch = ReverseBranch(condition, then, orelse, origin)
-        return branch, list(taken)
+        return (ReverseBranch(condition, then, orelse, origin),), list(taken)
 
     @staticmethod
     def _track(stmt: Simple, test: Expr, side: bool, zero: set[Var]) -> None:
