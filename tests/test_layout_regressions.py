@@ -661,27 +661,3 @@ def test_an_element_of_a_swapped_buffer_is_saved_not_read_again():
     for got, want in zip(grads[1], reference[0], strict=True):
         assert rel_err(got, want) < 1e-9, (got, want)
 
-
-def test_layout_check_reasons_up_to_implication():
-    """A fact under guard g holds under every guard containing g, so the check
-    keeps only the weakest guards (nested branches in while loops once piled up
-    enough equivalent facts to take 10 s per module) and resolves a branch whose
-    other side is implied rather than written out: x holds k where b was taken
-    on the 0 side, and where A0 and b1 were, so wherever A0 was."""
-    from gradwright.emission.layout_check import _resolve
-
-    k, j = ("value", "k"), ("value", "j")
-    a0, a1, b0, b1, c1 = ("A", 0), ("A", 1), ("B", 0), ("B", 1), ("C", 1)
-    facts = frozenset(
-        {
-            (k, frozenset({b0})),
-            (k, frozenset({a0, b1})),
-            (k, frozenset({a0, b0, c1})),  # implied by the first
-            (j, frozenset({a1, b1})),
-        }
-    )
-    resolved = _resolve(facts)
-    assert (k, frozenset({a0})) in resolved
-    assert (k, frozenset({a0, b0, c1})) not in resolved
-    assert (j, frozenset({a1, b1})) in resolved
-    assert (j, frozenset({a1})) not in resolved  # j on one side of B only

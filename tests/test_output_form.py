@@ -222,7 +222,16 @@ def test_binomial_tree_branches_on_the_exercise_condition():
     power = next(k for k, line in enumerate(lines) if "u ** (j - 1)" in line)
     indent = len(lines[test]) - len(lines[test].lstrip())
     assert test < power and lines[power].startswith(" " * (indent + 4))
-    assert lines[test + 6].strip() == "else:"
+    otherwise = lines.index(" " * indent + "else:")
+    # each side restores what it reads, no iteration restores what it skips
+    restored = {
+        line.split(" = ")[0].strip(): k
+        for k, line in enumerate(lines)
+        if re.fullmatch(r" *\w+ = \w+_saved\[j\]", line)
+    }
+    assert test < restored["values_4"] < restored["values_5"] < otherwise
+    assert otherwise < restored["hold_1"] < restored["hold_2"]
+    assert restored["hold_3"] < restored["values_6"] < test  # the test reads them
     assert "else 0.0" not in reverse
     # the payoff's max(..., 0.0): nothing at all where the option is out of money
     assert "if values_3 >= 0.0:" in reverse
@@ -451,6 +460,54 @@ def test_an_adjoint_that_is_only_ever_zero_leaves_no_trace():
         # implicit-function theorem for x = 0.5 cos x + p (closed form):
         # dx/dp = 1 / (1 + 0.5 sin x); iterations as run converge to it
         assert rel_err(p_bar, 1.0 / (1.0 + 0.5 * math.sin(x))) < 1e-12
+
+
+DECIBELS = """
+import math
+
+
+def decibels(x, n):
+    total = 0.0
+    for i in range(n):
+        total += 10.0 * math.log(x * (i + 1)) / math.log(10.0)
+    return total
+"""
+
+
+def test_a_math_call_of_literals_is_computed_once_not_saved_per_iteration():
+    text = gradwright.generate(DECIBELS, ["decibels"], wrt=["x"])
+    forward, reverse = _sweeps(text, "decibels")
+    assert "_saved" not in forward
+    # once, before the reverse loop (it cannot raise, so a loop of no trips
+    # may compute it too)
+    assert reverse.count("math.log(10.0)") == 1
+    assert re.search(r"\n    \w+ = math\.log\(10\.0\)\n    for i in reversed", reverse)
+    grad = build(DECIBELS, "decibels")["decibels_grad"]
+    for x, n in ((0.7, 5), (2.5, 1), (1.3, 0)):
+        _, (x_bar, _) = grad(x, n)
+        # closed form: d/dx of sum 10 log10(x (i + 1)) = 10 n / (x ln 10)
+        assert rel_err(x_bar, 10.0 * n / (x * math.log(10.0))) < 1e-14 or n == 0
+        assert n or x_bar == 0.0
+
+
+TRACKING = """
+def track(r, decay, n):
+    v = 0.0
+    total = 0.0
+    for i in range(n):
+        v = v * decay + r
+        err = v - 0.1 * i
+        total += err * err
+    return total
+"""
+
+
+def test_a_carried_adjoints_copy_and_first_contribution_are_one_line():
+    text = gradwright.generate(TRACKING, ["track"], wrt=["r", "decay"])
+    _, reverse = _sweeps(text, "track")
+    assert "v_bar_1 = v_bar + err_bar\n" in reverse
+    assert "v_bar_1 = v_bar\n" not in reverse and "v_bar_1 +=" not in reverse
+    _check_against_mpmath(TRACKING, "track", (0.3, 0.8, 4), [0, 1])
 
 
 # ---------------------------------------------------------------------------------
@@ -831,7 +888,7 @@ def test_adjoint_carried_through_nested_loops_keeps_one_name():
     """x_bar flows through both loops: updated in place, not copied into
     another name at the start of each outer iteration and back at its end."""
     text = gradwright.generate(NESTED_STEPS, ["settle"], wrt=["x", "k"])
-    _, reverse = _sweeps(text, "fixed_point")
+    _, reverse = _sweeps(text, "settle")
     # one copy into the parameter's adjoint after the loops, none in them
     assert "x_bar_1 = x_bar\n" not in reverse
     assert reverse.count("x_bar = x_bar_1") == 1

@@ -20,6 +20,7 @@ from __future__ import annotations
 import math
 from collections.abc import Callable
 
+from gradwright.calculus.primitives import OPS
 from gradwright.ir import Apply, Const, Expr, const
 
 Operand = "E | float | int"
@@ -118,6 +119,22 @@ def number(expr: Expr) -> float | int | None:
     if isinstance(expr, Const) and expr.value is not None:
         return expr.value
     return None
+
+
+def constant_call(op: str, args: tuple) -> bool:
+    """Whether ``math.f(c, ...)`` of literal numbers gives a finite float: it
+    cannot raise and gives the same bits wherever it is computed, so the reverse
+    may compute it once instead of saving it each iteration (not folded: a libm
+    need not round it as Python's float literal does)."""
+    spec = OPS.get(op)
+    values = [number(a) for a in args]
+    if spec is None or not spec.symbol.startswith("math.") or None in values:
+        return False
+    try:
+        result = getattr(math, spec.symbol.removeprefix("math."))(*values)
+    except (ValueError, OverflowError, TypeError, AttributeError):
+        return False
+    return isinstance(result, float) and math.isfinite(result)
 
 
 def _is(expr: Expr, value: float) -> bool:

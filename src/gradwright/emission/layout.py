@@ -21,6 +21,7 @@ from __future__ import annotations
 from collections import Counter
 from collections.abc import Iterable, Iterator
 
+from gradwright.calculus.algebra import constant_call
 from gradwright.emission import indexing
 from gradwright.emission.layout_names import NamingLayout, _NoteHeld, _reverse_exprs
 from gradwright.emission.naming import Namer
@@ -242,7 +243,7 @@ class Layout(NamingLayout):
                 return False
         elif let.op == "dataitem":
             pass  # module-level data: read again, as cheap as reading the save
-        elif let.op not in _CHEAP:
+        elif let.op not in _CHEAP and not constant_call(let.op, let.args):
             return False
         for arg in let.args:
             if not isinstance(arg, Var) or arg.kind == "index":
@@ -427,7 +428,7 @@ class Layout(NamingLayout):
                 if (
                     let.target.kind != "temp"
                     or let.target.shape != "scalar"
-                    or let.op not in _NEVER_RAISE
+                    or not (let.op in _NEVER_RAISE or constant_call(let.op, let.args))
                 ):
                     continue  # a loop of no trips never computed it: nor may we
                 nodes = [n for a in let.args for n in walk(self.cheap(a))]

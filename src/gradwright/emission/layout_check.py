@@ -195,13 +195,10 @@ def _meet(a: State, b: State) -> State:
 @lru_cache(maxsize=1 << 14)  # the same fact sets recur for many names and rounds
 def _resolve(facts: frozenset) -> frozenset:
     """A fact held on both sides of one branch holds whichever side was taken:
-    (k, g + {(b, 0)}) and (k, g + {(b, 1)}) give (k, g). A fact is looked up up
-    to implication ((k, g) holds wherever (k, g') with g' <= g does), and only
-    the weakest guards of each key are kept: nested branches in loops otherwise
-    pile up guards that say the same thing many times over."""
+    (k, g + {(b, 0)}) and (k, g + {(b, 1)}) give (k, g)."""
     if not any(guard for _, guard in facts):
         return facts  # nothing to resolve (most names, most of the time)
-    found = _weakest(facts)
+    found = set(facts)
     changed = True
     while changed:
         changed = False
@@ -209,48 +206,25 @@ def _resolve(facts: frozenset) -> frozenset:
             for branch, side in guard:
                 rest = guard - {(branch, side)}
                 other = rest | {(branch, 1 - side)}
-                if _holds(found, key, other) and not _holds(found, key, rest):
-                    found = _weakest(found | {(key, rest)})
+                if (key, other) in found and (key, rest) not in found:
+                    found.add((key, rest))
                     changed = True
-                    break
                 # unchanged on one side, k on the other: k wherever it held k
                 if key == _SAME or _kept(key) is not None:
                     held = _kept(key)
                     for k2, g2 in list(found):
-                        if g2 <= other and k2 not in (_SAME, key):
+                        if g2 == other and k2 not in (_SAME, key):
                             # (kept on that side too: two branches deep)
                             value = (_kept(k2) or k2) if held is None else held
                             if _kept(k2) not in (None, value) or (
                                 held is not None and k2 != held
                             ):
                                 continue
-                            kept = ("kept", _kept(k2) or k2)
-                            if not _holds(found, kept, rest):
-                                found = _weakest(found | {(kept, rest)})
+                            fact = (("kept", _kept(k2) or k2), rest)
+                            if fact not in found:
+                                found.add(fact)
                                 changed = True
-                if changed:
-                    break
-            if changed:
-                break
     return frozenset(found)
-
-
-def _holds(facts: Iterable, key: Key, guard: frozenset) -> bool:
-    """Whether ``facts`` say the name holds ``key`` wherever ``guard`` was taken."""
-    return any(k == key and g <= guard for k, g in facts)
-
-
-def _weakest(facts: Iterable) -> set:
-    """``facts`` without those another fact of the same key implies."""
-    by_key: dict[Key, list[frozenset]] = {}
-    for key, guard in facts:
-        by_key.setdefault(key, []).append(guard)
-    out = set()
-    for key, guards in by_key.items():
-        for guard in guards:
-            if not any(other < guard for other in guards):
-                out.add((key, guard))
-    return out
 
 
 def _kept(key: Key) -> Key | None:

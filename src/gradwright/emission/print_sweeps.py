@@ -18,6 +18,7 @@ from gradwright.emission.layout import Layout, iteration_values, reverse_bounds
 from gradwright.emission.layout_check import Key, Trace, Violation, check
 from gradwright.emission.naming import Namer
 from gradwright.emission.printer import Printer
+from gradwright.emission.sinking import Side, sunk_values
 from gradwright.ir import (
     AdjointAssign,
     Apply,
@@ -90,6 +91,8 @@ class _Emitter:
         self.appending: dict[Loop, set[str]] = {}
         #: adjoints whose first write updates another's array in place
         self.lenders = dict(layout.sweep.updates)
+        #: per branch side: (its loop, values restored there, values recomputed)
+        self.sunk: dict[Side, tuple[Loop, list[Var], list[Let]]] = {}
 
     # -- the record the layout check reads ----------------------------------------
 
@@ -687,12 +690,19 @@ class _Emitter:
                     if forward is not None
                     else ([], [])
                 )
-                for block, lists in zip((stmt.then, stmt.orelse), made, strict=True):
+                blocks = zip((stmt.then, stmt.orelse), made, strict=True)
+                for number, (block, lists) in enumerate(blocks):
                     side = _Lines()
                     side.last_origin = dict(out.last_origin)
                     side.header = dict(out.header)
                     side.open_block(depth, stmt.origin)
                     with trace.capture() as side_events:
+                        sunk = self.sunk.pop((id(stmt), number), None)
+                        if sunk is not None:
+                            loop, values, lets = sunk
+                            for var in values:
+                                self.restore(loop, var, depth + 1, side)
+                            self.recomputed(lets, depth + 1, side)
                         if block:
                             self.list_adjoints(lists, depth + 1, side)
                         self.reverse_block(block, depth + 1, side)
@@ -753,6 +763,19 @@ class _Emitter:
             self.trace.write(name, self.key(let.target))
             out.code(f"{name} = {self.print(Apply(let.op, args))}", depth)
 
+    def restore(self, loop: Loop, var: Var, depth: int, out: _Lines) -> None:
+        """``name = saved[slot]``: the value ``loop``'s forward saved for this
+        iteration."""
+        layout = self.layout
+        name, saved = self.namer.name(var), layout.tape_name(loop, var)
+        self.restored.add(name)
+        out.code(f"{name} = {saved}[{layout.slot(loop)}]", depth)
+        self.trace.read(saved, self.tape_key(loop, saved))
+        self.slot_reads(loop)
+        call = layout.partials_call.get(var)
+        key = ("partials", call) if call is not None else self.key(var)
+        self.trace.restore(name, saved, var, key)
+
     def reverse_loop(self, stmt: ReverseLoop, depth: int, out: _Lines) -> None:
         layout = self.layout
         loop = stmt.loop
@@ -761,6 +784,11 @@ class _Emitter:
         body.open_block(depth, stmt.origin)
         restored = set(self.restored)
         trace = self.trace
+        sunk = sunk_values(layout, stmt)
+        for side, (values, lets) in sunk.items():
+            self.sunk[side] = (loop, values, lets)
+        in_sides = {v for values, _ in sunk.values() for v in values}
+        lets_in_sides = [let for _, lets in sunk.values() for let in lets]
         with trace.capture() as body_events:
             self.reverse_block(stmt.body, depth + 1, body)
         if not body.lines:
@@ -783,14 +811,8 @@ class _Emitter:
         with trace.capture() as head:
             trace.write(index, self.key(loop.index))
             for var in layout.tapes.get(loop, []):
-                name, saved = self.namer.name(var), layout.tape_name(loop, var)
-                self.restored.add(name)
-                out.code(f"{name} = {saved}[{slot}]", depth + 1)
-                trace.read(saved, self.tape_key(loop, saved))
-                self.slot_reads(loop)
-                call = layout.partials_call.get(var)
-                key = ("partials", call) if call is not None else self.key(var)
-                trace.restore(name, saved, var, key)
+                if var not in in_sides:
+                    self.restore(loop, var, depth + 1, out)
             self.list_adjoints(self.made_here(loop.body), depth + 1, out)
             for child in layout.children.get(loop, []):
                 for saved in layout.saved_lists(child):
@@ -803,7 +825,9 @@ class _Emitter:
                     # them (the by-list keeps each list it made: trusted here)
                     for var in layout.tapes_of(child, saved):
                         trace.fill(saved, var)
-            self.recomputed(layout.recompute.get(loop, []), depth + 1, out)
+            recomputed = layout.recompute.get(loop, [])
+            lets = [let for let in recomputed if let not in lets_in_sides]
+            self.recomputed(lets, depth + 1, out)
         trace.loop(head + body_events, layout.iteration_local(loop))
         out.lines.extend(body.lines)
         out.last_origin[depth] = None

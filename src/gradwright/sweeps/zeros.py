@@ -19,6 +19,7 @@ from dataclasses import replace
 from gradwright.calculus.algebra import is_zero, simplify
 from gradwright.ir import (
     AdjointAssign,
+    Apply,
     Bar,
     Const,
     ReverseBranch,
@@ -62,58 +63,71 @@ def settle_zeros(sweep: ReverseSweep) -> ReverseSweep:
             lambda s: None if isinstance(s, AdjointAssign) and s.var in zero else s,
         )
         sweep = replace(sweep, statements=statements)
-    return merge_zero_starts(sweep)
+    return replace(sweep, statements=_merge_zero_starts(sweep.statements, False))
 
 
 def merge_zero_starts(sweep: ReverseSweep) -> ReverseSweep:
-    """``x_bar = 0.0`` then ``x_bar += e`` (nothing reading it between) is
-    ``x_bar = e``."""
-    return replace(sweep, statements=_merge_zero_starts(sweep.statements))
+    """``x_bar = 0.0`` or ``x_bar = y_bar`` then ``x_bar += e`` in one block,
+    nothing reading ``x_bar`` or changing ``y_bar`` between, is ``x_bar = e`` or
+    ``x_bar = y_bar + e`` where the ``+=`` was."""
+    return replace(sweep, statements=_merge_zero_starts(sweep.statements, True))
 
 
-def _merge_zero_starts(statements: tuple[ReverseStmt, ...]) -> tuple[ReverseStmt, ...]:
-    """``x_bar = 0.0`` then, in the same block with no read of ``x_bar`` between,
-    ``x_bar += e``: one ``x_bar = e`` where the ``+=`` was."""
+def _bars(stmt: ReverseStmt) -> set[Var]:
+    return {
+        n.var
+        for inner in all_statements([stmt])
+        for e in statement_exprs(inner)
+        for n in walk(e)
+        if isinstance(n, Bar)
+    }
+
+
+def _merge_zero_starts(
+    statements: tuple[ReverseStmt, ...], copies: bool
+) -> tuple[ReverseStmt, ...]:
+    # copies: not before the kinks branch (a copy merged with a select's
+    # contribution would keep that select out of the branch)
     out: list[ReverseStmt | None] = []
-    pending: dict[Var, int] = {}  # scalar adjoint set to 0.0 -> its place in out
+    # scalar adjoint set by a plain assignment -> its place in out
+    pending: dict[Var, int] = {}
     for stmt in statements:
         if isinstance(stmt, ReverseBranch):
             stmt = replace(
                 stmt,
-                then=_merge_zero_starts(stmt.then),
-                orelse=_merge_zero_starts(stmt.orelse),
+                then=_merge_zero_starts(stmt.then, copies),
+                orelse=_merge_zero_starts(stmt.orelse, copies),
             )
         elif isinstance(stmt, ReverseLoop):
-            stmt = replace(stmt, body=_merge_zero_starts(stmt.body))
-        reads = {
-            n.var
-            for inner in all_statements([stmt])
-            for e in statement_exprs(inner)
-            for n in walk(e)
-            if isinstance(n, Bar)
-        }
-        simple_add = (
+            stmt = replace(stmt, body=_merge_zero_starts(stmt.body, copies))
+        reads = _bars(stmt)
+        if (
             isinstance(stmt, AdjointAssign)
             and stmt.accumulate
             and stmt.var in pending
             and stmt.var not in reads
-        )
-        if simple_add:
-            assert isinstance(stmt, AdjointAssign)
-            out[pending.pop(stmt.var)] = None
-            out.append(replace(stmt, accumulate=False))
+        ):
+            place = pending.pop(stmt.var)
+            first = out[place]
+            assert isinstance(first, AdjointAssign)
+            expr = stmt.expr
+            if not is_zero(first.expr):
+                expr = simplify(Apply("add", (first.expr, expr)))
+            out[place] = None
+            out.append(replace(stmt, expr=expr, accumulate=False))
             continue
-        nested = isinstance(stmt, (ReverseBranch, ReverseLoop))
         written = {w for inner in all_statements([stmt]) for w in written_bars(inner)}
         for var in list(pending):
-            if var in reads or var in written:
+            start = out[pending[var]]
+            if var in reads or var in written or _bars(start) & written:  # type: ignore[arg-type]
                 del pending[var]  # read or changed (inside a branch or loop too)
         if (
             isinstance(stmt, AdjointAssign)
             and not stmt.accumulate
             and stmt.var.shape == "scalar"
-            and is_zero(stmt.expr)
-            and not nested
+            # a zero or a carried adjoint's copy: merged, the line still reads
+            # as the contribution of the statement it is under
+            and (is_zero(stmt.expr) or (copies and isinstance(stmt.expr, Bar)))
         ):
             pending[stmt.var] = len(out)
         out.append(stmt)
