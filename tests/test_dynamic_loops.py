@@ -518,3 +518,40 @@ def test_augmented_assignment_with_a_constant_right_side_in_a_while():
     assert rel_err(y_bar, y1 * y0 * x) < 1e-15
     assert rel_err(x_bar, y1 * y0 * y) < 1e-15
     _against_mpmath(AUGMENTED_IN_WHILE, "f", (x, y), [0, 1])
+
+
+ZERO_TRIP_WHILE = """
+def f(x, n):
+    k = 0
+    while k < n:
+        k = k + 1
+        x = 0.25 * k
+    return x
+"""
+
+
+def test_a_while_that_overwrites_an_active_value_and_may_not_run():
+    # found by the long random run: the loop reads no active value, so it was
+    # copied as written, and x after it taken for inactive ("does not depend
+    # differentiably on x"); where it runs no trip x is returned unchanged.
+    # Closed form: dx_out/dx = 1 for n = 0, 0 otherwise
+    grad = build(ZERO_TRIP_WHILE, "f", ["x"])["f_grad"]
+    for n, slope in ((0, 1.0), (1, 0.0), (3, 0.0)):
+        value, (x_bar,) = grad(1.41, n)
+        assert value == (1.41 if n == 0 else 0.25 * n)
+        assert x_bar == slope
+
+
+def test_code_after_continue_in_a_copyable_while_is_reported():
+    source = """
+def f(x, y):
+    k = 0
+    while k < 1:
+        k = k + 1
+        continue
+        x = y
+    return x
+"""
+    with pytest.raises(gradwright.GradwrightError) as error:
+        gradwright.generate(source, ["f"], wrt=["x"])
+    assert "code after the continue statement is never run" in str(error.value)

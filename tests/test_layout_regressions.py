@@ -660,4 +660,3 @@ def test_an_element_of_a_swapped_buffer_is_saved_not_read_again():
     reference = mp_gradient(mp_function(SWAPPED_BUFFERS, "f"), args, [1])
     for got, want in zip(grads[1], reference[0], strict=True):
         assert rel_err(got, want) < 1e-9, (got, want)
-

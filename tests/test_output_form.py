@@ -389,6 +389,33 @@ def test_empty_sum_gives_a_float_gradient_entry():
     assert y_bar == 4.0
 
 
+EMPTY_SUMS = """
+def squared(x, xs):
+    return x * sum(xs) ** 2
+
+
+def same(a):
+    return a
+
+
+def through_helper(x, xs):
+    x *= same(sum(xs))
+    return x
+"""
+
+
+@pytest.mark.parametrize("func", ["squared", "through_helper"])
+def test_an_int_power_or_helper_result_of_an_empty_sum_gives_a_float(func):
+    # found by the long random run: sum([]) is the int 0, and so are its
+    # square and a helper handing it back. Closed form: d/dx (x * 0) = 0;
+    # d/dx (x * 3^2) = 9 and d/dx (x * 3) = 3 for xs summing to 3
+    grad = build(EMPTY_SUMS, func, ["x"])[f"{func}_grad"]
+    _, (x_bar,) = grad(1.5, [])
+    assert x_bar == 0.0 and type(x_bar) is float
+    _, (x_bar,) = grad(1.5, [1.0, 2.0])
+    assert x_bar == (9.0 if func == "squared" else 3.0)
+
+
 def test_a_trip_count_times_a_parameter_gives_a_float_gradient_entry():
     source = (
         "def f(y, n):\n    for k in range(n):\n        y = y + 0.5\n    return y * n\n"

@@ -53,6 +53,8 @@ _READING_METHODS = frozenset(
 
 #: statements copied when the lowering rejects them and they read no active value
 _COPYABLE = (cst.Assign, cst.AnnAssign, cst.AugAssign, cst.While, cst.For, cst.If)
+#: statements that may leave a name they assign unassigned (no trip, no branch)
+_MAY_NOT_BIND = (cst.While, cst.For, cst.If)
 
 _BUILTINS = frozenset(dir(builtins))
 
@@ -450,6 +452,7 @@ class InactiveLowering:
                     f"write `{node.value} = {node.value} op ...` to make a new one",
                 )
         writes: list[tuple[str, Var]] = []
+        firsts = {n.value: n for n in reversed(names.writes)}
         for name in dict.fromkeys(n.value for n in names.writes):
             if name in local_here:
                 continue
@@ -458,6 +461,22 @@ class InactiveLowering:
                 # bind it (a while loop that does not run)
                 bound = self.env[name]
                 if isinstance(bound, (Var, Const)):
+                    if (
+                        not guard
+                        and isinstance(stmt, _MAY_NOT_BIND)
+                        and not self.never_active(bound)
+                    ):
+                        # where it does not bind it, the active value goes on
+                        if quiet:
+                            return firsts[name]
+                        fail(
+                            f"this statement is copied as written, but where it"
+                            f" does not assign '{name}' it keeps its value, which"
+                            " depends on the --wrt parameters",
+                            self.index.locate(firsts[name]),
+                            f"assign '{name}' with numbers and math the gradient"
+                            " can follow, or give the copied value its own name",
+                        )
                     reads[name] = bound
             writes.append((name, self.new_var(name, "local")))
         self.constants_read.update(dict.fromkeys(module_names))

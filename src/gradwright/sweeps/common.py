@@ -174,8 +174,10 @@ def reuse_values(
 
 #: primitives whose result is an int for int operands (or always, the first group)
 _INT_RESULTS = frozenset({"sum", "len", "int", "round", "floor", "ceil", "trunc"})
+# (``pow``: an int to a non-negative int power is an int)
 _INT_PRESERVING = frozenset(
     {"add", "sub", "mul", "floordiv", "mod", "neg", "pos", "copy", "abs", "max", "min"}
+    | {"pow"}
 )
 
 
@@ -198,8 +200,8 @@ def _floats(sweep: ReverseSweep, function: SSAFunction) -> ReverseSweep:
         )
         if let.op in _INT_RESULTS or let.op == "dataitem":
             maybe_int.add(let.target)
-        elif let.op in _INT_PRESERVING and ints:
-            maybe_int.add(let.target)
+        elif (let.op in _INT_PRESERVING or let.op.startswith("call:")) and ints:
+            maybe_int.add(let.target)  # a helper may hand an int argument back
 
     def int_valued(expr: Expr) -> bool:
         if isinstance(expr, Var):
