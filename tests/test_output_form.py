@@ -401,18 +401,23 @@ def same(a):
 def through_helper(x, xs):
     x *= same(sum(xs))
     return x
+
+
+def one_side(x, xs):
+    return x * (x if x > 0.0 else sum(xs))
 """
 
 
-@pytest.mark.parametrize("func", ["squared", "through_helper"])
+@pytest.mark.parametrize("func", ["squared", "through_helper", "one_side"])
 def test_an_int_power_or_helper_result_of_an_empty_sum_gives_a_float(func):
     # found by the long random run: sum([]) is the int 0, and so are its
     # square and a helper handing it back. Closed form: d/dx (x * 0) = 0;
     # d/dx (x * 3^2) = 9 and d/dx (x * 3) = 3 for xs summing to 3
+    # one_side at x < 0 is x * sum(xs): d/dx = sum(xs), 0 for an empty list
     grad = build(EMPTY_SUMS, func, ["x"])[f"{func}_grad"]
-    _, (x_bar,) = grad(1.5, [])
+    _, (x_bar,) = grad(-1.5 if func == "one_side" else 1.5, [])
     assert x_bar == 0.0 and type(x_bar) is float
-    _, (x_bar,) = grad(1.5, [1.0, 2.0])
+    _, (x_bar,) = grad(-1.5 if func == "one_side" else 1.5, [1.0, 2.0])
     assert x_bar == (9.0 if func == "squared" else 3.0)
 
 

@@ -36,7 +36,7 @@ from gradwright.lowering.frontend import (
 )
 from gradwright.lowering.ssa import lower
 from gradwright.sweeps.broadcasting import Fitter
-from gradwright.sweeps.common import fresh_uid, reuse_values
+from gradwright.sweeps.common import float_entries, fresh_uid, reuse_values
 from gradwright.sweeps.factoring import tidy
 from gradwright.sweeps.inplace import plan_in_place
 from gradwright.sweeps.optimize import (
@@ -140,7 +140,7 @@ def _differentiate(
     if scalar:
         sweep = branch_selects(sweep)
         sweep = share_quotients(sweep, fresh_uid(ssa, sweep))
-        sweep = merge_zero_starts(fold_scales(sweep))
+        sweep = float_entries(merge_zero_starts(fold_scales(sweep)), ssa)
     if fitter is not None:
         sweep = plan_in_place(tidy(sweep, fitter), fitter)
     return Compiled(checked, ssa, sweep, active, role, declared)

@@ -23,7 +23,7 @@ computed.
 from __future__ import annotations
 
 from collections import Counter
-from collections.abc import Callable, Iterable
+from collections.abc import Callable, Iterable, Iterator
 from dataclasses import replace
 
 from gradwright.calculus.algebra import simplify
@@ -41,6 +41,7 @@ from gradwright.ir import (
     Let,
     Loop,
     Origin,
+    Phi,
     PopAdjoint,
     ReverseBranch,
     ReverseLoop,
@@ -166,7 +167,7 @@ def reuse_values(
         return tuple(out)
 
     sweep = replace(sweep, statements=block(sweep.statements, _TOP))
-    sweep = _floats(sweep, function)
+    sweep = float_entries(sweep, function)
     if not share:
         return sweep, function
     return _Sharing(sweep, function).run()
@@ -181,10 +182,22 @@ _INT_PRESERVING = frozenset(
 )
 
 
-def _floats(sweep: ReverseSweep, function: SSAFunction) -> ReverseSweep:
+def _merges(statements: Iterable[Stmt]) -> Iterator[Phi]:
+    for stmt in statements:
+        if isinstance(stmt, Branch):
+            yield from _merges(stmt.then)
+            yield from _merges(stmt.orelse)
+            yield from stmt.merges
+        elif isinstance(stmt, Loop):
+            yield from stmt.carried
+            yield from _merges(stmt.body)
+
+
+def float_entries(sweep: ReverseSweep, function: SSAFunction) -> ReverseSweep:
     """An adjoint made only of values that may be ints (``x *= sum(zs)`` with an
     empty ``zs``: ``x_bar = x_1`` once the seed's ``1.0 *`` is folded) is made a
-    float, as the seed would have made it."""
+    float, as the seed would have made it. Run again after the kinks branch:
+    a side of ``y if c else sum(zs)`` is ``sum(zs)`` alone."""
     # a range bound is an int (``return y * n`` after ``for k in range(n)``)
     maybe_int: set[Var] = {
         bound
@@ -192,16 +205,30 @@ def _floats(sweep: ReverseSweep, function: SSAFunction) -> ReverseSweep:
         for bound in loop.bounds
         if isinstance(bound, Var)
     }
-    for let in walk_lets(function.body):
-        ints = all(
-            (isinstance(a, Var) and (a in maybe_int or a.kind == "index"))
-            or (isinstance(a, Const) and isinstance(a.value, int))
-            for a in let.args
+
+    def int_atom(a: object) -> bool:
+        return (isinstance(a, Var) and (a in maybe_int or a.kind == "index")) or (
+            isinstance(a, Const) and isinstance(a.value, int)
         )
-        if let.op in _INT_RESULTS or let.op == "dataitem":
-            maybe_int.add(let.target)
-        elif (let.op in _INT_PRESERVING or let.op.startswith("call:")) and ints:
-            maybe_int.add(let.target)  # a helper may hand an int argument back
+
+    lets = list(walk_lets(function.body))
+    merges = list(_merges(function.body))
+    size = -1
+    while size != len(maybe_int):  # a loop's merge may see an int a round later
+        size = len(maybe_int)
+        for let in lets:
+            ints = all(int_atom(a) for a in let.args)
+            if let.op in _INT_RESULTS or let.op == "dataitem":
+                maybe_int.add(let.target)
+            elif (let.op in _INT_PRESERVING or let.op.startswith("call:")) and ints:
+                maybe_int.add(let.target)  # a helper may hand an int argument back
+            elif let.op == "ifexp" and any(int_atom(a) for a in let.args):
+                maybe_int.add(let.target)  # an int on one side
+        for phi in merges:  # either side's value (``y if c else sum(zs)``)
+            if int_atom(phi.first) or int_atom(phi.second):
+                maybe_int.add(phi.target)
+                if phi.exit is not None:
+                    maybe_int.add(phi.exit)
 
     def int_valued(expr: Expr) -> bool:
         if isinstance(expr, Var):
