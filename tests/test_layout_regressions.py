@@ -18,6 +18,27 @@ from gradwright import GradwrightError
 from gradwright.emission import print_sweeps
 
 CASES = {
+    # the names-of-their-own layout (taken when sharing names fails the check)
+    # gave the value only the reverse sweep recomputes, x / z, the bare name `t1`
+    # that the forward's t1 = x already held: the check refused both layouts
+    # (found by a long random run)
+    "recomputed-value-never-takes-a-held-bare-name": (
+        """
+def f(x, y):
+    t1 = x
+    z = t1 if x > t1 else t1
+    t7 = z
+    k8 = 0
+    while k8 < 1:
+        k8 += 1
+        t1 = x / z
+        t7 = t1 if y > 0.5 else t1
+        t1 = y
+    return t1 * x + 2.0 * z
+""",
+        ["x", "y"],
+        [(0.7, 0.9), (0.7, 0.2), (-1.3, 0.6)],
+    ),
     # x * (0.25 * i), invariant in the inner loops, was computed at the head of
     # the outer loop's reverse body: outside the if around them (the layout check
     # refused it); now just before the while loop's reverse, in the if's side

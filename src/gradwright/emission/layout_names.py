@@ -50,6 +50,9 @@ class NamingLayout:
             else:
                 self.namer.names[var] = var.base
                 self.namer.taken.add(var.base)
+                # a value named later (one the reverse sweep alone recomputes)
+                # must not take the bare name too
+                self.namer.claimed_bare.add(var.base)
             self.bases_used.add(var.base)
             return
         if previous is not None and previous in self.namer.names:
