@@ -23,7 +23,7 @@ computed.
 from __future__ import annotations
 
 from collections import Counter
-from collections.abc import Callable, Iterable, Iterator
+from collections.abc import Iterable, Iterator
 from dataclasses import replace
 
 from gradwright.calculus.algebra import simplify
@@ -53,7 +53,12 @@ from gradwright.ir import (
     Var,
     walk,
 )
-from gradwright.sweeps.optimize import all_statements, map_sweep, sweep_exprs
+from gradwright.sweeps.optimize import (
+    all_statements,
+    change_expr,
+    map_sweep,
+    sweep_exprs,
+)
 from gradwright.sweeps.reverse import defined_in, walk_lets, walk_loops
 
 Table = dict[Apply, Var]
@@ -163,7 +168,9 @@ def reuse_values(
                 inner = id(stmt.loop) if id(stmt.loop) in numbers.tables else key
                 out.append(replace(stmt, body=block(stmt.body, inner)))
             else:
-                out.append(_map(stmt, lambda e: simplify(numbers.change(e, table))))
+                out.append(
+                    change_expr(stmt, lambda e: simplify(numbers.change(e, table)))
+                )
         return tuple(out)
 
     sweep = replace(sweep, statements=block(sweep.statements, _TOP))
@@ -242,16 +249,6 @@ def float_entries(sweep: ReverseSweep, function: SSAFunction) -> ReverseSweep:
     if not maybe_int:
         return sweep
     return map_sweep(sweep, lambda e: Apply("float", (e,)) if int_valued(e) else e)
-
-
-def _map(stmt: ReverseStmt, change: Callable[[Expr], Expr]) -> ReverseStmt:
-    if isinstance(stmt, AdjointAssign):
-        return replace(stmt, expr=change(stmt.expr))
-    if isinstance(stmt, ElementAdjoint):
-        return replace(stmt, expr=change(stmt.expr))
-    if isinstance(stmt, SpreadAdjoint):
-        return replace(stmt, expr=change(stmt.expr))
-    return stmt
 
 
 def _costly(expr: Expr) -> bool:
@@ -406,7 +403,7 @@ class _Sharing:
             found[expr] = self._lets(expr, base, origin, key, after)
         if not found:
             return tuple(out)
-        return tuple(_map(s, lambda e: _replace(e, found)) for s in out)
+        return tuple(change_expr(s, lambda e: _replace(e, found)) for s in out)
 
     def _lets(
         self, expr: Expr, base: str, origin: Origin, key: object, after: int

@@ -376,16 +376,18 @@ def map_statements(
 ) -> tuple[ReverseStmt, ...]:
     """``change`` applied to every statement that is not a block (None drops
     it); branches and loops are rebuilt around their changed bodies, and go
-    when nothing is left in them."""
+    when nothing is left in them; a branch whose sides are the same statements
+    is those statements (the test decides nothing)."""
     out: list[ReverseStmt] = []
     for stmt in statements:
         changed: ReverseStmt | None
         if isinstance(stmt, ReverseBranch):
             then = map_statements(stmt.then, change)
             orelse = map_statements(stmt.orelse, change)
-            changed = (
-                replace(stmt, then=then, orelse=orelse) if then or orelse else None
-            )
+            if then == orelse:
+                out.extend(then)
+                continue
+            changed = replace(stmt, then=then, orelse=orelse)
         elif isinstance(stmt, ReverseLoop):
             body = map_statements(stmt.body, change)
             changed = replace(stmt, body=body) if body else None
@@ -396,7 +398,8 @@ def map_statements(
     return tuple(out)
 
 
-def _change_expr(stmt: ReverseStmt, change: Callable[[Expr], Expr]) -> ReverseStmt:
+def change_expr(stmt: ReverseStmt, change: Callable[[Expr], Expr]) -> ReverseStmt:
+    """``stmt`` with ``change`` applied to the contribution it makes."""
     if isinstance(stmt, (AdjointAssign, ElementAdjoint, SpreadAdjoint)):
         return replace(stmt, expr=change(stmt.expr))
     if isinstance(stmt, CallAdjoint):
@@ -409,7 +412,7 @@ def map_sweep(sweep: ReverseSweep, change: Callable[[Expr], Expr]) -> ReverseSwe
     return replace(
         sweep,
         statements=map_statements(
-            sweep.statements, lambda stmt: _change_expr(stmt, change)
+            sweep.statements, lambda stmt: change_expr(stmt, change)
         ),
     )
 

@@ -42,6 +42,32 @@ from gradwright.sweeps.optimize import (
 def settle_zeros(sweep: ReverseSweep) -> ReverseSweep:
     """Adjoints only ever set to 0.0 read as 0.0; ``x_bar = 0.0; x_bar += e``
     is ``x_bar = e``."""
+    keep = set(sweep.wrt) | set(sweep.seeds)
+    # reading one zero adjoint as 0.0 can leave another set only to 0.0
+    while zero := _only_zero(sweep, keep):
+        sweep = _read_as_zero(sweep, zero)
+    return replace(sweep, statements=_merge_zero_starts(sweep.statements, False))
+
+
+def _read_as_zero(sweep: ReverseSweep, zero: set[Var]) -> ReverseSweep:
+    zeros = {v: Const("0.0", 0.0) for v in zero}
+    sweep = map_sweep(sweep, lambda e: simplify(substitute(e, zeros)))
+    return replace(
+        sweep, statements=map_statements(sweep.statements, lambda s: _kept(s, zero))
+    )
+
+
+def _kept(stmt: ReverseStmt, zero: set[Var]) -> ReverseStmt | None:
+    """None for a write of a zero adjoint, and for adding 0.0 to any."""
+    if isinstance(stmt, AdjointAssign) and (
+        stmt.var in zero or (stmt.accumulate and is_zero(stmt.expr))
+    ):
+        return None
+    return stmt
+
+
+def _only_zero(sweep: ReverseSweep, keep: set[Var]) -> set[Var]:
+    """The scalar adjoints every write of which is ``= 0.0``."""
     flat = list(all_statements(sweep.statements))
     writes: Counter[Var] = Counter(v for s in flat for v in written_bars(s))
     zero_writes: Counter[Var] = Counter(
@@ -49,21 +75,11 @@ def settle_zeros(sweep: ReverseSweep) -> ReverseSweep:
         for s in flat
         if isinstance(s, AdjointAssign) and not s.accumulate and is_zero(s.expr)
     )
-    keep = set(sweep.wrt) | set(sweep.seeds)
-    zero = {
+    return {
         v
         for v, n in zero_writes.items()
         if n == writes[v] and v.shape == "scalar" and v not in keep
     }
-    if zero:
-        zeros = {v: Const("0.0", 0.0) for v in zero}
-        sweep = map_sweep(sweep, lambda e: simplify(substitute(e, zeros)))
-        statements = map_statements(
-            sweep.statements,
-            lambda s: None if isinstance(s, AdjointAssign) and s.var in zero else s,
-        )
-        sweep = replace(sweep, statements=statements)
-    return replace(sweep, statements=_merge_zero_starts(sweep.statements, False))
 
 
 def merge_zero_starts(sweep: ReverseSweep) -> ReverseSweep:
