@@ -13,7 +13,8 @@ from __future__ import annotations
 
 from collections.abc import Iterable, Iterator
 
-from gradwright.emission.layout import Layout, reverse_bounds
+from gradwright.emission.layout import Layout
+from gradwright.emission.layout_tapes import reverse_bounds
 from gradwright.ir import (
     AdjointAssign,
     Apply,

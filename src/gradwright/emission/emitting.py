@@ -1,0 +1,113 @@
+"""What the printers of both sweeps share: indented lines under comments quoting
+the source, the state of printing one function, and the record of what each printed
+line reads and writes, which the layout check reads."""
+
+from __future__ import annotations
+
+from gradwright.emission.formatting import format_statement
+from gradwright.emission.layout import Layout
+from gradwright.emission.layout_check import Key, Trace
+from gradwright.emission.sinking import Side
+from gradwright.ir import (
+    Apply,
+    Bar,
+    Expr,
+    Let,
+    Loop,
+    Origin,
+    Var,
+)
+
+
+class Lines:
+    """Indented output lines; a comment quoting the source opens each group."""
+
+    def __init__(self) -> None:
+        self.lines: list[str] = []
+        self.last_origin: dict[int, Origin | None] = {}
+        #: the statement each open block's header line quotes, by depth
+        self.header: dict[int, Origin | None] = {}
+
+    def comment(self, origin: Origin, depth: int) -> None:
+        if self.header.get(depth) == origin:
+            return  # the block's own header already quotes it
+        if self.last_origin.get(depth) != origin:
+            self.lines.append("    " * depth + f"# {origin.text}")
+            self.last_origin[depth] = origin
+            for deeper in [d for d in self.last_origin if d > depth]:
+                self.last_origin[deeper] = None
+
+    def code(self, text: str, depth: int) -> None:
+        self.lines.append(format_statement(text, depth))
+
+    def statement(self, origin: Origin, text: str, depth: int) -> None:
+        self.comment(origin, depth)
+        self.code(text, depth)
+
+    def open_block(self, depth: int, origin: Origin | None = None) -> None:
+        self.last_origin[depth + 1] = None
+        self.header[depth + 1] = origin
+
+
+class EmitterBase:
+    """The state of printing one function's sweeps, and the record of what the
+    printed lines read and write."""
+
+    def __init__(self, layout: Layout) -> None:
+        self.layout = layout
+        self.namer = layout.namer
+        self.print = layout.printer
+        self.rprint = layout.reverse_printer
+        self.folded: dict[Var, Expr] = {}
+        #: names the reverse sweep writes forward values back into
+        self.restored: set[str] = set()
+        #: what each printed statement reads and writes, for the layout check
+        self.trace = Trace()
+        #: the saved lists a while loop's top-level saves append to
+        self.appending: dict[Loop, set[str]] = {}
+        #: adjoints whose first write updates another's array in place
+        self.lenders = dict(layout.sweep.updates)
+        #: per branch side: (its loop, values restored there, values recomputed)
+        self.sunk: dict[Side, tuple[Loop, list[Var], list[Let]]] = {}
+
+    def key(self, var: Var) -> Key:
+        # every version of a list is one list object, changed in place
+        return ("value", self.layout.roots.get(var, var))
+
+    def bar_key(self, var: Var) -> Key:
+        return ("bar", self.layout.roots.get(var, var))
+
+    def reads(self, expr: Expr) -> None:
+        """Record the names printing ``expr`` reads."""
+        stack = [expr]
+        while stack:
+            node = stack.pop()
+            if isinstance(node, Var):
+                self.trace.read(self.namer.name(node), self.key(node))
+            elif isinstance(node, Bar):
+                self.trace.read(self.namer.bar_name(node.var), self.bar_key(node.var))
+            elif isinstance(node, Apply):
+                if node.op == "partial":
+                    call = node.args[0]
+                    assert isinstance(call, Var)
+                    partials = self.namer.partials_name(call)
+                    self.trace.read(partials, ("partials", call))
+                    stack.append(node.args[1])
+                else:
+                    stack.extend(node.args)
+
+    def tape_key(self, loop: Loop | None, name: str) -> Key:
+        """A saved list, filled by ``loop``: one per iteration of the loops
+        around ``loop``, so it belongs to the enclosing loop's iterations."""
+        enclosing = self.layout.parent.get(loop) if loop is not None else None
+        scope = enclosing.index if enclosing is not None else None
+        return ("list", scope, name)
+
+    def slot_reads(self, loop: Loop, forward: bool = False) -> None:
+        if forward and loop.test is not None:  # a while loop counts its iterations
+            assert loop.trips is not None
+            self.trace.read(self.namer.name(loop.trips), self.key(loop.trips))
+            return
+        self.trace.read(self.namer.name(loop.index), self.key(loop.index))
+        for bound in (loop.start, loop.step):
+            self.reads(self.layout.cheap(bound, everywhere=True))
