@@ -681,3 +681,28 @@ def test_an_element_of_a_swapped_buffer_is_saved_not_read_again():
     reference = mp_gradient(mp_function(SWAPPED_BUFFERS, "f"), args, [1])
     for got, want in zip(grads[1], reference[0], strict=True):
         assert rel_err(got, want) < 1e-9, (got, want)
+
+
+def test_layout_check_keeps_the_prime_facts_of_a_name():
+    """A value held on every path but one through nine branches is nine facts
+    (held where branch k took its second side), not the 511 paths one by one: the
+    check kept every path, and a while loop holding a few such branches took
+    6 s to generate (found by the long dynamic_loops run). Reference: the prime
+    implicants of the Boolean function, by hand."""
+    from itertools import product
+
+    from gradwright.emission.layout_check import _SAME, _resolve
+    from gradwright.ir import Var
+
+    key = ("value", Var(1, "x", "local"))
+    branches = [f"b{k}" for k in range(9)]
+    paths = [sides for sides in product((0, 1), repeat=9) if any(sides)]
+    facts = frozenset(
+        (key, frozenset(zip(branches, sides, strict=True))) for sides in paths
+    )
+    assert _resolve(facts) == {(key, frozenset({(b, 1)})) for b in branches}
+    # unchanged on one side, written on the other: kept wherever it held it
+    mixed = frozenset(
+        {(_SAME, frozenset({("c", 0), ("d", 1)})), (key, frozenset({("c", 1)}))}
+    )
+    assert (("kept", key), frozenset({("d", 1)})) in _resolve(mixed)

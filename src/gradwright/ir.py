@@ -325,11 +325,17 @@ class ReverseSweep:
 
 
 def walk(expr: Expr) -> Iterator[Expr]:
-    """An expression and all its sub-expressions, outermost first."""
-    yield expr
-    if isinstance(expr, Apply):
-        for arg in expr.args:
-            yield from walk(arg)
+    """An expression and all its sub-expressions, outermost first.
+
+    With a stack, not nested generators: each node of a tree n deep passed up
+    through n generators, so walking a long sum's adjoint took time quadratic in
+    its length (1,200 terms: minutes)."""
+    stack = [expr]
+    while stack:
+        node = stack.pop()
+        yield node
+        if isinstance(node, Apply):
+            stack.extend(reversed(node.args))
 
 
 def const(value: float | int) -> Const:

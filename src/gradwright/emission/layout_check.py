@@ -194,37 +194,95 @@ def _meet(a: State, b: State) -> State:
 
 @lru_cache(maxsize=1 << 14)  # the same fact sets recur for many names and rounds
 def _resolve(facts: frozenset) -> frozenset:
-    """A fact held on both sides of one branch holds whichever side was taken:
-    (k, g + {(b, 0)}) and (k, g + {(b, 1)}) give (k, g)."""
+    """The prime facts of ``facts``: every fact that follows by consensus, none
+    implied by another, so a set has one form whatever order it was built in.
+
+    Consensus on a branch: (k, g1 + {(b, 0)}) and (k, g2 + {(b, 1)}) give
+    (k, g1 | g2), whichever side was taken. Unchanged on one side (``_SAME``) and
+    k on the other give ("kept", k): k wherever it held k. A fact is implied by
+    one of the same or a stronger key under fewer conditions (k or ``_SAME``
+    imply ("kept", k)). Keeping only the weakest guards without consensus lost
+    facts (a guard absorbed before it met its complement); with consensus the
+    result is complete, and small where the guards overlap (a fact true on all
+    but one of 2^9 paths is 9 facts, not 511)."""
     if not any(guard for _, guard in facts):
         return facts  # nothing to resolve (most names, most of the time)
-    found = set(facts)
-    changed = True
-    while changed:
-        changed = False
-        for key, guard in list(found):
-            for branch, side in guard:
-                rest = guard - {(branch, side)}
-                other = rest | {(branch, 1 - side)}
-                if (key, other) in found and (key, rest) not in found:
-                    found.add((key, rest))
-                    changed = True
-                # unchanged on one side, k on the other: k wherever it held k
-                if key == _SAME or _kept(key) is not None:
-                    held = _kept(key)
-                    for k2, g2 in list(found):
-                        if g2 == other and k2 not in (_SAME, key):
-                            # (kept on that side too: two branches deep)
-                            value = (_kept(k2) or k2) if held is None else held
-                            if _kept(k2) not in (None, value) or (
-                                held is not None and k2 != held
-                            ):
-                                continue
-                            fact = (("kept", _kept(k2) or k2), rest)
-                            if fact not in found:
-                                found.add(fact)
-                                changed = True
+    found: set = set()
+    #: (branch, side) -> the facts whose guard holds it
+    index: dict[tuple, set] = {}
+
+    def add(fact: tuple) -> bool:
+        key, guard = fact
+        for other in _candidates(found, index, guard):
+            if other[1] <= guard and _implies(other[0], key):
+                return False
+        for other in [f for f in found if guard <= f[1] and _implies(key, f[0])]:
+            found.discard(other)
+            for literal in other[1]:
+                index[literal].discard(other)
+        found.add(fact)
+        for literal in guard:
+            index.setdefault(literal, set()).add(fact)
+        return True
+
+    pending = sorted(facts, key=lambda f: len(f[1]))
+    for fact in pending:
+        add(fact)
+    queue = [f for f in pending if f in found]
+    while queue:
+        fact = queue.pop()
+        if fact not in found:
+            continue  # absorbed since
+        key, guard = fact
+        for branch, side in guard:
+            for other in list(index.get((branch, 1 - side), ())):
+                if other not in found or fact not in found:
+                    continue
+                combined = _combined(key, other[0])
+                if combined is None:
+                    continue
+                both = (guard - {(branch, side)}) | (other[1] - {(branch, 1 - side)})
+                if any((b, 1 - t) in both for b, t in both):
+                    continue  # on no path
+                new = (combined, frozenset(both))
+                if add(new):
+                    queue.append(new)
     return frozenset(found)
+
+
+def _candidates(found: set, index: dict, guard: frozenset) -> Iterable[tuple]:
+    """The facts whose guards may be subsets of ``guard``."""
+    if not guard:
+        return [f for f in found if not f[1]]
+    seen: set = set()
+    for literal in guard:
+        seen |= index.get(literal, set())
+    return [f for f in found if not f[1]] + list(seen)
+
+
+def _implies(stronger: Key, weaker: Key) -> bool:
+    """Whether holding ``stronger`` means holding ``weaker`` too."""
+    if stronger == weaker:
+        return True
+    held = _kept(weaker)
+    return held is not None and stronger in (held, _SAME)
+
+
+def _combined(a: Key, b: Key) -> Key | None:
+    """What a name holds whichever side was taken: ``a`` on one, ``b`` on the
+    other (None: nothing known)."""
+    if a == b:
+        return a
+    if b == _SAME or (_kept(b) is not None and _kept(a) is None and a != _SAME):
+        a, b = b, a
+    # now a is _SAME or ("kept", k), b the other
+    if a == _SAME:
+        value = _kept(b) or b
+        return ("kept", value) if value != _SAME else None
+    held = _kept(a)
+    if held is not None and (b == held or _kept(b) == held):
+        return a
+    return None
 
 
 def _kept(key: Key) -> Key | None:

@@ -350,15 +350,15 @@ def partials_var(call: Var) -> Var:
 
 
 def _walk_values(expr: Expr) -> Iterator[Expr]:
-    """Values an expression reads; a partial() node stands for its call's partials."""
-    if isinstance(expr, Apply):
-        if expr.op == "partial":
-            yield expr
-            return
-        for arg in expr.args:
-            yield from _walk_values(arg)
-    else:
-        yield expr
+    """Values an expression reads; a partial() node stands for its call's partials
+    (with a stack, as ``ir.walk``: a deep tree costs its size, not size x depth)."""
+    stack = [expr]
+    while stack:
+        node = stack.pop()
+        if isinstance(node, Apply) and node.op != "partial":
+            stack.extend(reversed(node.args))
+        else:
+            yield node
 
 
 def reverse_bounds(loop: Loop) -> tuple[Atom, ...]:

@@ -100,6 +100,8 @@ def _can_pass(moved: ReverseStmt, between: list[ReverseStmt]) -> bool:
     adjoint's element) can move past ``between``, statements of its own source
     statement: none reads or sets what it writes, none changes what it reads; an
     ``+=`` into any list element commutes with it."""
+    if not between:
+        return True  # (a long sum's adjoint grows by one term per statement)
     reads = _bars_read(moved)
     for stmt in between:
         if stmt.origin != moved.origin or not isinstance(
