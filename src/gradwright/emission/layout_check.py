@@ -181,6 +181,8 @@ def _meet(a: State, b: State) -> State:
         for key, guard in facts:
             for other_key, other_guard in other:
                 both = guard | other_guard
+                if _on_no_path(both):
+                    continue  # one branch's two sides: a branch takes one
                 if key == other_key or other_key == _SAME:
                     common.add((key, both))
                 elif key == _SAME:
@@ -225,7 +227,9 @@ def _resolve(facts: frozenset) -> frozenset:
             index.setdefault(literal, set()).add(fact)
         return True
 
-    pending = sorted(facts, key=lambda f: len(f[1]))
+    pending = sorted(
+        (f for f in facts if not _on_no_path(f[1])), key=lambda f: len(f[1])
+    )
     for fact in pending:
         add(fact)
     queue = [f for f in pending if f in found]
@@ -242,12 +246,18 @@ def _resolve(facts: frozenset) -> frozenset:
                 if combined is None:
                     continue
                 both = (guard - {(branch, side)}) | (other[1] - {(branch, 1 - side)})
-                if any((b, 1 - t) in both for b, t in both):
-                    continue  # on no path
+                if _on_no_path(both):
+                    continue
                 new = (combined, frozenset(both))
                 if add(new):
                     queue.append(new)
     return frozenset(found)
+
+
+def _on_no_path(guard: frozenset) -> bool:
+    """Whether ``guard`` holds both sides of one branch (a branch outside a loop
+    takes the same side at its entry and after each iteration)."""
+    return any((branch, 1 - side) in guard for branch, side in guard)
 
 
 def _candidates(found: set, index: dict, guard: frozenset) -> Iterable[tuple]:
