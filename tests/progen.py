@@ -1645,6 +1645,16 @@ def compare(flat: list, refs: list, scale, where: str) -> Outcome:
     return Outcome("ok", nonzero=nonzero, worst=worst)
 
 
+def _sizes(args: list) -> list:
+    """The magnitudes of a scalar model's numeric arguments (list elements too)."""
+    out = []
+    for arg in args:
+        for x in arg if isinstance(arg, (list, tuple)) else [arg]:
+            if isinstance(x, (int, float)) and not isinstance(x, bool):
+                out.append(abs(mpmath.mpf(float(x))))
+    return out
+
+
 def expected_rejection(error: GradwrightError, tags: set[str]) -> bool:
     """The rejections a program of this generator may get: ``a and b`` / ``a or b``
     as a value (unsupported, pending a decision: a located error naming and/or is
@@ -1714,7 +1724,13 @@ def evaluate(case: Case, args: list) -> Outcome:
                 flat.append(g)
         if len(flat) != len(ref_row):
             return _fail("gradient shape", f"{row!r}")
-        scale = max([abs(mpmath.mpf(o)) for o in outs] + [abs(r) for r in ref_row])
+        # the inputs' sizes too, as for array models: sin(x) - x at x ~ 1e-14 is
+        # 0.0 in doubles, and so is its derivative, where mpmath keeps 1e-40
+        scale = max(
+            [abs(mpmath.mpf(o)) for o in outs]
+            + [abs(r) for r in ref_row]
+            + _sizes(args)
+        )
         if not all(isinstance(g, float) for g in flat):
             return _fail("entry not a float", f"{row!r}")
         result = compare(flat, ref_row, scale, f"output {out_k}, ")
