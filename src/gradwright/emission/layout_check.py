@@ -215,9 +215,8 @@ def _resolve(facts: frozenset) -> frozenset:
 
     def add(fact: tuple) -> bool:
         key, guard = fact
-        for other in _candidates(found, index, guard):
-            if other[1] <= guard and _implies(other[0], key):
-                return False
+        if any(g <= guard and _implies(k, key) for k, g in found):
+            return False
         for other in [f for f in found if guard <= f[1] and _implies(key, f[0])]:
             found.discard(other)
             for literal in other[1]:
@@ -258,16 +257,6 @@ def _on_no_path(guard: frozenset) -> bool:
     """Whether ``guard`` holds both sides of one branch (a branch outside a loop
     takes the same side at its entry and after each iteration)."""
     return any((branch, 1 - side) in guard for branch, side in guard)
-
-
-def _candidates(found: set, index: dict, guard: frozenset) -> Iterable[tuple]:
-    """The facts whose guards may be subsets of ``guard``."""
-    if not guard:
-        return [f for f in found if not f[1]]
-    seen: set = set()
-    for literal in guard:
-        seen |= index.get(literal, set())
-    return [f for f in found if not f[1]] + list(seen)
 
 
 def _implies(stronger: Key, weaker: Key) -> bool:
