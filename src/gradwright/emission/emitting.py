@@ -44,9 +44,36 @@ class Lines:
         self.comment(origin, depth)
         self.code(text, depth)
 
+    def if_lines(
+        self,
+        condition: str,
+        negated: str,
+        then: list[str],
+        orelse: list[str],
+        depth: int,
+    ) -> None:
+        """``if condition:`` with its sides; an empty first side is printed as
+        ``if negated:`` and the other side alone (no ``pass`` and ``else``)."""
+        if not then:
+            self.code(f"if {negated}:", depth)
+            self.lines.extend(orelse)
+            return
+        self.code(f"if {condition}:", depth)
+        self.lines.extend(then)
+        if orelse:
+            self.code("else:", depth)
+            self.lines.extend(orelse)
+
     def open_block(self, depth: int, origin: Origin | None = None) -> None:
         self.last_origin[depth + 1] = None
         self.header[depth + 1] = origin
+
+
+def negation(condition: Expr) -> Expr:
+    """``not condition`` for an ``if`` (``not not c`` tests as ``c``)."""
+    if isinstance(condition, Apply) and condition.op == "not":
+        return condition.args[0]
+    return Apply("not", (condition,))
 
 
 class EmitterBase:

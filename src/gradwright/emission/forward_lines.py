@@ -6,7 +6,7 @@ from __future__ import annotations
 from collections.abc import Iterator
 
 from gradwright.emission.copied import copied_lines
-from gradwright.emission.emitting import EmitterBase, Lines
+from gradwright.emission.emitting import EmitterBase, Lines, negation
 from gradwright.emission.layout_tapes import iteration_values
 from gradwright.ir import (
     Apply,
@@ -274,13 +274,15 @@ class ForwardLines(EmitterBase):
         self.trace.at(branch.origin.text)
         self.reads(self.value(branch.condition))
         self.trace.branch(id(branch), *events)
-        condition = self.print(self.value(branch.condition))
+        condition = self.value(branch.condition)
         out.comment(branch.origin, depth)
-        out.code(f"if {condition}:", depth)
-        out.lines.extend(then_lines or ["    " * (depth + 1) + "pass"])
-        if else_lines:
-            out.code("else:", depth)
-            out.lines.extend(else_lines)
+        out.if_lines(
+            self.print(condition),
+            self.print(negation(condition)),
+            then_lines,
+            else_lines,
+            depth,
+        )
         out.open_block(depth - 1)
         out.last_origin[depth] = None
         for phi in live_merges:
@@ -338,7 +340,7 @@ class ForwardLines(EmitterBase):
         out.open_block(depth, loop.origin)
         if test_lines.lines:
             out.lines.extend(test_lines.lines)
-            out.code(f"if {self.print(Apply('not', (condition,)))}:", depth + 1)
+            out.code(f"if {self.print(negation(condition))}:", depth + 1)
             out.code("break", depth + 2)
         with trace.capture() as body:
             if loop.test is None:
@@ -371,8 +373,11 @@ class ForwardLines(EmitterBase):
             if loop.exit_flag is not None:
                 flag = self.value(loop.exit_flag)
                 self.reads(flag)
-                out.code(f"if {self.print(flag)}:", depth + 1)
-                out.code("break", depth + 2)
+                if isinstance(flag, Const) and flag.text == "True":
+                    out.code("break", depth + 1)  # every iteration returns
+                else:
+                    out.code(f"if {self.print(flag)}:", depth + 1)
+                    out.code("break", depth + 2)
         exits = tuple(
             (phi.target, phi.exit) for phi in loop.carried if phi.exit is not None
         )

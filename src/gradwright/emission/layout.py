@@ -85,6 +85,9 @@ class Layout(NamingLayout, TapeLayout):
         self.top_level: dict[Loop, set[Var]] = {}
         self.children: dict[Loop, list[Loop]] = {}
         self.position: dict[Var, int] = {}
+        #: a merge's value -> the values it is one of (a branch's two sides, a
+        #: loop's entry and end-of-iteration values, the value after a loop)
+        self.merged: dict[Var, tuple[Atom, ...]] = {}
         self._index_defs(function.body, None)
         for param in function.params:
             self.loop_of[param] = None
@@ -152,6 +155,7 @@ class Layout(NamingLayout, TapeLayout):
                 self._index_defs(stmt.orelse, loop)
                 for phi in stmt.merges:
                     self.loop_of[phi.target] = loop
+                    self.merged[phi.target] = (phi.first, phi.second)
             else:
                 self.parent[stmt] = loop
                 self.children.setdefault(stmt, [])
@@ -165,6 +169,8 @@ class Layout(NamingLayout, TapeLayout):
                     self.loop_of[phi.target] = stmt
                     assert phi.exit is not None
                     self.loop_of[phi.exit] = loop
+                    self.merged[phi.target] = (phi.first, phi.second)
+                    self.merged[phi.exit] = (phi.target,)
                 if stmt.trips is not None:
                     self.loop_of[stmt.trips] = loop
                 self._index_defs(stmt.body, stmt)

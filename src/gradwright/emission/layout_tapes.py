@@ -45,9 +45,6 @@ _CHEAP = frozenset(
 #: iteration: not ``/``, ``//``, ``%`` (a zero divisor)
 _NEVER_RAISE = frozenset({"add", "sub", "mul", "neg", "pos"})
 
-#: cheap primitives that cannot raise, computed before a loop that may run no
-#: iteration: not ``/``, ``//``, ``%`` (a zero divisor)
-
 
 class TapeLayout:
     """The saving part of ``Layout``; its state lives on the layout."""
@@ -98,8 +95,14 @@ class TapeLayout:
         for other in self.versions.get(root, [root]):
             let = self.defs.get(other)
             if let is None:
-                # a loop's or a branch's merge: it may hold another list object
-                # (xs, ys = ys, xs swaps two buffers), which later writes change
+                # a loop's or a branch's merge: the same list object when all it
+                # merges is (else xs, ys = ys, xs swaps two buffers, which later
+                # writes change)
+                inputs = self.merged.get(other, ())
+                if inputs and all(
+                    isinstance(a, Var) and self.roots.get(a, a) == root for a in inputs
+                ):
+                    continue
                 return False
             if let.op not in ("setitem", "append", "newlist", "listlit"):
                 return False  # a copied statement's or a call's list

@@ -5,7 +5,7 @@ from __future__ import annotations
 
 from gradwright.calculus.algebra import negated, simplify
 from gradwright.calculus.primitives import OPS
-from gradwright.emission.emitting import EmitterBase, Lines
+from gradwright.emission.emitting import EmitterBase, Lines, negation
 from gradwright.emission.layout_tapes import reverse_bounds
 from gradwright.emission.sinking import sunk_values
 from gradwright.ir import (
@@ -237,12 +237,13 @@ class ReverseLines(EmitterBase):
                 trace.at(stmt.origin.text)
                 self.reads(condition_expr)
                 trace.branch(key, *events)
-                condition = self.rprint(condition_expr)
-                out.code(f"if {condition}:", depth)
-                out.lines.extend(then_lines or ["    " * (depth + 1) + "pass"])
-                if else_lines:
-                    out.code("else:", depth)
-                    out.lines.extend(else_lines)
+                out.if_lines(
+                    self.rprint(condition_expr),
+                    self.rprint(negation(condition_expr)),
+                    then_lines,
+                    else_lines,
+                    depth,
+                )
                 # a kink's branch is part of its statement's lines: what follows
                 # from the same statement stays under the one comment
                 out.last_origin[depth] = stmt.origin if stmt.branch is None else None
