@@ -94,6 +94,8 @@ class EmitterBase:
         self.appending: dict[Loop, set[str]] = {}
         #: adjoints whose first write updates another's array in place
         self.lenders = dict(layout.sweep.updates)
+        #: the values of a record (``Layout.records``) saved so far
+        self.recorded: set[Var] = set()
         #: per branch side: (its loop, values restored there, values recomputed)
         self.sunk: dict[Side, tuple[Loop, list[Var], list[Let]]] = {}
 

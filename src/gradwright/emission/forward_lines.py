@@ -194,12 +194,23 @@ class ForwardLines(EmitterBase):
         out.code(text, depth)
 
     def save(self, loop: Loop, var: Var, depth: int, out: Lines) -> None:
-        """``var_saved[slot] = var``: this iteration's value, for the reverse."""
-        name = self.namer.name(var)
+        """``var_saved[slot] = var``: this iteration's value, for the reverse;
+        a record's values once the last of them is computed, as one tuple."""
         saved = self.layout.tape_name(loop, var)
-        self.trace.read(name, self.key(var))
-        self.fill(loop, saved, name, depth, out)
-        self.trace.fill(saved, var)
+        members = self.layout.records.get(loop, [])
+        if var in members:
+            self.recorded.add(var)
+            if not self.recorded.issuperset(members):
+                return
+        else:
+            members = [var]
+        names = [self.namer.name(member) for member in members]
+        for name, member in zip(names, members, strict=True):
+            self.trace.read(name, self.key(member))
+        text = names[0] if len(names) == 1 else f"({', '.join(names)})"
+        self.fill(loop, saved, text, depth, out)
+        for member in members:
+            self.trace.fill(saved, member)
 
     def _list_live(self, var: Var) -> bool:
         root = self.layout.roots.get(var, var)

@@ -141,6 +141,9 @@ class Layout(NamingLayout, TapeLayout):
         for pseudo, call in self.pending_partials.items():
             self.namer.names[pseudo] = self.namer.partials_name(call)
         self.named = True
+        #: per loop: the values saved together, one tuple per iteration
+        self.records: dict[Loop, list[Var]] = {}
+        self._assign_records()
 
     # -- analysis -----------------------------------------------------------------
 

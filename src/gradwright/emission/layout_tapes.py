@@ -292,10 +292,40 @@ class TapeLayout:
             if loop is not None:
                 self.tapes.setdefault(loop, []).append(var)
 
+    def _assign_records(self) -> None:
+        """The values an iteration saves at the top level of its loop's body go
+        in one tuple per iteration, a record (``hold_values_saved[j] = (hold_1,
+        values_4)``): one list and one store per iteration instead of one of each
+        per value, and one unpacking in the reverse. Each has a name no other
+        value takes, so it still holds its value where the tuple is made, after
+        the last of them."""
+        sharing: dict[str, int] = {}
+        for name in self.namer.names.values():
+            sharing[name] = sharing.get(name, 0) + 1
+        for loop, tapes in self.tapes.items():
+            members = [
+                var
+                for var in tapes
+                if var in self.top_level[loop]
+                and var.shape == "scalar"
+                and sharing.get(self.namer.name(var)) == 1
+            ]
+            if len(members) < 2:
+                continue
+            members.sort(key=lambda var: self.position[var])
+            self.records[loop] = members
+            # named after what it holds (hold_values_saved), or the iteration
+            bases = list(dict.fromkeys(var.base for var in members))
+            what = "_".join(bases) if len(bases) <= 3 else self.namer.name(loop.index)
+            name = self.namer.claim(f"{what}_saved")
+            for var in members:
+                self.tape_names[(loop, var)] = name
+
     def saved_lists(self, loop: Loop) -> list[str]:
         """The lists ``loop`` fills, one slot per iteration: its own values, then,
         for each inner loop, a list holding that loop's lists of each iteration."""
         names = [self.tape_name(loop, var) for var in self.tapes.get(loop, [])]
+        names = list(dict.fromkeys(names))  # a record's values share its list
         for child in self.children.get(loop, []):
             names += [self.by_name(loop, inner) for inner in self.saved_lists(child)]
         return names

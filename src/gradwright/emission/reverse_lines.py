@@ -281,16 +281,24 @@ class ReverseLines(EmitterBase):
 
     def restore(self, loop: Loop, var: Var, depth: int, out: Lines) -> None:
         """``name = saved[slot]``: the value ``loop``'s forward saved for this
-        iteration."""
+        iteration (a record's values all at once, at the first of them)."""
         layout = self.layout
-        name, saved = self.namer.name(var), layout.tape_name(loop, var)
-        self.restored.add(name)
-        out.code(f"{name} = {saved}[{layout.slot(loop)}]", depth)
+        saved = layout.tape_name(loop, var)
+        members = layout.records.get(loop, [])
+        if var in members:
+            if var != members[0]:
+                return
+        else:
+            members = [var]
+        names = [self.namer.name(member) for member in members]
+        self.restored.update(names)
+        out.code(f"{', '.join(names)} = {saved}[{layout.slot(loop)}]", depth)
         self.trace.read(saved, self.tape_key(loop, saved))
         self.slot_reads(loop)
-        call = layout.partials_call.get(var)
-        key = ("partials", call) if call is not None else self.key(var)
-        self.trace.restore(name, saved, var, key)
+        for name, member in zip(names, members, strict=True):
+            call = layout.partials_call.get(member)
+            key = ("partials", call) if call is not None else self.key(member)
+            self.trace.restore(name, saved, member, key)
 
     def reverse_loop(self, stmt: ReverseLoop, depth: int, out: Lines) -> None:
         layout = self.layout

@@ -78,7 +78,10 @@ def sunk_values(
     for var in layout.tapes.get(loop, []):
         side = _one_side(places.get(var, set()))
         if side is not None and var.shape == "scalar":
-            if var not in layout.partials_call:
+            # a record's values are unpacked together at the top
+            if var not in layout.partials_call and var not in layout.records.get(
+                loop, ()
+            ):
                 out.setdefault(side, ([], []))[0].append(var)
     for let in lets:
         side = _one_side(places.get(let.target, set()))
