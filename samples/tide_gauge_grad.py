@@ -2,7 +2,7 @@
 # source: samples/tide_gauge.py
 # source sha256: 41f2e6ad8faaef888ec4fb61d9e9a8b106c978f34cbbdb886a71de8b9d6e2f7b
 # command: gradwright gen samples/tide_gauge.py tide_misfit -o samples/tide_gauge_grad.py
-# output sha256: e7d08909f3913faa8bb096b9c3ca9099ef3c2ed95b47dbfa9d3842aaff2a7b97
+# output sha256: 598f3f0598f12955b60fcd97518b7337cd801c7f72390e8375512272b12a914e
 
 import math
 from collections import namedtuple
@@ -48,7 +48,7 @@ def tide_misfit_grad(amp_m2, phase_m2, amp_s2, phase_s2):
     # total = 0.0
     total = 0.0
     # for hour, height in READINGS:
-    m2_s2_total_saved = [0.0] * len(READINGS)
+    hour_index_saved = [0.0] * len(READINGS)
     for hour_index in range(len(READINGS)):
         row_1 = READINGS[hour_index]
         hour = row_1[0]
@@ -68,7 +68,7 @@ def tide_misfit_grad(amp_m2, phase_m2, amp_s2, phase_s2):
         miss = HARBOUR.datum + m2 + s2 - height
         # total += weight * miss * miss
         total_1 = weight * miss
-        m2_s2_total_saved[hour_index] = (m2_1, s2_1, total_1)
+        hour_index_saved[hour_index] = (m2_1, s2_1, total_1)
         total = total + total_1 * miss
     # return total / len(READINGS)
     value_1 = len(READINGS)
@@ -83,7 +83,7 @@ def tide_misfit_grad(amp_m2, phase_m2, amp_s2, phase_s2):
     amp_s2_bar = 0.0
     phase_s2_bar = 0.0
     for hour_index in reversed(range(len(READINGS))):
-        m2_1, s2_1, total_1 = m2_s2_total_saved[hour_index]
+        m2_1, s2_1, total_1 = hour_index_saved[hour_index]
         row_1 = READINGS[hour_index]
         hour = row_1[0]
         m2_2 = 2.0 * math.pi * hour / HARBOUR.period_m2 - phase_m2

@@ -294,11 +294,11 @@ class TapeLayout:
 
     def _assign_records(self) -> None:
         """The values an iteration saves at the top level of its loop's body go
-        in one tuple per iteration, a record (``hold_values_saved[j] = (hold_1,
-        values_4)``): one list and one store per iteration instead of one of each
-        per value, and one unpacking in the reverse. Each has a name no other
-        value takes, so it still holds its value where the tuple is made, after
-        the last of them."""
+        in one tuple per iteration, a record (``j_saved[j] = (hold_1, values_4)``):
+        one list and one store per iteration instead of one of each per value,
+        and one unpacking in the reverse. Each has a name no other value takes,
+        so it still holds its value where the tuple is made, after the last of
+        them."""
         sharing: dict[str, int] = {}
         for name in self.namer.names.values():
             sharing[name] = sharing.get(name, 0) + 1
@@ -314,10 +314,8 @@ class TapeLayout:
                 continue
             members.sort(key=lambda var: self.position[var])
             self.records[loop] = members
-            # named after what it holds (hold_values_saved), or the iteration
-            bases = list(dict.fromkeys(var.base for var in members))
-            what = "_".join(bases) if len(bases) <= 3 else self.namer.name(loop.index)
-            name = self.namer.claim(f"{what}_saved")
+            # named after the iteration: short, so the tuple keeps to one line
+            name = self.namer.claim(f"{self.namer.name(loop.index)}_saved")
             for var in members:
                 self.tape_names[(loop, var)] = name
 
