@@ -2,7 +2,7 @@
 # source: samples/tide_gauge.py
 # source sha256: 41f2e6ad8faaef888ec4fb61d9e9a8b106c978f34cbbdb886a71de8b9d6e2f7b
 # command: gradwright gen samples/tide_gauge.py tide_misfit -o samples/tide_gauge_grad.py
-# output sha256: 598f3f0598f12955b60fcd97518b7337cd801c7f72390e8375512272b12a914e
+# output sha256: 71483621d1798ed2c70465400369ab6cb485443542f86d8ebe3cacd07a2cc209
 
 import math
 from collections import namedtuple
@@ -48,7 +48,9 @@ def tide_misfit_grad(amp_m2, phase_m2, amp_s2, phase_s2):
     # total = 0.0
     total = 0.0
     # for hour, height in READINGS:
-    hour_index_saved = [0.0] * len(READINGS)
+    m2_1_saved = [0.0] * len(READINGS)
+    s2_1_saved = [0.0] * len(READINGS)
+    total_1_saved = [0.0] * len(READINGS)
     for hour_index in range(len(READINGS)):
         row_1 = READINGS[hour_index]
         hour = row_1[0]
@@ -60,15 +62,17 @@ def tide_misfit_grad(amp_m2, phase_m2, amp_s2, phase_s2):
             weight = WEIGHTS["day"]
         # m2 = amp_m2 * math.cos(2.0 * math.pi * hour / HARBOUR.period_m2 - phase_m2)
         m2_1 = math.cos(2.0 * math.pi * hour / HARBOUR.period_m2 - phase_m2)
+        m2_1_saved[hour_index] = m2_1
         m2 = amp_m2 * m2_1
         # s2 = amp_s2 * math.cos(2.0 * math.pi * hour / HARBOUR.period_s2 - phase_s2)
         s2_1 = math.cos(2.0 * math.pi * hour / HARBOUR.period_s2 - phase_s2)
+        s2_1_saved[hour_index] = s2_1
         s2 = amp_s2 * s2_1
         # miss = HARBOUR.datum + m2 + s2 - height
         miss = HARBOUR.datum + m2 + s2 - height
         # total += weight * miss * miss
         total_1 = weight * miss
-        hour_index_saved[hour_index] = (m2_1, s2_1, total_1)
+        total_1_saved[hour_index] = total_1
         total = total + total_1 * miss
     # return total / len(READINGS)
     value_1 = len(READINGS)
@@ -83,7 +87,9 @@ def tide_misfit_grad(amp_m2, phase_m2, amp_s2, phase_s2):
     amp_s2_bar = 0.0
     phase_s2_bar = 0.0
     for hour_index in reversed(range(len(READINGS))):
-        m2_1, s2_1, total_1 = hour_index_saved[hour_index]
+        m2_1 = m2_1_saved[hour_index]
+        s2_1 = s2_1_saved[hour_index]
+        total_1 = total_1_saved[hour_index]
         row_1 = READINGS[hour_index]
         hour = row_1[0]
         m2_2 = 2.0 * math.pi * hour / HARBOUR.period_m2 - phase_m2

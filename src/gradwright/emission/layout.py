@@ -62,6 +62,7 @@ class Layout(NamingLayout, TapeLayout):
         active: set[Var],
         share_names: bool = True,
         shaped: bool = False,
+        records: bool = True,
     ) -> None:
         #: let versions of a variable share its name (readable); off, every stored
         #: value has a name of its own (the fallback when the check fails)
@@ -143,7 +144,8 @@ class Layout(NamingLayout, TapeLayout):
         self.named = True
         #: per loop: the values saved together, one tuple per iteration
         self.records: dict[Loop, list[Var]] = {}
-        self._assign_records()
+        if records:  # else one list per saved value (Target.records)
+            self._assign_records()
 
     # -- analysis -----------------------------------------------------------------
 

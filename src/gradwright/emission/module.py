@@ -200,6 +200,7 @@ def render_function(
             set(compiled.active),
             reverse_printer,
             share_names,
+            target.records,
         )
         return namer, seed_name, printer, reverse_printer, laid_out
 

@@ -37,6 +37,7 @@ def lay_out(
     active: set[Var],
     reverse_printer: Printer | None = None,
     share_names: bool = True,
+    records: bool = True,
 ) -> tuple[list[str], list[str], tuple[Expr, ...]]:
     """Forward lines, reverse lines and the result expressions.
 
@@ -45,7 +46,9 @@ def lay_out(
     """
     # an array model returns its parameters' adjoints through _gw_shaped
     shaped = reverse_printer is not None
-    layout = Layout(function, sweep, namer, printer, active, share_names, shaped)
+    layout = Layout(
+        function, sweep, namer, printer, active, share_names, shaped, records
+    )
     layout.reverse_printer = reverse_printer or printer
     layout.numpy = (
         reverse_printer is not None and reverse_printer.where_call is not None

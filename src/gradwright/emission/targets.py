@@ -50,6 +50,9 @@ class Target:
         positional_only: whether ``def f(a, /, b)`` is valid syntax there.
         runtime: how diagnostics name the interpreter.
         numpy: whether NumPy models can run there.
+        records: whether a loop saves an iteration's values as one tuple (one
+            store and one list per iteration: faster on CPython) rather than one
+            list per value (no tuple per iteration: the smaller heap of a board).
     """
 
     name: str
@@ -59,6 +62,7 @@ class Target:
     positional_only: bool
     runtime: str
     numpy: bool = True
+    records: bool = True
 
     @property
     def rewrites(self) -> bool:
@@ -110,6 +114,7 @@ def _micropython() -> Target:
         positional_only=False,
         runtime=f"MicroPython {version}",
         numpy=False,  # list parameters are the vector container there
+        records=False,
     )
 
 
