@@ -239,6 +239,41 @@ def test_binomial_tree_branches_on_the_exercise_condition():
         )
 
 
+def test_an_iterations_many_saves_are_one_tuple_except_on_a_board():
+    """Six values an iteration of the tree saves go in one tuple (CPython: one
+    store and one list per node); three (the payoff loop) keep a list each, and
+    --target micropython always does (a tuple per iteration is heap a board
+    lacks). Both modules compute the same numbers."""
+    wrt = ["spot", "strike", "vol", "rate", "years"]
+    tree = scalar_models.BINOMIAL_TREE
+    texts = {
+        target: gradwright.generate(tree, ["tree_price"], wrt, target=target)
+        for target in ("cpython", "micropython")
+    }
+    forward, reverse = _sweeps(texts["cpython"], "tree_price")
+    assert forward.count("_saved[j] = (") == 1
+    assert "j_saved[j] = (hold_1, hold_2, hold_3, values_4, values_5, values_6)" in (
+        forward
+    )
+    assert "values_1_saved[j] = values_1" in forward  # three: a list each
+    assert "hold_1, hold_2, hold_3, values_4, values_5, values_6 = j_saved[j]" in (
+        reverse
+    )
+    board, _ = _sweeps(texts["micropython"], "tree_price")
+    assert "_saved[j] = (" not in board and "hold_1_saved[j] = hold_1" in board
+    args = (100.0, 95.0, 0.25, 0.03, 1.0, 7)
+    results = []
+    for text in texts.values():
+        namespace: dict = {}
+        exec(compile(text, "tree", "exec"), namespace)
+        results.append(namespace["tree_price_grad"](*args))
+    assert results[0] == results[1]
+    # outside reference: mpmath high-precision central differences
+    reference = mp_gradient(mp_function(tree, "tree_price"), args, range(5))
+    for got, want in zip(results[1][1], reference, strict=True):
+        assert rel_err(got, want) < 1e-9, (got, want)
+
+
 def test_heat_scheme_reads_each_cell_once():
     text = gradwright.generate(
         scalar_models.HEAT_SCHEME, ["heat_loss"], wrt=["conductivity", "left"]
