@@ -81,6 +81,56 @@ def test_line_fit_over_a_module_table() -> None:
     assert rel_err(g_b, 2 * sum(r for r, _ in residuals)) < 1e-13
 
 
+ROWS_BY_NAME = """\
+# (hour, reading) rows of the invented tank gauge, three containers
+AS_TUPLES = [(0.0, 1.2), (1.0, 2.9), (2.0, 5.1), (3.0, 7.2), (4.0, 8.8)]
+AS_LISTS = [[0.0, 1.2], [1.0, 2.9], [2.0, 5.1], [3.0, 7.2], [4.0, 8.8]]
+AS_TUPLE = ((0.0, 1.2), (1.0, 2.9), (2.0, 5.1), (3.0, 7.2), (4.0, 8.8))
+
+
+def by_row(slope, intercept):
+    total = 0.0
+    for row in AS_TUPLES:
+        r = slope * row[0] + intercept - row[1]
+        total += r * r
+    return total
+
+
+def by_picked_row(slope, intercept):
+    total = 0.0
+    for i in range(len(AS_LISTS)):
+        row = AS_LISTS[i]
+        r = slope * row[0] + intercept - row[1]
+        total += r * r
+    return total
+
+
+def by_columns(slope, intercept):
+    hours = [row[0] for row in AS_TUPLE]
+    readings = [row[1] for row in AS_TUPLE]
+    total = 0.0
+    for x, y in zip(hours, readings):
+        r = slope * x + intercept - y
+        total += r * r
+    return total
+"""
+
+
+@pytest.mark.parametrize("func", ["by_row", "by_picked_row", "by_columns"])
+def test_a_row_of_a_module_table_is_indexed_by_name(func: str) -> None:
+    """``for row in TABLE: row[0]`` (tuples, lists, a tuple of tuples): the row
+    is module data, indexed again as data."""
+    ns = build(ROWS_BY_NAME, func)
+    points = run_source(ROWS_BY_NAME)["AS_TUPLES"]
+    a, b = 1.7, 0.4
+    value, (g_a, g_b) = ns[f"{func}_grad"](a, b)
+    assert value == ns[func](a, b)
+    # reference: d/da sum r^2 = 2 sum r x, d/db = 2 sum r (textbook closed form)
+    residuals = [(a * x + b - y, x) for x, y in points]
+    assert rel_err(g_a, 2 * sum(r * x for r, x in residuals)) < 1e-13
+    assert rel_err(g_b, 2 * sum(r for r, _ in residuals)) < 1e-13
+
+
 # NIST StRD Misra1a, values from memory: the certified residual sum of squares
 # 1.2455138894E-01 reproduced to 10 digits below confirms the copied data.
 MISRA1A = """\

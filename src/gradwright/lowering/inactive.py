@@ -660,10 +660,14 @@ class InactiveLowering:
 
     def opaque_item(self, node: cst.Subscript, base: str) -> Atom | None:
         """``table[key]`` on a value a copied statement bound (a local dict of
-        constants, say): a ``dataitem``, never active (None for anything else)."""
+        constants, say) or on an element of module data (``row[0]`` of ``for row
+        in TABLE``): a ``dataitem``, never active (None for anything else)."""
         head = node.value
         bound = self.env.get(head.value) if isinstance(head, cst.Name) else None
-        if not (isinstance(bound, Var) and bound in self.opaque):
+        if not (
+            isinstance(bound, Var)
+            and (bound in self.opaque or bound in self.data_items)
+        ):
             return None
         if len(node.slice) != 1 or not isinstance(node.slice[0].slice, cst.Index):
             fail(

@@ -121,6 +121,9 @@ class _Lowerer(
         self.opaque: set[Var] = set()
         #: opaque values bound to a list or tuple literal (tables of rows)
         self.opaque_sequences: set[Var] = set()
+        #: elements of module data (a table's row, ``for row in TABLE``): indexed
+        #: again as data (``row[0]``), never active
+        self.data_items: set[Var] = set()
         #: dicts of numbers (lists in the SSA): their keys, where each was made,
         #: and the copied table of positions for keys known only at run time
         self.dict_keys: dict[Var, tuple[str, ...]] = {}
@@ -147,6 +150,8 @@ class _Lowerer(
             self.fresh.add(target)
         if op == "copy":
             self.copy_of[target] = args[0]
+        if op == "dataitem" or (op == "copy" and args[0] in self.data_items):
+            self.data_items.add(target)
         self.note_inert(op, args, target)
         return target
 
