@@ -990,3 +990,26 @@ def test_a_loop_that_always_returns_breaks_plainly():
     assert "if not returned:" in forward and "pass" not in text
     for args in ((0.7, 1.5, 2.0), (0.7, 1.5, 0.5), (0.7, 2.5, 0.5)):
         _check_against_mpmath(EARLY_EXIT, "settle", args, [0, 1, 2])
+
+
+CHANNEL = """\
+import math
+
+
+def channel_flow(depth, width, slope, rough):
+    area = width * depth
+    rh = area / (width + 2.0 * depth)
+    return area * rh ** (2.0 / 3.0) * math.sqrt(slope) / rough + rh ** (5.0 / 2.0)
+"""
+
+
+def test_an_exponent_computed_from_literals_is_a_constant_power():
+    """``rh ** (2.0 / 3.0)``: the exponent is known at generation time, so its
+    derivative reads the power the forward sweep computed (no second pow, no
+    ``2.0 / 3.0 - 1``); above 1 the exponent less one is one literal."""
+    text = gradwright.generate(CHANNEL, ["channel_flow"])
+    _, reverse = _sweeps(text, "channel_flow")
+    assert "- 1" not in reverse and re.search(r" \* value_\d+ / rh\b", reverse)
+    assert reverse.count("**") == 1 and "rh**1.5" in reverse
+    args = (0.8, 2.5, 0.001, 0.03)
+    _check_against_mpmath(CHANNEL, "channel_flow", args, range(4))

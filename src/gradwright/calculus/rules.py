@@ -65,7 +65,21 @@ def _one_power(g: E, out: E, x: E, y: E) -> tuple[E | None, E]:
     return _power(g, out, x, y)
 
 
-def _constant_power(g: E, out: E, x: E, p: float | int) -> E | None:
+def known_power(p: float) -> Rule:
+    """The power rule for an exponent the model computes from literals
+    (``x ** (2.0 / 3.0)``): its value ``p`` is known here, so the derivative is
+    the constant exponent's (``p * out / x`` below 1: no second pow), with the
+    exponent's own value as the coefficient (the same float the model computed)."""
+
+    def rule(g: E, out: E, x: E, y: E) -> tuple[E | None, E | None]:
+        return _constant_power(g, out, x, p, y), None
+
+    return rule
+
+
+def _constant_power(
+    g: E, out: E, x: E, p: float | int, written: E | None = None
+) -> E | None:
     """d(x**p)/dx for a constant p, from out where that is safe.
 
     p < 1: p * out / x, two roundings after pow's (within about 3 ulp of the
@@ -84,8 +98,9 @@ def _constant_power(g: E, out: E, x: E, p: float | int) -> E | None:
         return None
     if p == 0.5:
         return 0.5 * g / out
-    # 2.0 * x, like every other factor, also for an integer exponent
-    coefficient = float(p)
+    # 2.0 * x, like every other factor, also for an integer exponent; an exponent
+    # the model computes (``written``) is read, not printed as a long literal
+    coefficient = float(p) if written is None else written
     if p < 1:
         return g * coefficient * out / x
     if p == 3:

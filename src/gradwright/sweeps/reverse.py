@@ -17,11 +17,13 @@ list of zeros when the reverse sweep starts.
 
 from __future__ import annotations
 
-from collections.abc import Iterable, Mapping
+import math
+import operator
+from collections.abc import Callable, Iterable, Mapping
 
 from gradwright.calculus.algebra import E, is_zero, simplify
 from gradwright.calculus.numpy_rules import BROADCASTING
-from gradwright.calculus.rules import RULES, rule_for
+from gradwright.calculus.rules import RULES, known_power, rule_for
 from gradwright.ir import (
     AdjointAssign,
     Apply,
@@ -196,6 +198,17 @@ def active_values(function: SSAFunction, wrt: tuple[str, ...]) -> set[Var]:
     active = {p for p in function.params if p.base in wrt}
     _mark(function.body, active)
     return active
+
+
+#: the arithmetic an exponent computed from literals may use (``literal_value``)
+_LITERAL_ARITHMETIC: dict[str, Callable[..., float]] = {
+    "add": operator.add,
+    "sub": operator.sub,
+    "mul": operator.mul,
+    "div": operator.truediv,
+    "neg": operator.neg,
+    "pos": operator.pos,
+}
 
 
 class _Reverse:
@@ -380,8 +393,32 @@ class _Reverse:
                 g = self.fitter.full(g, target)
         active = tuple(isinstance(a, Var) and a in self.active for a in args)
         rule = rule_for(op, self.numpy, active)
+        computed = isinstance(args[1], Var) if len(args) > 1 else False
+        if op in ("pow", "math_pow") and computed and not self.numpy and not active[1]:
+            exponent = self.literal_value(args[1])
+            if exponent is not None:  # x ** (2.0 / 3.0): a constant exponent
+                rule = known_power(exponent)
         parts = rule(E(g), E(target), *(E(a) for a in args))
         return tuple(None if p is None else p.node for p in parts)
+
+    def literal_value(self, atom: Atom) -> float | None:
+        """The value of an exponent the model computes from literals with + - * /
+        (``2.0 / 3.0``): the same float the model gets (IEEE arithmetic is
+        correctly rounded), else None."""
+        if isinstance(atom, Const):
+            value = atom.value
+            ok = isinstance(value, (int, float)) and not isinstance(value, bool)
+            return float(value) if ok and math.isfinite(value) else None  # type: ignore[arg-type]
+        let = self.defs.get(atom)
+        if let is None or let.op not in _LITERAL_ARITHMETIC:
+            return None
+        values = [self.literal_value(a) for a in let.args]
+        if None in values:
+            return None
+        if let.op == "div" and values[1] == 0.0:
+            return None
+        result = _LITERAL_ARITHMETIC[let.op](*values)
+        return result if math.isfinite(result) else None
 
     def unbroadcast(self, total: Expr, var: Atom, result: Var) -> Expr:
         if self.fitter is not None and isinstance(var, Var):
