@@ -683,6 +683,48 @@ def test_an_element_of_a_swapped_buffer_is_saved_not_read_again():
         assert rel_err(got, want) < 1e-9, (got, want)
 
 
+def test_layout_check_stops_consensus_past_its_budget(monkeypatch):
+    """Past its budget, ``_resolve`` keeps the facts no other implies (sound:
+    only facts are lost), the same set whatever order they came in. Six
+    branches with a value held on all paths but one: 63 facts whose consensus
+    takes more than the ten steps allowed here."""
+    from itertools import product
+
+    from gradwright.emission import layout_check
+    from gradwright.ir import Var
+
+    monkeypatch.setattr(layout_check, "_CONSENSUS_BUDGET", 10)
+    key = ("value", Var(1, "x", "local"))
+    branches = [f"b{k}" for k in range(6)]
+    paths = [sides for sides in product((0, 1), repeat=6) if any(sides)]
+    facts = [(key, frozenset(zip(branches, sides, strict=True))) for sides in paths]
+    resolve = layout_check._resolve.__wrapped__
+    forward, backward = resolve(frozenset(facts)), resolve(frozenset(facts[::-1]))
+    assert forward == backward == frozenset(facts)  # none implies another
+    monkeypatch.setattr(layout_check, "_CONSENSUS_BUDGET", 200_000)
+    assert resolve(frozenset(facts)) == {(key, frozenset({(b, 1)})) for b in branches}
+
+
+NESTED_AFTER_RETURN = "def f(x, y, z):\n    if z > 1.0:\n        for i in range(2):\n"
+NESTED_AFTER_RETURN += "            return y\n"
+for _depth in range(14):
+    NESTED_AFTER_RETURN += "    " * (_depth + 1) + f"if y < {_depth + 2}.0:\n"
+NESTED_AFTER_RETURN += "    " * 15 + "x = y * y\n    return x\n"
+
+
+def test_fourteen_nested_ifs_after_a_returning_loop():
+    """Generating took 89 s at twelve deep: each branch join doubled the facts of
+    a name until a loop head resolved them (2^n paths); joins resolve at once
+    now. Reference: mpmath central differences."""
+    ns = build(NESTED_AFTER_RETURN, "f")
+    for args in ((0.3, 1.5, 2.0), (0.3, 1.5, 0.5), (0.3, 20.5, 0.5)):
+        value, grads = ns["f_grad"](*args)
+        assert value == ns["f"](*args)
+        reference = mp_gradient(mp_function(NESTED_AFTER_RETURN, "f"), args, range(3))
+        for got, want in zip(grads, reference, strict=True):
+            assert abs(got - want) <= 1e-12 * max(1.0, abs(want)), (got, want)
+
+
 def test_layout_check_keeps_the_prime_facts_of_a_name():
     """A value held on every path but one through nine branches is nine facts
     (held where branch k took its second side), not the 511 paths one by one: the

@@ -194,6 +194,14 @@ def _meet(a: State, b: State) -> State:
     return out
 
 
+#: consensus steps one ``_resolve`` may take: a safety net, since the prime facts
+#: of a name can be exponentially many in principle (branch joins resolve at
+#: once, which keeps real and random programs to a few hundred steps); beyond
+#: it, ``_absorbed``: facts are lost, so the check may refuse the shared layout
+#: and fall back to names of their own
+_CONSENSUS_BUDGET = 200_000
+
+
 @lru_cache(maxsize=1 << 14)  # the same fact sets recur for many names and rounds
 def _resolve(facts: frozenset) -> frozenset:
     """The prime facts of ``facts``: every fact that follows by consensus, none
@@ -232,7 +240,10 @@ def _resolve(facts: frozenset) -> frozenset:
     for fact in pending:
         add(fact)
     queue = [f for f in pending if f in found]
+    budget = _CONSENSUS_BUDGET
     while queue:
+        if budget < 0:
+            return _absorbed(pending)
         fact = queue.pop()
         if fact not in found:
             continue  # absorbed since
@@ -248,9 +259,25 @@ def _resolve(facts: frozenset) -> frozenset:
                 if _on_no_path(both):
                     continue
                 new = (combined, frozenset(both))
+                budget -= 1
                 if add(new):
                     queue.append(new)
     return frozenset(found)
+
+
+def _absorbed(facts: list) -> frozenset:
+    """The facts no other one implies: what ``_resolve`` gives when consensus
+    would take too long. Every fact holds, so a read they miss is reported,
+    never a wrong one let through; and the set is the same whatever order the
+    facts came in (the output stays the same from run to run)."""
+    return frozenset(
+        fact
+        for fact in facts
+        if not any(
+            other != fact and other[1] <= fact[1] and _implies(other[0], fact[0])
+            for other in facts
+        )
+    )
 
 
 def _on_no_path(guard: frozenset) -> bool:
@@ -298,7 +325,9 @@ def _join_branch(branch: object, then: State, orelse: State) -> State:
         facts = set(a & b)
         facts |= {(k, g | {(branch, 0)}) for k, g in a - b}
         facts |= {(k, g | {(branch, 1)}) for k, g in b - a}
-        out[name] = frozenset(facts)
+        # resolved at once: a value kept on both sides under other guards is one
+        # fact again, before the next branch doubles them (2^n paths otherwise)
+        out[name] = _resolve(frozenset(facts))
     return out
 
 
