@@ -322,6 +322,9 @@ def _join_branch(branch: object, then: State, orelse: State) -> State:
     out: State = {}
     for name in then.keys() | orelse.keys():
         a, b = then.get(name, frozenset()), orelse.get(name, frozenset())
+        if a is b:  # untouched by the branch: both sides hold the state's set
+            out[name] = a
+            continue
         facts = set(a & b)
         facts |= {(k, g | {(branch, 0)}) for k, g in a - b}
         facts |= {(k, g | {(branch, 1)}) for k, g in b - a}

@@ -115,11 +115,16 @@ class _Effects:
         return effects
 
     def commutes(self, other: _Effects) -> bool:
-        # two additions into one adjoint (or two list elements) commute
-        return not (
-            self.sets & (other.reads | other.adds | other.sets)
-            or self.adds & (other.reads | other.sets)
-            or self.reads & (other.adds | other.sets)
+        # two additions into one adjoint (or two list elements) commute; no
+        # unions built (``other`` may be the union of a long block's effects)
+        return (
+            self.sets.isdisjoint(other.reads)
+            and self.sets.isdisjoint(other.adds)
+            and self.sets.isdisjoint(other.sets)
+            and self.adds.isdisjoint(other.reads)
+            and self.adds.isdisjoint(other.sets)
+            and self.reads.isdisjoint(other.adds)
+            and self.reads.isdisjoint(other.sets)
         )
 
 
@@ -191,24 +196,31 @@ class _Brancher:
         self.keep = keep
         self.refs = refs
         self.roots = roots
+        #: per statement (by id; the sweep holds them): its effects and the
+        #: conditions of its selects, worked out once for all the kinks it follows
+        self._facts: dict[int, tuple[_Effects, list[Expr]]] = {}
 
     def block(self, statements: tuple[ReverseStmt, ...]) -> tuple[ReverseStmt, ...]:
         statements = tuple(self._nested(s) for s in statements)
         out: list[ReverseStmt] = []
         rest = list(statements)
-        while rest:
-            stmt = rest.pop(0)
+        position = 0
+        while position < len(rest):
+            stmt = rest[position]
+            position += 1
             test = self._opener(stmt)
             if test is None:
                 out.append(stmt)
                 continue
-            region = self._region(test, [stmt] + rest)
+            region = self._region(test, rest[position - 1 :])
             if region is None:
                 out.append(stmt)
                 continue
             emitted, taken = region
             out.extend(emitted)
-            rest = [s for s in rest if not any(s is t for t in taken)]
+            gone = {id(t) for t in taken}
+            rest = [s for s in rest[position:] if id(s) not in gone]
+            position = 0
         return tuple(out)
 
     def _nested(self, stmt: ReverseStmt) -> ReverseStmt:
@@ -237,7 +249,10 @@ class _Brancher:
         """What replaces the statements it takes (the branch on ``test``; no
         branch if the sides agree), or None when it would save nothing."""
         taken: list[Simple] = []
-        skipped: list[_Effects] = []
+        # what the statements left in place do, together: commuting with each
+        # is commuting with their union (the test is on set intersections), and
+        # one check per statement keeps a long block linear per kink
+        skipped = _Effects()
         zero: tuple[set[Var], set[Var]] = (set(), set())
         selects = 0
         for stmt in candidates:
@@ -245,20 +260,18 @@ class _Brancher:
                 isinstance(stmt, AdjointAssign) and stmt.var.shape != "scalar"
             ):
                 break  # a loop, branch, call or whole list: nothing moves past it
-            effects = _Effects.of(stmt, self.roots)
-            selecting = any(
-                _side_of(c, test) is not None
-                for e in _exprs(stmt)
-                for c in _selects_on(e)
-            )
+            effects, conditions = self._statement_facts(stmt)
+            selecting = any(_side_of(c, test) is not None for c in conditions)
             reads_zero = bool(effects.reads & (zero[0] | zero[1]))
-            if (selecting or reads_zero) and all(effects.commutes(s) for s in skipped):
+            if (selecting or reads_zero) and effects.commutes(skipped):
                 taken.append(stmt)
                 selects += selecting
                 for side in (0, 1):
                     self._track(stmt, test, bool(1 - side), zero[side])
             else:
-                skipped.append(effects)
+                skipped.reads |= effects.reads
+                skipped.adds |= effects.adds
+                skipped.sets |= effects.sets
         if len(taken) - selects < 1 and selects < 2:
             return None
         private = self._private(taken)
@@ -278,6 +291,14 @@ class _Brancher:
         # sides at most once, so the sweep at most doubles (a chain of kinks
         # branched inside each other would grow as 2**k)
         return (ReverseBranch(condition, then, orelse, origin),), list(taken)
+
+    def _statement_facts(self, stmt: Simple) -> tuple[_Effects, list[Expr]]:
+        known = self._facts.get(id(stmt))
+        if known is None:
+            conditions = [c for e in _exprs(stmt) for c in _selects_on(e)]
+            known = (_Effects.of(stmt, self.roots), conditions)
+            self._facts[id(stmt)] = known
+        return known
 
     @staticmethod
     def _track(stmt: Simple, test: Expr, side: bool, zero: set[Var]) -> None:
