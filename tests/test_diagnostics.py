@@ -1126,7 +1126,7 @@ CASES = [
         "'x' is a parameter: changing it in place is not supported",
         2,
         "x[0]",
-        "build a local list first: `x_local = [0.0] * len(x)`",
+        "copy it first (`x_local = list(x)`) and change the copy",
     ),
     case(
         "list-slice-with-a-step",

@@ -333,7 +333,7 @@ class AssignmentLowering:
             fail(
                 f"'{name}' is a parameter: changing it in place is not supported",
                 self.index.locate(where),
-                f"build a local list first: `{name}_local = [0.0] * len({name})`",
+                f"copy it first (`{name}_local = list({name})`) and change the copy",
             )
         self.check_one_name(name, current, where)
         return current
