@@ -1013,3 +1013,18 @@ def test_an_exponent_computed_from_literals_is_a_constant_power():
     assert reverse.count("**") == 1 and "rh**1.5" in reverse
     args = (0.8, 2.5, 0.001, 0.03)
     _check_against_mpmath(CHANNEL, "channel_flow", args, range(4))
+
+
+def test_an_exponent_of_literal_ints_is_the_int_the_model_gets():
+    """(10**17 + 2) - (10**17 + 1) is 1 in Python's ints; in floats it would be
+    0.0, and the derivative of x ** 0 would drop the whole term. Reference: the
+    power rule, d/dx (x + x**3.5) = 1 + 3.5 x**2.5 (textbook closed form)."""
+    source = (
+        "def f(x):\n"
+        "    return x ** ((100000000000000001 + 1) - 100000000000000001)"
+        " + x ** (7 / 2)\n"
+    )
+    module = build(source, "f", ["x"])
+    for x in (0.4, 1.3, 2.9):
+        _, (x_bar,) = module["f_grad"](x)
+        assert rel_err(x_bar, 1.0 + 3.5 * x**2.5) < 1e-14

@@ -162,6 +162,16 @@ def _fold(op: str, a: float | int, b: float | int) -> Expr | None:
     return const(result)
 
 
+def literal_arithmetic(op: str, values: list[float | int]) -> float | int | None:
+    """``op`` on literal numbers, as the model computes it (ints stay ints):
+    + - * / and signs only, None for anything else or a result that is not
+    finite."""
+    if op in ("neg", "pos") and len(values) == 1:
+        return -values[0] if op == "neg" else values[0]
+    folded = _fold(op, *values) if len(values) == 2 else None
+    return None if folded is None else number(folded)
+
+
 def _split_sign(expr: Expr) -> tuple[bool, Expr]:
     """``(negative, m)`` with ``expr == -m if negative else m`` bit for bit and no
     minus left in m's chain of products and quotients."""

@@ -65,7 +65,7 @@ def _one_power(g: E, out: E, x: E, y: E) -> tuple[E | None, E]:
     return _power(g, out, x, y)
 
 
-def known_power(p: float) -> Rule:
+def known_power(p: float | int) -> Rule:
     """The power rule for an exponent the model computes from literals
     (``x ** (2.0 / 3.0)``): its value ``p`` is known here, so the derivative is
     the constant exponent's (``p * out / x`` below 1: no second pow), with the

@@ -18,10 +18,9 @@ list of zeros when the reverse sweep starts.
 from __future__ import annotations
 
 import math
-import operator
-from collections.abc import Callable, Iterable, Mapping
+from collections.abc import Iterable, Mapping
 
-from gradwright.calculus.algebra import E, is_zero, simplify
+from gradwright.calculus.algebra import E, is_zero, literal_arithmetic, simplify
 from gradwright.calculus.numpy_rules import BROADCASTING
 from gradwright.calculus.rules import RULES, known_power, rule_for
 from gradwright.ir import (
@@ -198,17 +197,6 @@ def active_values(function: SSAFunction, wrt: tuple[str, ...]) -> set[Var]:
     active = {p for p in function.params if p.base in wrt}
     _mark(function.body, active)
     return active
-
-
-#: the arithmetic an exponent computed from literals may use (``literal_value``)
-_LITERAL_ARITHMETIC: dict[str, Callable[..., float]] = {
-    "add": operator.add,
-    "sub": operator.sub,
-    "mul": operator.mul,
-    "div": operator.truediv,
-    "neg": operator.neg,
-    "pos": operator.pos,
-}
 
 
 class _Reverse:
@@ -401,24 +389,22 @@ class _Reverse:
         parts = rule(E(g), E(target), *(E(a) for a in args))
         return tuple(None if p is None else p.node for p in parts)
 
-    def literal_value(self, atom: Atom) -> float | None:
+    def literal_value(self, atom: Atom) -> float | int | None:
         """The value of an exponent the model computes from literals with + - * /
-        (``2.0 / 3.0``): the same float the model gets (IEEE arithmetic is
-        correctly rounded), else None."""
+        (``2.0 / 3.0``): the number the model gets (the same operations on the
+        same ints and floats), else None."""
         if isinstance(atom, Const):
             value = atom.value
-            ok = isinstance(value, (int, float)) and not isinstance(value, bool)
-            return float(value) if ok and math.isfinite(value) else None  # type: ignore[arg-type]
+            if isinstance(value, bool) or not isinstance(value, (int, float)):
+                return None
+            return value if math.isfinite(value) else None
         let = self.defs.get(atom)
-        if let is None or let.op not in _LITERAL_ARITHMETIC:
+        if let is None:
             return None
         values = [self.literal_value(a) for a in let.args]
-        if None in values:
+        if any(v is None for v in values):
             return None
-        if let.op == "div" and values[1] == 0.0:
-            return None
-        result = _LITERAL_ARITHMETIC[let.op](*values)
-        return result if math.isfinite(result) else None
+        return literal_arithmetic(let.op, values)  # type: ignore[arg-type]
 
     def unbroadcast(self, total: Expr, var: Atom, result: Var) -> Expr:
         if self.fitter is not None and isinstance(var, Var):
