@@ -59,6 +59,42 @@ def test_a_tie_gives_the_first_argument_the_adjoint():
     assert (a_bar, b_bar) == (0.0, 1.0)
 
 
+@pytest.mark.parametrize(
+    "a, b",
+    [
+        (math.nan, 0.0),
+        (0.0, math.nan),
+        (-0.0, 0.0),
+        (0.0, -0.0),
+        (2, 2.0),
+        (2.0, 2),
+        (-1.5, 3),
+        (math.inf, -math.inf),
+    ],
+)
+def test_max_and_min_print_as_tests_with_the_builtins_values(a, b):
+    # the forward sweep writes max(a, b) as a conditional expression; the
+    # reference is Python's own max and min, compared by repr so that a NaN and
+    # the sign of a zero count (max(-0.0, 0.0) is -0.0: the first of equals)
+    cases = {
+        "max(a, b)": lambda: max(a, b),
+        "min(a, b)": lambda: min(a, b),
+        "max(a, 1.0)": lambda: max(a, 1.0),
+        "min(b, 0.0)": lambda: min(b, 0.0),
+    }
+    for written, builtin in cases.items():
+        source = f"def f(x, a, b):\n    m = {written}\n    return x * m\n"
+        text = gradwright.generate(source, ["f"], ["x"])
+        forward = text.split("def f_grad")[1].split("# reverse sweep")[0]
+        code = [line for line in forward.splitlines() if "#" not in line]
+        assert not [line for line in code if "max(" in line or "min(" in line]
+        module = build(source, "f", ["x"])
+        value, (x_bar,) = module["f_grad"](1.0, a, b)
+        want = repr(float(builtin()))
+        assert repr(float(x_bar)) == want, (written, a, b, x_bar)
+        assert repr(value) == repr(1.0 * builtin()), (written, a, b, value)
+
+
 def test_the_losing_side_is_not_evaluated():
     # 1e200 * x * x overflows to inf at x = 1e160, and min(y, 1.0) is 1.0 there:
     # constant near that point, so the derivative is 0 (closed form). Evaluating

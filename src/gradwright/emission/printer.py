@@ -59,6 +59,8 @@ class Printer:
                 return PREC_ATOM
             if expr.op == "ifexp" and self.where_call is not None:
                 return PREC_ATOM  # printed as a call: np.where(c, a, b)
+            if self._kink_as_ifexp(expr):
+                return PREC_IFEXP
             return OPS[expr.op].precedence
         if isinstance(expr, Const) and expr.text.startswith("-"):
             return PREC_UNARY
@@ -73,6 +75,16 @@ class Printer:
             and expr.op == "neg"
             and isinstance(expr.args[0], (Var, Bar, Const))
             and not self._print(expr.args[0]).startswith("-")
+        )
+
+    def _kink_as_ifexp(self, expr: Apply) -> bool:
+        """Two-argument scalar max/min of names or numbers, printed as a test."""
+        return (
+            expr.op in ("max", "min")
+            and len(expr.args) == 2
+            and self.where_call is None
+            and expr.op not in self.callees
+            and all(isinstance(a, (Var, Bar, Const)) for a in expr.args)
         )
 
     def _wrap(self, expr: Expr, parens: bool) -> str:
@@ -126,6 +138,15 @@ class Printer:
             var, position = args
             assert isinstance(var, Var)
             return f"{self.partials_name(var)}[{self._print(position)}]"
+        if self._kink_as_ifexp(expr):
+            # max(a, b) keeps a unless b > a (min: unless b < a): the same value
+            # as the call, NaNs included, at a third of a builtin call's cost
+            a, b = (self._print(arg) for arg in args)
+            test = ">" if expr.op == "max" else "<"
+            if isinstance(args[1], Const):  # a clamp reads value-first
+                flipped = "<" if test == ">" else ">"
+                return f"{b} if {a} {flipped} {b} else {a}"
+            return f"{b} if {b} {test} {a} else {a}"
         if spec.syntax == "call":
             symbol = self._module_alias(self.callees.get(expr.op, spec.symbol))
             if symbol.startswith("_gw_"):
