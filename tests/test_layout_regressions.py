@@ -748,3 +748,37 @@ def test_layout_check_keeps_the_prime_facts_of_a_name():
         {(_SAME, frozenset({("c", 0), ("d", 1)})), (key, frozenset({("c", 1)}))}
     )
     assert (("kept", key), frozenset({("d", 1)})) in _resolve(mixed)
+
+
+# a random program (found by a long random run, shortened): s4's generator loop is dead,
+# and s4's adjoint is zero around the i5 loop (only ever set to 0.0 or copied)
+DEAD_GENERATOR = """
+import math
+
+def f(x, xs):
+    s4 = sum((x - x // (1.25 + math.tanh(x))) for v3 in xs if x >= v3 >= x)
+    for i5 in range(1):
+        for v6 in xs:
+            s4 = x
+        if i5 == 1:
+            x = x
+            s4 = s4
+            b9 = (x - s4) // (1.25 + sum(xs))
+    return x / (1.25 + sum(xs) * sum(xs))
+"""
+
+
+def test_a_dead_loop_and_a_carried_zero_adjoint_against_closed_form():
+    # the forward sweep printed the dead loop with a trip count it had dropped
+    # (an internal error); its zero adjoint was carried through the i5 loop
+    text = gradwright.generate(DEAD_GENERATOR, ["f"])
+    assert "s4_bar" not in text and "for i5" not in text.split("# reverse")[1]
+    ns = build(DEAD_GENERATOR, "f")
+    for x, xs in ((0.7, [0.2, -1.1, 0.4]), (0.4, [0.4, 0.3]), (1.0, [])):
+        value, (x_bar, xs_bar) = ns["f_grad"](x, list(xs))
+        assert value == ns["f"](x, list(xs))
+        # closed form: f = x / (1.25 + S**2), S = sum(xs)
+        s = sum(xs)
+        assert rel_err(x_bar, 1.0 / (1.25 + s * s)) < 1e-15
+        want = -2.0 * x * s / (1.25 + s * s) ** 2
+        assert all(abs(g - want) <= 1e-15 * max(1.0, abs(want)) for g in xs_bar)

@@ -301,6 +301,19 @@ class ForwardLines(EmitterBase):
                 self.save(loop, phi.target, depth, out)
 
     def forward_loop(self, loop: Loop, depth: int, out: Lines) -> None:
+        start, last_origin = len(out.lines), dict(out.last_origin)
+        with self.trace.capture() as events:
+            self._print_loop(loop, depth, out)
+        code = [line for line in out.lines[start:] if not line.lstrip().startswith("#")]
+        if loop.test is None and len(code) == 2 and code[1].strip() == "pass":
+            # nothing the loop computes is read (the reverse reads only its
+            # index, which its own loop makes): it is not printed at all
+            del out.lines[start:]
+            out.last_origin = last_origin
+            return
+        self.trace.extend(events)
+
+    def _print_loop(self, loop: Loop, depth: int, out: Lines) -> None:
         layout = self.layout
         enclosing = layout.parent.get(loop)
         trace = self.trace

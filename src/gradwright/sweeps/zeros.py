@@ -4,7 +4,8 @@ A value a loop overwrites before the next iteration reads it (a Newton step's
 residual, read again only by the loop's test) has an adjoint that every iteration
 sets back to 0.0 and that the next iteration starts from: ``err_bar_1 = err_bar``,
 ``err_bar_1 += shift_bar_1``, ..., ``err_bar = 0.0``. Where every write of an
-adjoint is ``= 0.0``, each read of it is 0.0 and the writes go; then
+adjoint is ``= 0.0`` or adds or copies only such adjoints (a carried adjoint that
+nothing else ever adds to), each read of it is 0.0 and the writes go; then
 ``x_bar = 0.0`` followed in its block by ``x_bar += e``, with nothing reading
 ``x_bar`` between, is ``x_bar = e``. Scalar adjoints of scalar models only (an
 array adjoint set from another would share its array). Exact: only additions of
@@ -13,7 +14,7 @@ zero are left out.
 
 from __future__ import annotations
 
-from collections import Counter
+from collections import defaultdict
 from dataclasses import replace
 
 from gradwright.calculus.algebra import is_zero, simplify
@@ -22,10 +23,12 @@ from gradwright.ir import (
     Apply,
     Bar,
     Const,
+    ElementAdjoint,
     ReverseBranch,
     ReverseLoop,
     ReverseStmt,
     ReverseSweep,
+    SpreadAdjoint,
     Var,
     walk,
 )
@@ -63,23 +66,48 @@ def _kept(stmt: ReverseStmt, zero: set[Var]) -> ReverseStmt | None:
         stmt.var in zero or (stmt.accumulate and is_zero(stmt.expr))
     ):
         return None
+    added = isinstance(stmt, SpreadAdjoint) or (
+        isinstance(stmt, ElementAdjoint) and stmt.accumulate
+    )
+    if added and is_zero(stmt.expr):
+        return None
     return stmt
 
 
 def _only_zero(sweep: ReverseSweep, keep: set[Var]) -> set[Var]:
-    """The scalar adjoints every write of which is ``= 0.0``."""
-    flat = list(all_statements(sweep.statements))
-    writes: Counter[Var] = Counter(v for s in flat for v in written_bars(s))
-    zero_writes: Counter[Var] = Counter(
-        s.var
-        for s in flat
-        if isinstance(s, AdjointAssign) and not s.accumulate and is_zero(s.expr)
-    )
-    return {
-        v
-        for v, n in zero_writes.items()
-        if n == writes[v] and v.shape == "scalar" and v not in keep
-    }
+    """The scalar adjoints that stay 0.0: each of their writes is zero when they
+    all are (``= 0.0``, or a copy or multiple of another such adjoint, as a
+    loop-carried adjoint that nothing but its own copies ever adds to).
+
+    The largest such set: an adjoint is taken out when one of its writes may be
+    nonzero, and the writes reading it are looked at again.
+    """
+    writes = [(v, s) for s in all_statements(sweep.statements) for v in written_bars(s)]
+    candidates = {v for v, _ in writes if v.shape == "scalar" and v not in keep}
+    reads = [_bars(stmt) for _, stmt in writes]
+    readers: dict[Var, list[int]] = defaultdict(list)
+    for k, bars in enumerate(reads):
+        for bar in bars:
+            readers[bar].append(k)
+    nonzero: set[Var] = set()
+    pending = list(range(len(writes)))
+    while pending:
+        k = pending.pop()
+        var, stmt = writes[k]
+        if var not in candidates or var in nonzero:
+            continue
+        zeros = {b: _ZERO for b in reads[k] if b in candidates and b not in nonzero}
+        if (
+            not isinstance(stmt, AdjointAssign)
+            or (reads[k] and not zeros)  # reads only adjoints that may be nonzero
+            or not is_zero(simplify(substitute(stmt.expr, zeros)))
+        ):
+            nonzero.add(var)
+            pending.extend(readers[var])
+    return candidates - nonzero
+
+
+_ZERO = Const("0.0", 0.0)
 
 
 def merge_zero_starts(sweep: ReverseSweep) -> ReverseSweep:
