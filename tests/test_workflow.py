@@ -75,10 +75,14 @@ def test_gen_check_names_the_stale_file_and_exits_one(proj: Path) -> None:
     assert _files(proj) == before  # --check writes nothing
 
 
-def test_gen_check_on_a_missing_output_is_stale(proj: Path) -> None:
+def test_gen_check_on_a_missing_output_says_missing(proj: Path) -> None:
     result = cli(*GEN, "-o", OUT, "--check", cwd=proj)
     assert result.code == 1
     assert not (proj / OUT).exists()
+    assert (
+        f"missing   {OUT}" in result.err and "write with: gradwright gen" in result.err
+    )
+    assert "stale" not in result.err
 
 
 def test_gen_diff_prints_what_would_change_and_writes_nothing(proj: Path) -> None:
@@ -170,12 +174,12 @@ def test_build_check_lists_every_stale_target(tmp_path: Path) -> None:
     assert cli("build", "--check", cwd=root).code == 0
 
 
-def test_build_check_with_a_broken_target_exits_two_and_still_lists_stale(
+def test_build_check_with_a_broken_target_exits_two_and_still_lists_missing(
     proj: Path,
 ) -> None:
     result = cli("build", "--check", cwd=proj)
     assert result.code == 2
-    assert result.err.count("stale     ") == 3
+    assert result.err.count("missing   ") == 3  # never built
     assert "failed    models/broken_grad.py" in result.err
 
 
@@ -774,7 +778,7 @@ def test_build_jobs_keep_target_order_and_the_other_targets(proj: Path) -> None:
     parallel = cli("build", "--check", "-j", "4", cwd=proj)
     assert serial.code == parallel.code == 2
     assert serial.err == parallel.err
-    assert parallel.err.count("stale     ") == 3  # the broken one did not stop them
+    assert parallel.err.count("missing   ") == 3  # the broken one did not stop them
     assert cli("build", "-j", "0", cwd=proj).code == 2
 
 

@@ -296,7 +296,7 @@ class _Report:
             print(text, file=self.stream)
 
     def status(self, word: str, labels: Sequence[str]) -> None:
-        error = word in ("stale", "edited", "failed")
+        error = word in ("stale", "missing", "edited", "failed")
         self.line(f"{word:<9} {', '.join(labels)}", error=error)
 
 
@@ -355,7 +355,10 @@ def _gen(args: argparse.Namespace) -> int:
                     error=True,
                 )
             elif stale:
-                report.line(f"regenerate with: {job_command(job)}", error=True)
+                verb = (
+                    "write" if set(words) <= {"missing", "unchanged"} else "regenerate"
+                )
+                report.line(f"{verb} with: {job_command(job)}", error=True)
             if stale:
                 return EXIT_STALE
         return EXIT_OK
@@ -380,7 +383,10 @@ def _current(job: Job, diff: bool) -> bool:
 
 
 def _stale_word(artifact: Artifact) -> str:
-    """`edited` for a generated file changed by hand since, else `stale`."""
+    """`missing` for an output not written yet, `edited` for a generated file
+    changed by hand since, else `stale`."""
+    if not artifact.path.exists():
+        return "missing"
     return "edited" if edited_by_hand(read_existing(artifact.path)) else "stale"
 
 
@@ -456,7 +462,15 @@ def _build(args: argparse.Namespace) -> int:
     finally:
         if pool is not None:
             pool.shutdown()
-    order = ("generated", "would change", "stale", "edited", "unchanged", "failed")
+    order = (
+        "generated",
+        "would change",
+        "stale",
+        "missing",
+        "edited",
+        "unchanged",
+        "failed",
+    )
     parts = [f"{counts[w]} {w}" for w in order if counts.get(w)]
     total = len(project.targets)
     mode = "build --check" if args.check else "build --diff" if args.diff else "build"
@@ -465,17 +479,23 @@ def _build(args: argparse.Namespace) -> int:
     )
     if counts.get("failed"):
         return EXIT_BAD_INPUT
-    if counts.get("stale") or counts.get("edited"):
+    if counts.get("stale") or counts.get("missing") or counts.get("edited"):
         if counts.get("edited"):
             report.line(
                 "edited files were changed by hand since they were generated: move"
                 " the change into the model, then `gradwright build --force`",
                 error=True,
             )
-        if counts.get("stale"):
-            report.line(
-                "run `gradwright build` to regenerate the stale files", error=True
+        todo = [
+            text
+            for word, text in (
+                ("stale", "regenerate the stale files"),
+                ("missing", "write the missing files"),
             )
+            if counts.get(word)
+        ]
+        if todo:
+            report.line(f"run `gradwright build` to {' and '.join(todo)}", error=True)
         return EXIT_STALE
     if counts.get("generated") and args.fail_if_changed:
         report.line("files were regenerated: review and stage them", error=True)
@@ -495,10 +515,14 @@ def _build_target(job: Job, options: _BuildOptions) -> _Outcome:
                 return _Outcome("unchanged", [artifacts[0].label], diff=diff)
             if not options.check:  # --diff alone shows what building would change
                 return _Outcome("would change", [a.label for a in stale], diff=diff)
-            edited = [a.label for a in stale if _stale_word(a) == "edited"]
+            words = [_stale_word(a) for a in stale]
+            edited = [
+                a.label for a, w in zip(stale, words, strict=True) if w == "edited"
+            ]
             if edited:
                 return _Outcome("edited", edited, diff=diff)
-            return _Outcome("stale", [a.label for a in stale], diff=diff)
+            word = "missing" if set(words) == {"missing"} else "stale"
+            return _Outcome(word, [a.label for a in stale], diff=diff)
         for artifact in artifacts:
             check_overwrite(artifact, options.force)
         changed = [a.label for a in artifacts if write_artifact(a, options.force)]
