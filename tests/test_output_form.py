@@ -1028,3 +1028,45 @@ def test_an_exponent_of_literal_ints_is_the_int_the_model_gets():
     for x in (0.4, 1.3, 2.9):
         _, (x_bar,) = module["f_grad"](x)
         assert rel_err(x_bar, 1.0 + 3.5 * x**2.5) < 1e-14
+
+
+BANDS = """
+import math
+
+
+def band_cost(x, k):
+    if x < 0.0:
+        y = -x * k
+    elif x < 1.0:
+        y = x * x * k
+    elif x < 2.0:
+        y = math.sin(x) * k
+    else:
+        y = 2.0 * x
+    return y * x
+"""
+
+
+@pytest.mark.parametrize("x", [-0.7, 0.4, 1.3, 2.6])
+def test_an_elif_chain_prints_as_one_with_one_name_against_closed_form(x):
+    text = gradwright.generate(BANDS, ["band_cost"])
+    body = text.split("def band_cost_grad")[1]
+    # both sweeps keep the chain's shape: no `else:` holding a lone `if`
+    assert body.count("elif x < 1.0:") == 2 and body.count("elif x < 2.0:") == 2
+    assert not re.search(r"else:\n\s+(# .*\n\s+)?if ", body)
+    # every side binds y itself: no copies merging y_1, y_2, ... after the chain
+    forward = body.split("# reverse sweep")[0]
+    assert forward.count("        y = ") == 4
+    assert not re.search(r"^\s+y(_\d+)? = y(_\d+)?$", forward, re.M)
+    k = 1.7
+    value, (x_bar, k_bar) = build(BANDS, "band_cost")["band_cost_grad"](x, k)
+    # closed forms of y * x on each band, by hand
+    if x < 0.0:
+        want = (-2.0 * x * k, -x * x)
+    elif x < 1.0:
+        want = (3.0 * x * x * k, x**3)
+    elif x < 2.0:
+        want = (k * (math.sin(x) + x * math.cos(x)), x * math.sin(x))
+    else:
+        want = (4.0 * x, 0.0)
+    assert rel_err(x_bar, want[0]) < 1e-15 and rel_err(k_bar, want[1]) < 1e-15

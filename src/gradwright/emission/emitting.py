@@ -60,13 +60,36 @@ class Lines:
             return
         self.code(f"if {condition}:", depth)
         self.lines.extend(then)
-        if orelse:
+        chain = _elif_chain(orelse, depth)
+        if chain is not None:
+            self.lines.extend(chain)
+        elif orelse:
             self.code("else:", depth)
             self.lines.extend(orelse)
 
     def open_block(self, depth: int, origin: Origin | None = None) -> None:
         self.last_origin[depth + 1] = None
         self.header[depth + 1] = origin
+
+
+def _elif_chain(orelse: list[str], depth: int) -> list[str] | None:
+    """An ``else:`` side that is one ``if`` statement, as ``elif`` lines at
+    ``depth`` (the comment quoting the ``if`` goes: the header quotes it); None
+    for any other side."""
+    inner = "    " * (depth + 1)
+    heads = [
+        (k, line[len(inner) :])
+        for k, line in enumerate(orelse)
+        if line.startswith(inner) and line[len(inner) : len(inner) + 1] not in ("", " ")
+    ]
+    quoted = 1 if heads and heads[0][1].startswith(("# if ", "# elif ")) else 0
+    if len(heads) <= quoted or not heads[quoted][1].startswith("if "):
+        return None
+    if any(not head.startswith(("elif ", "else:")) for _, head in heads[quoted + 1 :]):
+        return None  # a statement after the if: the side is not the if alone
+    lines = [line[4:] for line in orelse[heads[quoted][0] :]]
+    lines[0] = lines[0].replace("if ", "elif ", 1)
+    return lines
 
 
 def negation(condition: Expr) -> Expr:

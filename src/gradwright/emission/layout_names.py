@@ -88,10 +88,17 @@ class NamingLayout:
                     self.namer.name(target)
             elif isinstance(stmt, Branch):
                 sides = []
+                # a name a value the reverse reads holds on one side is free on
+                # the other (nothing on that path reads it); after the join,
+                # held on either path is held
+                before, held = set(self.held), set(self.held)
                 for block in (stmt.then, stmt.orelse):
+                    self.held.intersection_update(before)
                     inner = dict(current)
                     self._name_block(block, inner, indices)
                     sides.append(inner)
+                    held |= self.held
+                self.held.update(held)
                 for phi in stmt.merges:
                     if phi.target.shape == "list":
                         self._version_name(phi.target, current)
