@@ -437,6 +437,26 @@ def test_verify_draws_arrays_for_a_numpy_model() -> None:
     assert "W1=<4x3 array>" in result.out.splitlines()[0]
 
 
+def test_verify_shapes_read_as_gen_writes_them() -> None:
+    # gen's --shape X=n,5 notation (commas) and verify's 4x3 both work in verify;
+    # a comma followed by NAME= starts the next parameter
+    written = points.parse_shapes(["W1=4,3", "b1=3", "features=5x4,humidity=5"])
+    assert written == {"W1": (4, 3), "b1": (3,), "features": (5, 4), "humidity": (5,)}
+    assert points.parse_shapes(["W1=4X3,b1=3"]) == {"W1": (4, 3), "b1": (3,)}
+    result = cli(
+        "verify", "greenhouse_net.py", "humidity_loss", "--wrt", "b2",
+        "--shape", "W1=4,3", "--shape", "b1=3", "--shape", "w2=3",
+        "--shape", "features=5,4", "--shape", "humidity=5", "--samples", "1",
+        cwd=SAMPLES,
+    )  # fmt: skip
+    assert result.code == 0, result.out + result.err
+    assert "W1=<4x3 array>" in result.out.splitlines()[0]
+    symbolic = cli(
+        "verify", "greenhouse_net.py", "humidity_loss", "--shape", "W1=n,3", cwd=SAMPLES
+    )
+    assert symbolic.code == 2 and "needs positive sizes as numbers" in symbolic.err
+
+
 def test_verify_keeps_integer_trip_counts() -> None:
     result = cli(
         "verify", "kiln_cooling.py", "kiln_loss", "--wrt", "k_conv,k_rad,start_temp",

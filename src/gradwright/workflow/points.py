@@ -136,18 +136,27 @@ def parse_at(texts: Sequence[str]) -> dict[str, Value]:
 
 
 def parse_shapes(texts: Sequence[str]) -> dict[str, tuple[int, ...]]:
-    """``W=4x6`` -> (4, 6): array parameters are drawn with these shapes."""
+    """``W=4x6`` or ``W=4,6`` (as gen's --shape writes it) -> (4, 6): array
+    parameters are drawn with these shapes. Several may share one option:
+    ``W=4x6,b=6``; a comma followed by ``NAME=`` starts the next."""
     shapes: dict[str, tuple[int, ...]] = {}
-    for name, value in split_assignments(texts, "--shape").items():
-        try:
-            dims = tuple(int(d) for d in value.lower().split("x"))
-        except ValueError:
-            raise GradwrightError.usage(
-                f"--shape {name}: expected sizes like 4x6, got {value!r}"
-            ) from None
-        if not dims or any(d < 1 for d in dims):
-            raise GradwrightError.usage(f"--shape {name}: sizes must be positive")
-        shapes[name] = dims
+    for text in texts:
+        for item in re.split(r",(?=\s*[A-Za-z_]\w*\s*=)", text):
+            name, sep, value = item.partition("=")
+            name = name.strip()
+            if not sep or not name.isidentifier():
+                raise GradwrightError.usage(
+                    f"--shape: expected NAME=SIZES like W=4x6, got {item.strip()!r}"
+                )
+            if name in shapes:
+                raise GradwrightError.usage(f"--shape: '{name}' is given twice")
+            dims = parse_dims(value.strip().replace(" ", ""), f"--shape {name}")
+            if not all(isinstance(d, int) and d >= 1 for d in dims) or not dims:
+                raise GradwrightError.usage(
+                    f"--shape {name}: verify draws the array, so it needs positive"
+                    f" sizes as numbers like 4x6 or 4,6, got {value.strip()!r}"
+                )
+            shapes[name] = dims  # type: ignore[assignment]
     return shapes
 
 
@@ -199,7 +208,10 @@ def declared_sizes(module_text: str, names: set[str]) -> dict[str, tuple[int, ..
 def parse_dims(value: str, label: str) -> tuple[int | str, ...]:
     if value == "()":
         return ()
-    parts = value.split("x") if re.fullmatch(r"\d+(x\d+)+", value) else value.split(",")
+    if re.fullmatch(r"\d+([xX]\d+)+", value):
+        parts = re.split("[xX]", value)
+    else:
+        parts = value.split(",")
     dims: list[int | str] = []
     for part in parts:
         if part.isdigit():
