@@ -2,7 +2,7 @@
 # source: samples/tide_gauge.py
 # source sha256: 41f2e6ad8faaef888ec4fb61d9e9a8b106c978f34cbbdb886a71de8b9d6e2f7b
 # command: gradwright gen samples/tide_gauge.py tide_misfit -o samples/tide_gauge_grad.py
-# output sha256: 71483621d1798ed2c70465400369ab6cb485443542f86d8ebe3cacd07a2cc209
+# output sha256: 0a06ebe704056878912b435794f884dcd3d0b341ab4c169ffcb257d1c904c607
 
 import math
 from collections import namedtuple
@@ -52,9 +52,7 @@ def tide_misfit_grad(amp_m2, phase_m2, amp_s2, phase_s2):
     s2_1_saved = [0.0] * len(READINGS)
     total_1_saved = [0.0] * len(READINGS)
     for hour_index in range(len(READINGS)):
-        row_1 = READINGS[hour_index]
-        hour = row_1[0]
-        height = row_1[1]
+        hour, height = READINGS[hour_index]
         # weight = WEIGHTS["night"] if hour >= 18.0 else WEIGHTS["day"]
         if hour >= 18.0:
             weight = WEIGHTS["night"]

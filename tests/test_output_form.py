@@ -1070,3 +1070,31 @@ def test_an_elif_chain_prints_as_one_with_one_name_against_closed_form(x):
     else:
         want = (4.0 * x, 0.0)
     assert rel_err(x_bar, want[0]) < 1e-15 and rel_err(k_bar, want[1]) < 1e-15
+
+
+ROWS = """
+LOG = [(0.0, 1.2, 4.11), (10.0, 1.2, 4.05), (20.0, 2.5, 3.92)]
+
+
+def fit(r0, v0):
+    loss = 0.0
+    for t, amps, volts in LOG:
+        loss += (v0 - r0 * amps - volts - 0.001 * t) ** 2
+    return loss
+"""
+
+
+def test_a_table_row_unpacks_as_written_against_closed_form():
+    text = gradwright.generate(ROWS, ["fit"])
+    forward = text.split("def fit_grad")[1].split("# reverse sweep")[0]
+    assert "        t, amps, volts = LOG[t_index]\n" in forward
+    assert "row" not in forward
+    value, (r0_bar, v0_bar) = build(ROWS, "fit")["fit_grad"](0.3, 4.4)
+    # closed form: d/dv0 = 2 sum(e), d/dr0 = -2 sum(e * amps), e the residual
+    log = [(0.0, 1.2, 4.11), (10.0, 1.2, 4.05), (20.0, 2.5, 3.92)]
+    e = [4.4 - 0.3 * a - v - 0.001 * t for t, a, v in log]
+    assert rel_err(v0_bar, 2.0 * sum(e)) < 1e-14
+    assert (
+        rel_err(r0_bar, -2.0 * sum(x * a for x, (_, a, _) in zip(e, log, strict=True)))
+        < 1e-14
+    )

@@ -127,6 +127,11 @@ class ForwardLines(EmitterBase):
         call = statements[position]
         assert isinstance(call, Let)
         size = dict(layout.function.tuple_sizes).get(call.target)
+        op = "getitem"
+        if call.op == "dataitem" and call.target.kind == "temp":
+            # a table's row a loop target unpacks: its element reads follow it,
+            # all of them (`for t, amps, volts in LOG`), under the same origin
+            op, size = "dataitem", self._row_size(statements, position)
         if size is None or layout.uses.get(call.target, 0) != size:
             return []
         if call.target in layout.reverse_reads:
@@ -135,13 +140,29 @@ class ForwardLines(EmitterBase):
         for k, item in enumerate(items):
             if not (
                 isinstance(item, Let)
-                and item.op == "getitem"
+                and item.op == op
                 and item.args == (call.target, Const(str(k), k))
                 and item.origin == call.origin
                 and item.target in layout.stored
             ):
                 return []
         return items  # type: ignore[return-value]
+
+    @staticmethod
+    def _row_size(statements: tuple[Stmt, ...], position: int) -> int | None:
+        row = statements[position]
+        assert isinstance(row, Let)
+        size = 0
+        for item in statements[position + 1 :]:
+            if not (
+                isinstance(item, Let)
+                and item.op == "dataitem"
+                and item.args == (row.target, Const(str(size), size))
+                and item.origin == row.origin
+            ):
+                break
+            size += 1
+        return size or None
 
     def forward_unpack(
         self, call: Let, items: list[Let], depth: int, out: Lines, loop: Loop | None
