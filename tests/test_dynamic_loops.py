@@ -13,6 +13,7 @@ within the step). Values are bit-identical to the primal's.
 from __future__ import annotations
 
 import math
+import re
 from pathlib import Path
 
 import pytest
@@ -555,3 +556,34 @@ def f(x, y):
     with pytest.raises(gradwright.GradwrightError) as error:
         gradwright.generate(source, ["f"], wrt=["x"])
     assert "code after the continue statement is never run" in str(error.value)
+
+
+CUBIC_ROOT = """
+def root(a, b):
+    x = 1.0
+    it = 0
+    while True:
+        step = (x * x * x + a * x - b) / (3.0 * x * x + a)
+        x = x - step
+        it += 1
+        if abs(step) < 1e-15 * abs(x) or it > 60:
+            break
+    return x
+"""
+
+
+def test_a_closing_break_is_the_test_itself_against_implicit_derivative():
+    text = gradwright.generate(CUBIC_ROOT, ["root"])
+    forward = text.split("def root_grad")[1].split("# reverse sweep")[0]
+    # no flag set on both sides and tested after: the test breaks, after the count
+    assert "= True" not in forward and "= False" not in forward
+    assert re.search(
+        r"iterations \+= 1\n\s+# if .*\n\s+if abs\(step\) < .*:\n\s+break\n", forward
+    )
+    a, b = 2.0, 5.0
+    x, (a_bar, b_bar) = build(CUBIC_ROOT, "root")["root_grad"](a, b)
+    assert abs(x**3 + a * x - b) < 1e-14
+    # implicit function theorem on x**3 + a x - b = 0 (textbook): dx/da =
+    # -x / (3 x**2 + a), dx/db = 1 / (3 x**2 + a)
+    assert rel_err(a_bar, -x / (3.0 * x * x + a)) < 1e-12
+    assert rel_err(b_bar, 1.0 / (3.0 * x * x + a)) < 1e-12

@@ -420,7 +420,10 @@ class ForwardLines(EmitterBase):
                 self.reads(flag)
                 if isinstance(flag, Const) and flag.text == "True":
                     out.code("break", depth + 1)  # every iteration returns
-                else:
+                elif not (
+                    loop.exit_flag not in layout.reverse_reads
+                    and _break_at_test(out.lines, self.print(flag), trips, depth + 1)
+                ):
                     out.code(f"if {self.print(flag)}:", depth + 1)
                     out.code("break", depth + 2)
         exits = tuple(
@@ -447,6 +450,33 @@ class ForwardLines(EmitterBase):
 
     def range_text(self, loop: Loop) -> str:
         return self.layout.range_args(loop, self.folded)
+
+
+def _break_at_test(lines: list[str], flag: str, trips: str | None, depth: int) -> bool:
+    """``if c: stop = True / else: stop = False`` closing the body (then the
+    trip count's ``+= 1``) becomes ``if c: break`` after the count, the flag
+    read nowhere else. True when the lines were changed so."""
+    pad = "    " * depth
+    count = [f"{pad}{trips} += 1"] if trips is not None else []
+    end = len(lines) - len(count)
+    if end < 4 or lines[end:] != count:
+        return False
+    test, then, other, orelse = lines[end - 4 : end]
+    if not (
+        test.startswith(f"{pad}if ")
+        and test.endswith(":")
+        and then == f"{pad}    {flag} = True"
+        and other == f"{pad}else:"
+        and orelse == f"{pad}    {flag} = False"
+    ):
+        return False
+    start = end - 4
+    if start > 0 and lines[start - 1].startswith(f"{pad}# "):
+        start -= 1  # the comment quoting the test stays above it
+    if any(flag in line for line in lines[:start]):
+        return False
+    lines[start:] = [*count, *lines[start : end - 3], f"{pad}    break"]
+    return True
 
 
 def _loop_values(loop: Loop) -> Iterator[Var]:
