@@ -317,10 +317,17 @@ def _kept(key: Key) -> Key | None:
     return key[1] if key[0] == "kept" else None
 
 
-def _join_branch(branch: object, then: State, orelse: State) -> State:
-    """After a branch: a fact of one side only holds where that side was taken."""
-    out: State = {}
-    for name in then.keys() | orelse.keys():
+def _join_branch(
+    branch: object, then: State, orelse: State, names: frozenset[str] | None = None
+) -> State:
+    """After a branch: a fact of one side only holds where that side was taken.
+    ``names``: the only names either side can have changed (None: any)."""
+    if names is None:
+        out: State = {}
+        names = frozenset(then.keys() | orelse.keys())
+    else:
+        out = dict(then)  # every other name holds what it held before on both
+    for name in names:
         a, b = then.get(name, frozenset()), orelse.get(name, frozenset())
         if a is b:  # untouched by the branch: both sides hold the state's set
             out[name] = a
@@ -361,6 +368,26 @@ class _Checker:
         self.found: dict[tuple, Violation] = {}
         #: per loop: the facts its body establishes whatever it starts from
         self.summaries: dict[int, State] = {}
+        #: per branch: the names its sides write (None when a loop is inside)
+        self.writes: dict[int, frozenset[str] | None] = {}
+
+    def _written(self, event: _If) -> frozenset[str] | None:
+        """The names either side of a branch changes; None when a side holds a
+        loop (leaving a loop forgets facts of any name)."""
+        if id(event) not in self.writes:
+            names: set[str] = set()
+            pending = [*event.then, *event.orelse]
+            while pending:
+                inner = pending.pop()
+                if isinstance(inner, _Loop):
+                    self.writes[id(event)] = None
+                    return None
+                if isinstance(inner, _If):
+                    pending += [*inner.then, *inner.orelse]
+                elif inner[0] not in ("read", "grow"):
+                    names.add(inner[1])
+            self.writes[id(event)] = frozenset(names)
+        return self.writes[id(event)]
 
     def run(self, events: list, state: State, taken: frozenset, report: bool) -> State:
         """The state after ``events``; ``taken``: the branch sides this path took.
@@ -374,7 +401,7 @@ class _Checker:
                     self.run(block, dict(state), taken | {(event.branch, side)}, report)
                     for side, block in ((0, event.then), (1, event.orelse))
                 ]
-                state = _join_branch(event.branch, *sides)
+                state = _join_branch(event.branch, *sides, self._written(event))
             elif isinstance(event, _Loop):
                 if report:
                     state = self.loop(event, state, taken)

@@ -189,6 +189,12 @@ def _zero() -> Const:
     return Const("0.0", 0.0)
 
 
+#: statements a kink's region looks past without taking one before it ends: the
+#: statements reading its selected adjoints follow it closely, and a region that
+#: scanned the rest of the block for each kink made a long model quadratic
+_REACH = 64
+
+
 class _Brancher:
     def __init__(
         self, keep: set[Var], refs: Counter[Var], roots: dict[Var, Var]
@@ -255,20 +261,25 @@ class _Brancher:
         skipped = _Effects()
         zero: tuple[set[Var], set[Var]] = (set(), set())
         selects = 0
+        idle = 0
         for stmt in candidates:
             if not isinstance(stmt, (AdjointAssign, ElementAdjoint)) or (
                 isinstance(stmt, AdjointAssign) and stmt.var.shape != "scalar"
             ):
                 break  # a loop, branch, call or whole list: nothing moves past it
+            if idle == _REACH:
+                break  # a long run takes nothing: the region ends (linear time)
             effects, conditions = self._statement_facts(stmt)
             selecting = any(_side_of(c, test) is not None for c in conditions)
             reads_zero = bool(effects.reads & (zero[0] | zero[1]))
             if (selecting or reads_zero) and effects.commutes(skipped):
+                idle = 0
                 taken.append(stmt)
                 selects += selecting
                 for side in (0, 1):
                     self._track(stmt, test, bool(1 - side), zero[side])
             else:
+                idle += 1
                 skipped.reads |= effects.reads
                 skipped.adds |= effects.adds
                 skipped.sets |= effects.sets
