@@ -16,7 +16,7 @@ def model(a, b, xs):
     total = 0.0
     for x in xs:
         total += a * x
-        print(total)
+        math.sin(total)
     c = total @ b
     d = c + n(1.0)
     e = math.frexp(a)
@@ -31,7 +31,7 @@ def test_every_error_in_one_run():
     heads = [line for line in text.splitlines() if ": error: " in line]
     assert [h.split(": error: ")[0] for h in heads] == [
         "model.py:5:9",  # lambda
-        "model.py:9:9",  # print(...)
+        "model.py:9:9",  # math.sin(total): no effect
         "model.py:10:15",  # @
         "model.py:12:9",  # math.frexp
     ]

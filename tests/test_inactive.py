@@ -223,3 +223,29 @@ def test_two_copied_loops_from_equal_values_bind_values_of_their_own():
     ns = build(source, "f")
     _, (y_bar,) = ns["f_grad"](-0.5)
     assert y_bar == 1.0  # d(y * 8 / 8)/dy, a closed form
+
+
+REPORTING = """
+def spring(k, c):
+    e = 0.5 * k * c * c
+    print("energy", e)
+    for i in range(2):
+        if i == 1:
+            print(f"{i}: {e * k:.3f}")
+    return e * k
+"""
+
+
+def test_print_lines_are_copied_as_written_against_closed_form(capsys):
+    # a print reads active values but binds nothing: it is copied, not refused
+    text = gradwright.generate(REPORTING, ["spring"])
+    forward = text.split("def spring_grad")[1].split("# reverse sweep")[0]
+    assert '    print("energy", e)\n' in forward
+    assert 'print(f"{i}: {e * k:.3f}")' in forward
+    ns = build(REPORTING, "spring")
+    ns["spring"](2.0, 3.0)
+    primal_output = capsys.readouterr().out
+    value, (k_bar, c_bar) = ns["spring_grad"](2.0, 3.0)
+    assert capsys.readouterr().out == primal_output == "energy 9.0\n1: 18.000\n"
+    # closed form: f = 0.5 k**2 c**2, df/dk = k c**2, df/dc = k**2 c
+    assert (value, k_bar, c_bar) == (18.0, 18.0, 12.0)

@@ -297,8 +297,17 @@ def _size_reads(module: cst.Module) -> set[int]:
 
 
 def is_guard(stmt: cst.CSTNode) -> bool:
-    """``assert ...``, or an ``if`` without else whose body ends in a raise."""
+    """``assert ...``, an ``if`` without else whose body ends in a raise, or a
+    ``print(...)`` line: statements that bind nothing the result depends on,
+    copied as written even when they read active values."""
     if isinstance(stmt, cst.Assert):
+        return True
+    if (
+        isinstance(stmt, cst.Expr)
+        and isinstance(stmt.value, cst.Call)
+        and isinstance(stmt.value.func, cst.Name)
+        and stmt.value.func.value == "print"
+    ):
         return True
     if not isinstance(stmt, cst.If) or stmt.orelse is not None:
         return False
