@@ -1098,3 +1098,39 @@ def test_a_table_row_unpacks_as_written_against_closed_form():
         rel_err(r0_bar, -2.0 * sum(x * a for x, (_, a, _) in zip(e, log, strict=True)))
         < 1e-14
     )
+
+
+LEVEL = """
+def level(a, xs):
+    s = sum(xs)
+    return a * s * s
+"""
+
+LEVEL_LOOP = """
+def level(a, xs):
+    s = sum(xs)
+    t = 0.0
+    for k in range(2):
+        t += a * sum(xs)
+    return a * s * s + t
+"""
+
+
+@pytest.mark.parametrize("source", [LEVEL, LEVEL_LOOP])
+def test_a_sum_adjoint_makes_the_list_against_closed_form(source):
+    text = gradwright.generate(source, ["level"])
+    reverse = text.split("# reverse sweep")[1]
+    if source is LEVEL:
+        # the first thing added to xs's adjoint list: the list is made holding it
+        assert "xs_bar = [" in reverse and "[0.0] * len(xs)" not in reverse
+        assert "for xs_bar_index" not in reverse
+    else:  # added to in a loop first: made as zeros, added to in place
+        assert "xs_bar = [0.0] * len(xs)" in reverse
+    xs = [0.3, -1.2, 2.0]
+    value, (a_bar, xs_bar) = build(source, "level")["level_grad"](1.7, list(xs))
+    # closed forms by hand, S = sum(xs): a S**2 (+ 2 a S in the loop version)
+    s = sum(xs)
+    loop = source is LEVEL_LOOP
+    assert rel_err(a_bar, s * s + (2.0 * s if loop else 0.0)) < 1e-15
+    want = 2.0 * 1.7 * s + (2.0 * 1.7 if loop else 0.0)
+    assert all(rel_err(g, want) < 1e-15 for g in xs_bar)

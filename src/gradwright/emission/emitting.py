@@ -111,6 +111,8 @@ class EmitterBase:
         self.folded: dict[Var, Expr] = {}
         #: names the reverse sweep writes forward values back into
         self.restored: set[str] = set()
+        #: adjoint lists made as zeros: (their lines, line index, events, root)
+        self.zeroed: dict[str, tuple[Lines, int, list, Var]] = {}
         #: what each printed statement reads and writes, for the layout check
         self.trace = Trace()
         #: the saved lists a while loop's top-level saves append to

@@ -150,6 +150,25 @@ class Trace:
         for event in events:
             self._add(event)
 
+    @property
+    def block(self) -> list:
+        """The event list of the block being recorded now."""
+        return self._stack[-1] if self._stack else self.events
+
+
+def mentions(events: list, name: str) -> bool:
+    """Whether any event, nested blocks included, reads or writes ``name``."""
+    for event in events:
+        if isinstance(event, _If):
+            if mentions(event.then, name) or mentions(event.orelse, name):
+                return True
+        elif isinstance(event, _Loop):
+            if mentions(event.test, name) or mentions(event.body, name):
+                return True
+        elif event[1] == name or (event[0] == "restore" and event[3][0] == name):
+            return True
+    return False
+
 
 def _branches(events: list) -> Iterator[object]:
     for event in events:

@@ -6,6 +6,7 @@ from __future__ import annotations
 from gradwright.calculus.algebra import negated, simplify
 from gradwright.calculus.primitives import OPS
 from gradwright.emission.emitting import EmitterBase, Lines, negation
+from gradwright.emission.layout_check import mentions
 from gradwright.emission.layout_tapes import reverse_bounds
 from gradwright.emission.sinking import sunk_values
 from gradwright.ir import (
@@ -80,7 +81,36 @@ class ReverseLines(EmitterBase):
             else:
                 out.code(f"{bar} = [0.0] * len({name})", depth)
                 self.trace.read(name, self.key(root))
+                self.zeroed[bar] = (out, len(out.lines) - 1, self.trace.block, root)
             self.trace.write(bar, self.bar_key(root))
+
+    def spread_on_zeros(self, bar: str, value: str, depth: int, out: Lines) -> bool:
+        """The same number added to each element of a list of zeros no statement
+        has touched since (``xs_bar = [0.0] * len(xs)``, then ``sum(xs)``'s
+        adjoint): the list is made holding it. True when printed so."""
+        if bar not in self.zeroed:
+            return False
+        made_in, line, events, root = self.zeroed.pop(bar)
+        trace = self.trace
+        if made_in is not out or events is not trace.block:
+            return False  # another block: it may run any number of times
+        written = [
+            k
+            for k, event in enumerate(events)
+            if isinstance(event, tuple) and event[0] == "write" and event[1] == bar
+        ]
+        if len(written) != 1 or mentions(events[written[0] + 1 :], bar):
+            return False
+        del events[written[0]]  # the zeros are never made
+        del out.lines[line]
+        for other, (lines, at, block, var) in self.zeroed.items():
+            if lines is out and at > line:
+                self.zeroed[other] = (lines, at - 1, block, var)
+        name = self.namer.name(root)
+        trace.read(name, self.key(root))
+        trace.write(bar, self.bar_key(root))
+        out.code(f"{bar} = [{value}] * len({name})", depth)
+        return True
 
     def subtracted(self, expr: Expr, text: str) -> tuple[str, str]:
         """``-= m`` for an accumulation of ``-m`` (no ``+= -m``), else ``+= text``."""
@@ -170,8 +200,12 @@ class ReverseLines(EmitterBase):
                 bar = self.namer.bar_name(stmt.root)
                 value_expr = self.layout.cheap(stmt.expr)
                 self.reads(value_expr)
-                trace.read(bar, self.bar_key(stmt.root))
                 value = self.rprint(value_expr)
+                if not stmt.each:
+                    out.comment(stmt.origin, depth)
+                    if self.spread_on_zeros(bar, value, depth, out):
+                        continue
+                trace.read(bar, self.bar_key(stmt.root))
                 if not stmt.each and isinstance(value_expr, Apply):
                     # the same number for every element: computed once
                     each = self.namer.claim(f"{bar}_each")
