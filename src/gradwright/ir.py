@@ -135,6 +135,11 @@ class Branch:
     merges: tuple[Phi, ...]
     origin: Origin
 
+    def __hash__(self) -> int:
+        # not the whole body: branches and loops key the layout's dicts, and a
+        # structural hash walked every statement inside at each lookup
+        return hash((self.condition, self.origin))
+
 
 @dataclass(frozen=True)
 class Loop:
@@ -161,6 +166,10 @@ class Loop:
     test_size: int = 0
     exit_flag: Atom | None = None
     trips: Var | None = None
+
+    def __hash__(self) -> int:
+        # the index alone (a loop's own value): see Branch.__hash__
+        return hash(("loop", self.index.uid))
 
     @property
     def bounds(self) -> tuple[Atom, ...]:
