@@ -15,8 +15,11 @@ environment sets them.
 Every model is generated with its parameters' shapes declared (SHAPES, as gen
 --shape X=m,10 would); --generic generates without them, for comparison.
 
-Run: python tests/benchmarks/bench_numpy.py [--rows] [--generic]
-(--rows: the row models only)
+Run: python tests/benchmarks/bench_numpy.py [--rows] [--generic] [--held-heap]
+(--rows: the row models only; --held-heap: glibc keeps freed memory instead of
+unmapping it, so a gradient that returns a fresh full-size array, such as an
+adjoint of the data, is timed without a page fault per page on every call; both
+figures are real, the default one is what an untuned process sees)
 """
 
 from __future__ import annotations
@@ -219,7 +222,20 @@ def _load(source: str, wrt: list[str]) -> dict:
     return namespace
 
 
+#: glibc settings that keep freed memory mapped (read at process start)
+HELD_HEAP = {
+    "MALLOC_MMAP_THRESHOLD_": "268435456",
+    "MALLOC_TRIM_THRESHOLD_": "268435456",
+}
+
+
 def main() -> None:
+    if "--held-heap" in sys.argv and any(k not in os.environ for k in HELD_HEAP):
+        os.execve(
+            sys.executable, [sys.executable, *sys.argv], {**os.environ, **HELD_HEAP}
+        )
+    held = all(os.environ.get(k) == v for k, v in HELD_HEAP.items())
+    print(f"allocator: {'freed memory kept (--held-heap)' if held else 'default'}")
     print(
         f"numpy {np.__version__}; OPENBLAS_CORETYPE="
         f"{os.environ.get('OPENBLAS_CORETYPE', '(unset)')}; best of {REPEAT};"
