@@ -3,6 +3,7 @@ sweep needs stored, saved per loop iteration (``x_saved[i] = x``) or counted."""
 
 from __future__ import annotations
 
+import itertools
 from collections.abc import Iterator
 
 from gradwright.emission.copied import copied_lines
@@ -122,47 +123,37 @@ class ForwardLines(EmitterBase):
     def unpacked(self, statements: tuple[Stmt, ...], position: int) -> list[Let]:
         """``x, y = h(...)``: the element reads right after a helper call that
         returns a tuple, when they are its only use and each is stored (the
-        tuple then needs no name of its own)."""
+        tuple then needs no name of its own); likewise a table's row a loop
+        target unpacks (``for t, amps, volts in LOG``), all its reads following it."""
         layout = self.layout
-        call = statements[position]
-        assert isinstance(call, Let)
-        size = dict(layout.function.tuple_sizes).get(call.target)
-        op = "getitem"
-        if call.op == "dataitem" and call.target.kind == "temp":
-            # a table's row a loop target unpacks: its element reads follow it,
-            # all of them (`for t, amps, volts in LOG`), under the same origin
-            op, size = "dataitem", self._row_size(statements, position)
-        if size is None or layout.uses.get(call.target, 0) != size:
+        whole = statements[position]
+        assert isinstance(whole, Let)
+        size = dict(layout.function.tuple_sizes).get(whole.target)
+        row = whole.op == "dataitem" and whole.target.kind == "temp"
+        if size is None and not row:
             return []
-        if call.target in layout.reverse_reads:
-            return []
-        items = list(statements[position + 1 : position + 1 + size])
-        for k, item in enumerate(items):
+        op = "dataitem" if row else "getitem"
+        items: list[Let] = []
+        for item in itertools.islice(statements, position + 1, None):
+            k = len(items)
             if not (
                 isinstance(item, Let)
                 and item.op == op
-                and item.args == (call.target, Const(str(k), k))
-                and item.origin == call.origin
-                and item.target in layout.stored
-            ):
-                return []
-        return items  # type: ignore[return-value]
-
-    @staticmethod
-    def _row_size(statements: tuple[Stmt, ...], position: int) -> int | None:
-        row = statements[position]
-        assert isinstance(row, Let)
-        size = 0
-        for item in statements[position + 1 :]:
-            if not (
-                isinstance(item, Let)
-                and item.op == "dataitem"
-                and item.args == (row.target, Const(str(size), size))
-                and item.origin == row.origin
+                and item.args == (whole.target, Const(str(k), k))
+                and item.origin == whole.origin
             ):
                 break
-            size += 1
-        return size or None
+            items.append(item)
+        if row:
+            size = len(items) or None  # the row's reads are all there is of it
+        if size is None or len(items) < size or layout.uses.get(whole.target) != size:
+            return []
+        if whole.target in layout.reverse_reads:
+            return []
+        items = items[:size]
+        if not all(item.target in layout.stored for item in items):
+            return []
+        return items
 
     def forward_unpack(
         self, call: Let, items: list[Let], depth: int, out: Lines, loop: Loop | None

@@ -22,7 +22,6 @@ from gradwright.ir import (
     AdjointAssign,
     Apply,
     Bar,
-    Const,
     ElementAdjoint,
     ReverseBranch,
     ReverseLoop,
@@ -30,6 +29,7 @@ from gradwright.ir import (
     ReverseSweep,
     SpreadAdjoint,
     Var,
+    const,
     walk,
 )
 from gradwright.sweeps.optimize import (
@@ -53,7 +53,7 @@ def settle_zeros(sweep: ReverseSweep) -> ReverseSweep:
 
 
 def _read_as_zero(sweep: ReverseSweep, zero: set[Var]) -> ReverseSweep:
-    zeros = {v: Const("0.0", 0.0) for v in zero}
+    zeros = {v: const(0.0) for v in zero}
     sweep = map_sweep(sweep, lambda e: simplify(substitute(e, zeros)))
     return replace(
         sweep, statements=map_statements(sweep.statements, lambda s: _kept(s, zero))
@@ -96,7 +96,9 @@ def _only_zero(sweep: ReverseSweep, keep: set[Var]) -> set[Var]:
         var, stmt = writes[k]
         if var not in candidates or var in nonzero:
             continue
-        zeros = {b: _ZERO for b in reads[k] if b in candidates and b not in nonzero}
+        zeros = {
+            b: const(0.0) for b in reads[k] if b in candidates and b not in nonzero
+        }
         if (
             not isinstance(stmt, AdjointAssign)
             or (reads[k] and not zeros)  # reads only adjoints that may be nonzero
@@ -105,9 +107,6 @@ def _only_zero(sweep: ReverseSweep, keep: set[Var]) -> set[Var]:
             nonzero.add(var)
             pending.extend(readers[var])
     return candidates - nonzero
-
-
-_ZERO = Const("0.0", 0.0)
 
 
 def merge_zero_starts(sweep: ReverseSweep) -> ReverseSweep:
