@@ -345,6 +345,25 @@ def test_elementwise_function(name):
     check_against_differences(source, (x, w), ["x"])
 
 
+def test_abs_slope_keeps_every_bit_at_zeros_and_non_finite_values():
+    # |x|'s slope is +1 where x >= 0 (so at -0.0 too) and -1 elsewhere, NaN
+    # included; the module multiplies by 2.0 * (x >= 0.0) - 1.0 instead of calling
+    # np.where. Reference: NumPy's own np.where(x >= 0.0, w, -w) on the same
+    # arrays, compared value by value and sign bit by sign bit (zeros' signs too)
+    source = numpy_model("x, w", "return np.sum(w * np.abs(x))\n")
+    assert "np.where" not in gradwright.generate(source, ["f"], wrt=["x"])
+    ns = build(source, "f", ["x"])
+    special = [0.0, -0.0, np.nan, np.inf, -np.inf, 1.5, -2.5]
+    x = np.array([v for v in special for _ in special])
+    w = np.array(special * len(special))
+    with np.errstate(all="ignore"):
+        _, (x_bar,) = ns["f_grad"](x, w)
+    reference = np.where(x >= 0.0, w, -w)
+    np.testing.assert_array_equal(x_bar, reference)
+    numbers = ~np.isnan(reference)  # a NaN's sign bit carries no value (IEEE 754)
+    assert np.array_equal(np.signbit(x_bar)[numbers], np.signbit(reference)[numbers])
+
+
 def test_tanh_far_in_the_tail():
     # the array rule is 1 - tanh(x)**2 (rules.py; not the scalar rule's 1/cosh**2,
     # which needs a guard against cosh overflowing): far out tanh rounds to +-1 and
