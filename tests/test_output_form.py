@@ -12,6 +12,7 @@ import sys
 from pathlib import Path
 
 import pytest
+import sympy
 from support import build, mp_function, mp_gradient, rel_err, run_source
 
 import gradwright
@@ -1098,6 +1099,56 @@ def test_a_table_row_unpacks_as_written_against_closed_form():
         rel_err(r0_bar, -2.0 * sum(x * a for x, (_, a, _) in zip(e, log, strict=True)))
         < 1e-14
     )
+
+
+UNREAD = """
+import math
+
+LOG = [(0.0, 1.2, 4.11), (10.0, 1.2, 4.05), (20.0, 2.5, 3.92)]
+
+
+def settle(v, amps, r):
+    decay = math.exp(-1.0 / r)
+    return v * decay + amps * (1.0 - decay), decay
+
+
+def fit(r, v0):
+    v = v0
+    loss = 0.0
+    for t, _, volts in LOG:
+        v, _ = settle(v, t, r)
+        loss += (v - volts) ** 2
+    return loss
+
+
+def named(r, v0):
+    v, decay = settle(v0, 1.0, r)
+    return v * v
+"""
+
+
+def test_an_unread_element_unpacks_as_written_against_sympy():
+    text = gradwright.generate(UNREAD, ["fit", "named"])
+    forward = text.split("def fit_grad")[1].split("# reverse sweep")[0]
+    assert "        t, _, volts = LOG[t_index]\n" in forward
+    assert "        v, _ = settle(v, t, r)\n" in forward
+    assert "row" not in forward and "settle_1" not in forward
+    named = text.split("def named_grad")[1].split("# reverse sweep")[0]
+    assert "    v, decay = settle(v0, 1.0, r)\n" in named
+    # reference: SymPy differentiates the loop unrolled over the three rows
+    r, v0 = sympy.symbols("r v0")
+    v, loss, decay = v0, 0, sympy.exp(-1 / r)
+    for t, _, volts in [(0.0, 1.2, 4.11), (10.0, 1.2, 4.05), (20.0, 2.5, 3.92)]:
+        v = v * decay + sympy.Float(t) * (1 - decay)
+        loss += (v - sympy.Float(volts)) ** 2
+    point = {r: 2.5, v0: 3.9}
+    _, grads = build(UNREAD, "fit")["fit_grad"](2.5, 3.9)
+    _, named_grads = build(UNREAD, "named")["named_grad"](2.5, 3.9)
+    settled = (v0 * decay + 1 - decay) ** 2
+    for got, symbol in zip(grads, (r, v0), strict=True):
+        assert rel_err(got, float(sympy.diff(loss, symbol).subs(point))) < 1e-13
+    for got, symbol in zip(named_grads, (r, v0), strict=True):
+        assert rel_err(got, float(sympy.diff(settled, symbol).subs(point))) < 1e-13
 
 
 LEVEL = """

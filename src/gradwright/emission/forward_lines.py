@@ -5,6 +5,7 @@ from __future__ import annotations
 
 import itertools
 from collections.abc import Iterator
+from functools import cached_property
 
 from gradwright.emission.copied import copied_lines
 from gradwright.emission.emitting import EmitterBase, Lines, negation
@@ -151,9 +152,27 @@ class ForwardLines(EmitterBase):
         if whole.target in layout.reverse_reads:
             return []
         items = items[:size]
-        if not all(item.target in layout.stored for item in items):
+        read = [item for item in items if item.target in layout.live]
+        if not read or not all(item.target in layout.stored for item in read):
+            return []
+        unread = [item for item in items if item.target not in layout.live]
+        if any(item.target.base == "_" for item in unread) and not self.discard_free:
             return []
         return items
+
+    @cached_property
+    def discard_free(self) -> bool:
+        """Whether ``_`` may take an element nothing reads (``v, _ = h(...)``):
+        no value of the function that the output prints is the user's ``_``."""
+        layout = self.layout
+        # a loop's `_` that indexes saved lists was given a real name already
+        names = layout.namer.names
+        if any(names.get(loop.index, loop.index.base) == "_" for loop in layout.parent):
+            return False
+        return not any(
+            value.base == "_" and value in layout.live
+            for value in _block_values(layout.function.body)
+        )
 
     def forward_unpack(
         self, call: Let, items: list[Let], depth: int, out: Lines, loop: Loop | None
@@ -163,9 +182,18 @@ class ForwardLines(EmitterBase):
         args = tuple(self.value(a) for a in call.args)
         for arg in args:
             self.reads(arg)
-        names = [self.namer.name(item.target) for item in items]
+        # an element nothing reads takes `_` as the user wrote it, or its own name
+        names = [
+            (
+                "_"
+                if item.target.base == "_" and item.target not in self.layout.live
+                else self.namer.name(item.target)
+            )
+            for item in items
+        ]
         for name, item in zip(names, items, strict=True):
-            trace.write(name, self.key(item.target))
+            if item.target in self.layout.live:
+                trace.write(name, self.key(item.target))
         text = f"{', '.join(names)} = {self.print(Apply(call.op, args))}"
         out.statement(call.origin, text, depth)
         for item in items:
