@@ -2,7 +2,7 @@
 # source: samples/cable_sag.py
 # source sha256: 60a95002dd1d21d9e5e7f63265caaee126765d6ffe25172b57604f5de1edd964
 # command: gradwright gen samples/cable_sag.py rig_loss -o samples/cable_sag_grad.py
-# output sha256: 137268ab2305a69f6fbdbd12ea2ded71d56a19839c7aea00f06ef4904e171256
+# output sha256: 5213405510c874c5dbf3905525cc15d924726c16f240442814acb710a5caf139
 
 import math
 
@@ -43,7 +43,7 @@ def rig_loss_grad(a, span):
     # loss = sag_err**2
     loss = sag_err**2
     # loss += LENGTH_WEIGHT * length_err**2
-    loss = loss + LENGTH_WEIGHT * length_err**2
+    loss += LENGTH_WEIGHT * length_err**2
 
     # reverse sweep
     # loss += LENGTH_WEIGHT * length_err**2

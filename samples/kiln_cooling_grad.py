@@ -2,7 +2,7 @@
 # source: samples/kiln_cooling.py
 # source sha256: a06d7e41ceb820bdb9f7afefdfd582c36125c98be226eb56a6a555feac5b0ed6
 # command: gradwright gen samples/kiln_cooling.py kiln_loss --wrt k_conv,k_rad,start_temp -o samples/kiln_cooling_grad.py
-# output sha256: 8e897298d6de2a539c01b621d458cdc2e6d8ed3c7c6fca16bac2ed70d84dd46d
+# output sha256: 226f8b5a5bb1cc9573c02785bfe7858a4f9d12de59cda02a57fc2b009169fb8a
 
 AMBIENT = 293.15  # kelvin
 SAFE_POINT = 700.0  # kelvin: below this the heater comes on
@@ -78,7 +78,7 @@ def kiln_loss_grad(k_conv, k_rad, start_temp, readings, dt, steps_per_reading):
         err = temp - reading
         err_saved[reading_index] = err
         # loss += err * err
-        loss = loss + err * err
+        loss += err * err
     # return loss / len(readings)
     value_1 = len(readings)
     value = loss / value_1

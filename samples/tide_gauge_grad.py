@@ -2,7 +2,7 @@
 # source: samples/tide_gauge.py
 # source sha256: 41f2e6ad8faaef888ec4fb61d9e9a8b106c978f34cbbdb886a71de8b9d6e2f7b
 # command: gradwright gen samples/tide_gauge.py tide_misfit -o samples/tide_gauge_grad.py
-# output sha256: 0a06ebe704056878912b435794f884dcd3d0b341ab4c169ffcb257d1c904c607
+# output sha256: 5421b683aa40422f77cbc1d4cf901c16e1eeb99c89c8d9465296cc6f58528c26
 
 import math
 from collections import namedtuple
@@ -71,7 +71,7 @@ def tide_misfit_grad(amp_m2, phase_m2, amp_s2, phase_s2):
         # total += weight * miss * miss
         total_1 = weight * miss
         total_1_saved[hour_index] = total_1
-        total = total + total_1 * miss
+        total += total_1 * miss
     # return total / len(READINGS)
     value_1 = len(READINGS)
     value = total / value_1

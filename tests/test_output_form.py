@@ -1151,6 +1151,41 @@ def test_an_unread_element_unpacks_as_written_against_sympy():
         assert rel_err(got, float(sympy.diff(settled, symbol).subs(point))) < 1e-13
 
 
+AUGMENTED = """
+def drag(c, v0, dt):
+    v = v0
+    dist = 0.0
+    for _ in range(4):
+        v -= c * v * v * dt
+        dist += v * dt
+        v *= 0.99
+    spread = dist
+    spread = spread + 1.0
+    return dist + spread
+"""
+
+
+def test_augmented_assignments_print_as_written_against_sympy():
+    text = gradwright.generate(AUGMENTED, ["drag"])
+    forward = text.split("def drag_grad")[1].split("# reverse sweep")[0]
+    assert "dist += v * dt\n" in forward and "*= 0.99\n" in forward
+    assert "-= c * v" in forward
+    # the model's own `x = x + e` keeps its spelling
+    assert "spread = spread + 1.0\n" in forward
+    # reference: SymPy on the loop unrolled
+    c, v0, dt = sympy.symbols("c v0 dt")
+    v, dist = v0, 0
+    for _ in range(4):
+        v = v - c * v * v * dt
+        dist = dist + v * dt
+        v = v * sympy.Float(0.99)
+    model = 2 * dist + 1
+    point = {c: 0.3, v0: 2.0, dt: 0.1}
+    _, grads = build(AUGMENTED, "drag")["drag_grad"](0.3, 2.0, 0.1)
+    for got, symbol in zip(grads, (c, v0, dt), strict=True):
+        assert rel_err(got, float(sympy.diff(model, symbol).subs(point))) < 1e-13
+
+
 LEVEL = """
 def level(a, xs):
     s = sum(xs)

@@ -4,9 +4,11 @@ sweep needs stored, saved per loop iteration (``x_saved[i] = x``) or counted."""
 from __future__ import annotations
 
 import itertools
+import re
 from collections.abc import Iterator
 from functools import cached_property
 
+from gradwright.calculus.primitives import OPS
 from gradwright.emission.copied import copied_lines
 from gradwright.emission.emitting import EmitterBase, Lines, negation
 from gradwright.emission.layout_tapes import iteration_values
@@ -21,6 +23,9 @@ from gradwright.ir import (
     Stmt,
     Var,
 )
+
+#: operators a model may write as augmented assignments that print back so
+_AUGMENT = frozenset({"add", "sub", "mul", "div"})
 
 
 class ForwardLines(EmitterBase):
@@ -107,7 +112,8 @@ class ForwardLines(EmitterBase):
             trace.write(name, self.key(target))
             trace.write(partials_name, ("partials", target))
         else:
-            text = f"{name} = {self.print(Apply(let.op, args))}"
+            augmented = self.augmented(let, name, args)
+            text = augmented or f"{name} = {self.print(Apply(let.op, args))}"
             trace.write(name, self.key(target))
         out.statement(let.origin, text, depth)
         if loop is not None and target in layout.tapes.get(loop, []):
@@ -120,6 +126,21 @@ class ForwardLines(EmitterBase):
                 trace.read(partials_name, ("partials", target))
                 self.fill(loop, saved, partials_name, depth, out)
                 trace.fill(saved, partials)
+
+    def augmented(self, let: Let, name: str, args: tuple[Expr, ...]) -> str | None:
+        """``cost += e`` where the model wrote it so and the value keeps its name;
+        numbers only (an array's ``+=`` would change the array wherever it is
+        held)."""
+        if self.layout.numpy or let.target.shape != "scalar" or let.op not in _AUGMENT:
+            return None
+        first, rest = args
+        symbol = OPS[let.op].symbol
+        written = re.match(
+            rf"{re.escape(let.target.base)} *{re.escape(symbol)}= ", let.origin.text
+        )
+        if not (written and isinstance(first, Var) and self.namer.name(first) == name):
+            return None
+        return f"{name} {symbol}= {self.print(rest)}"
 
     def unpacked(self, statements: tuple[Stmt, ...], position: int) -> list[Let]:
         """``x, y = h(...)``: the element reads right after a helper call that
