@@ -2,7 +2,7 @@
 # source: samples/tide_gauge.py
 # source sha256: 41f2e6ad8faaef888ec4fb61d9e9a8b106c978f34cbbdb886a71de8b9d6e2f7b
 # command: gradwright gen samples/tide_gauge.py tide_misfit -o samples/tide_gauge_grad.py
-# output sha256: 5421b683aa40422f77cbc1d4cf901c16e1eeb99c89c8d9465296cc6f58528c26
+# output sha256: af07c003db859be804023830bdbd1fdcb76eed39b5f247c4deb8c488de06229c
 
 import math
 from collections import namedtuple
@@ -88,8 +88,7 @@ def tide_misfit_grad(amp_m2, phase_m2, amp_s2, phase_s2):
         m2_1 = m2_1_saved[hour_index]
         s2_1 = s2_1_saved[hour_index]
         total_1 = total_1_saved[hour_index]
-        row_1 = READINGS[hour_index]
-        hour = row_1[0]
+        hour = READINGS[hour_index][0]
         m2_2 = 2.0 * math.pi * hour / HARBOUR.period_m2 - phase_m2
         s2_2 = 2.0 * math.pi * hour / HARBOUR.period_s2 - phase_s2
         # total += weight * miss * miss

@@ -906,7 +906,7 @@ def test_a_value_rebuilt_through_a_chain_is_saved_instead():
     # the saved weight * miss
     assert "miss_1" not in reverse and "miss =" not in reverse
     # the table row is module data: read again, as cheap as a save
-    assert "_saved" not in reverse.split("row_1 = READINGS[hour_index]")[1]
+    assert "_saved" not in reverse.split("hour = READINGS[hour_index][0]")[1]
     assert "miss_bar = 2.0 * total_bar * total_1" in reverse
 
 
@@ -1133,6 +1133,9 @@ def test_an_unread_element_unpacks_as_written_against_sympy():
     assert "        t, _, volts = LOG[t_index]\n" in forward
     assert "        v, _ = settle(v, t, r)\n" in forward
     assert "row" not in forward and "settle_1" not in forward
+    # the reverse recomputes the one element it reads, straight from the table
+    reverse = text.split("def fit_grad")[1].split("# reverse sweep")[1]
+    assert "        t = LOG[t_index][0]\n" in reverse and "row" not in reverse
     named = text.split("def named_grad")[1].split("# reverse sweep")[0]
     assert "    v, decay = settle(v0, 1.0, r)\n" in named
     # reference: SymPy differentiates the loop unrolled over the three rows

@@ -3,6 +3,9 @@ restores from its saved lists or recomputes, in the forward's structure reversed
 
 from __future__ import annotations
 
+from collections import Counter
+from functools import cached_property
+
 from gradwright.calculus.algebra import negated, simplify
 from gradwright.calculus.primitives import OPS
 from gradwright.emission.emitting import EmitterBase, Lines, negation
@@ -14,6 +17,7 @@ from gradwright.ir import (
     Apply,
     Bar,
     CallAdjoint,
+    Const,
     ElementAdjoint,
     Expr,
     Let,
@@ -302,12 +306,51 @@ class ReverseLines(EmitterBase):
             text = f"{', '.join(names)} = {call}"
         out.statement(stmt.origin, text, depth)
 
+    @cached_property
+    def element_rows(self) -> set[Var]:
+        """Table rows the forward reads only element by element (a loop target's
+        row): nothing but a recomputed element can read one in the reverse."""
+        rows = {
+            var
+            for var, let in self.layout.defs.items()
+            if let.op == "dataitem" and var.kind == "temp"
+        }
+        for let in self.layout.defs.values():
+            if let.op == "dataitem" and isinstance(let.args[-1], Const):
+                continue
+            rows.difference_update(a for a in let.args if isinstance(a, Var))
+        return rows
+
+    @cached_property
+    def recompute_readers(self) -> Counter[Var]:
+        """How many of the lets any reverse loop recomputes read each value."""
+        layout = self.layout
+        lets = [
+            let
+            for table in (layout.recompute, layout.hoisted)
+            for bucket in table.values()
+            for let in bucket
+        ]
+        return Counter(a for let in lets for a in let.args if isinstance(a, Var))
+
     def recomputed(self, lets: list[Let], depth: int, out: Lines) -> None:
         """The forward values a reverse loop recomputes instead of restoring."""
+        # a table row only one recomputed element reads is read in place:
+        # `t = LOG[t_index][0]`, not a row name and an element of it
+        here = Counter(a for let in lets for a in let.args if isinstance(a, Var))
+        rows = {
+            let.target: Apply(let.op, let.args)
+            for let in lets
+            if let.target in self.element_rows
+            and here[let.target] == 1
+            and self.recompute_readers[let.target] == 1
+        }
         for let in lets:
+            if let.target in rows:
+                continue
             name = self.namer.name(let.target)
             self.restored.add(name)
-            args = tuple(self.layout.cheap(a) for a in let.args)
+            args = tuple(self.layout.cheap(rows.get(a, a)) for a in let.args)
             for arg in args:
                 self.reads(arg)
             self.trace.write(name, self.key(let.target))
