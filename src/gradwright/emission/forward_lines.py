@@ -4,7 +4,6 @@ sweep needs stored, saved per loop iteration (``x_saved[i] = x``) or counted."""
 from __future__ import annotations
 
 import itertools
-import re
 from collections.abc import Iterator
 from functools import cached_property
 
@@ -135,8 +134,9 @@ class ForwardLines(EmitterBase):
             return None
         first, rest = args
         symbol = OPS[let.op].symbol
-        written = re.match(
-            rf"{re.escape(let.target.base)} *{re.escape(symbol)}= ", let.origin.text
+        text, base = let.origin.text, let.target.base
+        written = text.startswith(base) and text[len(base) :].lstrip().startswith(
+            f"{symbol}= "
         )
         if not (written and isinstance(first, Var) and self.namer.name(first) == name):
             return None

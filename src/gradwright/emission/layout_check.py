@@ -19,7 +19,8 @@ violation, and no module is written.
 
 from __future__ import annotations
 
-from collections.abc import Iterable, Iterator
+from collections import ChainMap
+from collections.abc import Iterable, Iterator, MutableMapping
 from contextlib import contextmanager
 from dataclasses import dataclass, field
 from functools import lru_cache
@@ -182,7 +183,7 @@ def _branches(events: list) -> Iterator[object]:
 
 #: name -> facts (key, guard): the name holds key on paths where every
 #: (branch, side) of the guard was taken
-State = dict[str, frozenset]
+State = MutableMapping[str, frozenset]
 
 
 #: "whatever the name held when the loop iteration began" (summaries only)
@@ -337,15 +338,21 @@ def _kept(key: Key) -> Key | None:
 
 
 def _join_branch(
-    branch: object, then: State, orelse: State, names: frozenset[str] | None = None
+    branch: object,
+    then: State,
+    orelse: State,
+    names: frozenset[str] | None = None,
+    into: State | None = None,
 ) -> State:
     """After a branch: a fact of one side only holds where that side was taken.
-    ``names``: the only names either side can have changed (None: any)."""
+    ``names``: the only names either side can have changed (None: any); ``into``:
+    where the joined names go (by default a copy of ``then``, whose other names
+    hold what they held before on both sides)."""
     if names is None:
         out: State = {}
         names = frozenset(then.keys() | orelse.keys())
     else:
-        out = dict(then)  # every other name holds what it held before on both
+        out = dict(then) if into is None else into
     for name in names:
         a, b = then.get(name, frozenset()), orelse.get(name, frozenset())
         if a is b:  # untouched by the branch: both sides hold the state's set
@@ -358,6 +365,23 @@ def _join_branch(
         # fact again, before the next branch doubles them (2^n paths otherwise)
         out[name] = _resolve(frozenset(facts))
     return out
+
+
+def _layer_on(side: State, state: State) -> bool:
+    """Whether ``side`` is still the layer its branch side started on ``state``
+    (every name it changed is in its own first map)."""
+    return isinstance(side, ChainMap) and len(side.maps) == 2 and side.maps[1] is state
+
+
+def _join_layers(
+    branch: object, state: State, then: ChainMap, orelse: ChainMap
+) -> State:
+    """``_join_branch`` of two layers on ``state``, written into it: only the names
+    either side changed are looked at."""
+    changed = then.maps[0].keys() | orelse.maps[0].keys()
+    joined = _join_branch(branch, then, orelse, frozenset(changed), into={})
+    state.update(joined)
+    return state
 
 
 def _forget(state: State, local: frozenset[Var], branches: frozenset) -> State:
@@ -416,11 +440,21 @@ class _Checker:
         """
         for event in events:
             if isinstance(event, _If):
+                # each side over a layer of its own on the state, not a copy of
+                # it: copying every name at each branch made the check quadratic
                 sides = [
-                    self.run(block, dict(state), taken | {(event.branch, side)}, report)
+                    self.run(
+                        block,
+                        ChainMap({}, state),
+                        taken | {(event.branch, side)},
+                        report,
+                    )
                     for side, block in ((0, event.then), (1, event.orelse))
                 ]
-                state = _join_branch(event.branch, *sides, self._written(event))
+                if all(_layer_on(side, state) for side in sides):
+                    state = _join_layers(event.branch, state, *sides)
+                else:  # a loop inside made a state of its own
+                    state = _join_branch(event.branch, *sides, self._written(event))
             elif isinstance(event, _Loop):
                 if report:
                     state = self.loop(event, state, taken)

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
-from gradwright.ir import Const
+from gradwright.ir import Const, Stmt
 
 #: env key under which the function's result values are kept (not an identifier)
 _RESULT = "\0result"
@@ -16,6 +16,10 @@ _STOP = "\0stop"
 
 #: primitives whose result may share memory with an operand (NumPy views)
 _VIEWS = frozenset({"copy", "npindex", "T", "reshape", "np.transpose"})
+
+#: where the open blocks ended (each with its length) and how many statements had
+#: been put in the middle of one: what a rejected statement's lowering rewinds to
+BlockMark = tuple[list[tuple[list[Stmt], int]], int]
 
 #: primitives whose value is True or False
 _TRUTH_OPS = frozenset({"lt", "le", "gt", "ge", "eq", "ne", "and", "or", "not"})

@@ -200,6 +200,7 @@ class DictLowering:
             )
         finally:
             if opened:
+                self.inserted.extend((block, stmt) for stmt in block[at:])
                 block.extend(tail)
                 self.blocks[-1] = here
         self.positions[root] = table

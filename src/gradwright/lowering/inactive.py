@@ -326,7 +326,7 @@ class InactiveLowering:
     ) -> object:
         """``lower(stmt, *args)``; if the lowering rejects a statement that reads
         no active value, the statement is copied as written instead."""
-        env, blocks = dict(self.env), [list(b) for b in self.blocks]
+        env, blocks = dict(self.env), self.mark_blocks()
         depth, origin, errors = self.loop_depth, self.origin, len(self.errors)
         if isinstance(stmt, cst.While):
             # a while loop reading no active value is copied, not lowered: its
@@ -336,15 +336,15 @@ class InactiveLowering:
                     return False
             except GradwrightError:
                 pass
-            self.env, self.blocks[:], self.origin = env, blocks, origin
-            blocks = [list(b) for b in self.blocks]
+            self.env, self.origin = dict(env), origin
+            self.rewind_blocks(blocks)
         try:
             return lower(stmt, *args)
         except GradwrightError as error:
             if not isinstance(stmt, _COPYABLE):
                 raise
             self.env = env
-            self.blocks[:] = blocks
+            self.rewind_blocks(blocks)
             self.loop_depth, self.origin = depth, origin
             del self.errors[errors:]
             try:
@@ -511,12 +511,13 @@ class InactiveLowering:
         """A condition as the lowering makes it; if it rejects one that reads no
         active value (``name == "b"`` on strings), ``cond = <test>`` is copied
         as written and the branch tests ``cond``."""
-        env, blocks = dict(self.env), [list(b) for b in self.blocks]
+        env, blocks = dict(self.env), self.mark_blocks()
         origin, errors = self.origin, len(self.errors)
         try:
             return lower()
         except GradwrightError as error:
-            self.env, self.blocks[:], self.origin = env, blocks, origin
+            self.env, self.origin = env, origin
+            self.rewind_blocks(blocks)
             del self.errors[errors:]
             copied = self.copied_expression(test, "cond", quiet=True)
             if copied is None:

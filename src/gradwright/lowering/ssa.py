@@ -29,6 +29,7 @@ from gradwright.lowering.base import (
     _TRUTH_OPS,
     _VIEWS,
     IN_PLACE,
+    BlockMark,
     _ListParameter,
     _Unbound,
 )
@@ -129,6 +130,27 @@ class _Lowerer(
         self.dict_keys: dict[Var, tuple[str, ...]] = {}
         self.dict_made: dict[Var, tuple[list, Stmt]] = {}
         self.positions: dict[Var, Var] = {}
+        #: statements put in the middle of an open block (a dict's table of
+        #: positions), for ``rewind_blocks`` to take out again
+        self.inserted: list[tuple[list[Stmt], Stmt]] = []
+
+    # -- undoing a rejected statement ---------------------------------------------
+
+    def mark_blocks(self) -> BlockMark:
+        """Where the open blocks end now: a rejected statement's lowering rewinds
+        to it. Lengths, not copies: copying every block before each statement
+        made lowering quadratic in the length of the function."""
+        return [(block, len(block)) for block in self.blocks], len(self.inserted)
+
+    def rewind_blocks(self, mark: BlockMark) -> None:
+        """The open blocks as they were at ``mark``."""
+        ends, inserted = mark
+        for block, stmt in reversed(self.inserted[inserted:]):
+            del block[next(k for k, s in enumerate(block) if s is stmt)]
+        del self.inserted[inserted:]
+        for block, length in ends:
+            del block[length:]
+        self.blocks[:] = [block for block, _ in ends]
 
     # -- values -------------------------------------------------------------------
 

@@ -95,7 +95,7 @@ class StatementLowering:
         """``lower(stmt, *args)``; a rejected statement is recorded and the lowering
         goes on with the next one, so one run reports every error (the names the
         statement binds read as already reported). None after an error."""
-        env, blocks = dict(self.env), [list(b) for b in self.blocks]
+        env, blocks = dict(self.env), self.mark_blocks()
         depth, origin = self.loop_depth, self.origin
         try:
             return lower(stmt, *args)
@@ -103,7 +103,7 @@ class StatementLowering:
             if isinstance(error, GradwrightError):
                 self.errors.append(error)
             self.env = env
-            self.blocks[:] = blocks
+            self.rewind_blocks(blocks)
             self.loop_depth, self.origin = depth, origin
             silent = _Unbound("", "", silent=True)
             for name in _bound_anywhere(stmt):

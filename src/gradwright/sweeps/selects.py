@@ -22,8 +22,9 @@ model's selects are elementwise.
 
 from __future__ import annotations
 
+import itertools
 from collections import Counter
-from collections.abc import Iterator
+from collections.abc import Iterable, Iterator
 from dataclasses import dataclass, field, replace
 
 from gradwright.calculus.algebra import is_zero, simplify
@@ -209,24 +210,24 @@ class _Brancher:
     def block(self, statements: tuple[ReverseStmt, ...]) -> tuple[ReverseStmt, ...]:
         statements = tuple(self._nested(s) for s in statements)
         out: list[ReverseStmt] = []
-        rest = list(statements)
-        position = 0
-        while position < len(rest):
-            stmt = rest[position]
-            position += 1
+        # statements a region took, by id: skipped where they stood (removing
+        # them from the list made each kink cost the length of the block)
+        gone: set[int] = set()
+        for position, stmt in enumerate(statements):
+            if id(stmt) in gone:
+                continue
             test = self._opener(stmt)
             if test is None:
                 out.append(stmt)
                 continue
-            region = self._region(test, rest[position - 1 :])
+            after = itertools.islice(statements, position, None)
+            region = self._region(test, (s for s in after if id(s) not in gone))
             if region is None:
                 out.append(stmt)
                 continue
             emitted, taken = region
             out.extend(emitted)
-            gone = {id(t) for t in taken}
-            rest = [s for s in rest[position:] if id(s) not in gone]
-            position = 0
+            gone.update(id(t) for t in taken)
         return tuple(out)
 
     def _nested(self, stmt: ReverseStmt) -> ReverseStmt:
@@ -250,7 +251,7 @@ class _Brancher:
         return None
 
     def _region(
-        self, test: Expr, candidates: list[ReverseStmt]
+        self, test: Expr, candidates: Iterable[ReverseStmt]
     ) -> tuple[tuple[ReverseStmt, ...], list[ReverseStmt]] | None:
         """What replaces the statements it takes (the branch on ``test``; no
         branch if the sides agree), or None when it would save nothing."""
@@ -316,9 +317,10 @@ class _Brancher:
         """Update the adjoints known to be 0.0 on one side after ``stmt``."""
         if not isinstance(stmt, AdjointAssign):
             return
-        expr = simplify(
-            substitute(_resolve(stmt.expr, test, side), {v: _zero() for v in zero})
-        )
+        resolved = _resolve(stmt.expr, test, side)
+        # only the adjoints it reads: the set grows with the block
+        read = {n.var for n in walk(resolved) if isinstance(n, Bar)}
+        expr = simplify(substitute(resolved, {v: _zero() for v in read & zero}))
         if not stmt.accumulate and is_zero(expr):
             zero.add(stmt.var)
         elif not is_zero(expr):

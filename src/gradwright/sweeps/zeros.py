@@ -134,6 +134,17 @@ def _merge_zero_starts(
     out: list[ReverseStmt | None] = []
     # scalar adjoint set by a plain assignment -> its place in out
     pending: dict[Var, int] = {}
+    # an adjoint a pending start reads (``x_bar = y_bar``) -> those starts' adjoints:
+    # a write ends only them (looking at every pending start at each statement
+    # made a long sweep quadratic)
+    watchers: defaultdict[Var, set[Var]] = defaultdict(set)
+
+    def drop(var: Var) -> int:
+        place = pending.pop(var)
+        for bar in _bars(out[place]):  # type: ignore[arg-type]
+            watchers[bar].discard(var)
+        return place
+
     for stmt in statements:
         if isinstance(stmt, ReverseBranch):
             stmt = replace(
@@ -150,7 +161,7 @@ def _merge_zero_starts(
             and stmt.var in pending
             and stmt.var not in reads
         ):
-            place = pending.pop(stmt.var)
+            place = drop(stmt.var)
             first = out[place]
             assert isinstance(first, AdjointAssign)
             expr = stmt.expr
@@ -160,10 +171,11 @@ def _merge_zero_starts(
             out.append(replace(stmt, expr=expr, accumulate=False))
             continue
         written = {w for inner in all_statements([stmt]) for w in written_bars(inner)}
-        for var in list(pending):
-            start = out[pending[var]]
-            if var in reads or var in written or _bars(start) & written:  # type: ignore[arg-type]
-                del pending[var]  # read or changed (inside a branch or loop too)
+        # read or changed (inside a branch or loop too), or reading what changes
+        ended = (reads | written) & pending.keys()
+        ended.update(v for w in written for v in watchers.get(w, ()))
+        for var in ended:
+            drop(var)
         if (
             isinstance(stmt, AdjointAssign)
             and not stmt.accumulate
@@ -172,6 +184,10 @@ def _merge_zero_starts(
             # as the contribution of the statement it is under
             and (is_zero(stmt.expr) or (copies and isinstance(stmt.expr, Bar)))
         ):
+            if stmt.var in pending:
+                drop(stmt.var)
             pending[stmt.var] = len(out)
+            for bar in _bars(stmt):
+                watchers[bar].add(stmt.var)
         out.append(stmt)
     return tuple(s for s in out if s is not None)
