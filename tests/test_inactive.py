@@ -10,6 +10,7 @@ from __future__ import annotations
 
 from pathlib import Path
 
+import numpy as np
 import pytest
 import sympy
 from support import build, rel_err, run_source, same_bits
@@ -151,6 +152,37 @@ def test_a_copied_statement_must_not_change_a_value_in_place():
         text
     )
     assert "build a new value" in text
+
+
+STANDARDISED = """
+import numpy as np
+
+
+def ridge_loss(w, X, y, lam):
+    sigma = X.std(axis=0) + 1e-12
+    Xn = (X - X.mean(axis=0)) / sigma
+    resid = Xn @ w - y
+    return np.mean(resid**2) + lam * np.dot(w, w)
+"""
+
+
+def test_an_array_method_that_only_reads_is_copied_against_closed_form():
+    # X.std(axis=0) is no primitive of ours, and reads no active value: copied
+    text = gradwright.generate(STANDARDISED, ["ridge_loss"], wrt=["w"])
+    assert "    sigma = X.std(axis=0) + 1e-12\n" in text
+    rng = np.random.default_rng(5)
+    X, y, w = rng.normal(size=(12, 3)), rng.normal(size=12), rng.normal(size=3)
+    _, (w_bar,) = build(STANDARDISED, "ridge_loss", ["w"])["ridge_loss_grad"](
+        w, X, y, 0.3
+    )
+    # closed form by hand: d/dw [mean((Xn w - y)^2) + lam w.w] = 2 Xn^T r / n + 2 lam w
+    Xn = (X - X.mean(axis=0)) / (X.std(axis=0) + 1e-12)
+    exact = 2.0 * Xn.T @ (Xn @ w - y) / len(y) + 2.0 * 0.3 * w
+    assert np.max(np.abs(w_bar - exact)) < 1e-13 * np.max(np.abs(exact))
+    # a method's out= writes into its argument: that is a change in place
+    writing = STANDARDISED.replace("X.std(axis=0)", "X.std(axis=0, out=y)")
+    text = _error(writing.replace("ridge_loss", "f"), ["w"])
+    assert "error: a statement copied as written must not change a value" in text
 
 
 def test_a_guard_reading_an_active_value_inside_a_loop():

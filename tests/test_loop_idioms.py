@@ -119,6 +119,34 @@ def spread(q1, q2, q3):
         assert rel_err(g, math.cos(q) * q + math.sin(q)) < 1e-14  # product rule
 
 
+def test_loop_over_rows_written_out():
+    source = """
+import math
+def misfit(a, m1, m2, m3, r1, r2, r3):
+    total = 0.0
+    for m, r in [(m1, r1), (m2, r2), (m3, math.sqrt(r3))]:
+        total += (a * math.sin(m) - r) ** 2
+    return total
+"""
+    module = build(source, "misfit")
+    point = (1.3, 0.2, -0.7, 1.9, 0.4, -0.5, 0.8)
+    value, grads = module["misfit_grad"](*point)
+    assert value == run_source(source)["misfit"](*point)
+    a, ms, rs = point[0], point[1:4], (point[4], point[5], math.sqrt(point[6]))
+    errs = [a * math.sin(m) - r for m, r in zip(ms, rs, strict=True)]
+    # by hand: d/da = 2 sum e sin m, d/dm = 2 e a cos m, d/dr = -2 e (the third
+    # through the square root: -2 e / (2 sqrt r3))
+    want = [2.0 * sum(e * math.sin(m) for e, m in zip(errs, ms, strict=True))]
+    want += [2.0 * e * a * math.cos(m) for e, m in zip(errs, ms, strict=True)]
+    want += [-2.0 * errs[0], -2.0 * errs[1], -errs[2] / math.sqrt(point[6])]
+    for got, exact in zip(grads, want, strict=True):
+        assert rel_err(got, exact) < 1e-14
+    # rows of unequal length are a located error
+    uneven = source.replace("(m3, math.sqrt(r3))", "(m3,)")
+    with pytest.raises(gradwright.GradwrightError, match="different lengths .1, 2."):
+        gradwright.generate(uneven, ["misfit"])
+
+
 def test_loop_over_a_tuple_bound_to_a_name():
     source = """
 def reduce_speed(r1, r2, rpm=3000.0):

@@ -48,6 +48,40 @@ _READING_METHODS = frozenset(
         "startswith",
         "endswith",
         "replace",
+        # NumPy arrays' methods that return a new array or a view, never
+        # changing the array (an ``out=`` argument is looked at on its own)
+        "all",
+        "any",
+        "argmax",
+        "argmin",
+        "argsort",
+        "astype",
+        "conj",
+        "cumprod",
+        "cumsum",
+        "diagonal",
+        "dot",
+        "flatten",
+        "item",
+        "max",
+        "mean",
+        "min",
+        "nonzero",
+        "prod",
+        "ravel",
+        "repeat",
+        "reshape",
+        "round",
+        "searchsorted",
+        "squeeze",
+        "std",
+        "sum",
+        "swapaxes",
+        "take",
+        "tolist",
+        "trace",
+        "transpose",
+        "var",
     }
 )
 
@@ -251,6 +285,9 @@ def _changed_in_place(module: cst.Module, names: set[str]) -> cst.CSTNode | None
                 and func.attr.value not in _READING_METHODS
             ):
                 found.append(node)
+            for arg in node.args:  # np.add(a, b, out=c), x.sum(out=c): c changes
+                if arg.keyword is not None and arg.keyword.value == "out":
+                    found.append(arg.value)
 
     module.visit(Check())
     return found[0] if found else None

@@ -388,6 +388,32 @@ class LoopLowering:
                 return read(position)  # type: ignore[arg-type]
 
             return length, backwards, base
+        rows = _literal_rows(node)
+        if rows is not None:
+            sizes = sorted({len(row) for row in rows})
+            if len(sizes) > 1:
+                fail(
+                    "the rows here have different lengths"
+                    f" ({', '.join(map(str, sizes))})",
+                    self.index.locate(node),
+                    "give every row the same number of values",
+                )
+            # rows written out, ((m1, r1), (m2, r2)): one list per column, read
+            # together as zip(...) reads its lists; evaluated row by row, as written
+            grid = [
+                [self.scalar(self.expr(item, "values", None), item) for item in row]
+                for row in rows
+            ]
+            columns = [
+                self.emit(
+                    "listlit",
+                    tuple(row[j] for row in grid),
+                    self.new_var("values", "local", "list"),
+                )
+                for j in range(len(grid[0]))
+            ]
+            count = Const(str(len(grid)), len(grid))
+            return count, lambda i: tuple(self.element(c, i) for c in columns), "k"
         held = self.tuple_of(node)
         if isinstance(node, (cst.Tuple, cst.List)) or held is not None:
             # a tuple of values, written out or bound to a name: a local list of them
@@ -478,6 +504,26 @@ class LoopLowering:
             )
         for element, part in zip(elements, value, strict=True):  # type: ignore[arg-type]
             self.bind_target(element, part, index)
+
+
+def _literal_rows(node: cst.BaseExpression) -> list[list[cst.BaseExpression]] | None:
+    """The items of a tuple or list written out whose every element is itself a
+    tuple or list (``[(m1, r1), (m2, r2)]``), row by row."""
+    if not isinstance(node, (cst.Tuple, cst.List)) or not node.elements:
+        return None
+    rows = []
+    for element in node.elements:
+        row = element.value
+        if isinstance(element, cst.StarredElement) or not isinstance(
+            row, (cst.Tuple, cst.List)
+        ):
+            return None
+        if not row.elements or any(
+            isinstance(item, cst.StarredElement) for item in row.elements
+        ):
+            return None
+        rows.append([item.value for item in row.elements])
+    return rows
 
 
 class _DataRow:
