@@ -1189,6 +1189,30 @@ def test_augmented_assignments_print_as_written_against_sympy():
         assert rel_err(got, float(sympy.diff(model, symbol).subs(point))) < 1e-13
 
 
+HEATER = """
+def heater(gain, dt):
+    temp = 20.0
+    for _ in range(5):
+        temp += dt * (gain * 3.0 - (temp - 20.0))
+    return temp
+"""
+
+
+def test_a_carried_adjoint_minus_a_term_prints_as_minus_equals_against_sympy():
+    reverse = gradwright.generate(HEATER, ["heater"]).split("# reverse sweep")[1]
+    assert "        temp_bar -= temp_1_bar\n" in reverse
+    assert "temp_bar = temp_bar -" not in reverse
+    # reference: SymPy on the loop unrolled
+    gain, dt = sympy.symbols("gain dt")
+    temp = sympy.Integer(20)
+    for _ in range(5):
+        temp = temp + dt * (gain * 3 - (temp - 20))
+    _, grads = build(HEATER, "heater")["heater_grad"](0.7, 0.1)
+    for got, symbol in zip(grads, (gain, dt), strict=True):
+        exact = float(sympy.diff(temp, symbol).subs({gain: 0.7, dt: 0.1}))
+        assert rel_err(got, exact) < 1e-14
+
+
 LEVEL = """
 def level(a, xs):
     s = sum(xs)

@@ -124,14 +124,20 @@ class ReverseLines(EmitterBase):
         return "-=", self.rprint(magnitude)
 
     def _accumulated(self, expr: Expr, bar: str) -> tuple[Expr, bool]:
-        """The term added to ``bar`` and True when ``expr`` is ``bar`` plus a
-        term (floats: no array shares the name), else ``expr`` and False."""
+        """The term added to ``bar`` and True when ``expr`` is ``bar`` plus (or
+        minus) a term (floats: no array shares the name), else ``expr`` and False."""
         if isinstance(expr, Apply) and expr.op == "add":
             for k in (0, 1):
                 term = expr.args[k]
                 if isinstance(term, Bar) and self.namer.bar_name(term.var) == bar:
                     self.reads(term)
                     return expr.args[1 - k], True
+        if isinstance(expr, Apply) and expr.op == "sub":
+            # x_bar = x_bar - e: x_bar -= e (the same float: x + -e is x - e)
+            term = expr.args[0]
+            if isinstance(term, Bar) and self.namer.bar_name(term.var) == bar:
+                self.reads(term)
+                return Apply("neg", (expr.args[1],)), True
         return expr, False
 
     def reverse_block(
