@@ -147,6 +147,23 @@ def misfit(a, m1, m2, m3, r1, r2, r3):
         gradwright.generate(uneven, ["misfit"])
 
 
+def test_an_index_is_named_for_the_first_target_that_is_not_underscore():
+    source = """
+BOOK = [(95.0, 3), (100.0, -5), (110.0, 4)]
+def book(spot):
+    sizes = [q for _, q in BOOK]
+    total = 0.0
+    for _, size in zip(sizes, sizes):
+        total += size * spot * spot
+    return total
+"""
+    text = gradwright.generate(source, ["book"])
+    assert "for q_index in range(len(BOOK)):" in text and "__index" not in text
+    assert "for size_index in " in text
+    _, (spot_bar,) = build(source, "book")["book_grad"](1.5)
+    assert spot_bar == 2.0 * 1.5 * (3 - 5 + 4)  # by hand: d/ds sum(q) s^2
+
+
 def test_loop_over_a_tuple_bound_to_a_name():
     source = """
 def reduce_speed(r1, r2, rpm=3000.0):

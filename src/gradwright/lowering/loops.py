@@ -286,10 +286,9 @@ class LoopLowering:
 
         # the index is named for the target: `for reading in readings` counts with
         # reading_index; `for i, x in enumerate(xs)` with i itself
-        first = target
-        while isinstance(first, (cst.Tuple, cst.List)):
-            first = first.elements[0].value
-        base = f"{first.value}_index"  # type: ignore[attr-defined]
+        # (the first name that is not `_`: `for _, q in BOOK` counts with q_index)
+        named = [n for n in _target_names(target) if n != "_"]
+        base = f"{named[0] if named else 'row'}_index"
         if (
             call == "enumerate"
             and isinstance(target, (cst.Tuple, cst.List))
@@ -504,6 +503,13 @@ class LoopLowering:
             )
         for element, part in zip(elements, value, strict=True):  # type: ignore[arg-type]
             self.bind_target(element, part, index)
+
+
+def _target_names(target: cst.BaseExpression) -> list[str]:
+    """The names a loop target binds, in order (nested tuples flattened)."""
+    if isinstance(target, (cst.Tuple, cst.List)):
+        return [n for el in target.elements for n in _target_names(el.value)]
+    return [target.value] if isinstance(target, cst.Name) else []
 
 
 def _literal_rows(node: cst.BaseExpression) -> list[list[cst.BaseExpression]] | None:
