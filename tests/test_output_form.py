@@ -1189,6 +1189,41 @@ def test_augmented_assignments_print_as_written_against_sympy():
         assert rel_err(got, float(sympy.diff(model, symbol).subs(point))) < 1e-13
 
 
+UNDERSCORE_PARAM = """
+def h(x):
+    return x * 2.0, 5.0
+
+
+def f(x, _):
+    y = x * _
+    a, _ = h(y)
+    return a
+"""
+
+
+def test_an_unread_element_never_takes_a_parameter_named_underscore():
+    # the reverse reads the parameter `_` after the unpacking: printing the
+    # discard as `_` would hand it the helper's second value
+    text = gradwright.generate(UNDERSCORE_PARAM, ["f"], wrt=["x"])
+    assert "    a, _ = h(y)\n" not in text.split("def f_grad")[1]
+    _, (x_bar,) = build(UNDERSCORE_PARAM, "f", ["x"])["f_grad"](1.5, 3.0)
+    assert x_bar == 2.0 * 3.0  # by hand: f = 2 x _
+    # nor a module's `_` the function reads (bound in a comprehension only, the
+    # element is no local of the function: a `_` there would shadow the global)
+    gettext = """
+BOOK = [(95.0, 3), (100.0, -5), (110.0, 4)]
+def _(text):
+    return text
+def f(spot):
+    sizes = [q for _, q in BOOK]
+    label = _("total")
+    return sum(sizes) * spot
+"""
+    text = gradwright.generate(gettext, ["f"])
+    assert "_, q = BOOK" not in text.split("def f_grad")[1]
+    assert build(gettext, "f")["f_grad"](2.0) == (4.0, (2.0,))  # by hand: 2 spot
+
+
 HEATER = """
 def heater(gain, dt):
     temp = 20.0

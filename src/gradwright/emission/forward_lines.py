@@ -186,13 +186,18 @@ class ForwardLines(EmitterBase):
         """Whether ``_`` may take an element nothing reads (``v, _ = h(...)``):
         no value of the function that the output prints is the user's ``_``."""
         layout = self.layout
+        function = layout.function
+        if "_" in function.constants or "_" not in function.local_names:
+            return False  # a module's `_` (gettext's) must stay a global
+        if any(param.base == "_" for param in function.params):
+            return False  # the reverse may read the parameter after the unpacking
         # a loop's `_` that indexes saved lists was given a real name already
         names = layout.namer.names
         if any(names.get(loop.index, loop.index.base) == "_" for loop in layout.parent):
             return False
         return not any(
             value.base == "_" and value in layout.live
-            for value in _block_values(layout.function.body)
+            for value in _block_values(function.body)
         )
 
     def forward_unpack(
@@ -213,8 +218,9 @@ class ForwardLines(EmitterBase):
             for item in items
         ]
         for name, item in zip(names, items, strict=True):
-            if item.target in self.layout.live:
-                trace.write(name, self.key(item.target))
+            # an unread element's name is written too: the check then sees a
+            # value the name held before being overwritten
+            trace.write(name, self.key(item.target))
         text = f"{', '.join(names)} = {self.print(Apply(call.op, args))}"
         out.statement(call.origin, text, depth)
         for item in items:
