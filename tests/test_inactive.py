@@ -183,6 +183,13 @@ def test_an_array_method_that_only_reads_is_copied_against_closed_form():
     writing = STANDARDISED.replace("X.std(axis=0)", "X.std(axis=0, out=y)")
     text = _error(writing.replace("ridge_loss", "f"), ["w"])
     assert "error: a statement copied as written must not change a value" in text
+    # out=None writes nothing: copied
+    unwritten = STANDARDISED.replace("X.std(axis=0)", "X.std(axis=0, out=None)")
+    assert "out=None" in gradwright.generate(unwritten, ["ridge_loss"], wrt=["w"])
+    # a view (ravel, reshape, ...) would let a later copied `flat *= 2.0` change X
+    viewed = STANDARDISED.replace("X.std(axis=0)", "X.ravel()[:3]")
+    text = _error(viewed.replace("ridge_loss", "f"), ["w"])
+    assert "error: a statement copied as written must not change a value" in text
 
 
 def test_a_guard_reading_an_active_value_inside_a_loop():

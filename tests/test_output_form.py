@@ -1205,7 +1205,7 @@ def test_an_unread_element_never_takes_a_parameter_named_underscore():
     # the reverse reads the parameter `_` after the unpacking: printing the
     # discard as `_` would hand it the helper's second value
     text = gradwright.generate(UNDERSCORE_PARAM, ["f"], wrt=["x"])
-    assert "    a, _ = h(y)\n" not in text.split("def f_grad")[1]
+    assert "    a, unused_1 = h(y)\n" in text.split("def f_grad")[1]
     _, (x_bar,) = build(UNDERSCORE_PARAM, "f", ["x"])["f_grad"](1.5, 3.0)
     assert x_bar == 2.0 * 3.0  # by hand: f = 2 x _
     # nor a module's `_` the function reads (bound in a comprehension only, the
@@ -1222,6 +1222,30 @@ def f(spot):
     text = gradwright.generate(gettext, ["f"])
     assert "_, q = BOOK" not in text.split("def f_grad")[1]
     assert build(gettext, "f")["f_grad"](2.0) == (4.0, (2.0,))  # by hand: 2 spot
+
+
+REUSED = """
+LOG = [(0.5, 1.0, 2.0), (1.5, 3.0, 4.0)]
+
+
+def f(a, b):
+    w = a * b
+    s = w * a
+    for t, w, v in LOG:
+        s = s * a + v * t
+    return s
+"""
+
+
+def test_an_unread_element_never_takes_the_name_of_a_value_kept():
+    # the row's unread `w` would overwrite the `w = a * b` the reverse reads: it
+    # takes `_` instead (the layout check sees the write either way)
+    forward = gradwright.generate(REUSED, ["f"]).split("def f_grad")[1]
+    assert "t, _, v = LOG[t_index]" in forward.split("# reverse sweep")[0]
+    _, (a_bar, b_bar) = build(REUSED, "f")["f_grad"](1.3, 0.7)
+    # by hand: f = a^4 b + a + 6
+    assert rel_err(a_bar, 4.0 * 1.3**3 * 0.7 + 1.0) < 1e-15
+    assert rel_err(b_bar, 1.3**4) < 1e-15
 
 
 HEATER = """

@@ -176,29 +176,43 @@ class ForwardLines(EmitterBase):
         read = [item for item in items if item.target in layout.live]
         if not read or not all(item.target in layout.stored for item in read):
             return []
-        unread = [item for item in items if item.target not in layout.live]
-        if any(item.target.base == "_" for item in unread) and not self.discard_free:
-            return []
         return items
 
-    @cached_property
-    def discard_free(self) -> bool:
-        """Whether ``_`` may take an element nothing reads (``v, _ = h(...)``):
-        no value of the function that the output prints is the user's ``_``."""
-        layout = self.layout
-        function = layout.function
-        if "_" in function.constants or "_" not in function.local_names:
-            return False  # a module's `_` (gettext's) must stay a global
-        if any(param.base == "_" for param in function.params):
-            return False  # the reverse may read the parameter after the unpacking
-        # a loop's `_` that indexes saved lists was given a real name already
-        names = layout.namer.names
-        if any(names.get(loop.index, loop.index.base) == "_" for loop in layout.parent):
-            return False
-        return not any(
-            value.base == "_" and value in layout.live
-            for value in _block_values(function.body)
+    def unread_name(self, var: Var) -> str:
+        """The name an element nothing reads is unpacked into: the user's own
+        (``v, decay = ...``) or ``_`` when no value the output prints may have
+        that name, else a new one."""
+        for name in (var.base, "_"):
+            if self.name_free(name):
+                self.namer.taken.add(name)
+                return name
+        return self.namer.fresh("unused" if var.base == "_" else var.base)
+
+    def name_free(self, name: str) -> bool:
+        """Whether no value of the function that the output prints can have
+        ``name``: no parameter, no module-level name the function reads (a
+        gettext ``_``), no loop index, no value the layout keeps of that name."""
+        function = self.layout.function
+        return not (
+            name in function.constants
+            or name in function.callees
+            or name in self.kept_bases
+            or name in self.namer.names.values()
         )
+
+    @cached_property
+    def kept_bases(self) -> set[str]:
+        """The source names of the parameters, loop indices and kept values."""
+        layout = self.layout
+        names = layout.namer.names
+        bases = {param.base for param in layout.function.params}
+        bases |= {names.get(loop.index, loop.index.base) for loop in layout.parent}
+        bases |= {
+            value.base
+            for value in _block_values(layout.function.body)
+            if value in layout.live
+        }
+        return bases
 
     def forward_unpack(
         self, call: Let, items: list[Let], depth: int, out: Lines, loop: Loop | None
@@ -208,12 +222,11 @@ class ForwardLines(EmitterBase):
         args = tuple(self.value(a) for a in call.args)
         for arg in args:
             self.reads(arg)
-        # an element nothing reads takes `_` as the user wrote it, or its own name
         names = [
             (
-                "_"
-                if item.target.base == "_" and item.target not in self.layout.live
-                else self.namer.name(item.target)
+                self.namer.name(item.target)
+                if item.target in self.layout.live
+                else self.unread_name(item.target)
             )
             for item in items
         ]

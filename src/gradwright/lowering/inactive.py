@@ -48,18 +48,17 @@ _READING_METHODS = frozenset(
         "startswith",
         "endswith",
         "replace",
-        # NumPy arrays' methods that return a new array or a view, never
-        # changing the array (an ``out=`` argument is looked at on its own)
+        # NumPy arrays' methods that return a new array (not a view, which a
+        # later copied `flat *= 2.0` would change through; an ``out=`` argument
+        # is looked at on its own)
         "all",
         "any",
         "argmax",
         "argmin",
         "argsort",
         "astype",
-        "conj",
         "cumprod",
         "cumsum",
-        "diagonal",
         "dot",
         "flatten",
         "item",
@@ -68,19 +67,14 @@ _READING_METHODS = frozenset(
         "min",
         "nonzero",
         "prod",
-        "ravel",
         "repeat",
-        "reshape",
         "round",
         "searchsorted",
-        "squeeze",
         "std",
         "sum",
-        "swapaxes",
         "take",
         "tolist",
         "trace",
-        "transpose",
         "var",
     }
 )
@@ -287,7 +281,13 @@ def _changed_in_place(module: cst.Module, names: set[str]) -> cst.CSTNode | None
                 found.append(node)
             for arg in node.args:  # np.add(a, b, out=c), x.sum(out=c): c changes
                 if arg.keyword is not None and arg.keyword.value == "out":
-                    found.append(arg.value)
+                    outs = arg.value
+                    parts = (
+                        [el.value for el in outs.elements]
+                        if isinstance(outs, cst.Tuple)
+                        else [outs]
+                    )
+                    found.extend(p for p in parts if root(p) in names)
 
     module.visit(Check())
     return found[0] if found else None
