@@ -192,6 +192,36 @@ def test_an_array_method_that_only_reads_is_copied_against_closed_form():
     assert "error: a statement copied as written must not change a value" in text
 
 
+ACCUMULATED = """
+import numpy as np
+
+
+def f(w, X):
+    r = X @ w
+    acc = np.zeros(X.shape[1])
+    for row in X:
+        acc += row
+    scale = acc * 2.0
+    scale += 1.0
+    return np.sum(r**2) * np.sum(scale)
+"""
+
+
+def test_copied_op_assign_only_on_an_array_of_its_own_against_closed_form():
+    rng = np.random.default_rng(8)
+    X, w = rng.normal(size=(6, 3)), rng.normal(size=3)
+    _, (w_bar,) = build(ACCUMULATED, "f", ["w"])["f_grad"](w, X)
+    # closed form by hand: f = |Xw|^2 S, S = sum(2 colsum(X) + 1), constant in w
+    exact = 2.0 * X.T @ (X @ w) * np.sum(2.0 * X.sum(axis=0) + 1.0)
+    assert np.max(np.abs(w_bar - exact)) < 1e-13 * np.max(np.abs(exact))
+    # a view or an alias of X, changed by a copied `op=`, would change the X the
+    # reverse sweep reads: refused
+    for binding in ("np.ravel(X)", "X", "X[0]", "X.T"):
+        changed = ACCUMULATED.replace("np.zeros(X.shape[1])", binding)
+        with pytest.raises(gradwright.GradwrightError, match="in place"):
+            gradwright.generate(changed, ["f"], wrt=["w"])
+
+
 def test_a_guard_reading_an_active_value_inside_a_loop():
     source = (
         "import math\n\n\n"

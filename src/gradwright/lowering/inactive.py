@@ -487,7 +487,7 @@ class InactiveLowering:
             bound = self.env.get(node.value)
             if (
                 isinstance(bound, Var)
-                and bound not in self.opaque
+                and (bound not in self.opaque or bound not in self.copied_fresh)
                 and (self.numpy or bound.shape == "list")
             ):
                 fail(
@@ -533,7 +533,12 @@ class InactiveLowering:
         )
         self.inert_values.add(statement)
         sequence = _sequence_literal_target(stmt)
+        fresh = _fresh_array_target(stmt)
         for name, var in writes:
+            if name == fresh:
+                # an array of its own: a later copied `name op= ...` changes
+                # nothing else (a view, `flat = np.ravel(X)`, would change X)
+                self.copied_fresh.add(var)
             self.emit("written", (statement,), var)
             self.opaque.add(var)
             if name == sequence:
@@ -609,6 +614,8 @@ class InactiveLowering:
         self.emit("written", (statement,), var)
         self.opaque.add(var)
         self.fresh.discard(var)
+        if _fresh_value(node):
+            self.copied_fresh.add(var)
         return var
 
     def active_read(self, node: cst.BaseExpression) -> cst.Name | None:
@@ -730,6 +737,43 @@ class InactiveLowering:
         item = self.emit("dataitem", (bound, index), self.new_var(base, "temp"))
         self.fresh.discard(item)
         return item
+
+
+#: NumPy functions whose result may share memory with an argument
+_NUMPY_VIEWS = frozenset(
+    "asarray asanyarray ascontiguousarray asfortranarray atleast_1d atleast_2d"
+    " atleast_3d broadcast_to diagonal expand_dims flip fliplr flipud moveaxis"
+    " ravel real imag require reshape rot90 squeeze swapaxes transpose split"
+    " array_split hsplit vsplit dsplit frombuffer".split()
+)
+
+
+def _fresh_array_target(stmt: cst.CSTNode) -> str | None:
+    """The name ``stmt`` binds to a value surely of its own (arithmetic, a NumPy
+    function that makes a new array, a method that returns one), else None."""
+    assign = stmt
+    if isinstance(stmt, cst.SimpleStatementLine) and len(stmt.body) == 1:
+        assign = stmt.body[0]
+    if not (isinstance(assign, cst.Assign) and len(assign.targets) == 1):
+        return None
+    target = assign.targets[0].target
+    if isinstance(target, cst.Name) and _fresh_value(assign.value):
+        return target.value
+    return None
+
+
+def _fresh_value(value: cst.BaseExpression) -> bool:
+    """Whether ``value`` surely makes a value of its own (arithmetic, a NumPy
+    function that makes a new array, a method that returns one), not a copy of
+    a name, an element, a slice or a view."""
+    if isinstance(value, (cst.BinaryOperation, cst.UnaryOperation)):
+        return True
+    if isinstance(value, cst.Call) and isinstance(value.func, cst.Attribute):
+        func = value.func
+        if isinstance(func.value, cst.Name) and func.value.value in ("np", "numpy"):
+            return func.attr.value not in _NUMPY_VIEWS
+        return func.attr.value in _READING_METHODS and func.attr.value != "get"
+    return False
 
 
 def _sequence_literal_target(stmt: cst.CSTNode) -> str | None:

@@ -122,6 +122,9 @@ class _Lowerer(
         self.opaque: set[Var] = set()
         #: opaque values bound to a list or tuple literal (tables of rows)
         self.opaque_sequences: set[Var] = set()
+        #: opaque values surely arrays of their own: a copied `name op= ...` on
+        #: one changes nothing else
+        self.copied_fresh: set[Var] = set()
         #: elements of module data (a table's row, ``for row in TABLE``): indexed
         #: again as data (``row[0]``), never active
         self.data_items: set[Var] = set()
