@@ -751,14 +751,21 @@ _NUMPY_VIEWS = frozenset(
 def _fresh_array_target(stmt: cst.CSTNode) -> str | None:
     """The name ``stmt`` binds to a value surely of its own (arithmetic, a NumPy
     function that makes a new array, a method that returns one), else None."""
-    assign = stmt
-    if isinstance(stmt, cst.SimpleStatementLine) and len(stmt.body) == 1:
-        assign = stmt.body[0]
-    if not (isinstance(assign, cst.Assign) and len(assign.targets) == 1):
+    assign = _single_assign(stmt)
+    if assign is None:
         return None
     target = assign.targets[0].target
     if isinstance(target, cst.Name) and _fresh_value(assign.value):
         return target.value
+    return None
+
+
+def _single_assign(stmt: cst.CSTNode) -> cst.Assign | None:
+    """``name = value`` (one target), alone on its line, else None."""
+    if isinstance(stmt, cst.SimpleStatementLine) and len(stmt.body) == 1:
+        stmt = stmt.body[0]
+    if isinstance(stmt, cst.Assign) and len(stmt.targets) == 1:
+        return stmt
     return None
 
 
@@ -779,10 +786,8 @@ def _fresh_value(value: cst.BaseExpression) -> bool:
 def _sequence_literal_target(stmt: cst.CSTNode) -> str | None:
     """The name ``rays = [(1.0, 0.0), ...]`` binds to a list or tuple literal (a
     copied table a loop may run over, row by row), else None."""
-    assign = stmt
-    if isinstance(stmt, cst.SimpleStatementLine) and len(stmt.body) == 1:
-        assign = stmt.body[0]
-    if not (isinstance(assign, cst.Assign) and len(assign.targets) == 1):
+    assign = _single_assign(stmt)
+    if assign is None:
         return None
     target = assign.targets[0].target
     if isinstance(target, cst.Name) and isinstance(assign.value, (cst.List, cst.Tuple)):
