@@ -183,6 +183,10 @@ def test_an_array_method_that_only_reads_is_copied_against_closed_form():
     writing = STANDARDISED.replace("X.std(axis=0)", "X.std(axis=0, out=y)")
     text = _error(writing.replace("ridge_loss", "f"), ["w"])
     assert "error: a statement copied as written must not change a value" in text
+    # so does a ufunc's positional output, np.multiply(X, 2.0, X)
+    positional = STANDARDISED.replace("X.std(axis=0)", "np.multiply(X, 2.0, X)")
+    text = _error(positional.replace("ridge_loss", "f"), ["w"])
+    assert "error: a statement copied as written must not change a value" in text
     # out=None writes nothing: copied
     unwritten = STANDARDISED.replace("X.std(axis=0)", "X.std(axis=0, out=None)")
     assert "out=None" in gradwright.generate(unwritten, ["ridge_loss"], wrt=["w"])

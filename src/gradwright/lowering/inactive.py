@@ -288,9 +288,30 @@ def _changed_in_place(module: cst.Module, names: set[str]) -> cst.CSTNode | None
                         else [outs]
                     )
                     found.extend(p for p in parts if root(p) in names)
+            # np.multiply(a, b, c): a ufunc's positional arguments past its
+            # inputs are its outputs
+            positional = [arg.value for arg in node.args if arg.keyword is None]
+            inputs = _ufunc_inputs(func)
+            if inputs is not None:
+                found.extend(p for p in positional[inputs:] if root(p) in names)
 
     module.visit(Check())
     return found[0] if found else None
+
+
+def _ufunc_inputs(func: cst.BaseExpression) -> int | None:
+    """How many inputs ``np.name`` takes when it is a NumPy ufunc, else None
+    (NumPy's own table, read only for a call with positional outputs)."""
+    if not (
+        isinstance(func, cst.Attribute)
+        and isinstance(func.value, cst.Name)
+        and func.value.value in ("np", "numpy")
+    ):
+        return None
+    import numpy  # a runtime dependency; imported here, for NumPy models only
+
+    ufunc = getattr(numpy, func.attr.value, None)
+    return ufunc.nin if isinstance(ufunc, numpy.ufunc) else None
 
 
 def _augmented_names(module: cst.Module) -> list[cst.Name]:
