@@ -226,6 +226,24 @@ def test_copied_op_assign_only_on_an_array_of_its_own_against_closed_form():
             gradwright.generate(changed, ["f"], wrt=["w"])
 
 
+def test_a_copied_statement_reading_a_dict_of_numbers_is_a_located_error():
+    # the dict of numbers is a list (and a table of positions) in the output: a
+    # statement copied as written would index it with a key; before, the
+    # rejected copy also left its table of positions behind (an internal error)
+    source = (
+        'NAMES = ["a", "b"]\n'
+        "def f(x, y):\n"
+        '    d = {"a": 1.5, "b": 2.5}\n'
+        "    s = 0.0\n"
+        "    for name in NAMES:\n"
+        "        w = d[name] + len(name.upper())\n"
+        "        s += w * x + d[name] * y\n"
+        "    return s\n"
+    )
+    text = _error(source)
+    assert "<string>:6:" in text and "internal error" not in text
+
+
 def test_a_guard_reading_an_active_value_inside_a_loop():
     source = (
         "import math\n\n\n"

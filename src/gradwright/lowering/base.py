@@ -17,9 +17,10 @@ _STOP = "\0stop"
 #: primitives whose result may share memory with an operand (NumPy views)
 _VIEWS = frozenset({"copy", "npindex", "T", "reshape", "np.transpose"})
 
-#: where the open blocks ended (each with its length) and how many statements had
-#: been put in the middle of one: what a rejected statement's lowering rewinds to
-BlockMark = tuple[list[tuple[list[Stmt], int]], int]
+#: where the open blocks ended (each with its length), how many statements had
+#: been put in the middle of one and which dicts had a table of positions: what a
+#: rejected statement's lowering rewinds to
+BlockMark = tuple[list[tuple[list[Stmt], int]], int, frozenset]
 
 #: primitives whose value is True or False
 _TRUTH_OPS = frozenset({"lt", "le", "gt", "ge", "eq", "ne", "and", "or", "not"})

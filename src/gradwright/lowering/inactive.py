@@ -449,6 +449,7 @@ class InactiveLowering:
         local_here = written_here - bound_before if guard else set()
         reads: dict[str, Atom] = {}
         module_names: list[str] = []
+        dict_read: cst.Name | None = None
         for node in names.reads:
             name = node.value
             if name in reads or name in local_here:
@@ -468,6 +469,10 @@ class InactiveLowering:
                     )
                 atom = bound
                 assert isinstance(atom, (Var, Const))
+                if isinstance(atom, Var) and self.root_of(atom) in self.dict_keys:
+                    # the dict of numbers is a list in the output: the text
+                    # copied as written would index it with a key
+                    dict_read = dict_read or node
                 if not guard and not self.never_active(atom):
                     if quiet:
                         return node
@@ -503,6 +508,15 @@ class InactiveLowering:
                 " (the reverse sweep reads the values as they were)",
                 self.index.locate(changed),
                 "build a new value and bind it to a name instead",
+            )
+        if dict_read is not None:
+            if quiet:
+                return dict_read  # not copyable: the lowering's error stands
+            fail(
+                f"'{dict_read.value}' is a dict of numbers, which a statement"
+                " copied as written cannot read",
+                self.index.locate(dict_read),
+                f"read it in a statement of its own: `value = {dict_read.value}[key]`",
             )
         for node in _augmented_names(module):
             bound = self.env.get(node.value)

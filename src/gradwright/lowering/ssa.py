@@ -143,11 +143,15 @@ class _Lowerer(
         """Where the open blocks end now: a rejected statement's lowering rewinds
         to it. Lengths, not copies: copying every block before each statement
         made lowering quadratic in the length of the function."""
-        return [(block, len(block)) for block in self.blocks], len(self.inserted)
+        ends = [(block, len(block)) for block in self.blocks]
+        return ends, len(self.inserted), frozenset(self.positions)
 
     def rewind_blocks(self, mark: BlockMark) -> None:
-        """The open blocks as they were at ``mark``."""
-        ends, inserted = mark
+        """The open blocks as they were at ``mark`` (and the dicts' tables of
+        positions: one made by the rejected statement is gone with it)."""
+        ends, inserted, positions = mark
+        for root in set(self.positions) - positions:
+            del self.positions[root]
         for block, stmt in reversed(self.inserted[inserted:]):
             del block[next(k for k, s in enumerate(block) if s is stmt)]
         del self.inserted[inserted:]
