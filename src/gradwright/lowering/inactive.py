@@ -459,12 +459,11 @@ class InactiveLowering:
                 if isinstance(bound, _Unbound):
                     self.read_name(node)  # raises, located
                 if isinstance(bound, _Tuple):
-                    if quiet:
-                        return node  # not copyable: the lowering's error stands
-                    fail(
+                    return self._unreadable(
+                        node,
+                        quiet,
                         f"'{name}' is a tuple of {bound.size} numbers: a statement"
                         " copied as written cannot read it whole",
-                        self.index.locate(node),
                         f"unpack it first (a, b = {name}) and read the elements",
                     )
                 atom = bound
@@ -510,12 +509,11 @@ class InactiveLowering:
                 "build a new value and bind it to a name instead",
             )
         if dict_read is not None:
-            if quiet:
-                return dict_read  # not copyable: the lowering's error stands
-            fail(
+            return self._unreadable(
+                dict_read,
+                quiet,
                 f"'{dict_read.value}' is a dict of numbers, which a statement"
                 " copied as written cannot read",
-                self.index.locate(dict_read),
                 f"read it in a statement of its own: `value = {dict_read.value}[key]`",
             )
         for node in _augmented_names(module):
@@ -581,6 +579,15 @@ class InactiveLowering:
             self.fresh.discard(var)  # it may name an array it did not make
             self.env[name] = var
         return None
+
+    def _unreadable(
+        self, node: cst.Name, quiet: bool, message: str, hint: str
+    ) -> cst.Name:
+        """A name a copied statement cannot read: with ``quiet`` it is returned
+        (the statement is not copied; the lowering's own error stands)."""
+        if not quiet:
+            fail(message, self.index.locate(node), hint)
+        return node
 
     def lowered_or_copied_test(
         self, test: cst.BaseExpression, lower: Callable[[], Atom]
