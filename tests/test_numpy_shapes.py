@@ -145,6 +145,24 @@ CASES = [
         {"a": (2,), "b": (2,)},
         [[(2,), (2,)]],
     ),
+    (  # a row's max kept for broadcasting (a stable log-sum-exp); a column's min
+        numpy_model(
+            "a, b",
+            "m = np.max(a, axis=1, keepdims=True)\ns = a - m\n"
+            "lse = np.log(np.sum(np.exp(s), axis=1, keepdims=True))\n"
+            "return np.sum(b * (s - lse)) + np.sum(np.sin(np.min(a, axis=0)))",
+        ),
+        {"a": ("n", 4), "b": ("n", 4)},
+        [[(5, 4), (5, 4)], [(1, 4), (1, 4)]],
+    ),
+    (  # the max over the middle axis of three, and a whole vector's max
+        numpy_model(
+            "a, b",
+            "return np.sum(np.cos(np.max(a, axis=1)) * b) + np.amax(b) * np.sum(a)",
+        ),
+        {"a": (2, 3, "d"), "b": (2, "d")},
+        [[(2, 3, 4), (2, 4)], [(2, 3, 1), (2, 1)]],
+    ),
     (  # a loop carrying an array
         numpy_model(
             "a, b", "for k in range(3):\n    a = a * b + 1.0\nreturn np.sum(a)"
@@ -185,6 +203,31 @@ LOGISTIC = numpy_model(
     """,
 )
 LOGISTIC_SHAPES = {"w": (5,), "X": ("n", 5), "y": ("n",)}
+
+
+def test_a_max_along_an_axis_gives_each_line_first_extreme_its_adjoint() -> None:
+    # ties: the first maximal element of each row gets the row's adjoint, which is
+    # NumPy's documented np.argmax ("the indices of the first occurrence"); the
+    # closed form is w at that index and 0 elsewhere
+    source = numpy_model("x, w", "return np.sum(w * np.max(x, axis=1))")
+    text, shaped = generate(source, {"x": ("n", 4), "w": ("n",)}, ["x"])
+    assert "_gw_unextreme" not in text
+    assert "np.argmax(x, axis=1, keepdims=True) == np.arange(4)" in text
+    x = np.array([[1.0, 3.0, 3.0, 0.0], [2.0, 2.0, 2.0, 2.0], [0.0, -1.0, 5.0, 5.0]])
+    w = np.array([0.5, -2.0, 3.0])
+    _, (x_bar,) = shaped["f_grad"](x, w)
+    exact = np.zeros((3, 4))
+    exact[0, 1], exact[1, 0], exact[2, 2] = 0.5, -2.0, 3.0
+    assert np.array_equal(x_bar, exact)
+    # the same along the first axis, minimum, no keepdims
+    source = numpy_model("x, w", "return np.sum(w * np.min(x, axis=0))")
+    text, shaped = generate(source, {"x": (3, "d"), "w": ("d",)}, ["x"])
+    assert "np.arange(3).reshape(-1, 1)" in text
+    y = np.array([[1.0, 0.0, 2.0, 7.0], [1.0, 0.0, 3.0, 7.0], [0.0, 4.0, 2.0, 7.0]])
+    _, (x_bar,) = shaped["f_grad"](y, np.array([1.0, 2.0, 3.0, 4.0]))
+    exact = np.zeros((3, 4))
+    exact[2, 0], exact[0, 1], exact[0, 2], exact[0, 3] = 1.0, 2.0, 3.0, 4.0
+    assert np.array_equal(x_bar, exact)
 
 
 def test_logistic_regression_reads_like_hand_written_code() -> None:

@@ -142,7 +142,7 @@ def _differentiate(
         sweep = share_quotients(sweep, fresh_uid(ssa, sweep))
         sweep = float_entries(merge_zero_starts(fold_scales(sweep)), ssa)
     if fitter is not None:
-        sweep = plan_in_place(tidy(sweep, fitter), fitter)
+        sweep = plan_in_place(tidy(merge_zero_starts(sweep), fitter), fitter)
     return Compiled(checked, ssa, sweep, active, role, declared)
 
 

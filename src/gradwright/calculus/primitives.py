@@ -188,6 +188,7 @@ _SPECS += [
             " _gw_matmul_right _gw_part _gw_shaped np.reshape np.shape np.take"
             " _gw_uncumsum _gw_undiff _gw_stacked _gw_interp_slope"
             " np.zeros_like np.broadcast_to np.expand_dims np.einsum"
+            " np.argmax np.argmin np.arange"
         ).split()
     ),
     # a shape written out, (n, 5), for np.broadcast_to in the reverse sweep

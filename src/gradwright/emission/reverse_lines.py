@@ -187,7 +187,8 @@ class ReverseLines(EmitterBase):
                     continue
                 self.reads(expr)
                 if operator == "+=":
-                    trace.read(bar, self.bar_key(stmt.var))
+                    if lender is None or stmt.accumulate:  # (a lender's read is in)
+                        trace.read(bar, self.bar_key(stmt.var))
                     operator, value = self.subtracted(expr, value)
                 if added:
                     operator, value = self.subtracted(expr, value)

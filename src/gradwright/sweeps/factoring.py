@@ -72,7 +72,7 @@ def tidy(sweep: ReverseSweep, fitter: Fitter) -> ReverseSweep:
 
     def change(expr: Expr) -> Expr:
         expr = _smaller_side(substitute(expr, numbers), scaled)
-        return _factor(simplify(expr), fitter)
+        return _factor(simplify(_summed_out(expr, fitter)), fitter)
 
     for stmt in sweep.statements:
         stmt = _map(stmt, change)
@@ -144,6 +144,39 @@ def _smaller_side(expr: Expr, scaled: dict[Var, tuple[Expr, Expr]]) -> Expr:
                 inner = Apply(expr.op, args[:k] + (x,) + args[k + 1 :])
                 return Apply("mul", (c, inner))
     return Apply(expr.op, args)
+
+
+#: sums -> the position of the array they add up
+_SUMS = {"np.sum": 0, "np.einsum": 1}
+
+
+def _summed_out(expr: Expr, fitter: Fitter) -> Expr:
+    """``np.sum(-g, axis=1)`` as ``-np.sum(g, axis=1)``, and a number factor of a
+    summed array outside the sum: the sign or the number applies to the (smaller)
+    sum, not to every element."""
+    if not isinstance(expr, Apply):
+        return expr
+    expr = Apply(expr.op, tuple(_summed_out(a, fitter) for a in expr.args))
+    place = _SUMS.get(expr.op)
+    if place is None or len(expr.args) <= place:
+        return expr
+    summed = expr.args[place]
+    if not isinstance(summed, Apply):
+        return expr
+    if summed.op == "neg":
+        inner, factor = summed.args[0], None
+    elif summed.op == "mul" and any(_is_number(a, fitter) for a in summed.args):
+        k = 0 if _is_number(summed.args[0], fitter) else 1
+        inner, factor = summed.args[1 - k], summed.args[k]
+    else:
+        return expr
+    args = expr.args[:place] + (inner,) + expr.args[place + 1 :]
+    total = _summed_out(Apply(expr.op, args), fitter)
+    return Apply("neg", (total,)) if factor is None else Apply("mul", (factor, total))
+
+
+def _is_number(expr: Expr, fitter: Fitter) -> bool:
+    return fitter.shape(expr) == () and _made_of_numbers(expr, fitter)
 
 
 def _map(stmt: ReverseStmt, change) -> ReverseStmt:  # noqa: ANN001
