@@ -2085,6 +2085,18 @@ NP_REDUCE = [
     ("np.prod(np.tanh({0}))", None, lambda s: (), "np.prod"),
     ("np.max({0})", "np.max(_nmax(@0, {0}))", lambda s: (), "np.max"),
     ("np.min({0})", "np.min(_nmin(@0, {0}))", lambda s: (), "np.min"),
+    (
+        "np.max({0}, axis=1, keepdims=True)",
+        "np.max(_nmaxa(@0, {0}, 1), axis=1, keepdims=True)",
+        lambda s: (s[0], 1) if len(s) == 2 else None,
+        "max_axis",
+    ),
+    (
+        "np.min({0}, axis=0)",
+        "np.min(_nmina(@0, {0}, 0), axis=0)",
+        lambda s: s[1:] if len(s) == 2 else None,
+        "min_axis",
+    ),
     ("np.sum({0}, axis=0)", None, lambda s: s[1:] if len(s) == 2 else None, "axis"),
     ("np.mean({0}, axis=1)", None, lambda s: s[:1] if len(s) == 2 else None, "axis"),
     (
@@ -2250,6 +2262,22 @@ def _np_namespace(rec: _Recorder) -> dict:
         gaps.append((i, top_gap(v)))
         return v
 
+    def line_gap(v, axis: int) -> float:
+        # the closest any line along the axis comes to a tie for its extreme
+        ordered = np.sort(np.asarray(v), axis=axis)
+        if ordered.shape[axis] < 2:
+            return math.inf
+        top = np.take(ordered, [0, 1], axis=axis)
+        return float(np.min(np.diff(top, axis=axis))) if top.size else math.inf
+
+    def nmax_axis(i, v, axis):
+        gaps.append((i, line_gap(-np.asarray(v), axis)))
+        return v
+
+    def nmin_axis(i, v, axis):
+        gaps.append((i, line_gap(v, axis)))
+        return v
+
     def m(v):
         if np.size(v):
             mags.append(float(np.max(np.abs(v))))
@@ -2262,6 +2290,8 @@ def _np_namespace(rec: _Recorder) -> dict:
         "_nclip": nclip,
         "_nmax": nmax,
         "_nmin": nmin,
+        "_nmaxa": nmax_axis,
+        "_nmina": nmin_axis,
         "_m": m,
     }
 
