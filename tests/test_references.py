@@ -462,3 +462,31 @@ def test_value_is_the_primal_bit_for_bit(name: str) -> None:
         assert float.hex(value) == float.hex(primal) == float.hex(expected)
         assert math.copysign(1.0, value) == math.copysign(1.0, expected)
         assert same_bits(value, expected)
+
+
+# ---------------------------------------------------------------------------------
+# a power series with a count exponent, at the origin too
+
+SERIES = """
+def series(x, a, n):
+    total = 0.0
+    for j in range(n):
+        total += a / (j + 1) * x**j
+    return total
+"""
+
+
+@pytest.mark.parametrize("x", [0.0, -0.0, 0.5, -1.25])
+def test_power_series_with_a_count_exponent(x: float) -> None:
+    # x**0 is 1 for every x, so its slope is 0: the j == 0 term must not give
+    # 0 * x**-1 (ZeroDivisionError at x == 0). Reference: SymPy's diff of the
+    # series written out, evaluated exactly at the float x
+    ns = build(SERIES, "series", ["x", "a"])
+    value, (x_bar, a_bar) = ns["series_grad"](x, 0.75, 5)
+    assert value == ns["series"](x, 0.75, 5)
+    sx, sa = sympy.symbols("x a")
+    written = sum(sa / (j + 1) * sx**j for j in range(5))
+    at = {sx: sympy.Rational(x), sa: sympy.Rational(0.75)}
+    for got, wrt in ((x_bar, sx), (a_bar, sa)):
+        exact = float(sympy.diff(written, wrt).subs(at))
+        assert rel_err(got, exact) <= 1e-14, (wrt, got, exact)  # SymPy's diff

@@ -61,7 +61,10 @@ def _one_power(g: E, out: E, x: E, y: E) -> tuple[E | None, E]:
     # y * x**(y-1) as written: for arrays (np.where would compute both of
     # _power's sides) and for an exponent with no adjoint (a count: u**j)
     if number(y.node) is None:
-        return g * y * x ** (y - 1), where(x.eq(0.0), 0.0, g * out * log(x))
+        # x**0 is 1 for every x: at y == 0 the slope is 0, where x**(y-1) would
+        # raise at x == 0 (a polynomial's first term at the origin)
+        slope = where(y.eq(0), 0.0, g * y * x ** (y - 1))
+        return slope, where(x.eq(0.0), 0.0, g * out * log(x))
     return _power(g, out, x, y)
 
 
