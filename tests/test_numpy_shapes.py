@@ -643,3 +643,77 @@ def test_the_declared_shapes_are_read_once() -> None:
     # read from the cache, a violation is still refused
     with pytest.raises(ValueError, match=r"y has shape \(7,\).*\(6,\)"):
         ns["f_grad"](w, X, g.normal(size=7))
+
+
+# a copied statement's text, the shapes of the names it reads (n and d stand for
+# sizes), and the shape the text gives its target: None where it is not read
+TEXT_SHAPES = [
+    ("s = X.std(axis=0) + 1e-12", {"X": ("n", "d")}, ("d",)),
+    ("s = np.std(X, 0, ddof=1)", {"X": ("n", "d")}, ("d",)),
+    ("m = X.mean(axis=1, keepdims=True)", {"X": ("n", "d")}, ("n", 1)),
+    ("m = np.max(X, axis=(0, 1))", {"X": (2, "n", 3)}, (3,)),
+    ("t = np.median(X)", {"X": ("n", "d")}, ()),
+    ("z = np.zeros(len(x))", {"x": ("n",)}, ("n",)),
+    ("z = np.ones((X.shape[1], 3))", {"X": ("n", "d")}, ("d", 3)),
+    ("z = np.full(X.shape, 2.0)", {"X": ("n", "d")}, ("n", "d")),
+    ("z = np.zeros_like(X)", {"X": ("n", "d")}, ("n", "d")),
+    ("z = np.sqrt(np.maximum(X, 0.0)) * w", {"X": ("n", "d"), "w": ("d",)}, ("n", "d")),
+    ("z = (X - mu) / s", {"X": ("n", 3), "mu": (3,), "s": ()}, ("n", 3)),
+    ("z = X.T @ X", {"X": ("n", "d")}, ("d", "d")),
+    ("a, b = X.sum(axis=0), 2.0", {"X": ("n", "d")}, ("d",)),
+    ("z = np.linspace(0.0, 1.0, 7)", {}, (7,)),
+    # not read: a shape NumPy decides from values, or forms outside the list
+    ("z = np.zeros(k)", {"k": ()}, None),
+    ("z = X[mask]", {"X": ("n",), "mask": ("n",)}, None),
+    ("z = X.reshape(-1)", {"X": ("n", "d")}, None),
+    ("z = np.mean(X, axis=k)", {"X": ("n", "d"), "k": ()}, None),
+    ("z = np.concatenate([X, X])", {"X": ("n",)}, None),
+]
+
+
+@pytest.mark.parametrize("case", range(len(TEXT_SHAPES)))
+def test_shapes_read_from_copied_text_are_numpys(case: int) -> None:
+    from gradwright.sweeps.text_shapes import copied_shape
+
+    text, names, expected = TEXT_SHAPES[case]
+    target = text.split("=")[0].split(",")[0].strip()
+    got = copied_shape(text, target, names, ["np"])
+    assert got == expected
+    if expected is None:
+        return
+    # reference: NumPy itself, run on arrays of those shapes (n = 5, d = 4)
+    sizes = {"n": 5, "d": 4}
+    g = np.random.default_rng(case)
+    env = {
+        name: g.uniform(0.5, 1.5, tuple(sizes.get(k, k) for k in shape))
+        for name, shape in names.items()
+    }
+    env["np"] = np
+    exec(text, env)
+    assert np.shape(env[target]) == tuple(sizes.get(k, k) for k in expected)
+
+
+def test_a_copied_standardisation_keeps_the_shapes_known() -> None:
+    # sigma comes out of a copied statement (it reads no --wrt parameter)
+    source = numpy_model(
+        "w, X, y, lam",
+        """\
+        mu = X.mean(axis=0)
+        sigma = X.std(axis=0) + 1e-12
+        Xn = (X - mu) / sigma
+        r = Xn @ w - y
+        return np.mean(r * r) + lam * np.sum(w * w)
+        """,
+    )
+    declared = {"w": ("d",), "X": ("n", "d"), "y": ("n",), "lam": ()}
+    text, shaped = generate(source, declared, ["w"])
+    assert "_gw_" not in text.split("# reverse sweep")[1], text
+    assert "w_bar += 2.0 / n * (Xn.T @ r)" in text
+    g = np.random.default_rng(7)
+    X, y, w = g.normal(size=(6, 3)), g.normal(size=6), g.normal(size=3)
+    value, (w_bar,) = shaped["f_grad"](w, X, y, 0.1)
+    # reference: the closed form of ridge least squares' gradient (common practice),
+    # 2/n Xn^T (Xn w - y) + 2 lam w
+    Xn = (X - X.mean(axis=0)) / (X.std(axis=0) + 1e-12)
+    exact = 2.0 / 6 * Xn.T @ (Xn @ w - y) + 0.2 * w
+    np.testing.assert_allclose(w_bar, exact, rtol=1e-13)

@@ -23,7 +23,7 @@ from __future__ import annotations
 
 import re
 from collections.abc import Callable, Iterable, Mapping
-from dataclasses import dataclass, replace
+from dataclasses import replace
 
 from gradwright.calculus.numpy_rules import BROADCASTING
 from gradwright.calculus.primitives import OPS
@@ -33,7 +33,6 @@ from gradwright.ir import (
     Atom,
     Branch,
     Const,
-    Copied,
     Expr,
     Let,
     Loop,
@@ -42,18 +41,15 @@ from gradwright.ir import (
     Var,
     const,
 )
-
-Dim = int | str
-
-
-@dataclass(frozen=True)
-class Like:
-    """A shape known only to equal the shape of the value ``key`` names."""
-
-    key: object
-
-
-Shape = tuple[Dim, ...] | Like
+from gradwright.sweeps.shape_algebra import (
+    Dim,
+    Like,
+    Shape,
+    broadcast,
+    matmul_shape,
+    nested_shape,
+)
+from gradwright.sweeps.text_shapes import copied_shape
 
 #: one-argument primitives whose result has the argument's shape (NumPy's
 #: elementwise functions; the scalar rules' functions print as NumPy's)
@@ -78,27 +74,6 @@ _MATMUL = frozenset({"matmul", "np.matmul", "np.dot"})
 
 def is_static(shape: Shape | None) -> bool:
     return isinstance(shape, tuple)
-
-
-def broadcast(a: Shape, b: Shape) -> Shape | None:
-    """The shape of ``a + b``, or None where it is not known."""
-    if a == () or a == b:
-        return b
-    if b == ():
-        return a
-    if not (isinstance(a, tuple) and isinstance(b, tuple)):
-        return None
-    out: list[Dim] = []
-    for k in range(1, max(len(a), len(b)) + 1):
-        x = a[-k] if k <= len(a) else 1
-        y = b[-k] if k <= len(b) else 1
-        if x == y or y == 1:
-            out.append(x)
-        elif x == 1:
-            out.append(y)
-        else:  # two names, or a name and a size: which one broadcasts is not known
-            return None
-    return tuple(reversed(out))
 
 
 def keyword(args: Iterable[Atom], key: str) -> str | None:
@@ -137,14 +112,6 @@ def reduce_shape(shape: Shape, args: tuple[Atom, ...]) -> Shape | None:
     return tuple(d for k, d in enumerate(shape) if k not in axes)
 
 
-def matmul_shape(a: Shape, b: Shape) -> Shape | None:
-    if not (isinstance(a, tuple) and isinstance(b, tuple)):
-        return None
-    if not (1 <= len(a) <= 2 and 1 <= len(b) <= 2) or a[-1] != b[0]:
-        return None
-    return a[:-1] + b[1:]
-
-
 class ShapeTable:
     """The shape of every value of one function, from its SSA and the declared
     shapes of its parameters."""
@@ -162,8 +129,8 @@ class ShapeTable:
         self.data = dict(data or {})
         self.numpy_names = numpy_names
         self.of: dict[Var, Shape] = {}
-        #: copied statements (``array = np.array([1.0, 2.0])``) by their value
-        self.copied: dict[Var, Copied] = {}
+        #: copied statements (``sigma = X.std(axis=0)``) by their value
+        self.copied: dict[Var, Let] = {}
         for p in params:
             self.of[p] = declared[p.base] if p.base in declared else Like(p.uid)
         self._block(body)
@@ -220,13 +187,20 @@ class ShapeTable:
     def _let(self, let: Let) -> Shape | None:
         op, args = let.op, let.args
         if op == "copied" and let.copied is not None:
-            self.copied[let.target] = let.copied
+            self.copied[let.target] = let
             return None
         if op == "written":
-            copied = self.copied.get(args[0]) if isinstance(args[0], Var) else None
-            if copied is not None and len(copied.writes) == 1:
-                return literal_shape(copied.text, self.numpy_names)
-            return None
+            made = self.copied.get(args[0]) if isinstance(args[0], Var) else None
+            if made is None or made.copied is None:
+                return None
+            copied = made.copied
+            name = next((n for n, v in copied.writes if v == let.target), None)
+            if name is None or copied.guard:
+                return None
+            names: dict[str, Shape] = {n: () for n in self.numbers}
+            names.update(self.data)
+            names.update(zip(copied.reads, map(self.atom, made.args), strict=False))
+            return copied_shape(copied.text, name, names, self.numpy_names)
         shapes = [self.atom(a) for a in args if not _is_keyword(a)]
         if op in _NUMBER:
             return ()
@@ -362,7 +336,7 @@ def literal_shape(statement: str, numpy_names: Iterable[str]) -> Shape | None:
         return None
     name, first = call.func.attr, call.args[0]
     if name == "array" and len(call.args) == 1:
-        return _nested_shape(first)
+        return nested_shape(first)
     if name in ("zeros", "ones", "full") and len(call.args) == (
         2 if name == "full" else 1
     ):
@@ -384,23 +358,6 @@ def _int_literal(node: object) -> int | None:
     if isinstance(node, ast.Constant) and type(node.value) is int:
         return node.value
     return None
-
-
-def _nested_shape(node: object) -> tuple[int, ...] | None:
-    """The shape of nested lists of number literals (rectangular), else None."""
-    import ast
-
-    if isinstance(node, ast.UnaryOp) and isinstance(node.op, (ast.USub, ast.UAdd)):
-        node = node.operand
-    if isinstance(node, ast.Constant):
-        ok = type(node.value) in (int, float)
-        return () if ok else None
-    if not isinstance(node, (ast.List, ast.Tuple)) or not node.elts:
-        return None
-    inner = [_nested_shape(e) for e in node.elts]
-    if inner[0] is None or any(i != inner[0] for i in inner):
-        return None
-    return (len(inner), *inner[0])
 
 
 def _is_keyword(atom: Atom) -> bool:
