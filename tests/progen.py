@@ -2186,6 +2186,24 @@ def numpy_programs(draw, family: str = "numpy") -> Case:
             funcs.append(Func(f"g{h}", list(own)[: len(given)], hbody))
             form = f"g{h}({', '.join(given)})"
             calls.append((Ex(form.replace("{", "{{"), tag="array_helper"), shape))
+    if draw(st.integers(0, 3)) == 0:
+        # an array made from a parameter's size only: copied as written, its
+        # shape read from its text where the form allows
+        sized = [p for p in params if names[p]]
+        if sized:
+            p = draw(st.sampled_from(sized))
+            form, shape = draw(
+                st.sampled_from(
+                    [
+                        (f"np.ones_like({p}) * 1.5", names[p]),
+                        (f"np.full({p}.shape, 0.5)", names[p]),
+                        (f"np.zeros(len({p})) + 0.75", names[p][:1]),
+                        (f"np.arange(len({p})) * 0.25 + 1.0", names[p][:1]),
+                    ]
+                )
+            )
+            body.append(Assign(["c0"], [Ex(form, tag="copied_array")]))
+            names["c0"] = shape
     for k in range(draw(st.integers(1, 4))):
         e, shape = draw(np_expr(names, 2))
         if calls and draw(st.integers(0, 2)):
@@ -2199,7 +2217,17 @@ def numpy_programs(draw, family: str = "numpy") -> Case:
             target = f"u{k}"
         body.append(Assign([target], [e]))
         names[target] = shape
-    recent = [t for s in body[-2:] for t in s.targets] or params
+    if draw(st.integers(0, 3)) == 0:
+        # a loop carrying an array: each trip mixes in a term of its shape or less
+        t = draw(st.sampled_from(sorted(names)))
+        fits = {n: s for n, s in names.items() if s == () or s == names[t]}
+        e, shape = draw(np_expr(fits, 1))
+        if _fits_into(shape, names[t]):
+            step = Ex("{0} * 0.75 + np.tanh({1})", (leaf(t), e), tag="array_loop")
+            body.append(For("k", "range(2)", [Assign([t], [step])]))
+    recent = [
+        t for s in body[-2:] for t in (s.targets if isinstance(s, Assign) else [])
+    ] or params
     e, shape = draw(np_expr({n: names[n] for n in recent}, 1))
     if shape:
         e = Ex(draw(st.sampled_from(("np.sum({0})", "np.mean({0})"))), (e,))
@@ -2229,6 +2257,14 @@ def numpy_programs(draw, family: str = "numpy") -> Case:
         family,
         shapes,
     )
+
+
+def _fits_into(shape: tuple, into: tuple) -> bool:
+    """An array of ``shape`` broadcasts to ``into`` without growing it."""
+    try:
+        return np.broadcast_shapes(into, shape) == into
+    except ValueError:
+        return False
 
 
 def _np_namespace(rec: _Recorder) -> dict:
@@ -2342,6 +2378,11 @@ MP_NUMPY = types.SimpleNamespace(
     max=np.max,
     min=np.min,
     dot=np.dot,
+    # constructors the programs copy as written: exact in floats already
+    ones_like=lambda a: np.ones(np.shape(a)),
+    full=np.full,
+    zeros=np.zeros,
+    arange=np.arange,
 )
 
 

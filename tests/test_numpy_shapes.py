@@ -717,3 +717,45 @@ def test_a_copied_standardisation_keeps_the_shapes_known() -> None:
     Xn = (X - X.mean(axis=0)) / (X.std(axis=0) + 1e-12)
     exact = 2.0 / 6 * Xn.T @ (Xn @ w - y) + 0.2 * w
     np.testing.assert_allclose(w_bar, exact, rtol=1e-13)
+
+
+def test_a_loop_carried_adjoint_keeps_its_known_shape() -> None:
+    # pred's adjoint enters the loop with pred's shape and no trip changes it, so
+    # the loop needs no np.broadcast_to; np.zeros(len(x)) is copied as written
+    source = numpy_model(
+        "c, x, y",
+        """\
+        pred = np.zeros(len(x))
+        for k in range(4):
+            pred = pred + c[k] * x**k
+        return np.mean((pred - y) ** 2)
+        """,
+    )
+    text, shaped = generate(source, {"c": (4,), "x": ("n",), "y": ("n",)}, ["c"])
+    reverse = text.split("# reverse sweep")[1]
+    assert "broadcast_to" not in reverse and "_gw_unbroadcast" not in reverse
+    g = np.random.default_rng(3)
+    c, x, y = g.normal(size=4), g.normal(size=9), g.normal(size=9)
+    _, (c_bar,) = shaped["f_grad"](c, x, y)
+    # reference: the normal equations' gradient of a polynomial least-squares fit
+    # (common practice): 2/n V^T (V c - y), V the Vandermonde matrix of x
+    V = np.vander(x, 4, increasing=True)
+    np.testing.assert_allclose(c_bar, 2.0 / 9 * V.T @ (V @ c - y), rtol=1e-12)
+
+
+def test_arrays_shaped_like_an_active_array_are_copied() -> None:
+    # np.ones_like(x) reads x only for its shape and type: no derivative flows
+    # through it, so it is copied as written (and refused with an active fill)
+    source = numpy_model(
+        "a, x",
+        "z = np.ones_like(x) * 1.5\nreturn np.sum(np.full_like(x, 2.0) * z * x * a)",
+    )
+    text, shaped = generate(source, {"a": (), "x": ("n",)})
+    assert "z = ones_like * 1.5" in text or "np.ones_like(x)" in text
+    x = np.array([0.5, -1.0, 2.0])
+    _, (a_bar, x_bar) = shaped["f_grad"](0.7, x)
+    # reference: d/da sum(3 x a) = 3 sum(x), d/dx = 3 a (closed form)
+    assert a_bar == pytest.approx(3.0 * np.sum(x), rel=1e-15)
+    np.testing.assert_allclose(x_bar, 3.0 * 0.7 * np.ones(3), rtol=1e-15)
+    with pytest.raises(GradwrightError, match="has no derivative here"):
+        generate(numpy_model("a, x", "return np.sum(np.full_like(x, a) * x)"), None)

@@ -326,16 +326,17 @@ def _product(op: str, a: Expr, b: Expr) -> Expr:
         return folded
     na, nb = number(a), number(b)
     if op == "div":
-        if _is(b, 1):
+        if _is(b, 1) and not _boolean(a):
             return a
         if _is(a, 0):
             return const(0.0)
         return Apply("div", (a, b))
     if _is(a, 0) or _is(b, 0):
         return const(0.0)
-    if _is(a, 1):
+    # (a comparison times 1.0 is a float, or an array of floats; alone, a bool)
+    if _is(a, 1) and not _boolean(b):
         return b
-    if _is(b, 1):
+    if _is(b, 1) and not _boolean(a):
         return a
     # 1.0 / x * y is y / x: one rounding instead of two, one operation fewer
     for recip, other in ((a, b), (b, a)):
@@ -362,6 +363,12 @@ def _product(op: str, a: Expr, b: Expr) -> Expr:
     if _power_of_two(na) and _is_chain(b):
         return _scale_leftmost(a, b)
     return Apply("mul", (a, b))
+
+
+def _boolean(expr: Expr) -> bool:
+    return isinstance(expr, Apply) and (
+        expr.op in _COMPARISONS or expr.op in ("and", "or", "not")
+    )
 
 
 def _leading_power_of_two(expr: Expr) -> tuple[Expr, Expr] | None:

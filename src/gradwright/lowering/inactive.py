@@ -326,19 +326,29 @@ def _augmented_names(module: cst.Module) -> list[cst.Name]:
     return found
 
 
+#: NumPy's constructors of an array shaped like their first argument
+_LIKE_CONSTRUCTORS = frozenset({"zeros_like", "ones_like", "empty_like", "full_like"})
+
+
 def _size_reads(module: cst.Module) -> set[int]:
     """Names read only for their size (``len(x)``, ``x.shape``, ``x.size``,
-    ``x.ndim``): the size of an array has no derivative."""
+    ``x.ndim``, the array ``np.zeros_like(x)`` and the other ``*_like`` copy the
+    shape and type of): the size of an array has no derivative."""
     found: set[int] = set()
 
     class Check(cst.CSTVisitor):
         def visit_Call(self, node: cst.Call) -> None:
             func = node.func
+            sized = (isinstance(func, cst.Name) and func.value == "len") or (
+                isinstance(func, cst.Attribute)
+                and func.attr.value in _LIKE_CONSTRUCTORS
+            )
             if (
-                isinstance(func, cst.Name)
-                and func.value == "len"
-                and len(node.args) == 1
+                sized
+                and node.args
+                and node.args[0].keyword is None
                 and isinstance(node.args[0].value, cst.Name)
+                and (len(node.args) == 1 or not isinstance(func, cst.Name))
             ):
                 found.add(id(node.args[0].value))
 

@@ -30,7 +30,10 @@ _CONSTANTS = {"pi": 3.141592653589793, "e": 2.718281828459045, "inf": float("inf
 
 
 #: array constructors: inactive values, copied as written where they appear
-_CONSTRUCTORS = frozenset({"zeros", "ones", "full", "linspace", "arange", "array"})
+_CONSTRUCTORS = frozenset(
+    {"zeros", "ones", "full", "linspace", "arange", "array"}
+    | {"zeros_like", "ones_like", "empty_like", "full_like"}
+)
 
 
 def literal_value_or_none(node: cst.BaseExpression) -> float | int | None:

@@ -320,6 +320,8 @@ class Fitter:
             trailing = (const(1),) * (len(shape) - 1 - axis)
             positions = Apply("reshape", (positions, const(-1), *trailing))
         mask = Apply("eq", (pick, positions))
+        if isinstance(simplify(g), Const):  # a bool mask times 1.0 would stay bool
+            return (Apply("ifexp", (g, mask, const(0.0))),) + (None,) * (len(args) - 1)
         return (Apply("mul", (mask, g)),) + (None,) * (len(args) - 1)
 
     def _expanded(

@@ -617,12 +617,17 @@ class _Reverse:
         ]
         carries = {phi: self.new_carry(phi) for phi in scalar_phis}
         fitter = self.fitter
+        #: the shape each carried adjoint enters the loop with, where known
+        entry: dict[Var, tuple] = {}
         for phi, carry in carries.items():
             assert phi.exit is not None
             value: Expr = Bar(phi.exit) if phi.exit in self.has else const(0.0)
             out.append(AdjointAssign(carry, value, False, loop.origin))
             self.has.add(carry)
             if fitter is not None:  # it changes from one iteration to the next
+                shape = fitter.shape(value)
+                if isinstance(shape, tuple):
+                    entry[carry] = shape
                 fitter.forget(carry)
         inside = defined_in(loop.body) | {phi.target for phi in loop.carried}
         if self.dry:  # only which values gain adjoint matters here
@@ -637,11 +642,27 @@ class _Reverse:
         before = set(self.has)
         saved_uid = self.next_uid
         state = fitter.snapshot() if fitter is not None else {}
-        self.dry = True
-        self.loop_body(loop, carries)
-        self.dry = False
-        if fitter is not None:
-            fitter.restore(state)
+        while True:
+            # carried adjoints assumed to keep their entry shape through the body;
+            # an assumption the body breaks is dropped and the body tried again
+            for carry, shape in entry.items():
+                fitter.adj[carry] = shape  # type: ignore[union-attr]
+            self.dry = True
+            self.loop_body(loop, carries)
+            self.dry = False
+            kept = {
+                carry: shape
+                for phi, carry in carries.items()
+                if carry in entry and phi.target in self.has
+                for shape in [entry[carry]]
+                if fitter is not None and fitter.adj.get(phi.target) == shape
+            }
+            if fitter is not None:
+                fitter.restore(state)
+            if kept == entry:
+                break
+            entry = kept
+            self.has, self.next_uid = set(before), saved_uid
         outer = sorted(
             v for v in self.has - before if v not in inside and v not in self.carries
         )
@@ -649,10 +670,13 @@ class _Reverse:
         for var in outer:
             out.append(AdjointAssign(var, const(0.0), False, loop.origin))
             self.has.add(var)
+        if fitter is not None:
+            fitter.adj.update(entry)
         body_out = self.loop_body(loop, carries)
         if fitter is not None:  # what a loop adds depends on its trip count
             for var in [*outer, *carries.values()]:
                 fitter.forget(var)
+            fitter.adj.update(entry)  # a carried adjoint whose shape no trip changes
         self.has = {v for v in self.has if v not in inside}
         out.append(ReverseLoop(loop, tuple(body_out), loop.origin))
         out += self.handed_over(loop)
