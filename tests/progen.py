@@ -2086,6 +2086,18 @@ NP_REDUCE = [
     ("np.max({0})", "np.max(_nmax(@0, {0}))", lambda s: (), "np.max"),
     ("np.min({0})", "np.min(_nmin(@0, {0}))", lambda s: (), "np.min"),
     (
+        "np.sum({0}[:, None] * np.tanh({0})[None, :], axis=0)",
+        None,
+        lambda s: s if len(s) == 1 else None,
+        "newaxis",
+    ),
+    (
+        "np.sum({0}, axis=1, keepdims=True)[:, 0]",
+        None,
+        lambda s: s[:1] if len(s) == 2 else None,
+        "drop_axis",
+    ),
+    (
         "np.max({0}, axis=1, keepdims=True)",
         "np.max(_nmaxa(@0, {0}, 1), axis=1, keepdims=True)",
         lambda s: (s[0], 1) if len(s) == 2 else None,

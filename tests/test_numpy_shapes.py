@@ -155,6 +155,16 @@ CASES = [
         {"a": ("n", 4), "b": ("n", 4)},
         [[(5, 4), (5, 4)], [(1, 4), (1, 4)]],
     ),
+    (  # new axes for an outer difference, and a kept axis dropped again
+        numpy_model(
+            "a, b, c",
+            "z = (a[:, None] - b[None, :]) / c[np.newaxis, :]\n"
+            "p = np.max(z, axis=1, keepdims=True)\n"
+            "return np.sum(np.tanh(z)) + np.sum(p[:, 0] * a)",
+        ),
+        {"a": ("n",), "b": ("k",), "c": ("k",)},
+        [[(5,), (3,), (3,)], [(1,), (1,), (1,)]],
+    ),
     (  # the max over the middle axis of three, and a whole vector's max
         numpy_model(
             "a, b",
@@ -717,6 +727,18 @@ def test_a_copied_standardisation_keeps_the_shapes_known() -> None:
     Xn = (X - X.mean(axis=0)) / (X.std(axis=0) + 1e-12)
     exact = 2.0 / 6 * Xn.T @ (Xn @ w - y) + 0.2 * w
     np.testing.assert_allclose(w_bar, exact, rtol=1e-13)
+
+
+def test_new_axes_read_like_hand_written_code() -> None:
+    # x[:, None] and x[None, :] are the same elements: their adjoints are sums
+    # over the broadcast axis, not scatters into zeros
+    source = numpy_model(
+        "a, b", "return np.sum(np.tanh(a[:, None] - b[None, :]) * b[None, :])"
+    )
+    text, _ = generate(source, {"a": ("n",), "b": ("k",)})
+    reverse = text.split("# reverse sweep")[1]
+    assert "_gw_" not in reverse and "broadcast_to" not in reverse, reverse
+    assert 'np.einsum("ij->j"' in reverse
 
 
 def test_a_loop_carried_adjoint_keeps_its_known_shape() -> None:

@@ -316,11 +316,8 @@ class NumpyLowering:
         for element in node.slice:
             piece = element.slice
             if isinstance(piece, cst.Index) and self.new_axis(piece.value):
-                fail(
-                    "indexing with None (np.newaxis) is not supported",
-                    self.index.locate(piece.value),
-                    "use .reshape(...) to add the axis",
-                )
+                pieces.append("None")  # a new axis of size 1 (np.newaxis too)
+                continue
             if isinstance(piece, cst.Index):
                 pieces.append(bound(piece.value))
             else:

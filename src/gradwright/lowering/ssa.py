@@ -175,7 +175,11 @@ class _Lowerer(
             self.list_root[target] = (
                 self.root_of(args[0]) if op in IN_PLACE else target  # type: ignore[arg-type]
             )
-        if op not in _VIEWS:
+        # (a name bound to a number, `cost = 0.0`, holds no array another shares)
+        number = (
+            op == "copy" and isinstance(args[0], Const) and args[0].value is not None
+        )
+        if op not in _VIEWS or number:
             self.fresh.add(target)
         if op == "copy":
             self.copy_of[target] = args[0]

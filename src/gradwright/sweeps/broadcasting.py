@@ -20,7 +20,7 @@ from __future__ import annotations
 
 from collections.abc import Mapping
 
-from gradwright.calculus.algebra import simplify
+from gradwright.calculus.algebra import number, simplify
 from gradwright.calculus.rules import ELEMENTWISE_OPS
 from gradwright.ir import Apply, Atom, Bar, Const, Expr, Var, const
 from gradwright.sweeps.shapes import (
@@ -127,6 +127,16 @@ class Fitter:
             if whole is None:
                 return None
             return index_shape(whole, pattern, args[2:], self.table.atom)
+        if op == "np.expand_dims":
+            inner = self.shape(args[0])
+            axes = (
+                reduced_axes(keyword(args, "axis"), len(inner) + 1)
+                if isinstance(inner, tuple)
+                else None
+            )
+            if axes is None or len(axes) != 1:
+                return None
+            return inner[: axes[0]] + (1,) + inner[axes[0] :]  # type: ignore[index]
         if op == "np.arange":  # positions along an axis: np.arange(n)
             size = args[0]
             if isinstance(size, Const) and isinstance(size.value, int):
@@ -256,6 +266,8 @@ class Fitter:
             return self._reduction(op, g, args)
         if op in _EXTREMES:
             return self._extreme(op, g, args)
+        if op == "npindex":
+            return self._axes_only(g, args)
         if op in _MATMUL:
             return self._matmul(g, args)
         if op in ("T", "np.transpose") and self.shape(g) == ():
@@ -286,6 +298,58 @@ class Fitter:
                 return None
             g = Apply("div", (g, count))
         return (g, *rest)
+
+    def _axes_only(
+        self, g: Expr, args: tuple[Atom, ...]
+    ) -> tuple[Expr | None, ...] | None:
+        """The adjoint of an index that only adds axes (``x[:, None]``) or drops
+        axes of size 1 (``peak[:, 0]`` of an (n, 1) array): the same elements, so
+        the adjoint is ``g`` indexed the other way (``g[:, 0]``, ``g[:, None]``),
+        not a scatter into zeros."""
+        shape = self.table.atom(args[0])
+        pattern = args[1].text if isinstance(args[1], Const) else ""
+        if not isinstance(shape, tuple) or not pattern:
+            return None
+        dims = iter(shape)
+        values = iter(args[2:])
+        back: list[str] = []
+        for piece in (p.strip() for p in pattern.split(",")):
+            if piece == "None":
+                back.append("{}")  # index 0 of the axis it added
+                continue
+            dim = next(dims, None)
+            if piece == ":" and dim is not None:
+                back.append(":")
+            elif piece == "{}" and dim == 1 and number(next(values)) in (0, -1):
+                back.append("None")
+            else:
+                return None
+        result = index_shape(shape, pattern, args[2:], self.table.atom)
+        if result is None or back.count(":") == len(back):
+            return None
+        rest = (None,) * (len(args) - 1)
+        if self.shape(g) == ():  # a number stands for its broadcast either way
+            return (g, *rest)
+        added = tuple(k for k, piece in enumerate(back) if piece == "{}")
+        if (
+            "None" not in back
+            and isinstance(g, Apply)
+            and g.op == "np.sum"
+            and keyword(g.args, "keepdims") == "True"
+            and reduced_axes(keyword(g.args, "axis"), len(result)) == added
+        ):
+            # np.sum(h, axis=0, keepdims=True)[0, :] is np.sum(h, axis=0)
+            summed = g.args[0]
+            if added == (0,) and self.shape(summed) == result and len(result) == 2:
+                return (column_sums(summed), *rest)
+            return (Apply("np.sum", (summed, axis_text(added))), *rest)
+        if self.shape(g) != result:
+            wanted = shape_expr(result, self.sizes)  # type: ignore[arg-type]
+            if wanted is None:
+                return None
+            g = Apply("np.broadcast_to", (g, wanted))
+        zeros = (const(0),) * back.count("{}")
+        return (Apply("npindex", (g, Const(", ".join(back), None), *zeros)), *rest)
 
     def _extreme(
         self, op: str, g: Expr, args: tuple[Atom, ...]

@@ -37,7 +37,8 @@ from gradwright.ir import (
     const,
     walk,
 )
-from gradwright.sweeps.broadcasting import Fitter
+from gradwright.sweeps.broadcasting import Fitter, column_sums
+from gradwright.sweeps.shapes import axis_text, keyword, reduced_axes
 from gradwright.sweeps.optimize import substitute
 
 _ARITHMETIC = frozenset({"add", "sub", "mul", "div", "neg"})
@@ -72,7 +73,7 @@ def tidy(sweep: ReverseSweep, fitter: Fitter) -> ReverseSweep:
 
     def change(expr: Expr) -> Expr:
         expr = _smaller_side(substitute(expr, numbers), scaled)
-        return _factor(simplify(_summed_out(expr, fitter)), fitter)
+        return _factor(simplify(_unkept(_summed_out(expr, fitter), fitter)), fitter)
 
     for stmt in sweep.statements:
         stmt = _map(stmt, change)
@@ -173,6 +174,43 @@ def _summed_out(expr: Expr, fitter: Fitter) -> Expr:
     args = expr.args[:place] + (inner,) + expr.args[place + 1 :]
     total = _summed_out(Apply(expr.op, args), fitter)
     return Apply("neg", (total,)) if factor is None else Apply("mul", (factor, total))
+
+
+def _unkept(expr: Expr, fitter: Fitter) -> Expr:
+    """``np.sum(g, axis=0, keepdims=True)[0, :]`` as ``np.sum(g, axis=0)`` (a
+    sign between them too): the kept axes taken off again by indexing them at 0."""
+    if not isinstance(expr, Apply):
+        return expr
+    expr = Apply(expr.op, tuple(_unkept(a, fitter) for a in expr.args))
+    if expr.op != "npindex" or not isinstance(expr.args[1], Const):
+        return expr
+    inner, negative = expr.args[0], False
+    if isinstance(inner, Apply) and inner.op == "neg":
+        inner, negative = inner.args[0], True
+    if not (
+        isinstance(inner, Apply)
+        and inner.op == "np.sum"
+        and keyword(inner.args, "keepdims") == "True"
+    ):
+        return expr
+    pieces = [p.strip() for p in expr.args[1].text.split(",")]
+    values = iter(expr.args[2:])
+    taken = []
+    for k, piece in enumerate(pieces):
+        if piece == "{}" and number(next(values)) == 0:
+            taken.append(k)
+        elif piece != ":":
+            return expr
+    shape = fitter.shape(inner.args[0])
+    if not isinstance(shape, tuple) or len(pieces) != len(shape):
+        return expr
+    if reduced_axes(keyword(inner.args, "axis"), len(shape)) != tuple(taken):
+        return expr
+    if taken == [0] and len(shape) == 2:
+        summed = column_sums(inner.args[0])
+    else:
+        summed = Apply("np.sum", (inner.args[0], axis_text(tuple(taken))))
+    return Apply("neg", (summed,)) if negative else summed
 
 
 def _is_number(expr: Expr, fitter: Fitter) -> bool:

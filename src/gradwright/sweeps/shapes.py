@@ -263,15 +263,22 @@ def index_shape(
     shape_of: Callable[[Atom], Shape],
 ) -> Shape | None:
     """The shape of ``x[...]`` (pattern as lowering writes it: ``{}`` an index,
-    ``{}:{}`` a slice, ``:`` all): an index drops its axis, a slice with constant
-    bounds of a known size keeps its length; anything else (an array as index, a
-    slice of a named size) is not known."""
+    ``{}:{}`` a slice, ``:`` all, ``None`` a new axis): an index drops its axis, a
+    slice with constant bounds of a known size keeps its length, ``None`` adds an
+    axis of size 1; anything else (an array as index, a slice of a named size) is
+    not known."""
     pieces = [piece.strip() for piece in pattern.split(",")]
-    if not isinstance(array, tuple) or len(pieces) > len(array):
+    taking = [piece for piece in pieces if piece != "None"]
+    if not isinstance(array, tuple) or len(taking) > len(array):
         return None
     given = iter(values)
+    dims = iter(array)
     out: list[Dim] = []
-    for dim, piece in zip(array[: len(pieces)], pieces, strict=True):
+    for piece in pieces:
+        if piece == "None":
+            out.append(1)
+            continue
+        dim = next(dims)
         if piece == "{}":
             if shape_of(next(given)) != ():  # an array of indices picks elements
                 return None
@@ -291,7 +298,7 @@ def index_shape(
         if not isinstance(dim, int) or bounds[2:] == [0]:
             return None
         out.append(len(range(dim)[slice(*bounds)]))
-    return (*out, *array[len(pieces) :])
+    return (*out, *array[len(taking) :])
 
 
 def _data_shape(text: str, data: Mapping[str, tuple[Dim, ...]]) -> Shape | None:
