@@ -38,8 +38,8 @@ from gradwright.ir import (
     walk,
 )
 from gradwright.sweeps.broadcasting import Fitter, column_sums
-from gradwright.sweeps.shapes import axis_text, keyword, reduced_axes
 from gradwright.sweeps.optimize import substitute
+from gradwright.sweeps.shapes import axis_text, keyword, reduced_axes
 
 _ARITHMETIC = frozenset({"add", "sub", "mul", "div", "neg"})
 
