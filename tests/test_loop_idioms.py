@@ -368,3 +368,31 @@ def spot(f1):
     # d/df1 sum (u - h/f1)^2 = sum 2 (u - h/f1) h / f1^2, by hand
     want = sum(2 * (u - h / 40.0) * h / 40.0**2 for h, u in rays)
     assert rel_err(f1_bar, want) < 1e-14
+
+
+ROWS = """
+def weighted_fit(a, b, rows):
+    total = 0.0
+    for k, (x, y) in enumerate(rows):
+        total += (k + 1) * (a * x + b - y) ** 2
+    for x, _ in rows:
+        total += 0.5 * (a * x) ** 2
+    return total
+"""
+
+
+def test_rows_of_a_list_parameter_unpacked_in_the_loop_target():
+    # `for k, (x, y) in enumerate(rows)` over a list of rows the caller passes:
+    # printed as the model unpacks them, not read item by item
+    text = gradwright.generate(ROWS, ["weighted_fit"], ["a", "b"])
+    assert "x, y = rows[k]" in text
+    ns = build(ROWS, "weighted_fit", ["a", "b"])
+    rows = [(0.5, 1.25), (1.5, 2.0), (-0.75, 0.25)]
+    value, (a_bar, b_bar) = ns["weighted_fit_grad"](1.1, -0.3, rows)
+    assert value == ns["weighted_fit"](1.1, -0.3, rows)
+    # closed form (the derivative of each squared residual, by hand)
+    a, b = 1.1, -0.3
+    r = [(k + 1, x, a * x + b - y) for k, (x, y) in enumerate(rows)]
+    exact_a = sum(2 * w * e * x for w, x, e in r) + sum(a * x * x for x, _ in rows)
+    exact_b = sum(2 * w * e for w, x, e in r)
+    assert rel_err(a_bar, exact_a) <= 1e-14 and rel_err(b_bar, exact_b) <= 1e-14

@@ -151,7 +151,14 @@ class ForwardLines(EmitterBase):
         whole = statements[position]
         assert isinstance(whole, Let)
         size = dict(layout.function.tuple_sizes).get(whole.target)
-        row = whole.op == "dataitem" and whole.target.kind == "temp"
+        after = statements[position + 1] if position + 1 < len(statements) else None
+        row = (whole.op == "dataitem" and whole.target.kind == "temp") or (
+            # a row of a list the model was given, read by a loop target
+            whole.op == "getitem"
+            and isinstance(after, Let)
+            and after.op == "dataitem"
+            and after.args == (whole.target, Const("0", 0))
+        )
         if size is None and not row:
             return []
         op = "dataitem" if row else "getitem"

@@ -495,6 +495,10 @@ class LoopLowering:
             return
         assert isinstance(target, (cst.Tuple, cst.List))
         elements = [el.value for el in target.elements]
+        if callable(value) and not isinstance(value, tuple):
+            # a row of a list the model was given (`for k, (t, v) in
+            # enumerate(log)`): read once, its items by position
+            value = row_items(self, value("row"), len(elements))
         if not isinstance(value, tuple) or len(value) != len(elements):
             fail(
                 "the loop target does not match what the loop runs over",
@@ -548,15 +552,25 @@ class _DataRow:
         row = low.emit(  # type: ignore[attr-defined]
             "dataitem", (self.table, self.index), low.new_var("row", "temp")  # type: ignore[attr-defined]
         )
-        count = len(target.elements)  # type: ignore[attr-defined]
-        return tuple(
-            (
-                lambda name, j=j: low.emit(  # type: ignore[attr-defined]
-                    "dataitem", (row, Const(str(j), j)), low.new_var(name, "local")  # type: ignore[attr-defined]
-                )
+        return row_items(low, row, len(target.elements))  # type: ignore[attr-defined]
+
+
+def row_items(lowering: object, row: Var, count: int) -> tuple[Callable, ...]:
+    """Readers of a row's ``count`` items by position, each under the name of the
+    target it binds (``t = row[0]``): data, with no derivative."""
+    low = lowering
+
+    def item(j: int) -> Callable[[str], Var]:
+        def read(name: str) -> Var:
+            var = low.emit(  # type: ignore[attr-defined]
+                "dataitem", (row, Const(str(j), j)), low.new_var(name, "local")  # type: ignore[attr-defined]
             )
-            for j in range(count)
-        )
+            low.fresh.discard(var)  # type: ignore[attr-defined]
+            return var
+
+        return read
+
+    return tuple(item(j) for j in range(count))
 
 
 def _endless(node: cst.For | cst.While) -> bool:
