@@ -1306,3 +1306,42 @@ def test_a_sum_adjoint_makes_the_list_against_closed_form(source):
     assert rel_err(a_bar, s * s + (2.0 * s if loop else 0.0)) < 1e-15
     want = 2.0 * 1.7 * s + (2.0 * 1.7 if loop else 0.0)
     assert all(rel_err(g, want) < 1e-15 for g in xs_bar)
+
+
+UNREAD_HELPER = """
+import math
+
+TABLE = [(0.0, 3.0), (0.5, 3.7), (1.0, 4.2)]
+
+
+def level(s):
+    for (s0, v0), (s1, v1) in zip(TABLE, TABLE[1:]):
+        if s <= s1:
+            return v0 + (v1 - v0) * (s - s0) / (s1 - s0)
+    return TABLE[-1][1]
+
+
+def step(s, r, amps):
+    drop = amps * r * (1.0 - math.exp(-r))
+    return level(s) - drop, drop
+
+
+def misfit(r, amps, s, target):
+    v, drop = step(s, r, amps)
+    return (v - target) ** 2 + 0.1 * drop
+"""
+
+
+def test_a_helper_no_derivative_of_which_is_read_is_copied_alone():
+    # level() reads only s, which no --wrt parameter reaches: its gradient would
+    # never be called, so only the copy the forward sweep calls is written
+    text = gradwright.generate(UNREAD_HELPER, ["misfit"], ["r"])
+    assert "def level(s):" in text and "level_grad" not in text
+    assert "def step_adjoint(" in text
+    ns = build(UNREAD_HELPER, "misfit", ["r"])
+    args = (0.3, 1.5, 0.7, 3.2)
+    value, (r_bar,) = ns["misfit_grad"](*args)
+    assert value == run_source(UNREAD_HELPER)["misfit"](*args)
+    # reference: mpmath central differences at 50 digits
+    (exact,) = mp_gradient(mp_function(UNREAD_HELPER, "misfit"), args, [0])
+    assert rel_err(r_bar, exact) <= 1e-14

@@ -221,6 +221,8 @@ def _narrow_helpers(
     # only helpers are differentiated again
     settled = {k for k in by_key if k[1] == "target"}
     pending = [k for k in by_key if k not in settled]
+    # helpers whose derivative no call site reads: their primal alone is printed
+    dropped: set[tuple[str, str]] = set()
     while pending:
         key = next(k for k in pending if callers[k] <= settled)
         pending.remove(key)
@@ -229,11 +231,14 @@ def _narrow_helpers(
         helper = by_key[key]
         read = _partials_read if role == "partials" else _adjoint_parts_read
         needed: set[int] = set()
-        for caller in callers[key]:
+        for caller in callers[key] - dropped:
             needed |= read(by_key[caller], name)
         params = [p.base for p in helper.ssa.params]
         wrt = tuple(base for k, base in enumerate(params) if k in needed)
-        if not wrt or wrt == helper.checked.wrt:
+        if not wrt:
+            dropped.add(key)
+            continue
+        if wrt == helper.checked.wrt:
             continue
         if role == "adjoint" and helper.checked.wrt != tuple(params):
             continue  # its callers' parts are one per parameter: kept aligned
@@ -246,7 +251,10 @@ def _narrow_helpers(
                 by_key[caller] = _renumber_partials(by_key[caller], name, positions)
             else:
                 by_key[caller] = _keep_parts(by_key[caller], name, set(positions))
-    return [by_key[(c.ssa.name, c.role)] for c in compiled]
+    return [
+        replace(by_key[key], primal_only=key in dropped)
+        for key in ((c.ssa.name, c.role) for c in compiled)
+    ]
 
 
 def _adjoint_parts_read(item: Compiled, callee: str) -> set[int]:

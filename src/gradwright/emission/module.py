@@ -48,8 +48,9 @@ class RenderedGradient:
     """One target function's generated code, ready for the templates."""
 
     name: str
-    #: "grad" (scalar result), "vjp" (tuple result, with a Jacobian too) or
+    #: "grad" (scalar result), "vjp" (tuple result, with a Jacobian too),
     #: "adjoint" (a helper's reverse: its parameters' adjoints from its result's)
+    #: or "primal" (a helper no derivative of which is read: its copy alone)
     kind: str
     derived_name: str
     signature: str
@@ -87,6 +88,8 @@ class Compiled:
     role: HelperRole = "target"
     #: array parameters' shapes declared with ``--shape`` (checked when called)
     declared: Mapping[str, tuple[int | str, ...]] = field(default_factory=dict)
+    #: a helper whose derivative no call site reads: its primal copy alone
+    primal_only: bool = False
 
 
 def _template_dir() -> Path:
@@ -333,6 +336,9 @@ def render_module(
         if k and ordered[k - 1].checked.name == item.checked.name:
             # a listed function also called as a helper: its copy once
             rendered = dataclasses.replace(rendered, primal="")
+        if item.primal_only:
+            functions.append(dataclasses.replace(rendered, kind="primal"))
+            continue
         functions.append(rendered)
         modules |= used
         helpers |= rendered.helpers
