@@ -1089,3 +1089,22 @@ def test_new_axis_indexes_without_shapes():
     value, grads = namespace["f_grad"](*args)
     for k in range(2):
         assert_close_to_differences(model["f"], args, k, grads[k], value)
+
+
+def test_a_norm_at_the_origin_takes_the_subgradient_zero():
+    # |x|^2 = sum(x^2) has the gradient 2x everywhere, the origin included (a
+    # closed form); the norm's own slope x / |x| is 0/0 there, so the norm takes
+    # the subgradient 0 at the origin, whole-array and per row
+    source = (
+        "import numpy as np\n\n\ndef f(w, x):\n"
+        "    return np.linalg.norm(w) ** 2 + np.sum(w * x)\n\n\n"
+        "def g(w):\n    return np.sum(np.linalg.norm(w, axis=1) ** 2)\n"
+    )
+    namespace: dict = {}
+    exec(gradwright.generate(source, ["f", "g"]), namespace)
+    x = np.array([1.0, -2.0, 0.5])
+    _, (w_bar, x_bar) = namespace["f_grad"](np.zeros(3), x)
+    assert np.array_equal(w_bar, x) and np.array_equal(x_bar, np.zeros(3))
+    w = np.array([[0.0, 0.0, 0.0], [1.0, -2.0, 3.0]])
+    _, (w_bar,) = namespace["g_grad"](w)
+    np.testing.assert_allclose(w_bar, 2.0 * w, rtol=1e-15, atol=0.0)

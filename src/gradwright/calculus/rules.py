@@ -370,7 +370,6 @@ RULES.update(
             _helper("np.reshape", g, _helper("np.shape", x)),
         )
         + (None,) * len(shape),
-        "np.linalg.norm": lambda g, out, x: (g * x / out,),
         "npindex": _index,
         "np.concatenate": _concatenate,
         "np.stack": _stack,
@@ -396,11 +395,14 @@ def _stacked(kind: str) -> Rule:
 
 
 def _norm(g: E, out: E, x: E, *extra: E) -> tuple[E | None, ...]:
-    # d|x|/dx = x / |x|, the reduced adjoint spread back along the axis
+    # d|x|/dx = x / |x|, the reduced adjoint spread back along the axis. At the
+    # origin (x all zeros) the subgradient 0, x / 1: so norm(x)**2 has its true
+    # gradient 0 there, where x / |x| would give 0/0
+    nonzero = where(out.eq(0.0), 1.0, out)
     if not extra:
-        return (g * x / out,)
+        return (g * x / nonzero,)
     axis, keepdims = _keywords(extra)
-    spread = _helper("_gw_unreduce", g / out, x, axis, keepdims)
+    spread = _helper("_gw_unreduce", g / nonzero, x, axis, keepdims)
     return (spread * x,) + (None,) * len(extra)
 
 
