@@ -781,3 +781,25 @@ def test_arrays_shaped_like_an_active_array_are_copied() -> None:
     np.testing.assert_allclose(x_bar, 3.0 * 0.7 * np.ones(3), rtol=1e-15)
     with pytest.raises(GradwrightError, match="has no derivative here"):
         generate(numpy_model("a, x", "return np.sum(np.full_like(x, a) * x)"), None)
+
+
+def test_a_leaky_relu_layer_reads_like_hand_written_code() -> None:
+    # np.where(h > 0, h, 0.01 * h)'s slope is one select, and X @ W.T's adjoint
+    # in W is h_bar.T @ X, not (X.T @ h_bar).T
+    source = numpy_model(
+        "W, b, X",
+        "h = X @ W.T + b\nh = np.where(h > 0, h, 0.01 * h)\nreturn np.sum(h * h)",
+    )
+    declared = {"W": ("k", "d"), "b": ("k",), "X": ("n", "d")}
+    text, shaped = generate(source, declared, ["W", "b"])
+    reverse = text.split("# reverse sweep")[1]
+    assert "np.where(h_1, h_bar, 0.01 * h_bar)" in reverse, reverse
+    assert "W_bar = h_bar_1.T @ X" in reverse, reverse
+    model: dict = {}
+    exec(compile(source, "<model>", "exec"), model)
+    g = np.random.default_rng(11)
+    args = [g.normal(size=(3, 2)), g.normal(size=3), g.normal(size=(5, 2))]
+    value, grads = shaped["f_grad"](*args)
+    for k in range(2):
+        # reference: Richardson-extrapolated central differences of the model
+        assert_close_to_differences(model["f"], args, k, grads[k], value)

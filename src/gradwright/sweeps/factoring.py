@@ -73,7 +73,8 @@ def tidy(sweep: ReverseSweep, fitter: Fitter) -> ReverseSweep:
 
     def change(expr: Expr) -> Expr:
         expr = _smaller_side(substitute(expr, numbers), scaled)
-        return _factor(simplify(_unkept(_summed_out(expr, fitter), fitter)), fitter)
+        expr = _unkept(_summed_out(expr, fitter), fitter)
+        return _factor(simplify(_rearranged(expr, fitter)), fitter)
 
     for stmt in sweep.statements:
         stmt = _map(stmt, change)
@@ -211,6 +212,51 @@ def _unkept(expr: Expr, fitter: Fitter) -> Expr:
     else:
         summed = Apply("np.sum", (inner.args[0], axis_text(tuple(taken))))
     return Apply("neg", (summed,)) if negative else summed
+
+
+def _rearranged(expr: Expr, fitter: Fitter) -> Expr:
+    """Two rewrites a person makes: ``(A.T @ B).T`` as ``B.T @ A`` (the adjoint of
+    ``X @ W.T`` in ``W``), and ``np.where(c, a, 0.0) + k * np.where(c, 0.0, b)``
+    as ``np.where(c, a, k * b)`` (a leaky ReLU's slope: one select, not two and a
+    sum; each element is the one term that was not zero)."""
+    if not isinstance(expr, Apply):
+        return expr
+    expr = Apply(expr.op, tuple(_rearranged(a, fitter) for a in expr.args))
+    inner = expr.args[0] if expr.op == "T" else None
+    if isinstance(inner, Apply) and inner.op == "matmul":
+        left, right = inner.args
+        if isinstance(left, Apply) and left.op == "T":
+            return Apply("matmul", (Apply("T", (right,)), left.args[0]))
+    if expr.op == "add":
+        first, second = (_scaled_select(a, fitter) for a in expr.args)
+        if first is not None and second is not None and first[1] == second[1]:
+            (k1, c, a1, b1), (k2, _, a2, b2) = first, second
+            zero = const(0.0)
+            if b1 == zero and a2 == zero:
+                return Apply("ifexp", (_times(k1, a1), c, _times(k2, b2)))
+            if a1 == zero and b2 == zero:
+                return Apply("ifexp", (_times(k2, a2), c, _times(k1, b1)))
+    return expr
+
+
+def _scaled_select(
+    expr: Expr, fitter: Fitter
+) -> tuple[Expr | None, Expr, Expr, Expr] | None:
+    """``k * np.where(c, a, b)`` (k a number, or none): (k, c, a, b)."""
+    factor: Expr | None = None
+    if isinstance(expr, Apply) and expr.op == "mul":
+        for k, part in enumerate(expr.args):
+            if _is_number(part, fitter):
+                factor, expr = part, expr.args[1 - k]
+                break
+    if isinstance(expr, Apply) and expr.op == "ifexp":
+        a, c, b = expr.args
+        return factor, c, a, b
+    return None
+
+
+def _times(factor: Expr | None, expr: Expr) -> Expr:
+    return expr if factor is None else simplify(Apply("mul", (factor, expr)))
 
 
 def _is_number(expr: Expr, fitter: Fitter) -> bool:
