@@ -2229,6 +2229,7 @@ def numpy_programs(draw, family: str = "numpy") -> Case:
             target = f"u{k}"
         body.append(Assign([target], [e]))
         names[target] = shape
+    running = False
     if draw(st.integers(0, 3)) == 0:
         # a loop carrying an array: each trip mixes in a term of its shape or less
         t = draw(st.sampled_from(sorted(names)))
@@ -2236,13 +2237,26 @@ def numpy_programs(draw, family: str = "numpy") -> Case:
         e, shape = draw(np_expr(fits, 1))
         if _fits_into(shape, names[t]):
             step = Ex("{0} * 0.75 + np.tanh({1})", (leaf(t), e), tag="array_loop")
-            body.append(For("k", "range(2)", [Assign([t], [step])]))
+            trip: list = [Assign([t], [step])]
+            if draw(st.booleans()):
+                # a running cost of the state: the state's own adjoint starts at
+                # zero before the reverse loop when nothing after reads it
+                body.append(Assign(["s0"], [Ex("0.0")]))
+                cost = Ex("{0} + np.sum(np.sin({1}))", (leaf("s0"), leaf(t)))
+                trip.append(Assign(["s0"], [cost]))
+                running = True
+            body.append(For("k", "range(2)", trip))
     recent = [
-        t for s in body[-2:] for t in (s.targets if isinstance(s, Assign) else [])
+        t
+        for s in body[-2:]
+        for t in (s.targets if isinstance(s, Assign) else [])
+        if t in names
     ] or params
     e, shape = draw(np_expr({n: names[n] for n in recent}, 1))
     if shape:
         e = Ex(draw(st.sampled_from(("np.sum({0})", "np.mean({0})"))), (e,))
+    if running:
+        e = Ex("{0} + 0.5 * {1}", (e, leaf("s0")))
     body.append(Return([e]))
     kinds = {
         p: "array:" + "x".join(map(str, NP_SHAPES[p])) if NP_SHAPES[p] else "float"

@@ -83,6 +83,8 @@ _SPECS = [
     _infix("ne", "!=", PREC_COMPARE),
     # args are (value_if_true, condition, value_if_false), in printed order
     OpSpec("ifexp", "ifexp", "", PREC_IFEXP, 3, 3),
+    # a choice between numbers in array code: Python's conditional, not np.where
+    OpSpec("numselect", "ifexp", "", PREC_IFEXP, 3, 3),
     # lists: x[i], [a, b], [fill] * n, len(x), sum(x)
     OpSpec("getitem", "subscript", "", PREC_ATOM, 2, 2),
     # an element of module-level data: no rule, so never active (piecewise
@@ -188,7 +190,7 @@ _SPECS += [
             " _gw_matmul_right _gw_part _gw_shaped np.reshape np.shape np.take"
             " _gw_uncumsum _gw_undiff _gw_stacked _gw_interp_slope"
             " np.zeros_like np.broadcast_to np.expand_dims np.einsum"
-            " np.argmax np.argmin np.arange"
+            " np.argmax np.argmin np.arange np.zeros"
         ).split()
     ),
     # a shape written out, (n, 5), for np.broadcast_to in the reverse sweep

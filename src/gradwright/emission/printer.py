@@ -182,7 +182,7 @@ class Printer:
         signed = self._sign_select(expr)
         if signed is not None:
             return self._print(signed)
-        if spec.syntax == "ifexp" and self.where_call is not None:
+        if expr.op == "ifexp" and self.where_call is not None:
             body, test, orelse = args
             parts = ", ".join(self._print(a) for a in (test, body, orelse))
             return f"{self.where_call}({parts})"

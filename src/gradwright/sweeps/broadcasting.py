@@ -38,7 +38,16 @@ from gradwright.sweeps.shapes import (
     size_of,
 )
 
-_ELEMENTWISE = ELEMENTWISE_OPS | {"ifexp", "lt", "le", "gt", "ge", "eq", "ne"}
+_ELEMENTWISE = ELEMENTWISE_OPS | {
+    "ifexp",
+    "numselect",
+    "lt",
+    "le",
+    "gt",
+    "ge",
+    "eq",
+    "ne",
+}
 _MATMUL = frozenset({"matmul", "np.matmul", "np.dot"})
 #: helpers -> the operand whose shape their result has
 _SHAPED_LIKE = {
@@ -119,8 +128,8 @@ class Fitter:
                 else:
                     return None
             return tuple(dims)
-        if op == "np.broadcast_to":
-            return self.shape(args[1])
+        if op in ("np.broadcast_to", "np.zeros"):
+            return self.shape(args[-1])
         if op == "npindex":  # g[k]: a part of np.array([...])'s adjoint
             pattern = args[1].text if isinstance(args[1], Const) else ""
             whole = self.shape(args[0])

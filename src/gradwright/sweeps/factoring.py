@@ -221,12 +221,17 @@ def _rearranged(expr: Expr, fitter: Fitter) -> Expr:
     sum; each element is the one term that was not zero)."""
     if not isinstance(expr, Apply):
         return expr
+    if expr.op in ("add", "npscatter"):  # before the terms change
+        expr = _gathered(expr, fitter) or expr
     expr = Apply(expr.op, tuple(_rearranged(a, fitter) for a in expr.args))
     inner = expr.args[0] if expr.op == "T" else None
     if isinstance(inner, Apply) and inner.op == "matmul":
         left, right = inner.args
         if isinstance(left, Apply) and left.op == "T":
             return Apply("matmul", (Apply("T", (right,)), left.args[0]))
+    if expr.op == "ifexp" and all(fitter.shape(a) == () for a in expr.args):
+        # a choice between numbers: Python's conditional, not an array's np.where
+        return Apply("numselect", expr.args)
     if expr.op == "add":
         first, second = (_scaled_select(a, fitter) for a in expr.args)
         if first is not None and second is not None and first[1] == second[1]:
@@ -237,6 +242,73 @@ def _rearranged(expr: Expr, fitter: Fitter) -> Expr:
             if a1 == zero and b2 == zero:
                 return Apply("ifexp", (_times(k2, a2), c, _times(k1, b1)))
     return expr
+
+
+#: the longest vector whose element adjoints are written out as np.array([...])
+_SHORT = 4
+
+
+def _gathered(expr: Expr, fitter: Fitter) -> Expr | None:
+    """A sum holding adjoints of elements of one short vector (``x[0]``, ``x[1]``,
+    each a scatter into zeros) as one ``np.array([a, b])``, zeros where no term
+    is (a state vector's element reads)."""
+    terms: list[Expr] = []
+    _add_terms(expr, terms)
+    places: dict[Expr, dict[int, Expr]] = {}
+    first: dict[Expr, int] = {}
+    rest: list[tuple[int, Expr]] = []
+    for k, term in enumerate(terms):
+        entry = _element_adjoint(term, fitter)
+        if entry is None:
+            rest.append((k, term))
+            continue
+        vector, position, value = entry
+        slots = places.setdefault(vector, {})
+        first.setdefault(vector, k)
+        before = slots.get(position)
+        slots[position] = value if before is None else Apply("add", (before, value))
+    if not places:
+        return None
+    for vector, slots in places.items():
+        (size,) = fitter.table.atom(vector)  # type: ignore[misc]
+        items = tuple(slots.get(j, const(0.0)) for j in range(size))
+        rest.append((first[vector], Apply("np.array", items)))
+    rest.sort(key=lambda item: item[0])
+    total = rest[0][1]
+    for _, term in rest[1:]:
+        total = Apply("add", (total, term))
+    return total
+
+
+def _add_terms(expr: Expr, out: list[Expr]) -> None:
+    if isinstance(expr, Apply) and expr.op == "add":
+        for arg in expr.args:
+            _add_terms(arg, out)
+    else:
+        out.append(expr)
+
+
+def _element_adjoint(expr: Expr, fitter: Fitter) -> tuple[Expr, int, Expr] | None:
+    """``_gw_scatter(v, x, np.s_[k])`` with x a short vector of known length and
+    v a number: (x, k, v)."""
+    if not (isinstance(expr, Apply) and expr.op == "npscatter" and len(expr.args) == 4):
+        return None
+    value, vector, pattern, index = expr.args
+    shape = fitter.table.atom(vector)
+    position = number(index)
+    if not (
+        isinstance(pattern, Const)
+        and pattern.text == "{}"
+        and isinstance(shape, tuple)
+        and len(shape) == 1
+        and isinstance(shape[0], int)
+        and shape[0] <= _SHORT
+        and type(position) is int
+        and -shape[0] <= position < shape[0]
+        and fitter.shape(value) == ()
+    ):
+        return None
+    return vector, position % shape[0], value  # type: ignore[operator]
 
 
 def _scaled_select(

@@ -49,6 +49,7 @@ from gradwright.ir import (
     const,
 )
 from gradwright.sweeps.broadcasting import SMALL_OK, Fitter
+from gradwright.sweeps.shapes import shape_expr
 
 #: primitives on lists that adjoints flow through
 _LIST_FLOW = frozenset(
@@ -619,6 +620,9 @@ class _Reverse:
         fitter = self.fitter
         #: the shape each carried adjoint enters the loop with, where known
         entry: dict[Var, tuple] = {}
+        #: carried adjoints that start at zero: their place in ``out`` and the
+        #: array of zeros of their value's shape they may start as instead
+        zero_starts: dict[Var, tuple[int, Expr]] = {}
         for phi, carry in carries.items():
             assert phi.exit is not None
             value: Expr = Bar(phi.exit) if phi.exit in self.has else const(0.0)
@@ -626,6 +630,17 @@ class _Reverse:
             self.has.add(carry)
             if fitter is not None:  # it changes from one iteration to the next
                 shape = fitter.shape(value)
+                full = fitter.table.atom(phi.target)
+                zeros = (
+                    shape_expr(full, fitter.sizes)
+                    if full and isinstance(full, tuple)
+                    else None
+                )
+                if is_zero(value) and zeros is not None:
+                    # np.zeros of the value's shape keeps the shape every trip
+                    # hands back (a state vector's adjoint), where 0.0 would not
+                    zero_starts[carry] = (len(out) - 1, Apply("np.zeros", (zeros,)))
+                    shape = full
                 if isinstance(shape, tuple):
                     entry[carry] = shape
                 fitter.forget(carry)
@@ -670,6 +685,9 @@ class _Reverse:
         for var in outer:
             out.append(AdjointAssign(var, const(0.0), False, loop.origin))
             self.has.add(var)
+        for carry, (place, zeros) in zero_starts.items():
+            if carry in entry:
+                out[place] = AdjointAssign(carry, zeros, False, loop.origin)
         if fitter is not None:
             fitter.adj.update(entry)
         body_out = self.loop_body(loop, carries)
