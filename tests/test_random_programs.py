@@ -555,6 +555,16 @@ def f(x):
 """,
         [[0.75]],
     ),
+    # the mixed family: a list element holding sum([]), the int 0, gave x_bar = 0
+    "int_in_a_list_element": (
+        """\
+def f(x, xs):
+    buf = [0.0] * 1
+    buf[0] = sum(xs)
+    return x * buf[0]
+""",
+        [[1.0, []], [1.0, [0.5, 0.25]]],
+    ),
 }
 
 

@@ -34,6 +34,8 @@ PREC_OR = 2
 PREC_AND = 3
 PREC_NOT = 4
 PREC_COMPARE = 5
+#: the comparison ops (elementwise on arrays: a mask)
+COMPARISONS = frozenset({"lt", "le", "gt", "ge", "eq", "ne"})
 PREC_ADD = 10
 PREC_MUL = 11
 PREC_UNARY = 12

@@ -21,6 +21,7 @@ from __future__ import annotations
 from collections.abc import Mapping
 
 from gradwright.calculus.algebra import number, simplify
+from gradwright.calculus.primitives import COMPARISONS
 from gradwright.calculus.rules import ELEMENTWISE_OPS
 from gradwright.ir import Apply, Atom, Bar, Const, Expr, Var, const
 from gradwright.sweeps.shapes import (
@@ -38,16 +39,7 @@ from gradwright.sweeps.shapes import (
     size_of,
 )
 
-_ELEMENTWISE = ELEMENTWISE_OPS | {
-    "ifexp",
-    "numselect",
-    "lt",
-    "le",
-    "gt",
-    "ge",
-    "eq",
-    "ne",
-}
+_ELEMENTWISE = ELEMENTWISE_OPS | COMPARISONS | {"ifexp", "numselect"}
 _MATMUL = frozenset({"matmul", "np.matmul", "np.dot"})
 #: helpers -> the operand whose shape their result has
 _SHAPED_LIKE = {

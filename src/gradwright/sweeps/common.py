@@ -220,18 +220,34 @@ def float_entries(sweep: ReverseSweep, function: SSAFunction) -> ReverseSweep:
 
     lets = list(walk_lets(function.body))
     merges = list(_merges(function.body))
+    # lists the function makes that may hold an int (``buf[0] = sum(zs)``)
+    int_lists: set[Var] = set()
     size = -1
-    while size != len(maybe_int):  # a loop's merge may see an int a round later
-        size = len(maybe_int)
+    while size != len(maybe_int) + len(int_lists):  # a merge may see one later
+        size = len(maybe_int) + len(int_lists)
         for let in lets:
             ints = all(int_atom(a) for a in let.args)
-            if let.op in _INT_RESULTS or let.op == "dataitem":
+            stored = _stored(let)
+            if stored is not None:
+                if (
+                    let.args
+                    and let.args[0] in int_lists
+                    or any(int_atom(a) for a in stored)
+                ):
+                    int_lists.add(let.target)
+            elif let.op == "getitem" and let.args[0] in int_lists:
+                maybe_int.add(let.target)
+            elif let.op in _INT_RESULTS or let.op == "dataitem":
                 maybe_int.add(let.target)
             elif (let.op in _INT_PRESERVING or let.op.startswith("call:")) and ints:
                 maybe_int.add(let.target)  # a helper may hand an int argument back
             elif let.op == "ifexp" and any(int_atom(a) for a in let.args):
                 maybe_int.add(let.target)  # an int on one side
         for phi in merges:  # either side's value (``y if c else sum(zs)``)
+            if phi.first in int_lists or phi.second in int_lists:
+                int_lists.add(phi.target)
+                if phi.exit is not None:
+                    int_lists.add(phi.exit)
             if int_atom(phi.first) or int_atom(phi.second):
                 maybe_int.add(phi.target)
                 if phi.exit is not None:
@@ -249,6 +265,19 @@ def float_entries(sweep: ReverseSweep, function: SSAFunction) -> ReverseSweep:
     if not maybe_int:
         return sweep
     return map_sweep(sweep, lambda e: Apply("float", (e,)) if int_valued(e) else e)
+
+
+def _stored(let: Let) -> tuple[Atom, ...] | None:
+    """The values a list operation puts in its list (None: not one)."""
+    if let.op == "setitem":
+        return let.args[2:]
+    if let.op == "append":
+        return let.args[1:]
+    if let.op == "listlit":
+        return let.args
+    if let.op == "newlist":
+        return let.args[:1]
+    return None
 
 
 def _costly(expr: Expr) -> bool:

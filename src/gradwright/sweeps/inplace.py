@@ -24,6 +24,7 @@ from __future__ import annotations
 
 from dataclasses import replace
 
+from gradwright.calculus.primitives import COMPARISONS
 from gradwright.calculus.rules import ELEMENTWISE_OPS
 from gradwright.ir import (
     AdjointAssign,
@@ -46,21 +47,11 @@ from gradwright.sweeps.broadcasting import Fitter
 
 #: ops whose result is a new array (or a number), never one of their operands
 #: (``copy`` prints as the plain name)
-_FRESH = (ELEMENTWISE_OPS - {"copy"}) | {
-    "ifexp",
-    "matmul",
-    "np.matmul",
-    "np.dot",
-    "np.outer",
-    "np.sum",
-    "np.einsum",
-    "lt",
-    "le",
-    "gt",
-    "ge",
-    "eq",
-    "ne",
-}
+_FRESH = (
+    (ELEMENTWISE_OPS - {"copy"})
+    | COMPARISONS
+    | {"ifexp", "matmul", "np.matmul", "np.dot", "np.outer", "np.sum", "np.einsum"}
+)
 #: ops whose result may be (a view of) an operand
 _VIEWS = frozenset(
     {
