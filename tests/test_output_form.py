@@ -1345,3 +1345,24 @@ def test_a_helper_no_derivative_of_which_is_read_is_copied_alone():
     # reference: mpmath central differences at 50 digits
     (exact,) = mp_gradient(mp_function(UNREAD_HELPER, "misfit"), args, [0])
     assert rel_err(r_bar, exact) <= 1e-14
+
+
+def test_a_value_subtracted_from_its_own_negation_is_doubled():
+    # d/dv of 0.5 * v * v reads 0.5 * v twice (one value, numbered once): the
+    # sum -a - a is written -(2.0 * a), exact
+    source = (
+        "import math\n\n\ndef f(v, r, t):\n    d = (r - 0.5 * v * v) * t\n"
+        "    s = v * math.sqrt(t)\n    return math.exp(d + s) + d * s\n"
+    )
+    text = gradwright.generate(source, ["f"], ["v", "r"])
+    assert not re.search(r"-(\w+) - \1\b", text), text
+    assert "v_bar -= 2.0 * d_bar_1 * d_1" in text, text
+    ns = build(source, "f", ["v", "r"])
+    v, r, t = 0.7, 0.2, 1.5
+    _, (v_bar, r_bar) = ns["f_grad"](v, r, t)
+    # closed form, by hand: with d = (r - v^2/2) t and s = v sqrt(t),
+    # df/dv = (e^(d+s) + s)(-v t) + (e^(d+s) + d) sqrt(t), df/dr = (e^(d+s) + s) t
+    d, s = (r - 0.5 * v * v) * t, v * math.sqrt(t)
+    e = math.exp(d + s)
+    assert rel_err(v_bar, (e + s) * (-v * t) + (e + d) * math.sqrt(t)) <= 1e-14
+    assert rel_err(r_bar, (e + s) * t) <= 1e-14

@@ -287,6 +287,9 @@ def _simplify(expr: Apply) -> Expr:
             b_negative, b_magnitude = _split_sign(b)
             if b_negative:
                 return Apply("add", (a, b_magnitude))
+            a_negative, a_magnitude = _split_sign(a)
+            if a_negative and a_magnitude == b:  # -x - x is -(2.0 * x) (exact)
+                return _negate(simplify(Apply("mul", (const(2.0), b))))
     if op == "_gw_unbroadcast" and isinstance(args[0], Const):
         # a constant adjoint belongs to a scalar result: nothing was broadcast
         return args[0]
