@@ -1366,3 +1366,30 @@ def test_a_value_subtracted_from_its_own_negation_is_doubled():
     e = math.exp(d + s)
     assert rel_err(v_bar, (e + s) * (-v * t) + (e + d) * math.sqrt(t)) <= 1e-14
     assert rel_err(r_bar, (e + s) * t) <= 1e-14
+
+
+MAX_OF_LIST = """
+def worst(a, b, c):
+    errors = [a * a, b * b + 0.5, c * c - 0.25]
+    return max(errors) + 0.01 * sum(errors)
+"""
+
+
+@pytest.mark.parametrize("point", [(0.5, 1.5, 0.25), (2.0, 0.1, 0.3), (0.1, 0.2, 1.5)])
+def test_a_max_fold_hands_its_adjoint_on_without_copies(point):
+    # the reverse of max over a list: where a later element wins it takes the
+    # adjoint and the running one drops to 0.0; elsewhere nothing happens (no
+    # temporary set to 0.0 or copied back and forth)
+    text = gradwright.generate(MAX_OF_LIST, ["worst"])
+    reverse = text.split("# reverse sweep")[1]
+    assert "largest_bar_1" not in reverse and "else:" not in reverse, reverse
+    ns = build(MAX_OF_LIST, "worst")
+    _, grads = ns["worst_grad"](*point)
+    # closed form: the largest element's own slope plus 0.01 of every slope
+    a, b, c = point
+    values = [a * a, b * b + 0.5, c * c - 0.25]
+    slopes = [2 * a, 2 * b, 2 * c]
+    top = values.index(max(values))
+    for k in range(3):
+        exact = 0.01 * slopes[k] + (slopes[k] if k == top else 0.0)
+        assert rel_err(grads[k], exact) <= 1e-15

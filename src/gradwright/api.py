@@ -59,7 +59,7 @@ from gradwright.sweeps.reverse import (
 from gradwright.sweeps.scales import fold_scales
 from gradwright.sweeps.selects import branch_selects
 from gradwright.sweeps.shapes import Dim, ShapeTable, literal_shape, with_sizes
-from gradwright.sweeps.zeros import merge_zero_starts, settle_zeros
+from gradwright.sweeps.zeros import merge_zero_starts, settle_zeros, sink_copies
 
 
 def compile_function(
@@ -140,7 +140,8 @@ def _differentiate(
     if scalar:
         sweep = branch_selects(sweep)
         sweep = share_quotients(sweep, fresh_uid(ssa, sweep))
-        sweep = float_entries(merge_zero_starts(fold_scales(sweep)), ssa)
+        sweep = sink_copies(merge_zero_starts(fold_scales(sweep)))
+        sweep = float_entries(sweep, ssa)
     if fitter is not None:
         sweep = plan_in_place(tidy(merge_zero_starts(sweep), fitter), fitter)
     return Compiled(checked, ssa, sweep, active, role, declared)

@@ -52,6 +52,94 @@ def settle_zeros(sweep: ReverseSweep) -> ReverseSweep:
     return replace(sweep, statements=_merge_zero_starts(sweep.statements, False))
 
 
+def sink_copies(sweep: ReverseSweep) -> ReverseSweep:
+    """``t_bar = e`` then, right after it, ``v_bar = t_bar`` (a carried
+    adjoint's hand-over at the end of an iteration) is ``v_bar = e`` when every
+    read of ``t_bar`` is such a copy; ``v_bar = v_bar`` goes, and so do the
+    writes of ``t_bar`` nothing reads.
+    A max fold's sides were ``largest_bar_1 = 0.0; ...; largest_bar =
+    largest_bar_1`` and ``largest_bar_1 = largest_bar; largest_bar =
+    largest_bar_1``."""
+    keep = set(sweep.wrt) | set(sweep.seeds) | {carry for carry, _ in sweep.carries}
+    reads: defaultdict[Var, int] = defaultdict(int)
+    writes: defaultdict[Var, int] = defaultdict(int)
+    for stmt in all_statements(sweep.statements):
+        for e in statement_exprs(stmt):
+            for n in walk(e):
+                if isinstance(n, Bar):
+                    reads[n.var] += 1
+        for var in written_bars(stmt):
+            writes[var] += 1
+    movable = {v for v in writes if v not in keep and v.shape == "scalar"}
+    # every read of the adjoint must be one such copy (the sides of a branch
+    # each have theirs); its other writes are then read by nothing and go
+    pairs: defaultdict[Var, int] = defaultdict(int)
+    _sink_block(sweep.statements, movable, pairs)
+    movable = {v for v in movable if pairs[v] == reads[v]}
+    if not movable:
+        return sweep
+    statements = _sink_block(sweep.statements, movable, pairs)
+    return replace(sweep, statements=map_statements(statements, _unread(movable)))
+
+
+def _unread(movable: set[Var]):  # noqa: ANN202
+    def keep(stmt: ReverseStmt) -> ReverseStmt | None:
+        if isinstance(stmt, AdjointAssign) and stmt.var in movable:
+            return None  # a write whose every read was a copy now sunk
+        return stmt
+
+    return keep
+
+
+def _sink_block(
+    statements: tuple[ReverseStmt, ...],
+    movable: set[Var],
+    pairs: defaultdict[Var, int],
+    side: bool = False,
+) -> tuple[ReverseStmt, ...]:
+    """``side``: a branch's side, where the pairs are looked for (a copy at a
+    loop's start or end names the adjoint the loop carries: the namer keeps it)."""
+    out: list[ReverseStmt | None] = []
+    made: dict[Var, int] = {}  # a movable adjoint's plain write -> its place
+    for stmt in statements:
+        if isinstance(stmt, ReverseBranch):
+            stmt = replace(
+                stmt,
+                then=_sink_block(stmt.then, movable, pairs, True),
+                orelse=_sink_block(stmt.orelse, movable, pairs, True),
+            )
+        elif isinstance(stmt, ReverseLoop):
+            stmt = replace(stmt, body=_sink_block(stmt.body, movable, pairs))
+        if (
+            side
+            and isinstance(stmt, AdjointAssign)
+            and not stmt.accumulate
+            and isinstance(stmt.expr, Bar)
+            and stmt.expr.var in made
+        ):
+            pairs[stmt.expr.var] += 1
+            place = made.pop(stmt.expr.var)
+            first = out[place]
+            assert isinstance(first, AdjointAssign)
+            out[place] = None
+            if first.expr != Bar(stmt.var):  # v_bar = v_bar changes nothing
+                out.append(replace(first, var=stmt.var))
+            continue
+        # the copy must follow right after: a carried adjoint and the value it
+        # carries print under one name, so moving a write past others may change
+        # what a reader sees, and the line would leave its statement's comment
+        made = {}
+        if (
+            isinstance(stmt, AdjointAssign)
+            and not stmt.accumulate
+            and stmt.var in movable
+            and stmt.var.shape == "scalar"
+        ):
+            made[stmt.var] = len(out)
+        out.append(stmt)
+    return tuple(s for s in out if s is not None)
+
+
 def _read_as_zero(sweep: ReverseSweep, zero: set[Var]) -> ReverseSweep:
     zeros = {v: const(0.0) for v in zero}
     sweep = map_sweep(sweep, lambda e: simplify(substitute(e, zeros)))
