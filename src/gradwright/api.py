@@ -247,7 +247,7 @@ def _narrow_helpers(
         ssa = lower(index, checked, stacks[name])
         by_key[key] = _differentiate(index, checked, ssa, role, adjoint_helpers)
         positions = {params.index(base): j for j, base in enumerate(wrt)}
-        for caller in callers[key]:
+        for caller in callers[key] - dropped:  # (a dropped one calls no _grad)
             if role == "partials":
                 by_key[caller] = _renumber_partials(by_key[caller], name, positions)
             else:
