@@ -396,3 +396,13 @@ def test_rows_of_a_list_parameter_unpacked_in_the_loop_target():
     exact_a = sum(2 * w * e * x for w, x, e in r) + sum(a * x * x for x, _ in rows)
     exact_b = sum(2 * w * e for w, x, e in r)
     assert rel_err(a_bar, exact_a) <= 1e-14 and rel_err(b_bar, exact_b) <= 1e-14
+
+
+def test_rows_of_a_list_in_wrt_are_a_located_error():
+    # review finding: with the list itself in --wrt, the rows' items were read
+    # as data and its gradient came back as zeros
+    with pytest.raises(gradwright.GradwrightError) as caught:
+        gradwright.generate(ROWS, ["weighted_fit"], ["a", "rows"], path="m.py")
+    text = caught.value.diagnostic.render()
+    assert text.startswith("m.py:4:13: error: the rows this loop target unpacks")
+    assert "leave it out of --wrt" in text

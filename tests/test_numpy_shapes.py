@@ -830,7 +830,7 @@ def test_a_state_vector_simulation_reads_like_hand_written_code() -> None:
     assert "x_bar = np.zeros((2,))" in reverse
     for noise in ("_gw_scatter", "_gw_unbroadcast", "broadcast_to", "np.where"):
         assert noise not in reverse, (noise, reverse)
-    assert "np.array([-acc_bar * k, -acc_bar * c])" in reverse, reverse
+    assert "np.array([-acc_bar * k, -acc_bar * c], dtype=float)" in reverse, reverse
     model: dict = {}
     exec(compile(SPRING, "<model>", "exec"), model)
     target = np.sin(np.linspace(0.0, 3.0, 12))
@@ -840,3 +840,44 @@ def test_a_state_vector_simulation_reads_like_hand_written_code() -> None:
     for j in range(3):
         # reference: Richardson-extrapolated central differences of the model
         assert_close_to_differences(model["f"], args, j, grads[j], value)
+
+
+def test_review_findings_on_shapes_aliases_and_int_arrays() -> None:
+    # np.vecdot is a ufunc with a core signature: its result is not a broadcast
+    # of its operands' shapes (NumPy's own ufunc.signature says so)
+    from gradwright.sweeps.text_shapes import copied_shape
+
+    assert (
+        copied_shape("y = np.vecdot(X, u)", "y", {"X": (3, 3), "u": (3,)}, ["np"])
+        is None
+    )
+    # `alias = cost` then `cost += ...` changes alias too: refused, not lowered as
+    # if cost held an array of its own
+    aliased = numpy_model(
+        "x",
+        "cost = 0.0\ncost += x\nalias = cost\ncost += x * x\n"
+        "return np.sum(alias * cost)",
+    )
+    with pytest.raises(GradwrightError, match="may share its array"):
+        generate(aliased, None)
+    # element adjoints gathered into an array are floats even when every one is
+    # an int-valued expression (x_bar = [k, k] with k = 3)
+    source = numpy_model("x, k", "return x[0] * k + x[1] * k")
+    _, shaped = generate(source, {"x": (2,), "k": ()}, ["x"])
+    _, (x_bar,) = shaped["f_grad"](np.array([1.0, 2.0]), 3)
+    assert x_bar.dtype == np.float64 and list(x_bar) == [3.0, 3.0]  # closed form
+
+
+def test_an_array_power_with_an_exponent_array_raises_no_floating_point_error() -> None:
+    # at x == 0 with exponent 0 the slope is 0 (x**0 == 1 everywhere); the
+    # exponent's slope at x == 0 is 0 too. Reference: the closed forms
+    # d/dx x^k = k x^(k-1), d/dk x^k = x^k log x, evaluated by hand
+    source = numpy_model("x, k", "return np.sum(np.power(x, k))")
+    _, namespace = generate(source, None)
+    x, k = np.array([0.0, 2.0, 0.5]), np.array([0.0, 3.0, 2.0])
+    with np.errstate(all="raise"):
+        _, (x_bar, k_bar) = namespace["f_grad"](x, k)
+    np.testing.assert_allclose(x_bar, [0.0, 12.0, 1.0], rtol=1e-15)
+    np.testing.assert_allclose(
+        k_bar, [0.0, 8.0 * np.log(2.0), 0.25 * np.log(0.5)], rtol=1e-15
+    )

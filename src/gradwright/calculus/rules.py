@@ -57,9 +57,19 @@ def _power(g: E, out: E, x: E, y: E) -> tuple[E | None, E]:
     return _constant_power(g, out, x, p), d_exponent
 
 
+def _array_power(g: E, out: E, x: E, y: E) -> tuple[E | None, E]:
+    # arrays: np.where evaluates both sides, so the exponent is chosen instead
+    # (x**0 at y == 0, where x**(y-1) would divide by zero at x == 0)
+    if number(y.node) is None:
+        slope = g * y * x ** where(y.eq(0), 0, y - 1)
+        # (log of 1.0 where x == 0: no log(0) evaluated, its side not taken)
+        return slope, where(x.eq(0.0), 0.0, g * out * log(where(x.eq(0.0), 1.0, x)))
+    return _power(g, out, x, y)
+
+
 def _one_power(g: E, out: E, x: E, y: E) -> tuple[E | None, E]:
-    # y * x**(y-1) as written: for arrays (np.where would compute both of
-    # _power's sides) and for an exponent with no adjoint (a count: u**j)
+    # y * x**(y-1) as written, for an exponent with no adjoint (a count: u**j)
+    # in a scalar model
     if number(y.node) is None:
         # x**0 is 1 for every x: at y == 0 the slope is 0, where x**(y-1) would
         # raise at x == 0 (a polynomial's first term at the origin)
@@ -337,7 +347,7 @@ def rule_for(op: str, array: bool, active: tuple[bool, ...]) -> Rule:
     """``RULES[op]``, or the one-pow power rule for arrays and for an exponent
     that has no adjoint (see ``_one_power``)."""
     if op in ("pow", "math_pow", "np.power") and (array or not active[1]):
-        return _one_power
+        return _array_power if array else _one_power
     return RULES[op]
 
 

@@ -497,8 +497,17 @@ class LoopLowering:
         elements = [el.value for el in target.elements]
         if callable(value) and not isinstance(value, tuple):
             # a row of a list the model was given (`for k, (t, v) in
-            # enumerate(log)`): read once, its items by position
-            value = row_items(self, value("row"), len(elements))
+            # enumerate(log)`): read once, its items by position, as data
+            row = value("row")
+            if not self.never_active(row):
+                fail(
+                    "the rows this loop target unpacks are data, with no"
+                    " derivative, but they depend on the --wrt parameters",
+                    self.index.locate(target),
+                    "a list of rows is data: leave it out of --wrt (parameters"
+                    " are numbers or lists of numbers)",
+                )
+            value = row_items(self, row, len(elements))
         if not isinstance(value, tuple) or len(value) != len(elements):
             fail(
                 "the loop target does not match what the loop runs over",

@@ -181,6 +181,10 @@ class _Lowerer(
         )
         if op not in _VIEWS or number:
             self.fresh.add(target)
+        elif args and isinstance(args[0], Var):
+            # `alias = cost` (or a view of it): two names now hold one array, so
+            # a later `cost += ...` would change `alias` too
+            self.fresh.discard(args[0])
         if op == "copy":
             self.copy_of[target] = args[0]
         if op == "dataitem" or (op == "copy" and args[0] in self.data_items):

@@ -272,6 +272,8 @@ def _gathered(expr: Expr, fitter: Fitter) -> Expr | None:
     for vector, slots in places.items():
         (size,) = fitter.table.atom(vector)  # type: ignore[misc]
         items = tuple(slots.get(j, const(0.0)) for j in range(size))
+        if len(slots) == size:  # no 0.0 to make it floats: int adjoints would not
+            items += (Const("dtype=float", None),)
         rest.append((first[vector], Apply("np.array", items)))
     rest.sort(key=lambda item: item[0])
     total = rest[0][1]

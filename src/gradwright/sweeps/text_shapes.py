@@ -15,8 +15,9 @@ statement reads, by NumPy's own rules for a small set of forms:
   ``np.linspace(a, b, k)`` and ``np.arange(n)`` of int literals;
 - reductions with ``axis=`` (literal ints) and ``keepdims=`` (a literal bool), as
   NumPy functions or methods: ``sum mean std var max min prod median amax amin``;
-- NumPy's one- and two-argument ufuncs (``np.sqrt``, ``np.maximum``: NumPy's own
-  table says which names are ufuncs), arithmetic operators (broadcasting), ``@``
+- NumPy's one- and two-argument elementwise ufuncs (``np.sqrt``, ``np.maximum``:
+  NumPy's own table says which names are ufuncs; those with a core signature,
+  ``np.vecdot``, are not elementwise), arithmetic operators (broadcasting), ``@``
   and ``.T``.
 
 Anything else has no known shape (the generic helpers decide at run time). The
@@ -151,6 +152,7 @@ class _Reader:
         ufunc = getattr(numpy, name, None)
         if (
             isinstance(ufunc, numpy.ufunc)
+            and ufunc.signature is None  # (np.vecdot, np.matvec: not elementwise)
             and ufunc.nout == 1
             and len(args) == ufunc.nin
         ):
