@@ -1108,3 +1108,13 @@ def test_a_norm_at_the_origin_takes_the_subgradient_zero():
     w = np.array([[0.0, 0.0, 0.0], [1.0, -2.0, 3.0]])
     _, (w_bar,) = namespace["g_grad"](w)
     np.testing.assert_allclose(w_bar, 2.0 * w, rtol=1e-15, atol=0.0)
+
+
+def test_an_ellipsis_index_is_a_located_error():
+    # review finding: x[..., None] said "... is not a number"
+    source = "import numpy as np\n\n\ndef f(x):\n    return np.sum(x[..., None] * x)\n"
+    with pytest.raises(gradwright.GradwrightError) as caught:
+        gradwright.generate(source, ["f"], path="model.py")
+    text = caught.value.diagnostic.render()
+    assert text.startswith("model.py:5:21: error: indexing with ... (Ellipsis)")
+    assert "hint: write one `:` per axis" in text

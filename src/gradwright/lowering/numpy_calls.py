@@ -318,6 +318,12 @@ class NumpyLowering:
             if isinstance(piece, cst.Index) and self.new_axis(piece.value):
                 pieces.append("None")  # a new axis of size 1 (np.newaxis too)
                 continue
+            if isinstance(piece, cst.Index) and isinstance(piece.value, cst.Ellipsis):
+                fail(
+                    "indexing with ... (Ellipsis) is not supported",
+                    self.index.locate(piece.value),
+                    "write one `:` per axis: x[:, :, None]",
+                )
             if isinstance(piece, cst.Index):
                 pieces.append(bound(piece.value))
             else:
