@@ -1421,3 +1421,40 @@ def test_a_helper_copied_alone_may_call_a_differentiated_one():
     _, (x_bar,) = ns["f_grad"](1.25, 0.5, -0.75)
     # closed form: f = z * (y * x) + h1(y), so df/dx = z * y
     assert rel_err(x_bar, -0.75 * 0.5) <= 1e-15
+
+
+KEPLER = """
+import math
+
+
+def kepler(mean_anomaly, ecc, tol=1e-13):
+    e_anom = mean_anomaly
+    for _ in range(40):
+        step = (e_anom - ecc * math.sin(e_anom) - mean_anomaly) / (
+            1.0 - ecc * math.cos(e_anom)
+        )
+        e_anom -= step
+        if abs(step) < tol:
+            break
+    return e_anom
+"""
+
+
+@pytest.mark.parametrize("point", [(0.3, 0.1), (2.5, 0.6), (-1.0, 0.3)])
+def test_a_newton_step_reads_without_double_negation(point):
+    # the step's adjoint is the negated shared quotient -e_anom_bar / step_3:
+    # written into its readers, mean_anomaly_bar += e_anom_bar_1, not a temporary
+    # set to its negation and then subtracted
+    wrt = ["mean_anomaly", "ecc"]
+    text = gradwright.generate(KEPLER, ["kepler"], wrt)
+    reverse = text.split("# reverse sweep")[1]
+    assert "mean_anomaly_bar += e_anom_bar_1" in reverse, reverse
+    assert not re.search(r"(\w+) = -(\w+)\n(?:.*\n)*?.*-= \1\b", reverse), reverse
+    ns = build(KEPLER, "kepler", wrt)
+    e_anom, (m_bar, e_bar) = ns["kepler_grad"](*point)
+    # implicit-function theorem on E - e sin E = M (closed form):
+    # dE/dM = 1 / (1 - e cos E), dE/de = sin E / (1 - e cos E)
+    ecc = point[1]
+    denominator = 1.0 - ecc * math.cos(e_anom)
+    assert rel_err(m_bar, 1.0 / denominator) < 1e-12
+    assert rel_err(e_bar, math.sin(e_anom) / denominator) < 1e-12

@@ -290,6 +290,8 @@ def _simplify(expr: Apply) -> Expr:
             a_negative, a_magnitude = _split_sign(a)
             if a_negative and a_magnitude == b:  # -x - x is -(2.0 * x) (exact)
                 return _negate(simplify(Apply("mul", (const(2.0), b))))
+            if a_negative:  # -x - y is -(x + y): the sign once (exact)
+                return _negate(Apply("add", (a_magnitude, b)))
     if op == "_gw_unbroadcast" and isinstance(args[0], Const):
         # a constant adjoint belongs to a scalar result: nothing was broadcast
         return args[0]

@@ -220,7 +220,11 @@ def _merge_adjacent(statements: tuple[ReverseStmt, ...]) -> tuple[ReverseStmt, .
     return tuple(out)
 
 
-def inline_adjoints(sweep: ReverseSweep) -> ReverseSweep:
+def inline_adjoints(sweep: ReverseSweep, atoms_only: bool = False) -> ReverseSweep:
+    """Single-use temporaries and copies (or negations) of one adjoint written
+    into their readers. ``atoms_only``: the copies and negations alone, for a
+    second pass after quotients are shared (``t_bar = -q_bar`` where ``q_bar`` is
+    a shared ``B / D``)."""
     flat = list(_flatten(sweep.statements))
     writes = Counter(s.var for s in flat if isinstance(s, AdjointAssign))
     reads = Counter(
@@ -273,7 +277,19 @@ def inline_adjoints(sweep: ReverseSweep) -> ReverseSweep:
                     and not (var in headers and carried)
                     and writes[var] == 1
                     and not _reads_list_adjoint(expr)
-                    and (atom or (var.kind == "temp" and reads[var] == 1))
+                    and (
+                        # (the second pass: a shared quotient's negation only, never
+                        # a copy of a user's adjoint, which a loop may carry)
+                        (atom and not atoms_only)
+                        or (
+                            atoms_only
+                            and atom
+                            and isinstance(bare, Bar)
+                            and bare.var.kind == "temp"
+                            and not carried
+                        )
+                        or (not atoms_only and var.kind == "temp" and reads[var] == 1)
+                    )
                     and not any(node in restored for node in walk(expr))
                 ):
                     inlined[var] = expr
