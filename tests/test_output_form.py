@@ -1423,7 +1423,7 @@ def test_a_helper_copied_alone_may_call_a_differentiated_one():
     assert rel_err(x_bar, -0.75 * 0.5) <= 1e-15
 
 
-KEPLER = """
+KEPLER_STEP = """
 import math
 
 
@@ -1446,11 +1446,11 @@ def test_a_newton_step_reads_without_double_negation(point):
     # written into its readers, mean_anomaly_bar += e_anom_bar_1, not a temporary
     # set to its negation and then subtracted
     wrt = ["mean_anomaly", "ecc"]
-    text = gradwright.generate(KEPLER, ["kepler"], wrt)
+    text = gradwright.generate(KEPLER_STEP, ["kepler"], wrt)
     reverse = text.split("# reverse sweep")[1]
     assert "mean_anomaly_bar += e_anom_bar_1" in reverse, reverse
     assert not re.search(r"(\w+) = -(\w+)\n(?:.*\n)*?.*-= \1\b", reverse), reverse
-    ns = build(KEPLER, "kepler", wrt)
+    ns = build(KEPLER_STEP, "kepler", wrt)
     e_anom, (m_bar, e_bar) = ns["kepler_grad"](*point)
     # implicit-function theorem on E - e sin E = M (closed form):
     # dE/dM = 1 / (1 - e cos E), dE/de = sin E / (1 - e cos E)
