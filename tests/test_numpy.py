@@ -1118,3 +1118,22 @@ def test_an_ellipsis_index_is_a_located_error():
     text = caught.value.diagnostic.render()
     assert text.startswith("model.py:5:21: error: indexing with ... (Ellipsis)")
     assert "hint: write one `:` per axis" in text
+
+
+def test_an_array_a_copied_statement_made_takes_slices_and_new_axes():
+    # found by the npshapes family of the long random run: c0[:, None] on an
+    # array a copied statement made was read as a dict lookup and refused
+    source = (
+        "import numpy as np\n\n\ndef f(x):\n    c0 = np.full(x.shape, 0.5)\n"
+        "    u2 = x * np.sum(c0[:, None] * np.tanh(c0)[None, :], axis=0)\n"
+        "    return np.sum(u2 * x) + np.sum(c0[1:] * x[1:])\n"
+    )
+    model: dict = {}
+    exec(source, model)
+    args = (np.array([0.96, 0.57, -1.2]),)
+    for shapes in (None, {"x": (3,)}):
+        namespace: dict = {}
+        exec(gradwright.generate(source, ["f"], shapes=shapes), namespace)
+        value, (x_bar,) = namespace["f_grad"](*args)
+        # reference: Richardson differences of the model itself
+        assert_close_to_differences(model["f"], args, 0, x_bar, value)
