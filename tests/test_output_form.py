@@ -1458,3 +1458,30 @@ def test_a_newton_step_reads_without_double_negation(point):
     denominator = 1.0 - ecc * math.cos(e_anom)
     assert rel_err(m_bar, 1.0 / denominator) < 1e-12
     assert rel_err(e_bar, math.sin(e_anom) / denominator) < 1e-12
+
+
+STAND_IN_HELPER = """
+import math
+
+
+def shape(s):
+    return math.log1p(s * s)
+
+
+def f(a, s):
+    return a * a * shape(s)
+"""
+
+
+def test_a_helper_copied_alone_keeps_its_target_stand_ins():
+    # review finding: shape() is copied alone (s is no --wrt parameter), and on
+    # MicroPython its log1p is the stand-in _gw_log1p, which the module then
+    # lacked (NameError when f_grad ran)
+    text = gradwright.generate(STAND_IN_HELPER, ["f"], ["a"], target="micropython")
+    assert "def shape_grad" not in text and "def _gw_log1p(" in text
+    namespace: dict = {}
+    exec(compile(text, "<f_grad>", "exec"), namespace)
+    _, (a_bar,) = namespace["f_grad"](2.0, 0.5)
+    # closed form: d/da a^2 log1p(s^2) = 2 a log1p(s^2); the stand-in is within a
+    # few ulp of CPython's log1p
+    assert rel_err(a_bar, 4.0 * math.log1p(0.25)) <= 1e-14

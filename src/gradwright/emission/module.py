@@ -144,6 +144,31 @@ def _with_seed(node: cst.FunctionDef, signature: str, seed: str) -> str:
     return f"{signature}, {seed}"
 
 
+def render_primal(
+    index: ModuleIndex, compiled: Compiled, target: Target
+) -> RenderedGradient:
+    """A helper no derivative of which is read (``Compiled.primal_only``): its
+    copy alone, as the target runs it (with the stand-ins it calls)."""
+    checked, names = compiled.checked, compiled.ssa.local_names
+    node, helpers = prepare_primal(target, index, checked, names)
+    check_helper_names(target, index, checked, names, helpers)
+    primal = format_function(_strip_annotations(node), index.module, index.code)
+    return RenderedGradient(
+        name=checked.name,
+        kind="primal",
+        derived_name="",
+        signature="",
+        wrt=(),
+        bars=(),
+        forward=(),
+        reverse=(),
+        seed_unpack="",
+        result="",
+        primal=primal.rstrip("\n"),
+        helpers=helpers,
+    )
+
+
 def render_function(
     index: ModuleIndex, compiled: Compiled, target: Target | None = None
 ) -> tuple[RenderedGradient, set[str]]:
@@ -332,13 +357,13 @@ def render_module(
     # in the source's order, so a helper comes before the model that calls it
     ordered = sorted(compiled, key=lambda c: (order[c.checked.name], roles[c.role]))
     for k, item in enumerate(ordered):
-        rendered, used = render_function(index, item, target)
+        if item.primal_only:  # no derivative to lay out
+            rendered, used = render_primal(index, item, target), set()
+        else:
+            rendered, used = render_function(index, item, target)
         if k and ordered[k - 1].checked.name == item.checked.name:
             # a listed function also called as a helper: its copy once
             rendered = dataclasses.replace(rendered, primal="")
-        if item.primal_only:
-            functions.append(dataclasses.replace(rendered, kind="primal"))
-            continue
         functions.append(rendered)
         modules |= used
         helpers |= rendered.helpers
