@@ -220,6 +220,12 @@ def _merge_adjacent(statements: tuple[ReverseStmt, ...]) -> tuple[ReverseStmt, .
     return tuple(out)
 
 
+def _quotient_copy(bare: Expr, carried: bool) -> bool:
+    """What the second pass inlines: a shared quotient's (a temporary's) copy or
+    negation, never a copy of a user's adjoint, which a loop may carry."""
+    return isinstance(bare, Bar) and bare.var.kind == "temp" and not carried
+
+
 def inline_adjoints(sweep: ReverseSweep, atoms_only: bool = False) -> ReverseSweep:
     """Single-use temporaries and copies (or negations) of one adjoint written
     into their readers. ``atoms_only``: the copies and negations alone, for a
@@ -278,16 +284,8 @@ def inline_adjoints(sweep: ReverseSweep, atoms_only: bool = False) -> ReverseSwe
                     and writes[var] == 1
                     and not _reads_list_adjoint(expr)
                     and (
-                        # (the second pass: a shared quotient's negation only, never
-                        # a copy of a user's adjoint, which a loop may carry)
-                        (atom and not atoms_only)
-                        or (
-                            atoms_only
-                            and atom
-                            and isinstance(bare, Bar)
-                            and bare.var.kind == "temp"
-                            and not carried
-                        )
+                        atom
+                        and (not atoms_only or _quotient_copy(bare, carried))
                         or (not atoms_only and var.kind == "temp" and reads[var] == 1)
                     )
                     and not any(node in restored for node in walk(expr))

@@ -633,10 +633,10 @@ class _Reverse:
                 full = fitter.table.atom(phi.target)
                 zeros = (
                     shape_expr(full, fitter.sizes)
-                    if full and isinstance(full, tuple)
+                    if is_zero(value) and full and isinstance(full, tuple)
                     else None
                 )
-                if is_zero(value) and zeros is not None:
+                if zeros is not None:
                     # np.zeros of the value's shape keeps the shape every trip
                     # hands back (a state vector's adjoint), where 0.0 would not
                     zero_starts[carry] = (len(out) - 1, Apply("np.zeros", (zeros,)))
@@ -665,14 +665,16 @@ class _Reverse:
             self.dry = True
             self.loop_body(loop, carries)
             self.dry = False
-            kept = {
-                carry: shape
-                for phi, carry in carries.items()
-                if carry in entry and phi.target in self.has
-                for shape in [entry[carry]]
-                if fitter is not None and fitter.adj.get(phi.target) == shape
-            }
+            kept = {}
             if fitter is not None:
+                # the shape each handed back at the end of the body
+                kept = {
+                    carry: entry[carry]
+                    for phi, carry in carries.items()
+                    if carry in entry
+                    and phi.target in self.has
+                    and fitter.adj.get(phi.target) == entry[carry]
+                }
                 fitter.restore(state)
             if kept == entry:
                 break

@@ -100,7 +100,11 @@ def _sink_block(
     """``side``: a branch's side, where the pairs are looked for (a copy at a
     loop's start or end names the adjoint the loop carries: the namer keeps it)."""
     out: list[ReverseStmt | None] = []
-    made: dict[Var, int] = {}  # a movable adjoint's plain write -> its place
+    # the place of the statement before, when it is a movable adjoint's plain
+    # write: the copy must follow right after it (a carried adjoint and the value
+    # it carries print under one name, so moving a write past others may change
+    # what a reader sees, and the line would leave its statement's comment)
+    made: int | None = None
     for stmt in statements:
         if isinstance(stmt, ReverseBranch):
             stmt = replace(
@@ -110,32 +114,26 @@ def _sink_block(
             )
         elif isinstance(stmt, ReverseLoop):
             stmt = replace(stmt, body=_sink_block(stmt.body, movable, pairs))
+        first = out[made] if made is not None else None
         if (
             side
+            and isinstance(first, AdjointAssign)
             and isinstance(stmt, AdjointAssign)
             and not stmt.accumulate
-            and isinstance(stmt.expr, Bar)
-            and stmt.expr.var in made
+            and stmt.expr == Bar(first.var)
         ):
-            pairs[stmt.expr.var] += 1
-            place = made.pop(stmt.expr.var)
-            first = out[place]
-            assert isinstance(first, AdjointAssign)
-            out[place] = None
+            pairs[first.var] += 1
+            out[made] = None  # type: ignore[index]
             if first.expr != Bar(stmt.var):  # v_bar = v_bar changes nothing
                 out.append(replace(first, var=stmt.var))
+            made = None
             continue
-        # the copy must follow right after: a carried adjoint and the value it
-        # carries print under one name, so moving a write past others may change
-        # what a reader sees, and the line would leave its statement's comment
-        made = {}
-        if (
+        movable_write = (
             isinstance(stmt, AdjointAssign)
             and not stmt.accumulate
             and stmt.var in movable
-            and stmt.var.shape == "scalar"
-        ):
-            made[stmt.var] = len(out)
+        )
+        made = len(out) if movable_write else None
         out.append(stmt)
     return tuple(s for s in out if s is not None)
 
