@@ -1441,15 +1441,10 @@ def kepler(mean_anomaly, ecc, tol=1e-13):
 
 
 @pytest.mark.parametrize("point", [(0.3, 0.1), (2.5, 0.6), (-1.0, 0.3)])
-def test_a_newton_step_reads_without_double_negation(point):
-    # the step's adjoint is the negated shared quotient -e_anom_bar / step_3:
-    # written into its readers, mean_anomaly_bar += e_anom_bar_1, not a temporary
-    # set to its negation and then subtracted
+def test_a_newton_step_against_the_implicit_function_theorem(point):
+    # (a second inlining that wrote the step's negated quotient into its readers
+    # was taken out: it gave a wrong gradient in a random program)
     wrt = ["mean_anomaly", "ecc"]
-    text = gradwright.generate(KEPLER_STEP, ["kepler"], wrt)
-    reverse = text.split("# reverse sweep")[1]
-    assert "mean_anomaly_bar += e_anom_bar_1" in reverse, reverse
-    assert not re.search(r"(\w+) = -(\w+)\n(?:.*\n)*?.*-= \1\b", reverse), reverse
     ns = build(KEPLER_STEP, "kepler", wrt)
     e_anom, (m_bar, e_bar) = ns["kepler_grad"](*point)
     # implicit-function theorem on E - e sin E = M (closed form):

@@ -555,6 +555,25 @@ def f(x):
 """,
         [[0.75]],
     ),
+    # the helper_shapes family: a second inlining pass after quotients were
+    # shared wrote x_bar = a_bar_1 where the conditional's side adds to x_bar
+    "second_inlining_conditional_argument": (
+        """\
+import math
+
+
+def g1(a, b):
+    return a, (b - math.copysign(0.1, b))
+
+
+def f(x, y):
+    for i1 in range(2):
+        t2, x = x, (y / (1.25 + x * x))
+    p10 = g1((x if y < 0.75 else y), x)
+    return p10[0] * y + p10[1]
+""",
+        [[0.8935274474185702, -0.6506627936649352], [0.5, 0.9]],
+    ),
     # the mixed family: a list element holding sum([]), the int 0, gave x_bar = 0
     "int_in_a_list_element": (
         """\

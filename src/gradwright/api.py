@@ -140,7 +140,6 @@ def _differentiate(
     if scalar:
         sweep = branch_selects(sweep)
         sweep = share_quotients(sweep, fresh_uid(ssa, sweep))
-        sweep = inline_adjoints(sweep, atoms_only=True)
         sweep = sink_copies(merge_zero_starts(fold_scales(sweep)))
         sweep = float_entries(sweep, ssa)
     if fitter is not None:

@@ -220,17 +220,9 @@ def _merge_adjacent(statements: tuple[ReverseStmt, ...]) -> tuple[ReverseStmt, .
     return tuple(out)
 
 
-def _quotient_copy(bare: Expr, carried: bool) -> bool:
-    """What the second pass inlines: a shared quotient's (a temporary's) copy or
-    negation, never a copy of a user's adjoint, which a loop may carry."""
-    return isinstance(bare, Bar) and bare.var.kind == "temp" and not carried
-
-
-def inline_adjoints(sweep: ReverseSweep, atoms_only: bool = False) -> ReverseSweep:
+def inline_adjoints(sweep: ReverseSweep) -> ReverseSweep:
     """Single-use temporaries and copies (or negations) of one adjoint written
-    into their readers. ``atoms_only``: the copies and negations alone, for a
-    second pass after quotients are shared (``t_bar = -q_bar`` where ``q_bar`` is
-    a shared ``B / D``)."""
+    into their readers."""
     flat = list(_flatten(sweep.statements))
     writes = Counter(s.var for s in flat if isinstance(s, AdjointAssign))
     reads = Counter(
@@ -283,11 +275,7 @@ def inline_adjoints(sweep: ReverseSweep, atoms_only: bool = False) -> ReverseSwe
                     and not (var in headers and carried)
                     and writes[var] == 1
                     and not _reads_list_adjoint(expr)
-                    and (
-                        atom
-                        and (not atoms_only or _quotient_copy(bare, carried))
-                        or (not atoms_only and var.kind == "temp" and reads[var] == 1)
-                    )
+                    and (atom or (var.kind == "temp" and reads[var] == 1))
                     and not any(node in restored for node in walk(expr))
                 ):
                     inlined[var] = expr
