@@ -2,7 +2,7 @@
 # source: samples/greenhouse_net.py
 # source sha256: f94a505cbabce5a779320a9a523463a3af5a29e82a9d607fbc7c2942e6341334
 # command: gradwright gen samples/greenhouse_net.py humidity_loss --wrt W1,b1,w2,b2 --shape W1=4,h --shape b1=h --shape 'b2=()' --shape features=n,4 --shape humidity=n --shape w2=h -o samples/greenhouse_net_grad.py
-# output sha256: e06078bd1ce2db004cba855936bb3a89b69fe475aed67772828e168f0c48cd7d
+# output sha256: e73858517cd299dc3a5d96cc379be12e90c1de7b90f8f7d6d4707a4aff65b5b9
 
 import numpy as np
 
@@ -38,16 +38,6 @@ def _gw_check_shapes(declared, *values):
                 f" shape {wanted} (gen --shape {name}=...): generate it again"
                 " for these shapes"
             )
-
-
-def _gw_shaped(g, x):
-    """An adjoint with the shape of its value (a zero becomes an array of zeros),
-    in an array of its own that the caller may change."""
-    if isinstance(x, (int, float)) and np.ndim(g) == 0:
-        return float(g)  # a number gets a number (not a 0-d array)
-    if np.shape(g) != np.shape(x):
-        return np.zeros(np.shape(x)) + g
-    return np.array(g) if isinstance(g, np.ndarray) else g
 
 
 def humidity_loss(W1, b1, w2, b2, features, humidity):
@@ -100,4 +90,4 @@ def humidity_loss_grad(W1, b1, w2, b2, features, humidity):
     hidden_bar_1 *= np.outer(err_bar, w2)
     b1_bar = np.einsum("ij->j", hidden_bar_1)
     W1_bar += features.T @ hidden_bar_1
-    return value, (W1_bar, b1_bar, w2_bar, _gw_shaped(b2_bar, b2))
+    return value, (W1_bar, b1_bar, w2_bar, float(b2_bar))

@@ -274,12 +274,11 @@ def render_function(
         numpy_helpers.add("_gw_check_shapes")
     if reverse_printer is not None:
         numpy_helpers |= reverse_printer.helpers_used
-        # an adjoint that stayed a plain zero still comes back with its value's shape
         returned = tuple(
-            bar if v in sweep.bare else f"_gw_shaped({bar}, {namer.name(v)})"
+            _returned_adjoint(bar, v, sweep.bare, compiled.declared, namer)
             for bar, v in zip(bars, sweep.wrt, strict=True)
         )
-        if any(v not in sweep.bare for v in sweep.wrt):
+        if any(r.startswith("_gw_shaped(") for r in returned):
             numpy_helpers.add("_gw_shaped")
     result = f"{value}, ({', '.join(returned)}{',' if len(bars) == 1 else ''})"
     if is_adjoint:
@@ -331,6 +330,25 @@ def render_function(
         numpy_helpers=frozenset(numpy_helpers),
     )
     return rendered, printer.modules_used
+
+
+def _returned_adjoint(
+    bar: str,
+    v: Var,
+    bare: frozenset[Var],
+    declared: Mapping[str, tuple[int | str, ...]],
+    namer: Namer,
+) -> str:
+    """How an array model returns one parameter's adjoint."""
+    if v in bare:
+        return bar
+    if declared.get(v.base) == ():
+        # a number checked at the call: its adjoint is a number too (a plain
+        # zero, a NumPy scalar or a 0-d array) and comes back as a float
+        return f"float({bar})"
+    # an adjoint that stayed a plain zero still comes back with its value's shape,
+    # in an array of its own
+    return f"_gw_shaped({bar}, {namer.name(v)})"
 
 
 def _shape_check(

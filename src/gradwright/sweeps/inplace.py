@@ -7,7 +7,9 @@ of the sweep (no branch or loop decides which array it holds), its first write
 makes a new array (arithmetic, a NumPy function, a matrix product: not a copy of
 another name, a view or a helper's result) and no statement copies it into
 another name or takes a view of it. Such an adjoint of a ``wrt`` parameter is also
-returned as it is, without ``_gw_shaped`` making it an array of its own again.
+returned as it is, without ``_gw_shaped`` making it an array of its own again, and
+so is a parameter's adjoint whose one write copies an unshared new array that only
+it copies and no later statement changes (``x_bar = value_bar_1``).
 In-place arithmetic also needs a float array (``+=`` of floats into an int array
 is an error): only an adjoint whose first write surely makes floats takes it.
 
@@ -186,12 +188,16 @@ def _lending(expr: Expr, lenders: set[Var]) -> tuple[Var, Expr] | None:
 def plan_in_place(sweep: ReverseSweep, fitter: Fitter) -> ReverseSweep:
     top: dict[Var, list[AdjointAssign]] = {}
     unfit: set[Var] = set()  # written inside a branch or loop, or shared
+    # the statements that may copy an adjoint's array or view it, by adjoint
+    aliased_by: dict[Var, list[ReverseStmt]] = {}
+    nested_writes: set[Var] = set()
 
     def visit(stmt: ReverseStmt, nested: bool) -> None:
         exprs: list[Expr] = []
         if isinstance(stmt, AdjointAssign):
             if nested:
                 unfit.add(stmt.var)
+                nested_writes.add(stmt.var)
             else:
                 top.setdefault(stmt.var, []).append(stmt)
             exprs.append(stmt.expr)
@@ -202,7 +208,9 @@ def plan_in_place(sweep: ReverseSweep, fitter: Fitter) -> ReverseSweep:
         elif isinstance(stmt, CallAdjoint):  # the helper may hand its seed back
             exprs += [stmt.seed, *stmt.args]
         for expr in exprs:
-            unfit.update(_aliases(expr))
+            for alias in _aliases(expr):
+                unfit.add(alias)
+                aliased_by.setdefault(alias, []).append(stmt)
             # an adjoint read twice in one statement stays out of in-place work
         for inner in _statements(stmt):
             visit(inner, True)
@@ -211,13 +219,17 @@ def plan_in_place(sweep: ReverseSweep, fitter: Fitter) -> ReverseSweep:
         visit(stmt, False)
     carried = {carry for carry, _ in sweep.carries}
 
-    def unshared_but_first(var: Var) -> bool:
-        """Every condition of an unshared adjoint but the first write's op."""
+    def unshared_but_first(var: Var, copied_by: ReverseStmt | None = None) -> bool:
+        """Every condition of an unshared adjoint but the first write's op (but
+        for one statement's copy of it, ``copied_by``)."""
         writes = top.get(var)
         wanted = fitter.table.atom(var)
+        shared = var in unfit and (
+            var in nested_writes or aliased_by.get(var) != [copied_by]
+        )
         return not (
             writes is None
-            or var in unfit
+            or shared
             or var in carried
             or var.shape == "list"
             or writes[0].accumulate
@@ -283,12 +295,42 @@ def plan_in_place(sweep: ReverseSweep, fitter: Fitter) -> ReverseSweep:
     in_place = frozenset(v for v in fresh & floats if len(top[v]) > 1)
     # a number's adjoint goes through _gw_shaped, which makes it a float (not an
     # int count, not a 0-d array)
-    bare = frozenset(v for v in sweep.wrt if v in fresh and fitter.table.atom(v) != ())
+    bare = {v for v in sweep.wrt if v in fresh and fitter.table.atom(v) != ()}
+    for v in sweep.wrt:
+        # x_bar = d, the one write of x_bar and the one copy of d, a new array
+        # of x_bar's shape no statement after changes: x_bar is returned as it is
+        writes = top.get(v, [])
+        if (
+            v in bare
+            or v in unfit
+            or len(writes) != 1
+            or writes[0].accumulate
+            or not isinstance(writes[0].expr, Bar)
+        ):
+            continue
+        d = writes[0].expr.var
+        wanted = fitter.table.atom(v)
+        position = statements.index(writes[0])
+        first = top.get(d, [None])[0]
+        if not (
+            d not in sweep.wrt
+            and unshared_but_first(d, copied_by=writes[0])
+            and isinstance(first, AdjointAssign)
+            and isinstance(first.expr, Apply)
+            and first.expr.op in _FRESH
+            and wanted != ()
+            and fitter.table.atom(d) == wanted
+            and not any(
+                s is not None and d in _written(s) for s in statements[position:]
+            )
+        ):
+            continue
+        bare.add(v)
     return replace(
         sweep,
         statements=tuple(s for s in statements if s is not None),
         in_place=in_place,
-        bare=bare,
+        bare=frozenset(bare),
         updates=tuple(updates.items()),
         split=frozenset(split),
     )
