@@ -2266,8 +2266,9 @@ def numpy_programs(draw, family: str = "numpy") -> Case:
     if draw(st.integers(0, 3)) == 0:
         wrt = [p for p in params if draw(st.booleans())] or params[:1]
     shapes = None
-    if family == "npshapes":
-        # some parameters' shapes declared, each size a number or a name (one
+    if family == "npshapes" or (family == "numpy_helpers" and draw(st.booleans())):
+        # some parameters' shapes declared (helpers then learn theirs from the
+        # calls), each size a number or a name (one
         # name per size, so that equal sizes are provably equal)
         named = {size: draw(st.sampled_from([size, f"n{size}"])) for size in (2, 3)}
         shapes = {

@@ -609,3 +609,19 @@ def test_regression_numpy_scalar_parameter_gets_a_float() -> None:
     args = [np.array([-1.25, -0.25]), -0.75]
     outcome = evaluate(case, args)
     assert outcome.status == "ok", _report(case, args, outcome)
+
+
+def test_regression_negated_one_hot_mask() -> None:
+    # found by the npshapes family: the minus of -sin's slope went onto the max's
+    # one-hot mask, -(argmax == arange) * g, and NumPy refuses to negate a bool
+    # array (TypeError); checked against mpmath central differences like the rest
+    source = (
+        "import numpy as np\n\ndef f(w, A, s):\n    u0 = np.max(np.cos(w))\n"
+        "    return np.arccosh(1.5 + u0 * u0)\n"
+    )
+    program = RawProgram(source, numpy=True)
+    kinds = {"w": "array:2", "A": "array:2x3", "s": "float"}
+    case = Case(program, kinds, None, 0, "regression", {"w": (2,)})
+    args = [np.array([-1.4597499936502143, -0.979227549318789]), np.ones((2, 3)), 0.5]
+    outcome = evaluate(case, args)
+    assert outcome.status == "ok", _report(case, args, outcome)

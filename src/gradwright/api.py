@@ -36,6 +36,7 @@ from gradwright.lowering.frontend import (
 )
 from gradwright.lowering.ssa import lower
 from gradwright.sweeps.broadcasting import Fitter
+from gradwright.sweeps.call_shapes import CallShapes
 from gradwright.sweeps.common import float_entries, fresh_uid, reuse_values
 from gradwright.sweeps.factoring import tidy
 from gradwright.sweeps.inplace import plan_in_place
@@ -83,12 +84,14 @@ def _differentiate(
     role: HelperRole,
     adjoint_helpers: Mapping[str, tuple[Var, ...]] | None = None,
     shapes: Mapping[str, tuple[Dim, ...]] | None = None,
+    calls: CallShapes | None = None,
 ) -> Compiled:
     """The reverse sweep of a lowered function: a target (seeded with 1, or one
     seed per output), a helper in partials form (its partials, at the broadcast
     shape of its result: each call site sums them back to its operands' shapes)
     or a helper's adjoint function (seeded with its result's adjoint). ``shapes``:
-    a target's declared array shapes."""
+    a target's declared array shapes, or those every call of a helper passes;
+    ``calls``: helpers' result shapes at the calls."""
     name = checked.name
     declared = {p: dims for p, dims in (shapes or {}).items() if p in checked.params}
     ssa, sizes = with_sizes(
@@ -105,14 +108,10 @@ def _differentiate(
     broadcasting = bool(index.numpy_modules) and role != "partials"
     fitter = None
     if broadcasting:
-        table = ShapeTable(
-            ssa.params,
-            ssa.body,
-            declared,
-            index.constants,
-            data_shapes(index),
-            index.numpy_modules,
-        )
+        table = _shape_table(index, ssa, declared, calls)
+        if role == "adjoint" and declared and not ssa.result.is_tuple:
+            # every call passes its seed at the result's shape (Fitter.full)
+            table.of[seeds[0]] = table.atom(ssa.result.values[0])  # type: ignore[index]
         fitter = Fitter(table, sizes)
     sweep = reverse_sweep(
         ssa, checked.wrt, seeds, broadcasting, adjoint_helpers, fitter
@@ -184,17 +183,29 @@ def compile_with_callees(
         for name, form in forms.items()
         if form == "adjoint"
     }
+    calls = None
+    if index.numpy_modules:
+        targets = {
+            name: {p: d for p, d in (shapes or {}).items() if p in checked.params}
+            for name, (checked, _) in lowered.items()
+        }
+        calls = CallShapes(ssas, targets, lambda f, d, c: _shape_table(index, f, d, c))
     compiled = [
-        _differentiate(index, checked, ssa, "target", adjoint_helpers, shapes)
+        _differentiate(index, checked, ssa, "target", adjoint_helpers, shapes, calls)
         for checked, ssa in lowered.values()
     ]
     for name, (checked, ssa) in helpers.items():
         if forms[name] == "partials" and name in lowered:
             continue  # the target's own gradient serves its calls
+        own = calls.declared(name) if calls and forms[name] == "adjoint" else None
         compiled.append(
-            _differentiate(index, checked, ssa, forms[name], adjoint_helpers)
+            _differentiate(
+                index, checked, ssa, forms[name], adjoint_helpers, own, calls
+            )
         )
-    return _narrow_helpers(index, compiled, set(lowered), stacks, adjoint_helpers)
+    return _narrow_helpers(
+        index, compiled, set(lowered), stacks, adjoint_helpers, calls
+    )
 
 
 def _narrow_helpers(
@@ -203,6 +214,7 @@ def _narrow_helpers(
     targets: set[str],
     stacks: dict[str, tuple[str, ...]],
     adjoint_helpers: Mapping[str, tuple[Var, ...]],
+    calls: CallShapes | None,
 ) -> list[Compiled]:
     """Each helper in partials form differentiated only in the parameters some
     call site reads a partial of (not an integer count, a tolerance or a constant
@@ -245,7 +257,10 @@ def _narrow_helpers(
             continue  # its callers' parts are one per parameter: kept aligned
         checked = check_function(index, name, wrt)
         ssa = lower(index, checked, stacks[name])
-        by_key[key] = _differentiate(index, checked, ssa, role, adjoint_helpers)
+        own = calls.declared(name) if calls and role == "adjoint" else None
+        by_key[key] = _differentiate(
+            index, checked, ssa, role, adjoint_helpers, own, calls
+        )
         positions = {params.index(base): j for j, base in enumerate(wrt)}
         for caller in callers[key] - dropped:  # (a dropped one calls no _grad)
             if role == "partials":
@@ -573,6 +588,23 @@ def _collector_paused() -> Iterator[None]:
     finally:
         if was_enabled:
             gc.enable()
+
+
+def _shape_table(
+    index: ModuleIndex,
+    ssa: SSAFunction,
+    declared: Mapping[str, tuple[Dim, ...]],
+    calls: CallShapes | None,
+) -> ShapeTable:
+    return ShapeTable(
+        ssa.params,
+        ssa.body,
+        declared,
+        index.constants,
+        data_shapes(index),
+        index.numpy_modules,
+        calls.result if calls is not None else None,
+    )
 
 
 def data_shapes(index: ModuleIndex) -> dict[str, tuple[Dim, ...]]:

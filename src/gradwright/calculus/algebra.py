@@ -208,11 +208,23 @@ def _signed(negative: bool, magnitude: Expr) -> Expr:
         return magnitude
     if isinstance(magnitude, Apply) and magnitude.op in ("mul", "div"):
         left, right = magnitude.args
+        if _leftmost(left).op in _COMPARISONS:
+            # NumPy refuses to negate a bool array (a max's one-hot mask):
+            # -(mask * g), never -mask * g
+            return Apply("neg", (magnitude,))
         return Apply(magnitude.op, (_signed(True, left), right))
     n = number(magnitude)
     if n is not None:
         return const(-n)
     return Apply("neg", (magnitude,))
+
+
+def _leftmost(expr: Expr) -> Apply:
+    """The leftmost factor of a chain of products and quotients (a name or a
+    number: an empty Apply)."""
+    while isinstance(expr, Apply) and expr.op in ("mul", "div"):
+        expr = expr.args[0]
+    return expr if isinstance(expr, Apply) else Apply("", ())
 
 
 def _fold_constants(op: str, a: Expr, b: Expr) -> Expr | None:

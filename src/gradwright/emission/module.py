@@ -40,7 +40,7 @@ from gradwright.emission.targets import (
 from gradwright.header import shape_words
 from gradwright.ir import ReverseSweep, SSAFunction, Var
 from gradwright.lowering.frontend import CheckedFunction, ModuleIndex
-from gradwright.sweeps.shapes import SHAPES_DECLARED
+from gradwright.sweeps.shapes import SHAPES_CALLED, SHAPES_DECLARED
 
 
 @dataclass(frozen=True)
@@ -218,10 +218,15 @@ def render_function(
             else None
         )
         laid_out = lay_out(
-            # an adjoint function returns no value, but its forward sweep still
-            # computes it: leaving the result out dropped loops whose reverse
-            # reads their trip count (a layout the check refused)
-            ssa,
+            # an adjoint function returns no value: its result is computed only
+            # where the reverse sweep reads it
+            (
+                dataclasses.replace(
+                    ssa, result=dataclasses.replace(ssa.result, values=())
+                )
+                if is_adjoint
+                else ssa
+            ),
             sweep,
             namer,
             printer,
@@ -254,14 +259,15 @@ def render_function(
     if compiled.declared:
         check = _shape_check(ssa, compiled.declared)
         # first of all, before any size is read
-        forward = [f"    # {SHAPES_DECLARED}", check, *forward]
+        said = SHAPES_DECLARED if compiled.role == "target" else SHAPES_CALLED
+        forward = [f"    # {said}", check, *forward]
     seed_unpack = ""
     if is_vector:
         names = [namer.name(seed) for seed in sweep.seeds]
         seed_unpack = (
             f"{', '.join(names)}{',' if len(names) == 1 else ''} = {seed_name}"
         )
-    values = [printer(e) for e in result_exprs]
+    values = [printer(e) for e in result_exprs] or [""]
     value = (
         f"({', '.join(values)}{',' if len(values) == 1 else ''})"
         if is_vector

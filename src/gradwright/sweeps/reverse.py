@@ -424,6 +424,10 @@ class _Reverse:
             parts.append(Var(self.next_uid, param.base, "temp", param.shape))
             self.next_uid += 1
         out.append(CallAdjoint(callee, let.args, seed, tuple(parts), let.origin))
+        if self.fitter is not None:
+            # the helper returns each adjoint at its parameter's shape (_gw_shaped)
+            for arg, part in zip(let.args, parts, strict=True):
+                self.fitter.adj[part] = self.fitter.table.atom(arg)
         for arg, part in zip(let.args, parts, strict=True):
             if not (isinstance(arg, Var) and arg in self.active):
                 continue

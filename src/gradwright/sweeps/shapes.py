@@ -124,10 +124,13 @@ class ShapeTable:
         numbers: Iterable[str] = (),
         data: Mapping[str, tuple[Dim, ...]] | None = None,
         numpy_names: frozenset[str] = frozenset(),
+        results: Callable[[str, tuple[Shape, ...]], Shape | None] | None = None,
     ) -> None:
         self.numbers = frozenset(numbers)
         self.data = dict(data or {})
         self.numpy_names = numpy_names
+        #: a helper's result shape for its arguments' shapes (call_shapes.py)
+        self.results = results
         self.of: dict[Var, Shape] = {}
         #: copied statements (``sigma = X.std(axis=0)``) by their value
         self.copied: dict[Var, Let] = {}
@@ -207,7 +210,10 @@ class ShapeTable:
         if op in _SAME:
             return shapes[0]
         if op.startswith("call:"):
-            return None  # a helper of an array model may reduce or multiply
+            # a helper may reduce or multiply: its own body says how
+            if self.results is None or len(shapes) != len(args):
+                return None
+            return self.results(op.removeprefix("call:"), tuple(shapes))
         if op in _BROADCAST or op == "ifexp":
             if op == "ifexp":  # in array code only np.where's, elementwise
                 shapes = [shapes[0], shapes[2]]
@@ -408,6 +414,7 @@ def axis_text(axes: tuple[int, ...]) -> Const:
 
 #: the comment above the check of the declared shapes
 SHAPES_DECLARED = "the shapes declared with gen --shape; any others are refused"
+SHAPES_CALLED = "the shapes every call in this module passes; any others are refused"
 
 
 def with_sizes(
