@@ -856,7 +856,7 @@ def test_loop_invariant_recomputation_is_done_once_before_the_reverse_loops():
     # hold = disc * (p * values[j + 1] + (1.0 - p) * values[j]): 1.0 - p once,
     # before both reverse loops, not at every node
     assert reverse.count("= 1.0 - p") == 1
-    assert "\n    hold_4 = 1.0 - p\n    for i in reversed(" in reverse
+    assert "\n    hold_4 = 1.0 - p\n    for i in range(steps):" in reverse
 
 
 NO_TRIPS = """
@@ -1480,3 +1480,33 @@ def test_a_helper_copied_alone_keeps_its_target_stand_ins():
     # closed form: d/da a^2 log1p(s^2) = 2 a log1p(s^2); the stand-in is within a
     # few ulp of CPython's log1p
     assert rel_err(a_bar, 4.0 * math.log1p(0.25)) <= 1e-14
+
+
+DESCENDING = """
+def f(x, n, m):
+    s = 0.0
+    for i in range(n, m, -1):
+        s = s * 0.5 + x * i
+    for k in range(n + 2, 3, -1):
+        s = s * x
+    return s
+"""
+
+
+def test_the_reverse_of_a_descending_range_counts_up_as_written():
+    text = gradwright.generate(DESCENDING, ["f"], wrt=["x"])
+    _, reverse = _sweeps(text, "f")
+    # reversed(range(n + 2, 3, -1)) is range(4, n + 3); reversed(range(n, m, -1))
+    # is range(m + 1, n + 1): no reversed() of a backwards range
+    assert "for k in range(4, n + 3):" in reverse
+    assert "for i in range(m + 1, n + 1):" in reverse
+    assert "reversed(" not in reverse
+    ns = run_source(text)
+    model: dict = {}
+    exec(DESCENDING, model)
+    x = sympy.Symbol("x")
+    for n, m in [(5, 1), (3, -2), (1, 4), (7, 7), (2, 1)]:
+        # reference: SymPy's derivative of the model run on a symbol
+        exact = sympy.diff(model["f"](x, n, m), x).subs(x, sympy.Rational(7, 10))
+        _, (x_bar,) = ns["f_grad"](0.7, n, m)
+        assert rel_err(x_bar, float(exact)) < 1e-14

@@ -420,6 +420,21 @@ class Layout(NamingLayout, TapeLayout):
             return f"{show(start)}, {show(stop)}"
         return f"{show(start)}, {show(stop)}, {show(step)}"
 
+    def reverse_range(self, loop: Loop) -> str:
+        """The iterations of ``loop``'s reverse: ``reversed(range(...))``, or for a
+        step of -1 the same numbers ascending (``range(steps)`` for the reverse of
+        ``range(steps - 1, -1, -1)``)."""
+        if loop.trips is None and _is_const(loop.step, -1):
+            start = self.cheap(loop.start, everywhere=True)
+            stop = self.cheap(loop.stop, everywhere=True)
+            # range(a, b, -1) runs a, a - 1, ..., b + 1: reversed, b + 1 to a
+            low = indexing.affine(Apply("add", (stop, const(1))))
+            high = indexing.affine(Apply("add", (start, const(1))))
+            if _is_const(low, 0):
+                return f"range({self.expr(high)})"
+            return f"range({self.expr(low)}, {self.expr(high)})"
+        return f"reversed(range({self.range_args(loop)}))"
+
     def slot(self, loop: Loop, forward: bool = False) -> str:
         """The saved-list index of the current iteration (a while loop's
         forward sweep counts its iterations in its trip count)."""

@@ -411,7 +411,7 @@ class ReverseLines(EmitterBase):
         for bound in reverse_bounds(loop):
             self.reads(layout.cheap(bound, everywhere=True))
         out.code(
-            f"for {index} in reversed(range({layout.range_args(loop)})):",
+            f"for {index} in {layout.reverse_range(loop)}:",
             depth,
         )
         out.open_block(depth, stmt.origin)
