@@ -307,6 +307,49 @@ def pk_loss(volume, k_el):
     assert rel_err(k_bar, float(sympy.diff(model, k).evalf(30, subs=point))) < 1e-13
 
 
+PACK = """
+# (open-circuit voltage, internal resistance) per cell
+CELLS = [(3.71, 0.021), (3.69, 0.024), (3.72, 0.019)]
+
+
+def cell(ocv, r_int, current):
+    drop = current * r_int
+    return ocv - drop, drop * current
+
+
+def pack_cost(current, wiring_r, target_v):
+    total_v = 0.0
+    heat = 0.0
+    for ocv, r in CELLS:
+        v, loss = cell(ocv, r, current)
+        total_v += v
+        heat += loss
+    total_v -= current * wiring_r
+    return (total_v - target_v) ** 2 + 0.05 * (heat + current**2 * wiring_r)
+"""
+
+
+def test_a_table_row_the_reverse_reads_whole_is_unpacked_as_written():
+    import sympy
+
+    text = gradwright.generate(PACK, ["pack_cost"], wrt=["current", "wiring_r"])
+    reverse = text.split("# reverse sweep")[-1]
+    # both elements of the row recomputed: one unpacking, not a row name and
+    # an element read per name
+    assert "        ocv, r = CELLS[ocv_index]\n" in reverse
+    assert "row" not in reverse
+    module = build(PACK, "pack_cost", ["current", "wiring_r"])
+    i, w = sympy.symbols("i w")
+    cells = [(3.71, 0.021), (3.69, 0.024), (3.72, 0.019)]
+    volts = sum(sympy.Float(o) - i * sympy.Float(r) for o, r in cells) - i * w
+    heat = sum(i * sympy.Float(r) * i for _, r in cells) + i**2 * w
+    model = (volts - 11.0) ** 2 + sympy.Float(0.05) * heat
+    _, (i_bar, w_bar) = module["pack_cost_grad"](1.3, 0.8, 11.0)
+    point = {i: 1.3, w: 0.8}  # SymPy diff of the same model written by hand
+    assert rel_err(i_bar, float(sympy.diff(model, i).evalf(30, subs=point))) < 1e-13
+    assert rel_err(w_bar, float(sympy.diff(model, w).evalf(30, subs=point))) < 1e-13
+
+
 TUPLE_STATE = """
 import math
 

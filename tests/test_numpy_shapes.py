@@ -404,7 +404,8 @@ def test_int_data_adjoints_are_not_updated_in_place() -> None:
 def test_known_broadcasts_are_written_as_sums() -> None:
     text, _ = generate(*CASES[1][:2])
     assert "_gw_unbroadcast" not in text
-    assert "c_bar = np.sum(" in text and "axis=0, keepdims=True)" in text
+    # the minus of d(b / c)/dc outside the sum
+    assert "c_bar = -np.sum(value_2 / c, axis=0, keepdims=True)" in text
     assert "b_bar = np.sum(" in text and "axis=1, keepdims=True)" in text
     text, _ = generate(*CASES[0][:2])
     assert "_gw_unbroadcast" not in text
@@ -906,3 +907,24 @@ def test_an_array_power_with_an_exponent_array_raises_no_floating_point_error() 
     np.testing.assert_allclose(
         k_bar, [0.0, 8.0 * np.log(2.0), 0.25 * np.log(0.5)], rtol=1e-15
     )
+
+
+def test_a_division_by_a_sum_stays_outside_the_sum() -> None:
+    source = numpy_model(
+        "logits, cov, expected, risk_aversion",
+        "w = np.exp(logits - np.max(logits))\nw = w / np.sum(w)\n"
+        "return risk_aversion * (w @ cov @ w) - expected @ w",
+    )
+    shapes = {"logits": ("n",), "cov": ("n", "n"), "expected": ("n",)}
+    text, ns = generate(source, {**shapes, "risk_aversion": ()}, wrt=["logits"])
+    # d(w / s): (g - sum(g * w / s)) / s, the division once per element
+    assert "(w_2_bar - np.sum(w_2_bar * w_2)) / w_1" in text
+    g = np.random.default_rng(21)
+    logits, cov, expected = g.normal(size=4), g.normal(size=(4, 4)), g.normal(size=4)
+    _, (logits_bar,) = ns["f_grad"](logits, cov, expected, 0.7)
+    # reference: the softmax Jacobian diag(w) - w w^T (textbook) applied to the
+    # gradient in w, 0.7 (C + C^T) w - e
+    w = np.exp(logits - logits.max())
+    w /= w.sum()
+    grad_w = 0.7 * (cov + cov.T) @ w - expected
+    np.testing.assert_allclose(logits_bar, w * (grad_w - w @ grad_w), atol=1e-15)

@@ -1510,3 +1510,63 @@ def test_the_reverse_of_a_descending_range_counts_up_as_written():
         exact = sympy.diff(model["f"](x, n, m), x).subs(x, sympy.Rational(7, 10))
         _, (x_bar,) = ns["f_grad"](0.7, n, m)
         assert rel_err(x_bar, float(exact)) < 1e-14
+
+
+CATENARY = """
+import math
+
+
+def sag_tension(span, weight, sag, tol=1e-12):
+    a = span * span / (8.0 * sag)
+    for _ in range(50):
+        c = math.cosh(span / (2.0 * a))
+        s = math.sinh(span / (2.0 * a))
+        f = a * c - a - sag
+        df = c - 1.0 - span / (2.0 * a) * s
+        step = f / df
+        a -= step
+        if abs(step) < tol * a:
+            break
+    return weight * a
+"""
+
+
+def test_a_value_written_three_times_is_recomputed_once():
+    wrt = ["span", "weight", "sag"]
+    text = gradwright.generate(CATENARY, ["sag_tension"], wrt=wrt)
+    _, reverse = _sweeps(text, "sag_tension")
+    # span / (2.0 * a) in three statements: recomputed once per reverse iteration
+    assert reverse.count("2.0 * a_2\n") == 1 and reverse.count("= span / ") == 1
+    module = build(CATENARY, "sag_tension", wrt)
+    value, (span_bar, weight_bar, sag_bar) = module["sag_tension_grad"](100.0, 2.0, 5.0)
+    # reference: the implicit function theorem on a cosh(u) - a - sag = 0,
+    # u = span / (2a) (textbook): da/dspan = -(sinh(u) / 2) / D, da/dsag = 1 / D,
+    # D = cosh(u) - 1 - u sinh(u)
+    a = value / 2.0
+    u = 100.0 / (2.0 * a)
+    slope = math.cosh(u) - 1.0 - u * math.sinh(u)
+    assert rel_err(weight_bar, a) < 1e-15
+    assert rel_err(span_bar, 2.0 * -(math.sinh(u) / 2.0) / slope) < 1e-9
+    assert rel_err(sag_bar, 2.0 / slope) < 1e-9
+
+
+GROWTH = """
+def grow(x, k):
+    y = x
+    while y < 10.0:
+        y = y * k + 1.0
+    return y * k
+"""
+
+
+def test_a_while_loop_counter_does_not_look_like_a_version_of_the_models_k():
+    text = gradwright.generate(GROWTH, ["grow"])
+    _, reverse = _sweeps(text, "grow")
+    assert "for iteration in reversed(range(iterations)):" in reverse
+    assert "k_1" not in text
+    module = build(GROWTH, "grow")
+    _, grads = module["grow_grad"](0.7, 1.9)
+    # reference: mpmath central differences at 50 digits (no loop exit nearby)
+    exact = mp_gradient(mp_function(GROWTH, "grow"), [0.7, 1.9], [0, 1])
+    for got, want in zip(grads, exact, strict=True):
+        assert rel_err(got, float(want)) < 1e-13

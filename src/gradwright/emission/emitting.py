@@ -123,6 +123,8 @@ class EmitterBase:
         self.recorded: set[Var] = set()
         #: per branch side: (its loop, values restored there, values recomputed)
         self.sunk: dict[Side, tuple[Loop, list[Var], list[Let]]] = {}
+        #: recomputed values printed under an earlier recomputed equal one's name
+        self.recomputed_as: dict[Var, Var] = {}
 
     def key(self, var: Var) -> Key:
         # every version of a list is one list object, changed in place

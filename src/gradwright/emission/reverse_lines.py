@@ -352,8 +352,28 @@ class ReverseLines(EmitterBase):
             and here[let.target] == 1
             and self.recompute_readers[let.target] == 1
         }
-        for let in lets:
-            if let.target in rows:
+        unpacked: set[Var] = set()
+        self.share_recomputed(lets)
+        for position, let in enumerate(lets):
+            if let.target in rows or let.target in unpacked:
+                continue
+            items = self._row_items(lets, position, here)
+            if items:
+                # every element of a loop target's row, unpacked as the forward
+                # sweep writes it: `ocv, r = CELLS[ocv_index]`
+                names = [self.namer.name(item.target) for item in items]
+                self.restored.update(names)
+                row = self.layout.cheap(Apply(let.op, let.args))
+                self.reads(row)
+                for name, item in zip(names, items, strict=True):
+                    self.trace.write(name, self.key(item.target))
+                out.code(f"{', '.join(names)} = {self.print(row)}", depth)
+                unpacked.update(item.target for item in items)
+                continue
+            first = self.recomputed_as.get(let.target)
+            if first is not None:  # the same value, made by an earlier let
+                name = self.namer.name(first)
+                self.trace.alias(name, self.key(first), self.key(let.target))
                 continue
             name = self.namer.name(let.target)
             self.restored.add(name)
@@ -362,6 +382,46 @@ class ReverseLines(EmitterBase):
                 self.reads(arg)
             self.trace.write(name, self.key(let.target))
             out.code(f"{name} = {self.print(Apply(let.op, args))}", depth)
+
+    def share_recomputed(self, lets: list[Let]) -> None:
+        """Each value recomputed once: a let making what an earlier one of
+        ``lets`` made (the same operation of the same values; the source's
+        ``span / (2.0 * a)`` written three times) is printed under that one's
+        name and not made again. Decided before anything reads the names (a
+        loop's body is printed before its head); the readable layout only, the
+        fallback keeps every value under a name of its own."""
+        if not self.layout.share_names:
+            return
+        made: dict[tuple, Var] = {}
+        for let in lets:
+            if let.target in self.recomputed_as:
+                continue
+            key = (
+                let.op,
+                tuple(self.recomputed_as.get(a, a) for a in let.args),  # type: ignore[call-overload]
+            )
+            first = made.setdefault(key, let.target)
+            if first is not let.target:
+                self.recomputed_as[let.target] = first
+                self.namer.names[let.target] = self.namer.name(first)
+
+    def _row_items(
+        self, lets: list[Let], position: int, here: Counter[Var]
+    ) -> list[Let]:
+        """The element reads right after the row ``lets[position]``, when they
+        are every element the forward sweep reads of it, in order, and nothing
+        else reads the row."""
+        row = lets[position].target
+        size = self.layout.uses.get(row, 0)
+        if row not in self.element_rows or size < 2 or here[row] != size:
+            return []
+        items = lets[position + 1 : position + 1 + size]
+        if self.recompute_readers[row] != size or len(items) != size:
+            return []
+        for k, item in enumerate(items):
+            if item.op != "dataitem" or item.args != (row, Const(str(k), k)):
+                return []
+        return items
 
     def restore(self, loop: Loop, var: Var, depth: int, out: Lines) -> None:
         """``name = saved[slot]``: the value ``loop``'s forward saved for this
@@ -397,6 +457,11 @@ class ReverseLines(EmitterBase):
             self.sunk[side] = (loop, values, lets)
         in_sides = {v for values, _ in sunk.values() for v in values}
         lets_in_sides = [let for _, lets in sunk.values() for let in lets]
+        lets = [
+            let for let in layout.recompute.get(loop, []) if let not in lets_in_sides
+        ]
+        self.share_recomputed(layout.hoisted.get(loop, []))
+        self.share_recomputed(lets)
         with trace.capture() as body_events:
             self.reverse_block(stmt.body, depth + 1, body)
         if not body.lines:
@@ -433,8 +498,6 @@ class ReverseLines(EmitterBase):
                     # them (the by-list keeps each list it made: trusted here)
                     for var in layout.tapes_of(child, saved):
                         trace.fill(saved, var)
-            recomputed = layout.recompute.get(loop, [])
-            lets = [let for let in recomputed if let not in lets_in_sides]
             self.recomputed(lets, depth + 1, out)
         trace.loop(head + body_events, layout.iteration_local(loop))
         out.lines.extend(body.lines)

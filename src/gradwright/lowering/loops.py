@@ -129,8 +129,12 @@ class LoopLowering:
             )
         self.set_origin(f"while {_statement_text(self.index, node.test)}:")
         origin = self.origin
-        # the index counts the iterations run, from 0 (the saved lists' slot)
-        plan = (Const("0", 0), Const("0", 0), Const("1", 1), "k", lambda _: None)
+        # the index counts the iterations run, from 0 (the saved lists' slot);
+        # named k unless the model has a k of its own (a drag constant's k_2
+        # reads as a version of it)
+        taken = self.local_names | set(self.function.params)
+        counter = "k" if "k" not in taken else "iteration"
+        plan = (Const("0", 0), Const("0", 0), Const("1", 1), counter, lambda _: None)
         statements = _block_statements(node.body)
         test = node.test
         if isinstance(test, cst.Name) and test.value == "True":

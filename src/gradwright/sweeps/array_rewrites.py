@@ -1,9 +1,10 @@
 """Rewrites a person makes on a NumPy model's array adjoints (``factoring.tidy``
 applies them to every expression):
 
-- a sign or a number factor of a summed array outside the sum
-  (``-np.sum(g, axis=1)``), and a kept axis indexed away again folded into the sum
-  (``np.sum(g, axis=0, keepdims=True)[0, :]`` is the column sums);
+- a sign, a number factor or a number divisor of a summed array outside the sum
+  (``-np.sum(g, axis=1)``, ``np.sum(g * w) / total``), and a kept axis indexed
+  away again folded into the sum (``np.sum(g, axis=0, keepdims=True)[0, :]`` is
+  the column sums);
 - ``(A.T @ B).T`` as ``B.T @ A``; two complementary selects as one
   (``np.where(c, a, k * b)``); a choice between numbers as Python's conditional;
 - element adjoints of a short vector gathered into one ``np.array([a, b])``.
@@ -14,7 +15,7 @@ Exact, but for ``np.sum(c * g)`` as ``c * np.sum(g)``, which reassociates (see
 
 from __future__ import annotations
 
-from gradwright.calculus.algebra import number, simplify
+from gradwright.calculus.algebra import number, simplify, split_sign
 from gradwright.ir import Apply, Bar, Const, Expr, Var, const, walk
 from gradwright.sweeps.broadcasting import Fitter, column_sums
 from gradwright.sweeps.shapes import axis_text, keyword, reduced_axes
@@ -51,16 +52,22 @@ def summed_out(expr: Expr, fitter: Fitter) -> Expr:
     summed = expr.args[place]
     if not isinstance(summed, Apply):
         return expr
-    if summed.op == "neg":
-        inner, factor = summed.args[0], None
+    negative, magnitude = split_sign(summed)
+    op = "neg"
+    if negative:  # (also -g * w, whose minus split_sign finds on the left)
+        inner, factor = magnitude, None
     elif summed.op == "mul" and any(_is_number(a, fitter) for a in summed.args):
         k = 0 if _is_number(summed.args[0], fitter) else 1
-        inner, factor = summed.args[1 - k], summed.args[k]
+        inner, factor, op = summed.args[1 - k], summed.args[k], "mul"
+    elif summed.op == "div" and _is_number(summed.args[1], fitter):
+        inner, factor, op = summed.args[0], summed.args[1], "div"
     else:
         return expr
     args = expr.args[:place] + (inner,) + expr.args[place + 1 :]
     total = summed_out(Apply(expr.op, args), fitter)
-    return Apply("neg", (total,)) if factor is None else Apply("mul", (factor, total))
+    if factor is None:
+        return Apply("neg", (total,))
+    return Apply(op, (factor, total) if op == "mul" else (total, factor))
 
 
 def unkept(expr: Expr, fitter: Fitter) -> Expr:
