@@ -2,7 +2,7 @@
 # source: samples/cable_sag.py
 # source sha256: 60a95002dd1d21d9e5e7f63265caaee126765d6ffe25172b57604f5de1edd964
 # command: gradwright gen samples/cable_sag.py rig_loss -o samples/cable_sag_grad.py
-# output sha256: 5213405510c874c5dbf3905525cc15d924726c16f240442814acb710a5caf139
+# output sha256: 561af373cf4ccbcbf9854ba720322efda9c174005f3e32d0bb618456f8cfef6b
 
 import math
 
@@ -33,9 +33,8 @@ def rig_loss_grad(a, span):
     sag_1 = math.cosh(half)
     sag_2 = sag_1 - 1.0
     sag = a * sag_2
-    length_1 = 2.0 * a
-    length_2 = math.sinh(half)
-    length = length_1 * length_2
+    length_1 = math.sinh(half)
+    length = half_1 * length_1
     # sag_err = sag - MEASURED_SAG
     sag_err = sag - MEASURED_SAG
     # length_err = length - MEASURED_LENGTH
@@ -51,9 +50,11 @@ def rig_loss_grad(a, span):
     # loss = sag_err**2
     sag_err_bar = 2.0 * sag_err
     # sag, length = a * (math.cosh(half) - 1.0), 2.0 * a * math.sinh(half)
-    a_bar = 2.0 * length_err_bar * length_2 + sag_err_bar * sag_2
-    half_bar = length_err_bar * length_1 * sag_1 + sag_err_bar * a * length_2
+    half_1_bar = length_err_bar * length_1
+    a_bar = sag_err_bar * sag_2
+    half_bar = length_err_bar * half_1 * sag_1 + sag_err_bar * a * length_1
     # half = span / (2.0 * a)
     span_bar = half_bar / half_1
-    a_bar -= 2.0 * span_bar * half
+    half_1_bar -= span_bar * half
+    a_bar += 2.0 * half_1_bar
     return loss, (a_bar, span_bar)

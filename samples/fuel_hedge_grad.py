@@ -2,7 +2,7 @@
 # source: samples/fuel_hedge.py
 # source sha256: 0ea00fed34a5da6fdf8d79be718d957302aa63a99bc63f8c28269a24d0084725
 # command: gradwright gen samples/fuel_hedge.py call_value --wrt spot,vol,rate,years -o samples/fuel_hedge_grad.py
-# output sha256: 2b890e36f58533aef8bd15db3cfd2a3e1e77ab0fd4f32338ce6379c155810534
+# output sha256: 473a7b54995cadac1055164556b2ac6f05a26cb868540eabf4984b66a5522d3d
 
 import math
 from math import erf, exp, log, sqrt
@@ -33,7 +33,7 @@ def call_value_grad(spot, strike, vol, rate, years):
     d1_4 = vol * root_t
     d1 = (math.log(d1_1) + d1_3 * years) / d1_4
     # d2 = d1 - vol * root_t
-    d2 = d1 - vol * root_t
+    d2 = d1 - d1_4
     # n1 = 0.5 * (1.0 + erf(d1 / SQRT2))
     n1_1 = d1 / SQRT2
     n1 = 0.5 * (1.0 + math.erf(n1_1))
@@ -58,17 +58,16 @@ def call_value_grad(spot, strike, vol, rate, years):
     d1_bar = 0.5641895835477563 * spot * math.exp(-n1_1 * n1_1) / SQRT2
     # d2 = d1 - vol * root_t
     d1_bar += d2_bar
-    vol_bar = -d2_bar * root_t
-    root_t_bar = -d2_bar * vol
+    d1_4_bar = -d2_bar
     # d1 = (log(spot / strike) + (rate + 0.5 * vol * vol) * years) / (vol * root_t)
     d1_bar_1 = d1_bar / d1_4
-    d1_4_bar = -d1_bar_1 * d1
+    d1_4_bar -= d1_bar_1 * d1
     spot_bar += d1_bar_1 / d1_1 / strike
     d1_3_bar = d1_bar_1 * years
     years_bar += d1_bar_1 * d1_3
     rate_bar += d1_3_bar
-    vol_bar += 2.0 * d1_3_bar * d1_2 + d1_4_bar * root_t
-    root_t_bar += d1_4_bar * vol
+    vol_bar = 2.0 * d1_3_bar * d1_2 + d1_4_bar * root_t
+    root_t_bar = d1_4_bar * vol
     # root_t = sqrt(years)
     years_bar += 0.5 * root_t_bar / root_t
     return value, (spot_bar, vol_bar, rate_bar, years_bar)

@@ -2,7 +2,7 @@
 # source: samples/tide_gauge.py
 # source sha256: 41f2e6ad8faaef888ec4fb61d9e9a8b106c978f34cbbdb886a71de8b9d6e2f7b
 # command: gradwright gen samples/tide_gauge.py tide_misfit -o samples/tide_gauge_grad.py
-# output sha256: af07c003db859be804023830bdbd1fdcb76eed39b5f247c4deb8c488de06229c
+# output sha256: 3bfd7750173add7bfa1eb1ba626cc22186bfdcea53fd7e119d41a9a431f951bc
 
 import math
 from collections import namedtuple
@@ -48,7 +48,7 @@ def tide_misfit_grad(amp_m2, phase_m2, amp_s2, phase_s2):
     # total = 0.0
     total = 0.0
     # for hour, height in READINGS:
-    m2_1_saved = [0.0] * len(READINGS)
+    m2_2_saved = [0.0] * len(READINGS)
     s2_1_saved = [0.0] * len(READINGS)
     total_1_saved = [0.0] * len(READINGS)
     for hour_index in range(len(READINGS)):
@@ -59,11 +59,12 @@ def tide_misfit_grad(amp_m2, phase_m2, amp_s2, phase_s2):
         else:
             weight = WEIGHTS["day"]
         # m2 = amp_m2 * math.cos(2.0 * math.pi * hour / HARBOUR.period_m2 - phase_m2)
-        m2_1 = math.cos(2.0 * math.pi * hour / HARBOUR.period_m2 - phase_m2)
-        m2_1_saved[hour_index] = m2_1
-        m2 = amp_m2 * m2_1
+        m2_1 = 2.0 * math.pi * hour
+        m2_2 = math.cos(m2_1 / HARBOUR.period_m2 - phase_m2)
+        m2_2_saved[hour_index] = m2_2
+        m2 = amp_m2 * m2_2
         # s2 = amp_s2 * math.cos(2.0 * math.pi * hour / HARBOUR.period_s2 - phase_s2)
-        s2_1 = math.cos(2.0 * math.pi * hour / HARBOUR.period_s2 - phase_s2)
+        s2_1 = math.cos(m2_1 / HARBOUR.period_s2 - phase_s2)
         s2_1_saved[hour_index] = s2_1
         s2 = amp_s2 * s2_1
         # miss = HARBOUR.datum + m2 + s2 - height
@@ -85,11 +86,11 @@ def tide_misfit_grad(amp_m2, phase_m2, amp_s2, phase_s2):
     amp_s2_bar = 0.0
     phase_s2_bar = 0.0
     for hour_index in reversed(range(len(READINGS))):
-        m2_1 = m2_1_saved[hour_index]
+        m2_2 = m2_2_saved[hour_index]
         s2_1 = s2_1_saved[hour_index]
         total_1 = total_1_saved[hour_index]
         hour = READINGS[hour_index][0]
-        m2_2 = 2.0 * math.pi * hour / HARBOUR.period_m2 - phase_m2
+        m2_3 = 2.0 * math.pi * hour / HARBOUR.period_m2 - phase_m2
         s2_2 = 2.0 * math.pi * hour / HARBOUR.period_s2 - phase_s2
         # total += weight * miss * miss
         miss_bar = 2.0 * total_bar * total_1
@@ -97,6 +98,6 @@ def tide_misfit_grad(amp_m2, phase_m2, amp_s2, phase_s2):
         amp_s2_bar += miss_bar * s2_1
         phase_s2_bar += miss_bar * amp_s2 * math.sin(s2_2)
         # m2 = amp_m2 * math.cos(2.0 * math.pi * hour / HARBOUR.period_m2 - phase_m2)
-        amp_m2_bar += miss_bar * m2_1
-        phase_m2_bar += miss_bar * amp_m2 * math.sin(m2_2)
+        amp_m2_bar += miss_bar * m2_2
+        phase_m2_bar += miss_bar * amp_m2 * math.sin(m2_3)
     return value, (amp_m2_bar, phase_m2_bar, amp_s2_bar, phase_s2_bar)

@@ -34,6 +34,7 @@ from gradwright.lowering.base import (
     _Unbound,
 )
 from gradwright.lowering.calls import CallLowering
+from gradwright.lowering.common_values import share_common_values
 from gradwright.lowering.comprehensions import ComprehensionLowering
 from gradwright.lowering.dicts import DictLowering
 from gradwright.lowering.expressions import ExpressionLowering
@@ -345,7 +346,8 @@ def lower(
     lists: frozenset[str] = frozenset()
     while True:
         try:
-            return _Lowerer(index, function, call_stack, lists).lower()
+            lowered = _Lowerer(index, function, call_stack, lists).lower()
+            return share_common_values(lowered)
         except _ListParameter as found:
             # lowered again with that parameter a list (once per list parameter)
             lists |= {found.name}
