@@ -6,9 +6,10 @@ reads it once and gathers its adjoint in one place.
 Only pure arithmetic and elementwise functions are shared (never a call, a list or
 element read, a copied statement, nor arithmetic on counts), and only where the
 first computation is sure to have run (earlier in the same block or an enclosing
-one; not in a branch side or loop body that has ended). The same operation on the same operands gives the
-same bits, so the values and gradients are unchanged. A name the model binds keeps
-its own statement; only the anonymous parts of expressions are shared.
+one; not in a branch side or loop body that has ended). The same operation on
+the same operands gives the same bits, so the values and gradients are unchanged.
+A name the model binds keeps its own statement; only the anonymous parts of
+expressions are shared.
 """
 
 from __future__ import annotations
