@@ -133,3 +133,27 @@ def test_without_declared_shapes_nothing_changes_at_the_calls():
     w, X, y = data(np.random.default_rng(5), 12)
     value, (w_bar,) = ns["loss_grad"](w, X, y, 0.8)
     assert_close_to_differences(model["loss"], (w, X, y, 0.8), 0, w_bar, value)
+
+
+def test_a_target_called_as_a_helper_keeps_a_general_adjoint():
+    # g is generated for v=(3,) as a target; f calls it with A @ ones, of shape
+    # (n,): its adjoint must not be written (and checked) for g's declared shape
+    source = """import numpy as np
+
+
+def g(v):
+    return np.sum(np.tanh(v) * v)
+
+
+def f(A):
+    return g(A @ np.ones(3)) * 0.5
+"""
+    text = gradwright.generate(source, ["f", "g"], shapes={"A": ("n", 3), "v": (3,)})
+    assert "_gw_check_shapes" not in text.split("def g_adjoint")[1].split("\ndef ")[0]
+    ns: dict = {}
+    exec(compile(text, "<grad>", "exec"), ns)
+    model: dict = {}
+    exec(compile(source, "<model>", "exec"), model)
+    A = np.random.default_rng(2).normal(size=(5, 3))
+    value, (A_bar,) = ns["f_grad"](A)
+    assert_close_to_differences(model["f"], (A,), 0, A_bar, value)

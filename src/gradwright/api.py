@@ -197,7 +197,7 @@ def compile_with_callees(
     for name, (checked, ssa) in helpers.items():
         if forms[name] == "partials" and name in lowered:
             continue  # the target's own gradient serves its calls
-        own = calls.declared(name) if calls and forms[name] == "adjoint" else None
+        own = calls.called_with(name) if calls and forms[name] == "adjoint" else None
         compiled.append(
             _differentiate(
                 index, checked, ssa, forms[name], adjoint_helpers, own, calls
@@ -257,7 +257,7 @@ def _narrow_helpers(
             continue  # its callers' parts are one per parameter: kept aligned
         checked = check_function(index, name, wrt)
         ssa = lower(index, checked, stacks[name])
-        own = calls.declared(name) if calls and role == "adjoint" else None
+        own = calls.called_with(name) if calls and role == "adjoint" else None
         by_key[key] = _differentiate(
             index, checked, ssa, role, adjoint_helpers, own, calls
         )

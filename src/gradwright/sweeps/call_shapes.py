@@ -73,6 +73,12 @@ class CallShapes:
             self._declared[name] = self._one_signature(name)
         return self._declared[name]
 
+    def called_with(self, name: str) -> Declared | None:
+        """The shapes helper ``name``'s adjoint is written for: those every call
+        passes (none for a target also called as a helper: its calls may pass
+        other shapes than its declared ones)."""
+        return None if name in self.targets else self.declared(name)
+
     def table(self, name: str) -> ShapeTable:
         """The shape table of function ``name``, as its sweep will see it."""
         if name not in self._tables:
