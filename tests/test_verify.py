@@ -563,6 +563,23 @@ def test_a_failing_guess_is_named(tmp_path: Path) -> None:
     assert "guessed" not in longer.out
 
 
+def test_a_length_makes_a_list_whatever_the_guess(tmp_path: Path) -> None:
+    # `lengths` is only zipped with the active list, so its code does not say
+    # it is a list: --length says so (it was drawn as a number, and every
+    # point raised TypeError)
+    model = _model(
+        tmp_path,
+        "reach",
+        "import math\n\n\ndef reach(q, lengths):\n    x = 0.0\n"
+        "    for joint, length in zip(q, lengths):\n"
+        "        x += length * math.cos(joint)\n    return x * x\n",
+    )
+    result = cli("verify", str(model), "reach", "--wrt", "q", "--length", "q=3",
+                 "--length", "lengths=3", cwd=tmp_path)  # fmt: skip
+    assert result.code == 0, result.out
+    assert "agrees with central differences at 3 point(s)" in result.out
+
+
 def test_integer_range_and_length_errors(tmp_path: Path) -> None:
     model = _model(
         tmp_path, "rep", "def rep(a, n):\n    for _ in range(n):\n"

@@ -319,8 +319,9 @@ def choose_points(
     count = DEFAULT_SAMPLES if samples is None else samples
     import random
 
-    kinds = kinds or {}
     lengths = lengths or {}
+    # a parameter given a --length is a list, whatever its code suggested
+    kinds = {**(kinds or {}), **{name: LIST for name in lengths}}
     list_lengths = [
         lengths.get(n, DEFAULT_LENGTH) for n, k in kinds.items() if k == LIST
     ]
