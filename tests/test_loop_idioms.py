@@ -449,3 +449,29 @@ def test_rows_of_a_list_in_wrt_are_a_located_error():
     text = caught.value.diagnostic.render()
     assert text.startswith("m.py:4:13: error: the rows this loop target unpacks")
     assert "leave it out of --wrt" in text
+
+
+SMOOTHNESS = """
+def roughness(q, w):
+    return w * sum((a - b) ** 2 for a, b in zip(q[1:], q[:-1]))
+"""
+
+
+def test_zip_of_two_slices_of_one_length_counts_once():
+    import sympy
+
+    text = gradwright.generate(SMOOTHNESS, ["roughness"], wrt=["q"])
+    # both slices have max(len(q) - 1, 0) elements: no min() of the two
+    assert "min(" not in text and text.count("max(len(q) - 1, 0)") == 1
+    module = build(SMOOTHNESS, "roughness", ["q"])
+    qs = sympy.symbols("q0:4")
+    model = 0.5 * sum((a - b) ** 2 for a, b in zip(qs[1:], qs[:-1]))
+    point = [0.3, -1.2, 0.8, 2.0]
+    _, (q_bar,) = module["roughness_grad"](point, 0.5)
+    for k, symbol in enumerate(qs):
+        # reference: SymPy's derivative of the model written by hand
+        exact = sympy.diff(model, symbol).subs(dict(zip(qs, point, strict=True)))
+        assert rel_err(q_bar[k], float(exact)) < 1e-15
+    # one element and none: the loops run no times
+    assert module["roughness_grad"]([0.3], 0.5)[1] == ([0.0],)
+    assert module["roughness_grad"]([], 0.5)[1] == ([],)

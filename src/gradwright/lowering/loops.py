@@ -13,6 +13,7 @@ from gradwright.ir import (
     Atom,
     Branch,
     Const,
+    Let,
     Loop,
     Origin,
     Phi,
@@ -347,8 +348,12 @@ class LoopLowering:
                     "loop over the sequence itself: for x in xs",
                 )
             length = parts[0][0]
+            made = {s.target: s for s in self.blocks[-1] if isinstance(s, Let)}
             for other, _, _ in parts[1:]:  # zip stops at the shortest
-                length = self.emit("min", (length, other), self.new_var("n", "temp"))
+                if not _same_count(length, other, made):  # zip(q[1:], q[:-1])
+                    length = self.emit(
+                        "min", (length, other), self.new_var("n", "temp")
+                    )
             readers = [read for _, read, _ in parts]
             return length, lambda i: tuple(r(i) for r in readers), parts[0][2]
         if call == "enumerate":
@@ -627,3 +632,22 @@ def _builtin_call(lowering: object, node: cst.BaseExpression) -> str | None:
     ):
         return node.func.value
     return None
+
+
+def _same_count(a: Atom, b: Atom, made: dict[Var, Let]) -> bool:
+    """Whether two lengths just computed are the same count (the same
+    operations on the same values: ``max(len(q) - 1, 0)`` for ``q[1:]`` and
+    ``q[:-1]``)."""
+    if a == b:
+        return True
+    first, second = made.get(a), made.get(b)  # type: ignore[arg-type]
+    return (
+        first is not None
+        and second is not None
+        and first.op == second.op
+        and len(first.args) == len(second.args)
+        and all(
+            _same_count(x, y, made)
+            for x, y in zip(first.args, second.args, strict=True)
+        )
+    )
