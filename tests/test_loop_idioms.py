@@ -465,7 +465,7 @@ def test_zip_of_two_slices_of_one_length_counts_once():
     assert "min(" not in text and text.count("max(len(q) - 1, 0)") == 1
     module = build(SMOOTHNESS, "roughness", ["q"])
     qs = sympy.symbols("q0:4")
-    model = 0.5 * sum((a - b) ** 2 for a, b in zip(qs[1:], qs[:-1]))
+    model = 0.5 * sum((a - b) ** 2 for a, b in zip(qs[1:], qs[:-1], strict=True))
     point = [0.3, -1.2, 0.8, 2.0]
     _, (q_bar,) = module["roughness_grad"](point, 0.5)
     for k, symbol in enumerate(qs):

@@ -518,3 +518,32 @@ def test_unpacking_module_tuples_and_rows() -> None:
         -2 * t * math.exp(-0.7 * t) * (math.exp(-0.7 * t) - c) for t, c in samples
     )
     assert rel_err(k_bar, want) < 1e-14
+
+
+LEG_TABLE = """
+import numpy as np
+
+LEGS = np.array([[12.0, 0.5], [8.5, 2.1], [20.0, -1.2]])
+
+
+def cost(m, k):
+    force = m * LEGS[:, 1] + k * LEGS[:, 0] ** 2
+    return np.sum(force * force) + np.sum(LEGS[1:, 0] * m) + LEGS[-1, 1] * k
+"""
+
+
+def test_constant_slices_of_a_module_array_in_a_numpy_model() -> None:
+    text = gradwright.generate(LEG_TABLE, ["cost"], shapes={"m": (), "k": ()})
+    # read as written, their shapes (3,) and (2,) known: no generic helper
+    assert "LEGS[:, 1]" in text and "LEGS[1:, 0]" in text and "LEGS[-1, 1]" in text
+    assert "_gw_unbroadcast" not in text and "_gw_unreduce" not in text
+    ns: dict = {}
+    exec(compile(text, "<grad>", "exec"), ns)
+    value, (m_bar, k_bar) = ns["cost_grad"](0.7, -0.3)
+    legs = [[12.0, 0.5], [8.5, 2.1], [20.0, -1.2]]
+    force = [0.7 * b + -0.3 * a * a for a, b in legs]
+    # reference by hand: d/dm = sum(2 f b) + sum(a[1:]), d/dk = sum(2 f a^2) + b[-1]
+    m_exact = sum(2 * f * b for f, (_, b) in zip(force, legs, strict=True)) + 28.5
+    k_exact = sum(2 * f * a * a for f, (a, _) in zip(force, legs, strict=True)) - 1.2
+    assert rel_err(m_bar, m_exact) < 1e-14 and rel_err(k_bar, k_exact) < 1e-14
+    assert value == run_source(LEG_TABLE)["cost"](0.7, -0.3)

@@ -312,6 +312,15 @@ class ExpressionLowering:
             return Const(f"{head.text}.{node.attr.value}", None)
         assert isinstance(node, cst.Subscript)
         head = self.data(node.value, base)
+        if (
+            self.index.numpy_modules
+            and isinstance(head, Const)
+            and all(map(_literal_index, node.slice))
+        ):
+            # a module array's constant slice, LEGS[:, 1]: printed as written,
+            # its shape read from the text (sweeps/shapes.py)
+            parts = [self.index.module.code_for_node(e.slice) for e in node.slice]
+            return Const(f"{head.text}[{', '.join(parts)}]", None)
         if len(node.slice) != 1 or not isinstance(node.slice[0].slice, cst.Index):
             fail(
                 "only one index at a time reads module-level data",
@@ -458,3 +467,23 @@ class ExpressionLowering:
             "use - or + on numbers; ~ and not are for integers and truth values",
         )
         raise AssertionError  # unreachable
+
+
+def _literal_index(element: cst.SubscriptElement) -> bool:
+    """An int literal (or its negation), ``None``, or a slice of such bounds:
+    what a constant slice of a module array may hold."""
+
+    def literal(node: cst.BaseExpression | None) -> bool:
+        if node is None or isinstance(node, cst.Integer):
+            return True
+        return (
+            isinstance(node, cst.UnaryOperation)
+            and isinstance(node.operator, cst.Minus)
+            and isinstance(node.expression, cst.Integer)
+        )
+
+    piece = element.slice
+    if isinstance(piece, cst.Slice):
+        return literal(piece.lower) and literal(piece.upper) and literal(piece.step)
+    value = piece.value  # type: ignore[attr-defined]
+    return literal(value) or (isinstance(value, cst.Name) and value.value == "None")

@@ -309,19 +309,47 @@ def index_shape(
 
 def _data_shape(text: str, data: Mapping[str, tuple[Dim, ...]]) -> Shape | None:
     """The shape of a read of module data as lowering writes it: ``W``, ``W.T``,
-    ``W[0]`` (constant indices, one level at a time)."""
-    match = re.fullmatch(r"(\w+)((?:\.T|\[-?\d+\])*)", text)
+    ``W[0]``, and in a NumPy model constant slices, ``LEGS[:, 1]``, ``W[1:3]``,
+    ``x[None, :]``."""
+    match = re.fullmatch(r"(\w+)((?:\.T|\[[^\[\]]*\])*)", text)
     if match is None or match.group(1) not in data:
         return None
-    shape: tuple[Dim, ...] = data[match.group(1)]
-    for step in re.findall(r"\.T|\[-?\d+\]", match.group(2)):
+    shape: tuple[Dim, ...] | None = data[match.group(1)]
+    for step in re.findall(r"\.T|\[[^\[\]]*\]", match.group(2)):
+        if shape is None:
+            return None
         if step == ".T":
             shape = tuple(reversed(shape))
-        elif shape:
-            shape = shape[1:]
         else:
-            return None
+            shape = _literal_index_shape(shape, step[1:-1])
     return shape
+
+
+def _literal_index_shape(shape: tuple[Dim, ...], text: str) -> tuple[Dim, ...] | None:
+    """``shape`` indexed by ``text``: int literals, ``None`` and slices of int
+    literals (what lowering copies as a constant read of module data)."""
+    out: list[Dim] = []
+    dims = iter(shape)
+    for piece in (p.strip() for p in text.split(",")):
+        if piece == "None":
+            out.append(1)
+            continue
+        dim = next(dims, None)
+        if dim is None:
+            return None
+        try:
+            if ":" not in piece:
+                k = int(piece)
+                if isinstance(dim, int) and not -dim <= k < dim:
+                    return None
+                continue
+            bounds = [int(b) if b.strip() else None for b in piece.split(":")]
+        except ValueError:
+            return None
+        if not isinstance(dim, int) or len(bounds) > 3 or bounds[2:] == [0]:
+            return None
+        out.append(len(range(dim)[slice(*bounds)]))
+    return (*out, *dims)
 
 
 def literal_shape(statement: str, numpy_names: Iterable[str]) -> Shape | None:
