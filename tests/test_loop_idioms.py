@@ -475,3 +475,46 @@ def test_zip_of_two_slices_of_one_length_counts_once():
     # one element and none: the loops run no times
     assert module["roughness_grad"]([0.3], 0.5)[1] == ([0.0],)
     assert module["roughness_grad"]([], 0.5)[1] == ([],)
+
+
+ARM = """
+import math
+
+
+def link(x, y, angle, length, joint):
+    angle = angle + joint
+    return x + length * math.cos(angle), y + length * math.sin(angle), angle
+
+
+def reach(q, lengths, tx, ty):
+    x, y, angle = 0.0, 0.0, 0.0
+    for joint, length in zip(q, lengths):
+        x, y, angle = link(x, y, angle, length, joint)
+    return (x - tx) ** 2 + (y - ty) ** 2
+"""
+
+
+def test_a_helper_carrying_a_loops_state_hands_its_adjoints_on_directly():
+    import sympy
+
+    text = gradwright.generate(ARM, ["reach"], wrt=["q"])
+    reverse = text.split("def reach_grad")[1].split("# reverse sweep")[1]
+    # the call writes the carried adjoints: no x_bar = x_bar_1 copies after it
+    assert "x_bar, y_bar, angle_bar, joint_bar_1 = link_adjoint(" in reverse
+    assert "x_bar = x_bar_1" not in reverse
+    module = build(ARM, "reach", ["q"])
+    qs = sympy.symbols("q0:3")
+    lengths = [1.0, 0.7, 0.4]
+    x = y = angle = sympy.Integer(0)
+    for joint, length in zip(qs, lengths, strict=True):
+        angle = angle + joint
+        x, y = x + length * sympy.cos(angle), y + length * sympy.sin(angle)
+    model = (x - 1.2) ** 2 + (y - 0.5) ** 2
+    point = [0.3, -0.9, 1.4]
+    _, (q_bar,) = module["reach_grad"](point, lengths, 1.2, 0.5)
+    for k, symbol in enumerate(qs):
+        # reference: SymPy's derivative of the model written by hand
+        exact = sympy.diff(model, symbol).evalf(
+            30, subs=dict(zip(qs, point, strict=True))
+        )
+        assert rel_err(q_bar[k], float(exact)) < 1e-14

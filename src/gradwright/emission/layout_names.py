@@ -276,7 +276,7 @@ def _writes_then_no_read(body: list[ReverseStmt], header: Var, carry: Var) -> bo
     first = next((k for k, s in enumerate(body) if _writes(s, header, carry)), None)
     if first is None:
         return True  # the carried adjoint passes through unchanged
-    if not isinstance(body[first], AdjointAssign):
+    if not isinstance(body[first], (AdjointAssign, CallAdjoint)):
         return False  # changed inside a branch or loop: keep the two apart
     for stmt in body[first + 1 :]:
         if isinstance(stmt, AdjointAssign) and stmt.var == carry:

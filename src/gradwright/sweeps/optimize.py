@@ -321,8 +321,10 @@ def _into_arguments(
     statements: tuple[ReverseStmt, ...], keep: set[Var]
 ) -> tuple[ReverseStmt, ...]:
     """``x_1_bar, ... = h_adjoint(...)`` then ``x_bar = x_1_bar``: the call
-    writes ``x_bar`` itself (the part was read only by that copy; the layout's
-    carried-adjoint naming sees a call's writes, see ``layout_names._writes``)."""
+    writes ``x_bar`` itself (the part was read only by that copy, and no
+    statement between them reads or writes ``x_bar``: a loop's carried state
+    handed on after a list element's ``+=``; the layout's carried-adjoint naming
+    sees a call's writes, see ``layout_names._writes``)."""
     flat = list(_flatten(statements))
     reads = Counter(
         node.var
@@ -333,6 +335,7 @@ def _into_arguments(
     )
     out: list[ReverseStmt] = []
     call: int | None = None  # where in ``out`` the last call adjoint is
+    between: list[ReverseStmt] = []  # what follows it, of its statement
     for stmt in statements:
         if isinstance(stmt, ReverseBranch):
             stmt = replace(
@@ -344,6 +347,7 @@ def _into_arguments(
             stmt = replace(stmt, body=_into_arguments(stmt.body, keep))
         if isinstance(stmt, CallAdjoint):
             call = len(out)
+            between = []
             out.append(stmt)
             continue
         if (
@@ -351,7 +355,6 @@ def _into_arguments(
             and isinstance(stmt, AdjointAssign)
             and not stmt.accumulate
             and isinstance(stmt.expr, Bar)
-            and stmt.origin == out[call].origin
         ):
             found: CallAdjoint = out[call]  # type: ignore[assignment]
             part = stmt.expr.var
@@ -360,18 +363,23 @@ def _into_arguments(
                 and reads[part] == 1
                 and stmt.var not in found.parts
                 and stmt.var.shape == part.shape
+                # (a list element's += in between may not read or write it)
+                and not any(_touches(s, stmt.var) for s in between)
             ):
                 parts = tuple(stmt.var if p == part else p for p in found.parts)
                 out[call] = replace(found, parts=parts)
                 continue
-        if not (
-            isinstance(stmt, AdjointAssign)
-            and stmt.origin
-            == getattr(out[call] if call is not None else None, "origin", None)
-        ):
-            call = None
+        if not isinstance(stmt, (AdjointAssign, ElementAdjoint, SpreadAdjoint)):
+            call = None  # (a block: what runs in it is not known here)
+        between.append(stmt)
         out.append(stmt)
     return tuple(out)
+
+
+def _touches(stmt: ReverseStmt, var: Var) -> bool:
+    """Whether ``stmt`` (no block) reads or writes ``var``'s adjoint."""
+    root = getattr(stmt, "root", None)
+    return var == root or var in _written_bars(stmt) | _bars_read(stmt)
 
 
 def map_statements(
