@@ -157,3 +157,34 @@ def f(A):
     A = np.random.default_rng(2).normal(size=(5, 3))
     value, (A_bar,) = ns["f_grad"](A)
     assert_close_to_differences(model["f"], (A,), 0, A_bar, value)
+
+
+def test_the_helpers_of_a_target_also_called_as_a_helper_stay_general():
+    # found by review: inner's shapes were read from g's declared table, v=(3,),
+    # but g's general adjoint passes inner whatever f passes g, (n,) here
+    source = """import numpy as np
+
+
+def inner(v):
+    return np.sin(v) * v
+
+
+def g(v):
+    return np.sum(inner(v) * v)
+
+
+def f(A):
+    return g(A @ np.ones(3))
+"""
+    text = gradwright.generate(source, ["f", "g"], shapes={"v": (3,), "A": ("n", 3)})
+    ns: dict = {}
+    exec(compile(text, "<grad>", "exec"), ns)
+    model: dict = {}
+    exec(compile(source, "<model>", "exec"), model)
+    A = np.random.default_rng(8).normal(size=(4, 3))
+    value, (A_bar,) = ns["f_grad"](A)
+    assert_close_to_differences(model["f"], (A,), 0, A_bar, value)
+    v = np.array([0.3, -0.7, 1.1])
+    value, (v_bar,) = ns["g_grad"](v)
+    # reference by hand: d/dv sum(sin(v) v^2) = cos(v) v^2 + 2 v sin(v)
+    np.testing.assert_allclose(v_bar, np.cos(v) * v * v + 2 * v * np.sin(v), 1e-14)

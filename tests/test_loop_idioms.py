@@ -518,3 +518,32 @@ def test_a_helper_carrying_a_loops_state_hands_its_adjoints_on_directly():
             30, subs=dict(zip(qs, point, strict=True))
         )
         assert rel_err(q_bar[k], float(exact)) < 1e-14
+
+
+PART_UPDATED = """
+import math
+
+
+def h(a, b):
+    return a * 0.5 + math.sin(b), b
+
+
+def f(x, n):
+    y = 0.0
+    for i in range(n):
+        z = x
+        x, y = h(x, y)
+        y = y + z
+    return x
+"""
+
+
+def test_a_helper_part_updated_after_the_call_is_not_written_into_the_carry():
+    # found by review: x_bar_1 += y_bar between the call and x_bar = x_bar_1;
+    # folding the copy into the call lost that contribution (d/dx was 0.25)
+    module = build(PART_UPDATED, "f", ["x"])
+    _, (x_bar,) = module["f_grad"](0.6, 2)
+    # reference by hand: x2 = 0.5 x1 + sin(y1) = 0.25 x + sin(x): 0.25 + cos x
+    assert rel_err(x_bar, 0.25 + math.cos(0.6)) < 1e-15
+    exact = mp_gradient(mp_function(PART_UPDATED, "f"), [0.6, 2], [0])
+    assert rel_err(x_bar, float(exact[0])) < 1e-14  # and mpmath differences

@@ -90,7 +90,12 @@ class CallShapes:
         params = self.functions[name].params
         signature: tuple[Shape, ...] | None = None
         callers = [f for f, ssa in self.functions.items() if name in ssa.callees]
+        called = {c for ssa in self.functions.values() for c in ssa.callees}
         for caller in callers:
+            if caller in self.targets and caller in called:
+                # its calls run at its declared shapes and, in its general
+                # adjoint, at whatever its own callers pass
+                return None
             table = self.table(caller)
             for let in _calls(self.functions[caller].body, f"call:{name}"):
                 shapes = tuple(table.atom(a) for a in let.args)

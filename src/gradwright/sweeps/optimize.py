@@ -363,8 +363,9 @@ def _into_arguments(
                 and reads[part] == 1
                 and stmt.var not in found.parts
                 and stmt.var.shape == part.shape
-                # (a list element's += in between may not read or write it)
-                and not any(_touches(s, stmt.var) for s in between)
+                # (a list element's += in between may not read or write either:
+                # x_1_bar += y_bar would go to a name nobody reads)
+                and not any(_touches(s, stmt.var) or _touches(s, part) for s in between)
             ):
                 parts = tuple(stmt.var if p == part else p for p in found.parts)
                 out[call] = replace(found, parts=parts)
