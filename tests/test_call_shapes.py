@@ -30,8 +30,9 @@ def loss(w, X, y, delta):
 HUBER_SHAPES = {"w": (3,), "X": ("n", 3), "y": ("n",), "delta": ()}
 
 
-def run(source: str, shapes: dict | None, name: str = "loss", wrt=None):
-    text = gradwright.generate(source, [name], wrt, shapes=shapes)
+def run(source: str, shapes: dict | None, name: str | list[str] = "loss", wrt=None):
+    names = [name] if isinstance(name, str) else name
+    text = gradwright.generate(source, names, wrt, shapes=shapes)
     namespace: dict = {}
     exec(compile(text, "<grad>", "exec"), namespace)
     model: dict = {}
@@ -148,12 +149,8 @@ def g(v):
 def f(A):
     return g(A @ np.ones(3)) * 0.5
 """
-    text = gradwright.generate(source, ["f", "g"], shapes={"A": ("n", 3), "v": (3,)})
+    text, ns, model = run(source, {"A": ("n", 3), "v": (3,)}, ["f", "g"])
     assert "_gw_check_shapes" not in text.split("def g_adjoint")[1].split("\ndef ")[0]
-    ns: dict = {}
-    exec(compile(text, "<grad>", "exec"), ns)
-    model: dict = {}
-    exec(compile(source, "<model>", "exec"), model)
     A = np.random.default_rng(2).normal(size=(5, 3))
     value, (A_bar,) = ns["f_grad"](A)
     assert_close_to_differences(model["f"], (A,), 0, A_bar, value)
@@ -176,11 +173,7 @@ def g(v):
 def f(A):
     return g(A @ np.ones(3))
 """
-    text = gradwright.generate(source, ["f", "g"], shapes={"v": (3,), "A": ("n", 3)})
-    ns: dict = {}
-    exec(compile(text, "<grad>", "exec"), ns)
-    model: dict = {}
-    exec(compile(source, "<model>", "exec"), model)
+    _, ns, model = run(source, {"v": (3,), "A": ("n", 3)}, ["f", "g"])
     A = np.random.default_rng(8).normal(size=(4, 3))
     value, (A_bar,) = ns["f_grad"](A)
     assert_close_to_differences(model["f"], (A,), 0, A_bar, value)
