@@ -584,6 +584,78 @@ def f(x, xs):
 """,
         [[1.0, []], [1.0, [0.5, 0.25]]],
     ),
+    # mixed family: eleven branches around helper calls; the layout check's
+    # consensus ran its whole budget of 200,000 steps, each scanning the facts
+    # found so far: generating took 8 s (1.8 s with a budget of 50,000)
+    "eleven_branches_consensus": (
+        """\
+import math
+
+def h0(a, b=0.5):
+    t1, a = a, math.sin(a)
+    return ((a + (a ** 3)) + t1)
+
+def h1(a, b):
+    return (b + (a + a))
+
+def f(x, y, z, xs):
+    if (not (min(sum(xs), (sum(xs) + 0.5)) == (sum(xs) + 0.5))) and (y >= x):
+        x = (y if x <= (x + 0.5) <= sum(xs) else y)
+        x *= y
+        return z
+    elif z >= math.hypot(z, 1.0) >= z:
+        if (z * y) > y:
+            x = (y if (y < x) or (min(y, x) != x) else z)
+            b3 = math.sin(h1(y, b=z))
+        elif not ((z >= x >= y) or (max(sum(xs), z) == sum(xs))):
+            t5 = x
+            if (y >= (y + 0.5) >= z) or (z <= t5):
+                d7 = h0(b=t5, a=math.sin(z))
+                b6 = ((t5 if z > x > 0.1 else t5) if t5 > sum(xs) else math.pow(1.25 + y * y, (y + 0.5)))
+            elif h0(sum(xs)) < math.hypot(y, 1.0):
+                z, t5 = t5, sum(xs)
+                b6 = ((z if y <= 0.1 else z) if min(z, y) == y else (z if y <= 0.1 else z))
+            elif (0.1 - 0.1 // (1.25 + z * z)) >= z:
+                return ((y + math.atan(y)) + h0(x))
+            b3 = y
+        elif max(h0(x), (y if z > 1.5 else y)) == h0(x):
+            if math.atan(z) > (x ** 2) > y:
+                z /= (1.25 + math.sin(z) * math.sin(z))
+                t9 = math.copysign(x, min(y, z))
+                b8 = x
+            elif abs(x) != x:
+                b8 = (x - x // (1.25 + math.fabs(y) * math.fabs(y)))
+            elif not (abs(z) == z):
+                b8 = z
+            b3 = x
+        if (max(x, z) == x) or (z <= (z + 0.5)):
+            y += x
+            d11 = h1(b=math.sin(y), a=h0(z, x))
+            d11 = math.sin(y)
+            b10 = (math.copysign(x, y) if not (sum(xs) > d11) else (sum(xs) if (d11 > y) or (y > z) else z))
+        elif (y >= (y + 0.5)) and (z <= -1.25 <= x):
+            y = (y if not (z <= (z + 0.5) <= y) else y)
+            y *= 3.0
+            y, z = z, y
+            b10 = x
+        else:
+            for i13 in range(len(xs)):
+                d14 = h1(b=h0(y), a=(z if x >= z else y))
+            t15 = z
+            b10 = h0(z, (y / (1.25 + y * y)))
+        b1 = min((y - 3.0), y)
+    elif (x % (1.25 + (x + 0.5) * (x + 0.5))) >= (0.1 / (1.25 + z * z)):
+        b1 = (h0(a=x, b=sum(xs)) - z)
+    for i17 in range(2):
+        t18 = (1.5 + (z + y) * (z + y)) ** math.tanh(h0(a=z))
+        t19 = y
+    z = ((z * x) if z > (z + 0.5) else (z * x))
+    t20 = h0(z)
+    return ((y * h1(y, b=t20)) * (t20 - sum(xs)))
+
+""",
+        [[-0.6977896255409586, 0.5602355426036707, -1.4094460407219356, []]],
+    ),
 }
 
 
