@@ -611,10 +611,12 @@ def f(x, y, z, xs):
             t5 = x
             if (y >= (y + 0.5) >= z) or (z <= t5):
                 d7 = h0(b=t5, a=math.sin(z))
-                b6 = ((t5 if z > x > 0.1 else t5) if t5 > sum(xs) else math.pow(1.25 + y * y, (y + 0.5)))
+                b6 = ((t5 if z > x > 0.1 else t5) if t5 > sum(xs)
+                      else math.pow(1.25 + y * y, (y + 0.5)))
             elif h0(sum(xs)) < math.hypot(y, 1.0):
                 z, t5 = t5, sum(xs)
-                b6 = ((z if y <= 0.1 else z) if min(z, y) == y else (z if y <= 0.1 else z))
+                b6 = ((z if y <= 0.1 else z) if min(z, y) == y
+                      else (z if y <= 0.1 else z))
             elif (0.1 - 0.1 // (1.25 + z * z)) >= z:
                 return ((y + math.atan(y)) + h0(x))
             b3 = y
@@ -632,7 +634,8 @@ def f(x, y, z, xs):
             y += x
             d11 = h1(b=math.sin(y), a=h0(z, x))
             d11 = math.sin(y)
-            b10 = (math.copysign(x, y) if not (sum(xs) > d11) else (sum(xs) if (d11 > y) or (y > z) else z))
+            b10 = (math.copysign(x, y) if not (sum(xs) > d11)
+                   else (sum(xs) if (d11 > y) or (y > z) else z))
         elif (y >= (y + 0.5)) and (z <= -1.25 <= x):
             y = (y if not (z <= (z + 0.5) <= y) else y)
             y *= 3.0
