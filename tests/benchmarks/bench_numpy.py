@@ -340,22 +340,27 @@ def main() -> None:
     # --rows: only the row models (the issue-12 targets)
     worst = _table([] if "--rows" in sys.argv else MODELS, SIZES, "")
     if "--rows" not in sys.argv:
-        print(f"worst ratio at 1e5 and 1e6: {worst:.2f} ({_verdict(worst)})")
+        print(f"worst ratio at 1e5 and 1e6: {_verdict(worst)}")
     worst = _table(ROW_MODELS, ROW_SIZES, " (n rows)")
     print(
-        f"worst ratio, row models: {worst:.2f} ({_verdict(worst)}); load average now"
+        f"worst ratio, row models: {_verdict(worst)}; load average now"
         f" {os.getloadavg()[0]:.2f}"
     )
 
 
-def _verdict(ratio: float) -> str:
-    return f"{'meets' if ratio <= TARGET else 'misses'} the target of {TARGET}"
+def _verdict(worst: tuple[float, float]) -> str:
+    """The worst ratio, whether it meets the target, and the hand-written
+    gradient's ratio at the same point (BLAS threading can put both above it)."""
+    ratio, hand = worst
+    met = "meets" if ratio <= TARGET else "misses"
+    return f"{ratio:.2f} ({met} the target of {TARGET}; hand-written there {hand:.2f})"
 
 
-def _table(models, sizes, note: str) -> float:
-    """Prints a line per model and size; returns the worst ratio at n >= 10^5.
-    "hand" is the hand-written gradient's time / the primal's, measured beside."""
-    worst = 0.0
+def _table(models, sizes, note: str) -> tuple[float, float]:
+    """Prints a line per model and size; returns the worst ratio at n >= 10^5
+    and the hand-written gradient's ratio at that point. "hand" is the
+    hand-written gradient's time / the primal's, measured beside."""
+    worst = (0.0, 0.0)
     for name, source, data, shapes, hand in models:
         for n in sizes:
             args, wrt = data(n, np.random.default_rng(n))
@@ -365,7 +370,7 @@ def _table(models, sizes, note: str) -> float:
                 [ns["loss"], ns["loss_grad"], hand], args
             )
             if n >= 10**5:
-                worst = max(worst, grad / primal)
+                worst = max(worst, (grad / primal, by_hand / primal))
             print(
                 f"{name:22} {n:>8.0e} {primal * 1e3:>9.3f}ms {grad * 1e3:>9.3f}ms"
                 f" {grad / primal:>6.2f} {by_hand / primal:>5.2f}"
