@@ -46,6 +46,7 @@ from gradwright.ir import (
     walk,
 )
 from gradwright.sweeps.broadcasting import Fitter
+from gradwright.sweeps.optimize import mentions
 
 #: ops whose result is a new array (or a number), never one of their operands
 #: (``copy`` prints as the plain name)
@@ -127,30 +128,6 @@ def _statements(stmt: ReverseStmt) -> list[ReverseStmt]:
     if isinstance(stmt, ReverseLoop):
         return list(stmt.body)
     return []
-
-
-def _mentions(stmt: ReverseStmt, var: Var) -> bool:
-    """Whether ``stmt`` (or a statement inside it) reads or writes ``var``'s
-    adjoint."""
-    if isinstance(stmt, AdjointAssign) and stmt.var == var:
-        return True
-    if isinstance(stmt, (ElementAdjoint, SpreadAdjoint, PopAdjoint)) and var in (
-        stmt.root,
-        getattr(stmt, "var", None),
-    ):
-        return True
-    if isinstance(stmt, CallAdjoint) and var in stmt.parts:
-        return True
-    exprs = [
-        getattr(stmt, name)
-        for name in ("expr", "index", "seed", "condition")
-        if hasattr(stmt, name)
-    ]
-    if isinstance(stmt, CallAdjoint):
-        exprs += list(stmt.args)
-    if any(Bar(var) == node for e in exprs for node in walk(e)):
-        return True
-    return any(_mentions(inner, var) for inner in _statements(stmt))
 
 
 def _factors(expr: Expr) -> list[Expr]:
@@ -271,7 +248,7 @@ def plan_in_place(sweep: ReverseSweep, fitter: Fitter) -> ReverseSweep:
             and fitter.table.atom(d) == wanted
             and wanted != ()
             and not any(
-                s is not None and _mentions(s, d) for s in statements[position + 1 :]
+                s is not None and mentions(s, d) for s in statements[position + 1 :]
             )
         }
         lent = _lending(stmt.expr, lenders)
@@ -400,7 +377,7 @@ def _movable(
         or _operations(rest, fitter, shape) <= _operations(defined, fitter, shape)
         # only adjoint statements in between: no loop restores a forward name
         or any(not isinstance(s, AdjointAssign) for s in between)
-        or any(_mentions(s, lender) or _written(s) & reads for s in between)
+        or any(mentions(s, lender) or _written(s) & reads for s in between)
     ):
         return None
     return where, Apply(op, (rest, defined))

@@ -322,7 +322,7 @@ def _into_arguments(
 ) -> tuple[ReverseStmt, ...]:
     """``x_1_bar, ... = h_adjoint(...)`` then ``x_bar = x_1_bar``: the call
     writes ``x_bar`` itself (the part was read only by that copy, and no
-    statement between them reads or writes ``x_bar``: a loop's carried state
+    statement between them reads or writes ``x_bar`` or the part: a loop's carried state
     handed on after a list element's ``+=``; the layout's carried-adjoint naming
     sees a call's writes, see ``layout_names._writes``)."""
     flat = list(_flatten(statements))
@@ -365,7 +365,7 @@ def _into_arguments(
                 and stmt.var.shape == part.shape
                 # (a list element's += in between may not read or write either:
                 # x_1_bar += y_bar would go to a name nobody reads)
-                and not any(_touches(s, stmt.var) or _touches(s, part) for s in between)
+                and not any(mentions(s, stmt.var) or mentions(s, part) for s in between)
             ):
                 parts = tuple(stmt.var if p == part else p for p in found.parts)
                 out[call] = replace(found, parts=parts)
@@ -377,10 +377,13 @@ def _into_arguments(
     return tuple(out)
 
 
-def _touches(stmt: ReverseStmt, var: Var) -> bool:
-    """Whether ``stmt`` (no block) reads or writes ``var``'s adjoint."""
-    root = getattr(stmt, "root", None)
-    return var == root or var in _written_bars(stmt) | _bars_read(stmt)
+def mentions(stmt: ReverseStmt, var: Var) -> bool:
+    """Whether ``stmt`` (or a statement inside it) reads or writes ``var``'s
+    adjoint (a list adjoint through an element or spread write too)."""
+    return any(
+        var == getattr(s, "root", None) or var in _written_bars(s) | _bars_read(s)
+        for s in _flatten([stmt])
+    )
 
 
 def map_statements(
